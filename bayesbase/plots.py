@@ -1,0 +1,387 @@
+"""Figures for one patient's results over time (layer 5: matplotlib lives here and in report).
+
+Figures are built with :class:`matplotlib.figure.Figure` directly, never through ``pyplot``, so
+nothing global (the backend, the current figure, rcParams) changes when a report is drawn.
+
+Visual language (described to the reader by :data:`LEGEND_TEXT`; colours from the Okabe-Ito
+colour-blind-safe palette, Okabe M & Ito K, "Color Universal Design", 2008, common practice in
+scientific figures):
+
+* population reference interval: two thin reddish-purple dashed limit lines with a faint hatch
+  between them;
+* personal interval as it stood at each specimen: a bluish-green stepped ribbon (the interval
+  predicted from the specimens before a draw, held from the previous draw up to that draw);
+  the interval for the assessed specimen is the last step;
+* baseline specimens: filled blue circles; specimens taken while unwell: hollow black diamonds;
+  excluded specimens: dark-grey crosses; specimens after the assessed one: small hollow grey rings;
+* the assessed result: a large star with a black edge, filled by P(change): sky blue below the
+  uncertain band, orange inside it, vermillion above it;
+* censored results (``<x`` / ``>x``): a small chevron pointing the way the true value lies;
+* drift model (when computed): a black dash-dot line with a pale-yellow band for its credible
+  slope range, drawn through the geometric mean of the specimens used.
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
+import matplotlib.dates as mdates
+
+from .constants import UNCERTAIN_BAND
+
+__all__ = [
+    "PALETTE",
+    "LEGEND_TEXT",
+    "star_colour",
+    "analyte_panel",
+    "small_multiples",
+    "legend_figure",
+    "legend_handles",
+    "figure_png",
+    "figure_svg",
+]
+
+#: Okabe-Ito colours (Okabe & Ito 2008), named by their use here.
+PALETTE = {
+    "population": "#CC79A7",  # reddish purple
+    "personal": "#009E73",  # bluish green
+    "baseline": "#0072B2",  # blue
+    "unwell": "#000000",  # black
+    "excluded": "#5A5A5A",  # dark grey
+    "later": "#9A9A9A",  # mid grey
+    "low": "#56B4E9",  # sky blue: P(change) below the uncertain band
+    "uncertain": "#E69F00",  # orange: inside the band
+    "probable": "#D55E00",  # vermillion: above the band
+    "trend": "#000000",
+    "trend_band": "#F0E442",  # yellow
+}
+
+LEGEND_TEXT = (
+    ("population interval", "two thin reddish-purple dashed lines with a faint hatch between them"),
+    ("personal interval", "bluish-green stepped ribbon: the interval as it stood before each draw "
+     "(from the specimens available then); the last step is the one the assessed result is read "
+     "against"),
+    ("baseline", "filled blue circle"),
+    ("unwell", "hollow black diamond (taken while unwell: not used for the set point)"),
+    ("excluded", "dark-grey cross (left out; the reason is listed in the header)"),
+    ("later", "small hollow grey ring (after the assessed specimen; not used)"),
+    ("assessed", "large star with a black edge, filled by P(change): sky blue below "
+     f"{UNCERTAIN_BAND[0]:.1f}, orange from {UNCERTAIN_BAND[0]:.1f} to {UNCERTAIN_BAND[1]:.1f}, "
+     f"vermillion above {UNCERTAIN_BAND[1]:.1f}"),
+    ("censored", "a chevron beside the point shows the true value lies below (v) or above (^) it"),
+    ("drift", "black dash-dot line with a pale-yellow band (credible range of the slope), when the "
+     "drift model was computed"),
+)
+
+_ROLE_STYLE = {
+    "baseline": dict(marker="o", s=30, facecolors=PALETTE["baseline"], edgecolors="#003B5C",
+                     linewidths=0.6, zorder=5),
+    "unwell": dict(marker="D", s=30, facecolors="none", edgecolors=PALETTE["unwell"],
+                   linewidths=1.1, zorder=5),
+    "excluded": dict(marker="X", s=46, facecolors=PALETTE["excluded"], edgecolors="none",
+                     zorder=5),
+    "later": dict(marker="o", s=16, facecolors="none", edgecolors=PALETTE["later"],
+                  linewidths=0.9, zorder=4),
+}
+
+
+def star_colour(p_change: float) -> str:
+    """Fill colour of the assessed-result star for a posterior probability of change."""
+    if p_change is None or not np.isfinite(p_change):
+        return "#FFFFFF"
+    lo, hi = UNCERTAIN_BAND
+    if p_change < lo:
+        return PALETTE["low"]
+    if p_change <= hi:
+        return PALETTE["uncertain"]
+    return PALETTE["probable"]
+
+
+def _finite(x) -> bool:
+    try:
+        return x is not None and x is not pd.NA and np.isfinite(float(x))
+    except (TypeError, ValueError):
+        return False
+
+
+def _get(row, key, default=None):
+    try:
+        value = row[key]
+    except (KeyError, IndexError):
+        return default
+    if value is pd.NA or value is None:
+        return default
+    return value
+
+
+def _analyte_history(history: pd.DataFrame, patient, analyte) -> pd.DataFrame:
+    h = history[(history["patient"] == patient) & (history["analyte"] == analyte)]
+    if h.empty:
+        return h
+    # one point per specimen: the mean of replicates on the log scale (geometric mean)
+    cols = ["specimen", "collected_at", "role"]
+    agg = (
+        h.assign(_logv=np.log(h["value"].astype(float)))
+        .groupby(cols, sort=False, dropna=False)
+        .agg(_logv=("_logv", "mean"), censor=("censor", lambda s: next((c for c in s if c), "")))
+        .reset_index()
+    )
+    agg["value"] = np.exp(agg["_logv"])
+    return agg.sort_values("collected_at").reset_index(drop=True)
+
+
+def _path_for(interval_path, patient, analyte) -> pd.DataFrame | None:
+    if interval_path is None or len(interval_path) == 0:
+        return None
+    p = interval_path[(interval_path["patient"] == patient) & (interval_path["analyte"] == analyte)]
+    p = p.dropna(subset=["pi_lower", "pi_upper"]).sort_values("collected_at")
+    return p if len(p) else None
+
+
+def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
+                compact: bool = False) -> None:
+    patient, analyte = row["patient"], row["analyte"]
+    h = _analyte_history(history, patient, analyte)
+    t_assessed = pd.Timestamp(row["collected_at"])
+    times = list(h["collected_at"]) if len(h) else [t_assessed]
+    t0, t1 = min(times + [t_assessed]), max(times + [t_assessed])
+    span = max((t1 - t0), pd.Timedelta(days=2))
+    pad = span * 0.06
+    xlo, xhi = t0 - pad, t1 + pad
+
+    # population interval: dashed limits, faint hatch
+    plo, phi = _get(row, "pop_lower"), _get(row, "pop_upper")
+    if _finite(plo) and _finite(phi):
+        ax.fill_between([xlo, xhi], [plo, plo], [phi, phi], facecolor="none",
+                        edgecolor=PALETTE["population"], hatch="////", linewidth=0, alpha=0.22,
+                        zorder=1)
+        for v in (plo, phi):
+            ax.axhline(v, color=PALETTE["population"], linestyle=(0, (4, 3)), linewidth=0.9,
+                       zorder=2)
+
+    # personal interval: stepped ribbon
+    path = _path_for(interval_path, patient, analyte)
+    steps = []
+    if path is not None:
+        steps = [(pd.Timestamp(t), lo, hi) for t, lo, hi in
+                 zip(path["collected_at"], path["pi_lower"], path["pi_upper"])
+                 if pd.Timestamp(t) < t_assessed]
+    if _finite(_get(row, "pi_lower")) and _finite(_get(row, "pi_upper")):
+        steps.append((t_assessed, float(row["pi_lower"]), float(row["pi_upper"])))
+    steps.sort(key=lambda s: s[0])
+    if steps:
+        spec_times = sorted(set(times))
+        xs, los, his = [], [], []
+        for i, (t, lo, hi) in enumerate(steps):
+            earlier = [u for u in spec_times if u < t]
+            start = earlier[-1] if earlier else t - span * 0.04
+            if xs and start < xs[-1]:
+                start = xs[-1]
+            # each step runs from the previous draw to this one; the last reaches a little past
+            # the assessed result so that the star sits inside its own band
+            end = t + span * 0.02 if i == len(steps) - 1 else t
+            xs += [start, end]
+            los += [lo, lo]
+            his += [hi, hi]
+        ax.fill_between(xs, los, his, facecolor=PALETTE["personal"], alpha=0.26,
+                        edgecolor="none", zorder=2)
+        for ys in (los, his):
+            ax.plot(xs, ys, color=PALETTE["personal"], linewidth=1.0, zorder=3)
+
+    # drift line and band
+    tr = trend
+    if tr is None and _finite(_get(row, "trend_pct_per_year")):
+        tr = {"pct_per_year": float(row["trend_pct_per_year"]),
+              "pct_lower": _get(row, "trend_pct_lower"), "pct_upper": _get(row, "trend_pct_upper")}
+    used = h[h["role"].isin(["baseline", "assessed"])] if len(h) else h
+    if tr and len(used) >= 2:
+        ct = pd.to_datetime(used["collected_at"])
+        anchor_t = ct.min() + (ct - ct.min()).mean()  # resolution-safe mean time
+        anchor = float(np.exp(np.log(used["value"]).mean()))
+        tt = pd.date_range(xlo, xhi, periods=40)
+        yrs = (tt - anchor_t) / pd.Timedelta(days=365.25)
+        yrs = np.asarray(yrs, dtype=float)
+
+        def line(pct):
+            return anchor * (1.0 + float(pct) / 100.0) ** yrs
+
+        if _finite(tr.get("pct_lower")) and _finite(tr.get("pct_upper")):
+            a, b = line(tr["pct_lower"]), line(tr["pct_upper"])
+            ax.fill_between(tt, np.minimum(a, b), np.maximum(a, b), facecolor=PALETTE["trend_band"],
+                            alpha=0.45, edgecolor="none", zorder=1.5)
+        ax.plot(tt, line(tr["pct_per_year"]), color=PALETTE["trend"], linestyle="-.",
+                linewidth=1.0, zorder=3.5)
+
+    # specimens by role
+    for role, style in _ROLE_STYLE.items():
+        sub = h[h["role"] == role] if len(h) else h
+        if len(sub):
+            ax.scatter(sub["collected_at"], sub["value"], **style)
+    a = h[h["role"] == "assessed"] if len(h) else h
+    value = float(row["value"]) if _finite(_get(row, "value")) else None
+    if value is not None:
+        ax.scatter([t_assessed], [value], marker="*", s=170 if not compact else 140,
+                   facecolors=star_colour(_get(row, "p_change")), edgecolors="#000000",
+                   linewidths=0.8, zorder=7)
+    # censored chevrons
+    if len(h):
+        for _, r in h[h["censor"].isin(["left", "right"])].iterrows():
+            ax.annotate("v" if r["censor"] == "left" else "^", (r["collected_at"], r["value"]),
+                        xytext=(6, -2), textcoords="offset points", fontsize=7, zorder=8)
+    elif value is not None and _get(row, "censor") in ("left", "right"):
+        ax.annotate("v" if row["censor"] == "left" else "^", (t_assessed, value),
+                    xytext=(6, -2), textcoords="offset points", fontsize=7)
+    del a
+
+    ax.set_xlim(xlo, xhi)
+    # y range: everything drawn, with room
+    ys = [v for v in list(h["value"]) if _finite(v)] if len(h) else []
+    ys += [v for v in (plo, phi, value) if _finite(v)]
+    for _, lo, hi in steps:
+        ys += [lo, hi]
+    if ys:
+        lo, hi = min(ys), max(ys)
+        r = (hi - lo) or abs(hi) * 0.1 or 1.0
+        ax.set_ylim(max(lo - 0.12 * r, 0.0) if lo >= 0 else lo - 0.12 * r, hi + 0.12 * r)
+    # maxticks 4 makes AutoDateLocator warn for spans near 18 months (checked 1 day to 11 years)
+    locator = mdates.AutoDateLocator(minticks=2, maxticks=5 if compact else 7)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+    ax.tick_params(labelsize=6.5 if compact else 8, length=2.5, pad=1.5)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.spines["left"].set_linewidth(0.6)
+    ax.spines["bottom"].set_linewidth(0.6)
+
+    label = str(_get(row, "label", analyte))
+    unit = str(_get(row, "display_unit", _get(row, "unit", "")))
+    p = _get(row, "p_change")
+    ptxt = f"P(change) {float(p):.2f}" if _finite(p) else "P(change) n/a"
+    ax.set_title(f"{label}  [{unit}]", fontsize=8.5 if compact else 10, loc="left", pad=3,
+                 fontweight="bold")
+    ax.text(1.0, 1.01, ptxt, transform=ax.transAxes, ha="right", va="bottom",
+            fontsize=7.2 if compact else 8, color="#333333")
+
+
+def _new_figure(width, height, dpi=110) -> Figure:
+    # fixed margins, not a layout engine: constrained layout cost ~0.35 s per panel here
+    return Figure(figsize=(width, height), dpi=dpi)
+
+
+def _margins(fig: Figure, width: float, height: float, top_in: float = 0.32,
+             bottom_in: float = 0.28, left_in: float = 0.5, right_in: float = 0.1) -> None:
+    fig.subplots_adjust(left=left_in / width, right=1 - right_in / width,
+                        bottom=bottom_in / height, top=1 - top_in / height)
+
+
+def analyte_panel(history: pd.DataFrame, table_row, interval_path: pd.DataFrame | None = None,
+                  trend: dict | None = None, *, width: float = 3.4, height: float = 2.3) -> Figure:
+    """One analyte of one patient over time.
+
+    Parameters
+    ----------
+    history : Assessment.history (all rows; the panel picks the patient and analyte of the row).
+    table_row : one row of Assessment.table (a Series or mapping).
+    interval_path : optional frame with patient, analyte, specimen, collected_at, pi_lower,
+        pi_upper: the personal interval as it stood at each specimen (see
+        ``bayesbase.report.personal_interval_path``).
+    trend : optional dict ``pct_per_year, pct_lower, pct_upper``; by default taken from the
+        row's trend columns when they are finite.
+    """
+    fig = _new_figure(width, height)
+    _margins(fig, width, height)
+    ax = fig.add_subplot(1, 1, 1)
+    _draw_panel(ax, history, table_row, interval_path, trend, compact=True)
+    return fig
+
+
+def legend_handles() -> list:
+    """Legend entries for the visual language (shared by the figures and the report)."""
+    return [
+        Line2D([], [], color=PALETTE["population"], linestyle=(0, (4, 3)), linewidth=0.9,
+               label="population interval"),
+        Patch(facecolor=PALETTE["personal"], alpha=0.35, edgecolor=PALETTE["personal"],
+              label="personal interval (stepped)"),
+        Line2D([], [], marker="o", linestyle="none", markerfacecolor=PALETTE["baseline"],
+               markeredgecolor="#003B5C", label="baseline"),
+        Line2D([], [], marker="D", linestyle="none", markerfacecolor="none",
+               markeredgecolor=PALETTE["unwell"], label="unwell"),
+        Line2D([], [], marker="X", linestyle="none", markersize=7,
+               markerfacecolor=PALETTE["excluded"], markeredgecolor="none", label="excluded"),
+        Line2D([], [], marker="o", linestyle="none", markerfacecolor="none", markersize=4.5,
+               markeredgecolor=PALETTE["later"], label="later, not used"),
+        Line2D([], [], marker="*", linestyle="none", markersize=11, markerfacecolor=PALETTE["low"],
+               markeredgecolor="#000", label=f"assessed, P(change) < {UNCERTAIN_BAND[0]:g}"),
+        Line2D([], [], marker="*", linestyle="none", markersize=11,
+               markerfacecolor=PALETTE["uncertain"], markeredgecolor="#000",
+               label=f"assessed, {UNCERTAIN_BAND[0]:g}-{UNCERTAIN_BAND[1]:g}"),
+        Line2D([], [], marker="*", linestyle="none", markersize=11,
+               markerfacecolor=PALETTE["probable"], markeredgecolor="#000",
+               label=f"assessed, > {UNCERTAIN_BAND[1]:g}"),
+        Line2D([], [], color=PALETTE["trend"], linestyle="-.", linewidth=1.0,
+               label="drift (where computed)"),
+    ]
+
+
+def legend_figure(width: float = 7.4, height: float = 0.8, ncols: int = 4) -> Figure:
+    """A strip holding only the legend of the visual language (sized to fit its width)."""
+    fig = _new_figure(width, height)
+    fig.legend(handles=legend_handles(), loc="center", ncols=ncols, frameon=False, fontsize=7.5,
+               handlelength=2.0, columnspacing=1.5, borderaxespad=0.1)
+    return fig
+
+
+def small_multiples(history: pd.DataFrame, table: pd.DataFrame,
+                    interval_path: pd.DataFrame | None = None, *, ncols: int = 4,
+                    analytes: Iterable[str] | None = None, panel_width: float = 2.6,
+                    panel_height: float = 1.9, legend: bool = True) -> Figure:
+    """A grid of :func:`analyte_panel` views, one per row of ``table`` (one patient), in table
+    order (or the order of ``analytes``), with one shared legend underneath."""
+    rows = table
+    if analytes is not None:
+        order = list(analytes)
+        rows = table.set_index("analyte").loc[order].reset_index()
+    n = len(rows)
+    if n == 0:
+        raise ValueError("small_multiples: the table has no rows")
+    ncols = max(1, min(ncols, n))
+    nrows = math.ceil(n / ncols)
+    extra = 0.6 if legend else 0.0
+    W, H = panel_width * ncols, panel_height * nrows + extra
+    fig = _new_figure(W, H)
+    fig.subplots_adjust(left=0.5 / W, right=1 - 0.1 / W, top=1 - 0.3 / H,
+                        bottom=(extra + 0.28) / H, wspace=0.5 / (panel_width - 0.6),
+                        hspace=0.55 / (panel_height - 0.55))
+    axes = fig.subplots(nrows, ncols, squeeze=False)
+    for i, (_, row) in enumerate(rows.iterrows()):
+        _draw_panel(axes[i // ncols][i % ncols], history, row, interval_path, compact=True)
+    for j in range(n, nrows * ncols):
+        axes[j // ncols][j % ncols].set_visible(False)
+    if legend:
+        fig.legend(handles=legend_handles(), loc="lower center", ncols=5, frameon=False,
+                   fontsize=7, bbox_to_anchor=(0.5, 0.0))
+    return fig
+
+
+def figure_png(fig: Figure, dpi: int = 150) -> bytes:
+    """PNG bytes of a figure (no pyplot involved)."""
+    import io
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": None})
+    return buf.getvalue()
+
+
+def figure_svg(fig: Figure) -> str:
+    """SVG text of a figure, with no external references."""
+    import io
+
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None, "Format": None,
+                                             "Type": None})
+    return buf.getvalue()
