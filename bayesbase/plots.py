@@ -150,7 +150,11 @@ def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
     t_assessed = pd.Timestamp(row["collected_at"])
     times = list(h["collected_at"]) if len(h) else [t_assessed]
     t0, t1 = min(times + [t_assessed]), max(times + [t_assessed])
-    span = max((t1 - t0), pd.Timedelta(days=2))
+    span = t1 - t0
+    if span < pd.Timedelta(days=30):  # one specimen or a few within days: show a month
+        mid = t0 + span / 2
+        t0, t1 = mid - pd.Timedelta(days=15), mid + pd.Timedelta(days=15)
+        span = t1 - t0
     pad = span * 0.06
     xlo, xhi = t0 - pad, t1 + pad
 

@@ -249,37 +249,45 @@ def _direction(row) -> str:
 
 
 def _notes(row) -> list[str]:
+    """Notes of a row: the assessment's own flags first, then what the columns say and no flag
+    already covers (matched by keyword, so a fake or older table still gets its notes)."""
     notes: list[str] = []
-    seen = set()
+    for f in _flags(row):
+        if f not in notes:
+            notes.append(f)
+    low = " ".join(notes).lower()
 
-    def add(text):
-        key = text.lower()
-        if key not in seen:
-            seen.add(key)
+    def add(text, *keys):
+        if not any(k in low for k in keys) and text not in notes:
             notes.append(text)
 
     q = row.get("quality")
     if not _isna(q) and str(q) and str(q) != "ok":
-        add(f"sample quality: {q}")
+        add(f"sample quality: {q}", "index", "quality", "compromised")
     if _bool(row.get("comparable")) is False:
-        add("method changed: not directly comparable")
+        add("method changed: not directly comparable", "comparable")
     ah = _num(row.get("assumed_healthy"))
     if ah:
-        add("baselines assumed healthy (state not recorded)")
+        add("baselines assumed healthy (state not recorded)", "assumed healthy")
     c = row.get("censor")
     if not _isna(c) and str(c) in ("left", "right"):
         rv = row.get("reported_value")
-        add(f"censored result ({rv})" if not _isna(rv) else "censored result")
+        add(f"censored result ({rv})" if not _isna(rv) else "censored result", "assessed value is cens",
+            "censored result")
     if _bool(row.get("converged")) is False:
-        add("sampler did not converge: treat with caution")
+        add("sampler did not converge: treat with caution", "converge")
     if _bool(row.get("cva_high")):
-        add("analyser noise high (CVA > \u00bd CVI)")
+        add("analyser noise high (CVA > \u00bd CVI)", "cva")
     nb = _num(row.get("n_baseline"))
     if nb == 0:
-        add("no baseline: population prior only")
-    for f in _flags(row):
-        add(f)
+        add("no baseline: population prior only", "no baseline")
     return notes
+
+
+#: flag words that mark a compromised sample (a retest can help), as opposed to facts about the
+#: data (units converted, breed centre used) that a retest does not change.
+_COMPROMISE_WORDS = ("compromised", "not fasted", "haemoly", "lipaem", "icter", "fed:",
+                     "feeding-sensitive")
 
 
 def _rcv_cells(row) -> tuple[str, str, bool, bool]:
@@ -427,7 +435,9 @@ def retest_advice(table: pd.DataFrame, pack=None) -> list[dict]:
     """Retest suggestions for uncertain answers and compromised samples.
 
     A row qualifies when p_change lies in ``UNCERTAIN_BAND`` (inclusive), when ``quality`` is not
-    ``ok``, or when it carries flags. Rows are grouped by ``retest_group``; the time comes from
+    ``ok``, or when a flag marks the sample as compromised (not fasted for a feeding-sensitive
+    analyte, an H/L/I index above threshold); flags a retest cannot change (units converted,
+    method changed, breed centre) do not. Rows are grouped by ``retest_group``; the time comes from
     ``pack.retest_groups[group]`` (hours_min / hours_max). Returns dicts group, when, analytes
     (labels), reasons (per label), source.
     """
@@ -440,8 +450,9 @@ def retest_advice(table: pd.DataFrame, pack=None) -> list[dict]:
             reasons.append(f"P(change) {p:.2f} is uncertain")
         q = r.get("quality")
         if not _isna(q) and str(q) and str(q) != "ok":
-            reasons.append(f"sample quality ({q})")
-        fl = _flags(r)
+            reasons.append(f"sample compromised ({q})")
+        fl = [f for f in _flags(r) if any(w in f.lower() for w in _COMPROMISE_WORDS)
+              and "index" not in f.lower()]  # index flags are summarised by quality
         if fl:
             reasons.append("; ".join(fl))
         if not reasons:
@@ -620,6 +631,14 @@ def _cv_rows(table: pd.DataFrame, pack, refs: _Refs) -> list[dict]:
     return rows
 
 
+def _plain(v) -> str:
+    """A setting for display: a list of equal values shows once."""
+    if isinstance(v, (list, tuple, np.ndarray)):
+        vals = list(dict.fromkeys(str(x) for x in v))
+        return ", ".join(vals)
+    return str(v)
+
+
 def _provenance(assessment, pack) -> list[tuple[str, str]]:
     attrs = dict(getattr(assessment, "attrs", {}) or {})
     settings = attrs.get("settings") or {}
@@ -635,7 +654,7 @@ def _provenance(assessment, pack) -> list[tuple[str, str]]:
         ("Engine", str(attrs.get("engine", "?"))),
         ("Settings", settings_txt),
         ("Personal interval coverage", f"{100 * float(attrs.get('coverage', DEFAULT_COVERAGE)):.0f} %"),
-        ("Prior P(change)", str(attrs.get("prior_change", "?"))),
+        ("Prior P(change)", _plain(attrs.get("prior_change", "?"))),
         ("Seed", str(attrs.get("seed", "?"))),
         ("Assessment made by", f"bayesbase {attrs.get('version', '?')}"),
         ("Report made by", f"bayesbase {__version__}, "
@@ -717,6 +736,7 @@ table.cv th, table.cv td { border-bottom: 0.5px solid #ccc; padding: 0.6mm 1mm; 
 .legend dd { margin: 0; }
 ol.refs { font-size: 7.4pt; color: #333; padding-left: 6mm; overflow-wrap: anywhere; }
 section { break-inside: auto; }
+table.spec { width: auto; }
 .spec td { font-size: 8.5pt; padding: 0.5mm 2mm 0.5mm 0; vertical-align: top; }
 .tag { display: inline-block; padding: 0 1.5mm; border-radius: 1.5mm; font-size: 7.8pt; }
 .tag.assessed { background: #D55E00; color: #fff; }
@@ -806,7 +826,7 @@ def _html(ctx: dict) -> str:
     out.append("<section><h2>Results</h2>")
     if common:
         out.append(f"<p class='small'>For every analyte: {e('; '.join(common))}.</p>")
-    widths = (12.5, 7, 10, 10, 5, 12, 6.5, 8, 9, 9, 11)
+    widths = (12, 6.5, 9.5, 9.5, 5, 11.5, 6, 8, 8.5, 8.5, 15)
     out.append('<table class="results"><colgroup>'
                + "".join(f'<col style="width:{w}%">' for w in widths) + "</colgroup><thead><tr>"
                "<th>Analyte</th><th class='num'>Result</th><th class='num'>Population interval</th>"
@@ -1170,8 +1190,8 @@ def build_report(assessment, pack, out_html, pdf=None, png_dir=None, title: str 
 
     out_html = Path(out_html)
     title = title or f"Probability of change — patient {patient}"
-    ci_prob = (attrs.get("settings") or {}).get("ci_prob", DEFAULT_CI_PROB) \
-        if isinstance(attrs.get("settings"), Mapping) else DEFAULT_CI_PROB
+    settings = attrs.get("settings") if isinstance(attrs.get("settings"), Mapping) else {}
+    ci_prob = attrs.get("ci_prob", settings.get("ci_prob", DEFAULT_CI_PROB))
     summary = panel_summary(table, ci_prob=float(ci_prob))
     rows = report_rows(table)
     refs = _Refs()

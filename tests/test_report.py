@@ -320,16 +320,16 @@ def test_personal_interval_path_calls_assess_per_specimen():
 def built(tmp_path_factory):
     d = tmp_path_factory.mktemp("rep")
     a = fake_assessment()
-    files = report.build_report(a, fake_pack(), d / "r.html", pdf=d / "r.pdf", png_dir=d / "png")
+    files = report.build_report(a, fake_pack(), d / "r.html", pdf=d / "r.pdf", png_dir=d / "png",
+                                dpi=72)
     return a, files
 
 
-def test_every_analyte_row_with_its_numbers(built):
-    a, files = built
-    p = parse(files.html)
-    rows = {r[0].split(" ")[0]: r for r in p.rows[1:]}
-    assert len(p.rows) == 1 + len(a.table)
-    for _, t in a.table.iterrows():
+def _check_rows(table, html_path):
+    """Every analyte of ``table`` has a row in the HTML results table with its numbers."""
+    p = parse(html_path)
+    assert len(p.rows) == 1 + len(table)
+    for _, t in table.iterrows():
         cells = next(r for r in p.rows[1:] if r[0].startswith(t["label"] + " "))
         assert units.display_unit(t["analyte"]) in cells[0]
         # value, population and personal limits shown to 3 significant digits
@@ -342,12 +342,19 @@ def test_every_analyte_row_with_its_numbers(built):
         assert _float(hi) == pytest.approx(t["pi_upper"], rel=0.006)
         assert _float(cells[4]) == pytest.approx(100 * t["percentile"], abs=0.51)
         assert _float(cells[5]) == pytest.approx(t["p_change"], abs=0.0051)
-        assert _float(cells[6]) == pytest.approx(t["change_vs_mean_pct"], abs=0.51)
-        assert ("beyond" in cells[7]) == bool(t["rcv_exceeded_mean"])
-        assert _float(cells[7]) == pytest.approx(t["rcv_classical_pct"], abs=0.51)
-        assert ("beyond" in cells[8]) == bool(t["lognormal_exceeded_mean"])
+        if t["n_baseline"] == 0 or pd.isna(t["change_vs_mean_pct"]):
+            assert cells[6] == "–" and cells[7] == cells[8] == "no baseline"
+        else:
+            assert _float(cells[6]) == pytest.approx(t["change_vs_mean_pct"], abs=0.51)
+            assert ("beyond" in cells[7]) == bool(t["rcv_exceeded_mean"])
+            assert _float(cells[7]) == pytest.approx(t["rcv_classical_pct"], abs=0.51)
+            assert ("beyond" in cells[8]) == bool(t["lognormal_exceeded_mean"])
         assert _float(cells[9]) == pytest.approx(t["ii"], abs=0.0051)
-    assert rows  # header parsed
+
+
+def test_every_analyte_row_with_its_numbers(built):
+    a, files = built
+    _check_rows(a.table, files.html)
 
 
 def test_cautions_on_top_and_bottom(built):
@@ -425,3 +432,42 @@ def test_several_patients_need_a_choice(tmp_path):
         report.build_report(both, fake_pack(), tmp_path / "x.html")
     f = report.build_report(both, fake_pack(), tmp_path / "b.html", patient="B")
     assert "patient B" in f.html.read_text(encoding="utf-8")
+
+
+# --------------------------------------------------------------------------- end to end on cases
+CASES = Path(__file__).resolve().parents[1] / "case_library"
+
+
+@pytest.mark.parametrize("case", ["dog_stable_wellness", "dog_unwell_visit_and_censored"])
+def test_case_report_end_to_end(case, tmp_path):
+    """A case from the case library through data -> priors -> assess -> report."""
+    import tomllib
+
+    from bayesbase.assess import assess
+    from bayesbase.data import load_results
+    from bayesbase.priors import load_pack
+
+    meta = tomllib.loads((CASES / case / "case.toml").read_text(encoding="utf-8"))
+    pack = load_pack(meta["species"])
+    csv = CASES / case / "results.csv"
+    files = report.report_for_file(csv, meta["patient"], pack, tmp_path / "r.html",
+                                   pdf=tmp_path / "r.pdf", at=meta.get("at"))
+    a = assess(load_results(csv), pack=pack, at=meta.get("at"), patient=meta["patient"])
+    _check_rows(a.table, files.html)
+    text = " ".join(" ".join(parse(files.html).text).split())
+    for c in CAUTIONS:
+        assert text.count(c) >= 2
+    # the header names every earlier specimen with its role
+    hist = a.history
+    for spec, g in hist.groupby("specimen"):
+        assert spec in text
+    if (hist["role"] == "unwell").any():
+        assert "left out (unwell)" in text
+    assert pack.sha256 in text
+    import pypdf
+
+    reader = pypdf.PdfReader(str(files.pdf))
+    assert len(reader.pages) > 0
+    ptext = " ".join(" ".join(pg.extract_text() or "" for pg in reader.pages).split())
+    for lab in a.table["label"]:
+        assert lab in ptext

@@ -1,0 +1,116 @@
+"""Benchmarks for ``bayesbase bench`` (speed and memory targets live here, never in tests).
+
+Each benchmark returns a dict of measured numbers; nothing here asserts a time.
+"""
+from __future__ import annotations
+
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+
+def bench_exact(n_cases: int = 1_000_000, seed: int = 0) -> dict:
+    """Exact engine throughput on invented cases with three baselines each."""
+    from .engine import CaseArrays, cv_to_sigma, exact_assess
+
+    rng = np.random.default_rng(seed)
+    n = n_cases
+    mu = np.log(90.0)
+    cases = CaseArrays(
+        prior_mean=np.full(n, mu), sg=np.full(n, cv_to_sigma(0.25)), cvi=np.full(n, 0.1),
+        cvi_log_sd=np.full(n, 0.3), sa=np.full(n, cv_to_sigma(0.03)),
+        base_y=rng.normal(mu, 0.1, (n, 3)), base_r=np.ones((n, 3)), base_extra_var=np.zeros((n, 3)),
+        base_censor=np.zeros((n, 3)), new_y=rng.normal(mu, 0.15, n), new_r=np.ones(n),
+        new_extra_var=np.zeros(n), new_censor=np.zeros(n), tau=np.full(n, 0.27),
+        delta=np.full(n, np.nan), prior_change=np.full(n, 0.1),
+    )
+    t = time.perf_counter()
+    exact_assess(cases, intervals=False)
+    t_scores = time.perf_counter() - t
+    m = min(n, 200_000)
+    sub = cases.subset(slice(0, m))
+    t = time.perf_counter()
+    exact_assess(sub, intervals=True)
+    t_full = time.perf_counter() - t
+    return {
+        "cases": n,
+        "scores_per_s (P(change), BF, percentile)": round(n / t_scores),
+        "full_per_s (plus set-point and personal-interval quantiles)": round(m / t_full),
+    }
+
+
+def _panel_csv(path: Path, n_analytes: int = 25) -> Path:
+    from .priors import load_pack
+
+    pack = load_pack("dog")
+    analytes = list(pack.analytes)[:n_analytes]
+    rng = np.random.default_rng(5)
+    lines = ["patient,species,specimen,collected_at,analyte,value,unit,state"]
+    for k, date in enumerate(["2023-03-01", "2024-03-04", "2025-03-03", "2026-03-02"]):
+        for a in analytes:
+            p = pack.analytes[a]
+            v = p.center * float(np.exp(rng.normal(0, p.si)))
+            lines.append(f"BENCH-1,dog,S{k},{date},{a},{v:.4g},{p.unit},healthy")
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def bench_cli_panel(n_analytes: int = 25) -> dict:
+    """Wall time of ``bayesbase assess`` on one 25-analyte panel (exact engine) from a shell."""
+    with tempfile.TemporaryDirectory() as d:
+        csv = _panel_csv(Path(d) / "panel.csv", n_analytes)
+        cmd = [sys.executable, "-m", "bayesbase.cli", "assess", str(csv), "--format", "json"]
+        t = time.perf_counter()
+        subprocess.run(cmd, check=True, capture_output=True)
+        wall = time.perf_counter() - t
+        t = time.perf_counter()
+        subprocess.run([sys.executable, "-m", "bayesbase.cli", "--help"], check=True, capture_output=True)
+        help_s = time.perf_counter() - t
+    return {"assess_panel_wall_s": round(wall, 3), "help_wall_s": round(help_s, 3), "analytes": n_analytes}
+
+
+def bench_report(n_analytes: int = 25) -> dict:
+    """Wall time of one 25-analyte report (HTML + PDF) with the exact engine, in process."""
+    from . import report
+    from .data import load_results
+
+    with tempfile.TemporaryDirectory() as d:
+        csv = _panel_csv(Path(d) / "panel.csv", n_analytes)
+        frame = load_results(csv)
+        t = time.perf_counter()
+        report.report_for_file(frame, "BENCH-1", None, Path(d) / "r.html", pdf=Path(d) / "r.pdf")
+        return {"report_html_pdf_s": round(time.perf_counter() - t, 3), "analytes": n_analytes}
+
+
+def _maybe(module: str, func: str, **kw):
+    import importlib
+
+    mod = importlib.import_module(f"bayesbase.{module}")
+    return getattr(mod, func)(**kw)
+
+
+def run(quick: bool = False, only=None):
+    """Yield (name, result dict) for each benchmark."""
+    plan = [
+        ("exact_engine", lambda: bench_exact(100_000 if quick else 1_000_000)),
+        ("cli_panel", bench_cli_panel),
+        ("report", bench_report),
+        ("validate", lambda: _maybe("data", "bench_validate", n_rows=100_000 if quick else 1_000_000)),
+        ("trend", lambda: _maybe("trend", "bench_trend", n_series=20_000 if quick else 100_000)),
+        ("store_import", lambda: _maybe("store", "bench_import", n_rows=100_000 if quick else 1_000_000)),
+        ("store_history", lambda: _maybe("store", "bench_history")),
+        ("compare", lambda: _maybe("research", "bench_compare", animals=100_000 if quick else 1_000_000)),
+        ("mcmc_panel", lambda: _maybe("mcmc", "bench_mcmc_panel", **({"draws": 200} if quick else {}))),
+    ]
+    for name, fn in plan:
+        if only and name not in only:
+            continue
+        try:
+            res = fn()
+        except (ImportError, AttributeError) as exc:  # a module without its benchmark yet
+            res = {"skipped": str(exc)}
+        yield name, res

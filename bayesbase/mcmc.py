@@ -1,0 +1,621 @@
+"""PyMC engine: the exact engine's model (see :mod:`bayesbase.engine`) sampled with NUTS.
+
+Why a second engine: it checks the exact engine (the two must agree within Monte Carlo error,
+tested in ``tests/test_mcmc.py``), and it can do what the closed forms cannot:
+
+* censored baseline results (``<x`` / ``>x``, ``base_censor`` -1 / +1) enter the likelihood as
+  ``pm.Censored`` terms (probability mass below / above the limit). The exact engine treats a
+  censored baseline as if it had been observed at its limit;
+* a censored assessed result (``new_censor`` -1 / +1) is scored with predictive probabilities
+  P(y* < limit) or P(y* > limit) instead of predictive densities;
+* ``robust=True`` replaces the normal baseline likelihood by a Student-t with ``nu`` degrees of
+  freedom (heavy tails: an outlying baseline moves the set point less). **The robust model is
+  not the exact engine's model**; agreement tests use ``robust=False``. Predictive quantities for
+  the assessed result still use the normal predictive of the model (only the baseline likelihood
+  changes).
+
+Model, natural-log scale, one cell per (patient, analyte) with named dims ``patient`` and
+``analyte``; baseline specimens are flattened onto the dim ``obs``::
+
+    z[p, a]        ~ Normal(0, 1)
+    theta          = mu + sG * z                          (non-centred set point)
+    eta[p, a]      ~ Normal(0, 1)                         (only when some cvi_log_sd > 0)
+    ln CVI         = ln CVI_pack + s * eta                (a constant when every s == 0)
+    sI             = sqrt(log1p(CVI^2))
+    ybar[obs]      ~ Normal(theta[p, a], sqrt(sI^2 + sA^2 / r + e))   (Censored where censored)
+
+Cells of the patient x analyte grid without a case carry a neutral prior and no data; they are
+ignored in every summary and diagnostic.
+
+Predictive quantities are Rao-Blackwellised over the S posterior draws (theta_s, sI_s): with
+V0_s = sI_s^2 + sA^2 / r* + e*, the predictive of a new result under H0 is the normal mixture
+(1/S) sum_s N(theta_s, V0_s); its central ``coverage`` interval is found exactly with
+:func:`bayesbase.engine.mixture_quantile` (no extra Monte Carlo noise). percentile = mean_s
+Phi((y* - theta_s) / sqrt(V0_s)); BF10 = mean_s N(y*; theta_s, V0_s + tau^2) / mean_s N(y*;
+theta_s, V0_s); P(change) = pi BF / (pi BF + 1 - pi); P(D > 0) and P(|D| > delta) from the
+per-draw normal posterior of D under H1, weighted by each draw's H1 predictive density, exactly
+as the exact engine weights its quadrature nodes.
+
+Monte Carlo standard errors (``McmcResult.mc_se``) use the delta method: every summary is a
+smooth function of averages over draws; its influence values per draw are averaged, and the
+standard error is sd(influence) / sqrt(ESS(influence)) with ArviZ's bulk ESS of that influence
+series (for a posterior mean this is sd / sqrt(ess); for a probability averaged over draws the
+sd of the per-draw values / sqrt(ess)). Quantiles of theta use ArviZ's quantile MCSE.
+
+This is the only module (with ``mcmc_trend``) that imports PyMC, PyTensor and ArviZ; nothing
+imports it at import time.
+"""
+from __future__ import annotations
+
+import logging
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import special
+
+with warnings.catch_warnings():
+    # arviz 0.23 announces its refactor with a FutureWarning at import time (measured here);
+    # it is a notice, not a problem with this code.
+    warnings.simplefilter("ignore", FutureWarning)
+    import arviz as az
+import pymc as pm
+import pytensor.tensor as pt
+import xarray as xr
+
+from . import __version__
+from .constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DIM_ANALYTE, DIM_OBS, DIM_PATIENT
+from .engine import CaseArrays, mixture_quantile
+
+__all__ = [
+    "McmcResult",
+    "mcmc_assess",
+    "build_model",
+    "bench_mcmc_panel",
+    "sbc_setpoint",
+    "RHAT_MAX",
+    "ESS_MIN",
+]
+
+#: Convergence thresholds (common practice: Vehtari et al., Bayesian Analysis 2021;16:667-718,
+#: "rank-normalization, folding, and localization": R-hat < 1.01 and bulk/tail ESS > 400).
+RHAT_MAX = 1.01
+ESS_MIN = 400.0
+
+_LOG_2PI = float(np.log(2.0 * np.pi))
+_SUMMARY_KEYS = (
+    "theta_mean", "theta_lower", "theta_upper", "pi_lower", "pi_upper", "percentile",
+    "log_bf10", "bf10", "p_change", "p_increase", "p_exceed_delta", "n_baseline",
+    "cvi_post_mean",
+)
+_NEUTRAL = dict(mu=0.0, sg=1.0, ln_cvi=float(np.log(0.1)), cvi_sd=0.0)
+
+# compiled-model cache: one PyMC model per structure, reused with pm.set_data
+_MODEL_CACHE: dict[tuple, pm.Model] = {}
+
+
+@dataclass
+class McmcResult:
+    """Output of :func:`mcmc_assess`.
+
+    ``summary``: dict of (C,) arrays with the same keys as :func:`bayesbase.engine.exact_assess`.
+    ``mc_se``: Monte Carlo standard error of each summary value (same keys; NaN where the summary
+    is NaN, 0 for ``n_baseline``). ``idata``: ArviZ InferenceData (posterior dims chain, draw,
+    patient, analyte). ``diagnostics``: max_r_hat, min_ess_bulk, min_ess_tail, divergences,
+    converged, and per-case arrays r_hat, ess_bulk, ess_tail for theta. ``settings``: every
+    sampler setting and the seed. ``patient``, ``analyte``: the labels of each case.
+    """
+
+    summary: dict[str, np.ndarray]
+    mc_se: dict[str, np.ndarray]
+    idata: az.InferenceData
+    diagnostics: dict
+    settings: dict
+    patient: np.ndarray = field(default_factory=lambda: np.array([]))
+    analyte: np.ndarray = field(default_factory=lambda: np.array([]))
+
+    @property
+    def converged(self) -> bool:
+        return bool(self.diagnostics["converged"])
+
+
+# ----------------------------------------------------------------------------- model building
+def _layout(cases: CaseArrays, patient, analyte):
+    """Map cases onto the patient x analyte grid and flatten baselines onto obs."""
+    c = cases.n_cases
+    patient = np.array([f"p0"] * c if patient is None else patient, dtype=object).astype(str)
+    analyte = np.array([f"a{i}" for i in range(c)] if analyte is None else analyte,
+                       dtype=object).astype(str)
+    if patient.shape != (c,) or analyte.shape != (c,):
+        raise ValueError(f"patient and analyte need {c} labels each, got "
+                         f"{patient.shape[0]} and {analyte.shape[0]}")
+    p_labels = list(dict.fromkeys(patient.tolist()))
+    a_labels = list(dict.fromkeys(analyte.tolist()))
+    pidx = np.array([p_labels.index(p) for p in patient], dtype=np.int64)
+    aidx = np.array([a_labels.index(a) for a in analyte], dtype=np.int64)
+    cell = pidx * len(a_labels) + aidx
+    if len(np.unique(cell)) != c:
+        dup = [f"{patient[i]}/{analyte[i]}" for i in range(c) if np.sum(cell == cell[i]) > 1]
+        raise ValueError(f"each (patient, analyte) pair may appear once; repeated: {dup[:5]}")
+    shape = (len(p_labels), len(a_labels))
+
+    def grid(values, fill):
+        g = np.full(shape, fill, dtype=float)
+        g[pidx, aidx] = values
+        return g
+
+    mask = cases.mask
+    ci, cj = np.nonzero(mask)
+    y = cases.base_y[ci, cj]
+    ev = cases.sa[ci] ** 2 / cases.base_r[ci, cj] + cases.base_extra_var[ci, cj]
+    cens = cases.base_censor[ci, cj]
+    lower = np.where(cens > 0, y, -np.inf)
+    upper = np.where(cens < 0, y, np.inf)
+    data = dict(
+        mu=grid(cases.prior_mean, _NEUTRAL["mu"]),
+        sg=grid(cases.sg, _NEUTRAL["sg"]),
+        ln_cvi=grid(np.log(cases.cvi), _NEUTRAL["ln_cvi"]),
+        cvi_sd=grid(cases.cvi_log_sd, _NEUTRAL["cvi_sd"]),
+        y_obs=y.astype(float),
+        obs_ev=ev.astype(float),
+        obs_p=pidx[ci],
+        obs_a=aidx[ci],
+        obs_lower=lower,
+        obs_upper=upper,
+    )
+    coords = {DIM_PATIENT: p_labels, DIM_ANALYTE: a_labels, DIM_OBS: np.arange(len(y))}
+    structure = dict(
+        has_eta=bool(np.any(cases.cvi_log_sd > 0)),
+        has_obs=bool(len(y) > 0),
+        censored=bool(np.any(cens != 0)),
+    )
+    return data, coords, structure, pidx, aidx, patient, analyte
+
+
+def build_model(data: dict, coords: dict, *, has_eta: bool, has_obs: bool, censored: bool,
+                robust: bool = False, nu: float = 4.0) -> pm.Model:
+    """Build the PyMC model (see module docstring) with every array in a ``pm.Data``
+    container, so that one compiled structure serves any panel via ``pm.set_data``."""
+    with pm.Model(coords=coords) as model:
+        mu = pm.Data("mu", data["mu"], dims=(DIM_PATIENT, DIM_ANALYTE))
+        sg = pm.Data("sg", data["sg"], dims=(DIM_PATIENT, DIM_ANALYTE))
+        ln_cvi0 = pm.Data("ln_cvi", data["ln_cvi"], dims=(DIM_PATIENT, DIM_ANALYTE))
+        z = pm.Normal("z", 0.0, 1.0, dims=(DIM_PATIENT, DIM_ANALYTE))
+        theta = pm.Deterministic("theta", mu + sg * z, dims=(DIM_PATIENT, DIM_ANALYTE))
+        if has_eta:
+            cvi_sd = pm.Data("cvi_sd", data["cvi_sd"], dims=(DIM_PATIENT, DIM_ANALYTE))
+            eta = pm.Normal("eta", 0.0, 1.0, dims=(DIM_PATIENT, DIM_ANALYTE))
+            ln_cvi = ln_cvi0 + cvi_sd * eta
+        else:
+            ln_cvi = ln_cvi0
+        cvi = pm.Deterministic("cvi", pt.exp(ln_cvi), dims=(DIM_PATIENT, DIM_ANALYTE))
+        si2 = pt.log1p(cvi * cvi)
+        if has_obs:
+            y_obs = pm.Data("y_obs", data["y_obs"], dims=DIM_OBS)
+            ev = pm.Data("obs_ev", data["obs_ev"], dims=DIM_OBS)
+            op = pm.Data("obs_p", data["obs_p"], dims=DIM_OBS)
+            oa = pm.Data("obs_a", data["obs_a"], dims=DIM_OBS)
+            loc = theta[op, oa]
+            sd = pt.sqrt(si2[op, oa] + ev)
+            if censored:
+                if robust:
+                    dist = pm.StudentT.dist(nu=nu, mu=loc, sigma=sd)
+                else:
+                    dist = pm.Normal.dist(mu=loc, sigma=sd)
+                lo = pm.Data("obs_lower", data["obs_lower"], dims=DIM_OBS)
+                hi = pm.Data("obs_upper", data["obs_upper"], dims=DIM_OBS)
+                pm.Censored("ybar", dist, lower=lo, upper=hi, observed=y_obs, dims=DIM_OBS)
+            elif robust:
+                pm.StudentT("ybar", nu=nu, mu=loc, sigma=sd, observed=y_obs, dims=DIM_OBS)
+            else:
+                pm.Normal("ybar", mu=loc, sigma=sd, observed=y_obs, dims=DIM_OBS)
+    return model
+
+
+def _get_model(data, coords, structure, robust, nu, reuse=True):
+    key = (structure["has_eta"], structure["has_obs"], structure["censored"], bool(robust),
+           float(nu) if robust else None)
+    model = _MODEL_CACHE.get(key) if reuse else None
+    if model is None:
+        model = build_model(data, coords, robust=robust, nu=nu, **structure)
+        if reuse:
+            _MODEL_CACHE[key] = model
+        return model
+    names = {v.name for v in model.data_vars}
+    pm.set_data({k: v for k, v in data.items() if k in names}, model=model, coords=coords)
+    return model
+
+
+# ----------------------------------------------------------------------------- summaries
+def _logmeanexp(a, axis=-1):
+    return special.logsumexp(a, axis=axis) - np.log(a.shape[axis])
+
+
+def _ess_of(values: np.ndarray, n_chain: int) -> np.ndarray:
+    """ArviZ bulk ESS of per-draw series ``values`` (C, S) laid out chain-major; (C,)."""
+    c, s = values.shape
+    arr = values.reshape(c, n_chain, s // n_chain).transpose(1, 2, 0)
+    out = np.full(c, np.nan)
+    ok = np.all(np.isfinite(arr), axis=(0, 1)) & (np.ptp(arr.reshape(-1, c), axis=0) > 0)
+    if np.any(ok):
+        ds = xr.Dataset({"v": (("chain", "draw", "case_"), arr[:, :, ok])})
+        out[ok] = az.ess(ds, method="bulk")["v"].values
+    return out
+
+
+def _mcse(influence: np.ndarray, n_chain: int) -> np.ndarray:
+    """sd(influence) / sqrt(ESS(influence)) per case; 0 for a constant series."""
+    sd = np.std(influence, axis=-1, ddof=1)
+    ess = _ess_of(influence, n_chain)
+    se = sd / np.sqrt(np.where(np.isfinite(ess) & (ess > 0), ess, influence.shape[-1]))
+    return np.where(np.all(np.isfinite(influence), axis=-1), se, np.nan)
+
+
+def _gl(n=48):
+    x, w = np.polynomial.legendre.leggauss(n)
+    return x, w
+
+
+def _d_prob_censored(theta, v0, tau, limit, side, a, b):
+    """Per draw: P(a < D < b, y* on the censored side of ``limit`` | theta, H1) with
+    D ~ N(0, tau^2) and y* | D ~ N(theta + D, V0), by Gauss-Legendre over D/tau in
+    [max(a, -10 tau), min(b, 10 tau)]. ``side`` -1: y* < limit; +1: y* > limit.
+    theta, v0: (C, S); tau, limit, a, b: (C,)."""
+    x, w = _gl()
+    lo = np.maximum(a, -10.0 * tau)
+    hi = np.minimum(b, 10.0 * tau)
+    half = np.maximum(hi - lo, 0.0) / 2.0
+    d = (lo + hi)[:, None] / 2.0 + half[:, None] * x[None, :]  # (C, G)
+    dens = np.exp(-0.5 * (d / tau[:, None]) ** 2) / (tau[:, None] * np.sqrt(2 * np.pi))
+    zz = (limit[:, None, None] - theta[:, :, None] - d[:, None, :]) / np.sqrt(v0)[:, :, None]
+    cdf = special.ndtr(zz) if side < 0 else special.ndtr(-zz)
+    return np.einsum("csg,cg,g->cs", cdf, dens, w) * half[:, None]
+
+
+def _summaries(cases: CaseArrays, theta: np.ndarray, cvi: np.ndarray, n_chain: int,
+               coverage: float, ci_prob: float, theta_q_mcse):
+    """Summaries and MCSEs from per-case draws theta, cvi of shape (C, S)."""
+    c, s = theta.shape
+    out: dict[str, np.ndarray] = {}
+    se: dict[str, np.ndarray] = {}
+    nan = np.full(c, np.nan)
+    out["n_baseline"] = cases.mask.sum(-1).astype(float)
+    se["n_baseline"] = np.zeros(c)
+    out["theta_mean"] = theta.mean(-1)
+    se["theta_mean"] = _mcse(theta - out["theta_mean"][:, None], n_chain)
+    a = 0.5 * (1.0 - ci_prob)
+    out["theta_lower"] = np.quantile(theta, a, axis=-1)
+    out["theta_upper"] = np.quantile(theta, 1.0 - a, axis=-1)
+    se["theta_lower"], se["theta_upper"] = theta_q_mcse
+    out["cvi_post_mean"] = cvi.mean(-1)
+    se["cvi_post_mean"] = _mcse(cvi - out["cvi_post_mean"][:, None], n_chain)
+
+    si2 = np.log1p(cvi * cvi)
+    v0 = si2 + (cases.sa**2 / np.maximum(cases.new_r, 1.0) + cases.new_extra_var)[:, None]
+    sd0 = np.sqrt(v0)
+    w = np.full((c, s), 1.0 / s)
+    b = 0.5 * (1.0 - coverage)
+    for key, q in (("pi_lower", b), ("pi_upper", 1.0 - b)):
+        x = mixture_quantile(np.full(c, q), w, theta, sd0)
+        z = (x[:, None] - theta) / sd0
+        dens = np.mean(np.exp(-0.5 * z * z) / (sd0 * np.sqrt(2 * np.pi)), axis=-1)
+        out[key] = x
+        se[key] = _mcse((special.ndtr(z) - q) / dens[:, None], n_chain)
+
+    y = cases.new_y
+    has_y = np.isfinite(y)
+    yy = np.where(has_y, y, out["theta_mean"])
+    tau = cases.tau
+    tau2 = (tau**2)[:, None]
+    v1 = v0 + tau2
+    resid = yy[:, None] - theta
+    cen = np.where(has_y, cases.new_censor, 0.0)
+    # per-draw predictive log density (uncensored) or log probability (censored) under H0, H1
+    l0 = -0.5 * (_LOG_2PI + np.log(v0) + resid**2 / v0)
+    l1 = -0.5 * (_LOG_2PI + np.log(v1) + resid**2 / v1)
+    left = cen < 0
+    right = cen > 0
+    if np.any(left | right):
+        sgn = np.where(left, 1.0, -1.0)[:, None]  # left: P(y < L) = Phi(resid / sd)
+        lc0 = special.log_ndtr(sgn * resid / sd0)
+        lc1 = special.log_ndtr(sgn * resid / np.sqrt(v1))
+        cmask = (left | right)[:, None]
+        l0 = np.where(cmask, lc0, l0)
+        l1 = np.where(cmask, lc1, l1)
+    lp0 = _logmeanexp(l0)
+    lp1 = _logmeanexp(l1)
+    log_bf = lp1 - lp0
+    a0 = np.exp(l0 - lp0[:, None])  # influence of log mean_s(a_s): a_s / mean(a) - 1
+    a1 = np.exp(l1 - lp1[:, None])
+    infl_lbf = a1 - a0
+    pi = cases.prior_change
+    with np.errstate(divide="ignore"):
+        logit = np.log(pi) - np.log1p(-pi) + log_bf
+    p_change = special.expit(logit)
+    infl_pc = (p_change * (1 - p_change))[:, None] * infl_lbf
+    out["log_bf10"] = np.where(has_y, log_bf, np.nan)
+    se["log_bf10"] = np.where(has_y, _mcse(infl_lbf, n_chain), np.nan)
+    out["bf10"] = np.exp(out["log_bf10"])
+    se["bf10"] = out["bf10"] * se["log_bf10"]
+    out["p_change"] = np.where(has_y, p_change, np.nan)
+    se["p_change"] = np.where(has_y, _mcse(infl_pc, n_chain), np.nan)
+    cdf = special.ndtr(resid / sd0)
+    out["percentile"] = np.where(has_y, cdf.mean(-1), np.nan)
+    se["percentile"] = np.where(has_y, _mcse(cdf - cdf.mean(-1)[:, None], n_chain), np.nan)
+
+    # D | y*, theta_s, H1 ~ N(tau^2 / V1 * resid, tau^2 V0 / V1); weight a1_s (H1 predictive)
+    d_mean = tau2 / v1 * resid
+    d_sd = np.sqrt(tau2 * v0 / v1)
+    pinc_s = special.ndtr(d_mean / d_sd)
+    delta = cases.delta[:, None]
+    with np.errstate(invalid="ignore"):
+        tail_s = special.ndtr((d_mean - delta) / d_sd) + special.ndtr((-delta - d_mean) / d_sd)
+    if np.any(left | right):
+        # censored assessed result: P(D in set, y* censored | theta) / P(y* censored | theta)
+        for side, m in ((-1, left), (1, right)):
+            if not np.any(m):
+                continue
+            th, vv, tt, lim = theta[m], v0[m], tau[m], y[m]
+            pc = np.exp(l1[m])
+            inf = np.full(th.shape[0], np.inf)
+            pinc_s[m] = _d_prob_censored(th, vv, tt, lim, side, 0.0 * tt, inf) / pc
+            dl = cases.delta[m]
+            dl0 = np.where(np.isfinite(dl), dl, 0.0)
+            up = _d_prob_censored(th, vv, tt, lim, side, dl0, inf)
+            dn = _d_prob_censored(th, vv, tt, lim, side, -inf, -dl0)
+            tail_s[m] = np.where(np.isfinite(dl)[:, None], (up + dn) / pc, np.nan)
+    p_inc = np.mean(a1 * pinc_s, axis=-1)
+    p_tail = np.mean(a1 * tail_s, axis=-1)
+    out["p_increase"] = np.where(has_y, p_inc, np.nan)
+    se["p_increase"] = np.where(has_y, _mcse(a1 * (pinc_s - p_inc[:, None]), n_chain), np.nan)
+    has_d = has_y & np.isfinite(cases.delta)
+    out["p_exceed_delta"] = np.where(has_d, p_change * p_tail, np.nan)
+    infl_tail = a1 * (np.nan_to_num(tail_s) - np.nan_to_num(p_tail)[:, None])
+    infl_ped = np.nan_to_num(p_tail)[:, None] * infl_pc + p_change[:, None] * infl_tail
+    se["p_exceed_delta"] = np.where(has_d, _mcse(infl_ped, n_chain), np.nan)
+    return {k: out[k] for k in _SUMMARY_KEYS}, {k: se[k] for k in _SUMMARY_KEYS}
+
+
+def _case_draws(idata, name, pidx, aidx):
+    """(C, S) draws of a (chain, draw, patient, analyte) variable, chain-major."""
+    v = idata.posterior[name].transpose("chain", "draw", DIM_PATIENT, DIM_ANALYTE).values
+    v = v[:, :, pidx, aidx]  # (chain, draw, C)
+    return v.reshape(-1, v.shape[-1]).T.copy()
+
+
+def _diagnostics(idata, pidx, aidx, cvi_sd):
+    """R-hat and ESS on theta and (where the CVI is uncertain) eta, real cases only."""
+    post = idata.posterior
+    names = ["theta"] + (["eta"] if "eta" in post else [])
+    sel = post[names]
+    rh = az.rhat(sel)
+    eb = az.ess(sel, method="bulk")
+    et = az.ess(sel, method="tail")
+
+    def cases_of(ds, name):
+        return ds[name].transpose(DIM_PATIENT, DIM_ANALYTE).values[pidx, aidx]
+
+    theta_r = cases_of(rh, "theta")
+    theta_eb = cases_of(eb, "theta")
+    theta_et = cases_of(et, "theta")
+    all_r, all_eb, all_et = [theta_r], [theta_eb], [theta_et]
+    if "eta" in post:
+        m = cvi_sd > 0
+        all_r.append(cases_of(rh, "eta")[m])
+        all_eb.append(cases_of(eb, "eta")[m])
+        all_et.append(cases_of(et, "eta")[m])
+    r = np.concatenate(all_r)
+    b = np.concatenate(all_eb)
+    t = np.concatenate(all_et)
+    div = int(idata.sample_stats["diverging"].values.sum()) if "diverging" in idata.sample_stats \
+        else 0
+    max_r = float(np.nanmax(r)) if np.any(np.isfinite(r)) else float("nan")
+    min_b = float(np.nanmin(b)) if np.any(np.isfinite(b)) else float("nan")
+    min_t = float(np.nanmin(t)) if np.any(np.isfinite(t)) else float("nan")
+    checks = {
+        "r_hat_ok": bool(np.all(np.isfinite(r)) and max_r <= RHAT_MAX),
+        "ess_bulk_ok": bool(np.all(np.isfinite(b)) and min_b >= ESS_MIN),
+        "ess_tail_ok": bool(np.all(np.isfinite(t)) and min_t >= ESS_MIN),
+        "divergences_ok": div == 0,
+    }
+    return dict(
+        max_r_hat=max_r,
+        min_ess_bulk=min_b,
+        min_ess_tail=min_t,
+        divergences=div,
+        converged=all(checks.values()),
+        checks=checks,
+        thresholds=dict(r_hat_max=RHAT_MAX, ess_min=ESS_MIN, divergences_max=0),
+        r_hat=theta_r,
+        ess_bulk=theta_eb,
+        ess_tail=theta_et,
+        ess=theta_eb,
+    )
+
+
+# ----------------------------------------------------------------------------- public API
+def mcmc_assess(
+    cases: CaseArrays,
+    coverage: float = DEFAULT_COVERAGE,
+    ci_prob: float = DEFAULT_CI_PROB,
+    draws: int = 1000,
+    tune: int = 1000,
+    chains: int = 4,
+    seed: int = 0,
+    robust: bool = False,
+    nu: float = 4.0,
+    patient=None,
+    analyte=None,
+    idata_path=None,
+    target_accept: float = 0.9,
+    attrs: dict | None = None,
+    cores: int | None = None,
+    reuse_model: bool = True,
+) -> McmcResult:
+    """Fit every case of ``cases`` in one PyMC model and summarise like ``exact_assess``.
+
+    ``patient`` / ``analyte``: labels of each case (default ``"p0"`` and ``"a{i}"``); every
+    (patient, analyte) pair appears once. ``seed`` seeds the sampler (``random_seed``); no
+    global seed is touched. ``cores``: parallel chains (default min(chains, CPU count)).
+    ``idata_path``: write the InferenceData to netCDF with attrs engine, seed, settings,
+    bayesbase version and the caller's ``attrs`` (e.g. pack id and sha256).
+    ``reuse_model``: reuse a cached model of the same structure via ``pm.set_data``.
+
+    A fit that fails a convergence check is returned with ``diagnostics["converged"] = False``
+    (never raised, never hidden): the caller marks every output of it.
+    """
+    if not 0 < coverage < 1 or not 0 < ci_prob < 1:
+        raise ValueError("coverage and ci_prob must lie in (0, 1)")
+    if draws < 1 or tune < 0 or chains < 1:
+        raise ValueError("draws >= 1, tune >= 0 and chains >= 1 are required")
+    if robust and not nu > 0:
+        raise ValueError("nu must be > 0")
+    data, coords, structure, pidx, aidx, patient, analyte = _layout(cases, patient, analyte)
+    if cores is None:
+        cores = max(1, min(chains, os.cpu_count() or 1))
+    settings = dict(
+        sampler="pymc-nuts", draws=int(draws), tune=int(tune), chains=int(chains),
+        cores=int(cores), seed=int(seed), target_accept=float(target_accept),
+        robust=bool(robust), nu=float(nu) if robust else None, coverage=float(coverage),
+        ci_prob=float(ci_prob), pymc_version=pm.__version__,
+    )
+    loggers = [logging.getLogger(n) for n in ("pymc", "pymc.sampling.mcmc", "pytensor")]
+    levels = [lg.level for lg in loggers]
+    for lg in loggers:
+        lg.setLevel(logging.ERROR)
+    t0 = time.perf_counter()
+    try:
+        model = _get_model(data, coords, structure, robust, nu, reuse=reuse_model)
+        with warnings.catch_warnings():
+            # short, deliberately under-run fits make PyMC/ArviZ warn about small samples; the
+            # diagnostics below report the same fact as converged=False.
+            warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
+            warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
+            # a pip-installed PyTensor without a linked BLAS says so once; the model has no
+            # matrix products that would need it.
+            warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
+            idata = pm.sample(
+                draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
+                target_accept=target_accept, progressbar=False, model=model,
+                compute_convergence_checks=False, return_inferencedata=True,
+            )
+            settings["seconds"] = time.perf_counter() - t0
+            cvi_sd = cases.cvi_log_sd
+            diagnostics = _diagnostics(idata, pidx, aidx, cvi_sd)
+            theta = _case_draws(idata, "theta", pidx, aidx)
+            cvi = _case_draws(idata, "cvi", pidx, aidx)
+            a = 0.5 * (1.0 - ci_prob)
+            th_ds = idata.posterior[["theta"]]
+            q_se = []
+            for prob in (a, 1.0 - a):
+                mq = az.mcse(th_ds, method="quantile", prob=prob)["theta"]
+                q_se.append(mq.transpose(DIM_PATIENT, DIM_ANALYTE).values[pidx, aidx])
+            summary, mc_se = _summaries(cases, theta, cvi, chains, coverage, ci_prob, q_se)
+    finally:
+        for lg, lv in zip(loggers, levels):
+            lg.setLevel(lv)
+    idata.posterior.attrs.update(_stamp(settings, attrs))
+    if idata_path is not None:
+        save_idata(idata, idata_path, settings, attrs)
+    return McmcResult(summary=summary, mc_se=mc_se, idata=idata, diagnostics=diagnostics,
+                      settings=settings, patient=patient, analyte=analyte)
+
+
+def _stamp(settings, attrs):
+    out = {"engine": "mcmc", "seed": int(settings["seed"]), "bayesbase_version": __version__}
+    for k, v in settings.items():
+        out[f"setting_{k}"] = "none" if v is None else v
+    for k, v in (attrs or {}).items():
+        out[str(k)] = v if isinstance(v, (int, float, str)) else str(v)
+    return out
+
+
+def save_idata(idata, path, settings, attrs=None):
+    """Write ``idata`` to netCDF (h5netcdf engine) with provenance attrs on every group."""
+    stamp = _stamp(settings, attrs)
+    for g in idata.groups():
+        idata[g].attrs.update(stamp)
+    idata.to_netcdf(str(path), engine="h5netcdf")
+    return path
+
+
+# ----------------------------------------------------------------------------- benchmarks
+def _demo_panel(n_analytes: int, seed: int = 20240601) -> CaseArrays:
+    """Invented demo panel (numbers are for benchmarking only): one dog, ``n_analytes``
+    analytes with 0-4 baselines and CVs drawn in plausible ranges."""
+    rng = np.random.default_rng(seed)
+    base = []
+    cvi = rng.uniform(0.05, 0.25, n_analytes)
+    sg = rng.uniform(0.1, 0.3, n_analytes)
+    sa = rng.uniform(0.01, 0.05, n_analytes)
+    mu = rng.normal(3.0, 1.0, n_analytes)
+    theta = mu + sg * rng.standard_normal(n_analytes)
+    si = np.sqrt(np.log1p(cvi**2))
+    for i in range(n_analytes):
+        k = int(rng.integers(0, 5))
+        base.append(list(theta[i] + np.sqrt(si[i] ** 2 + sa[i] ** 2) * rng.standard_normal(k)))
+    new = theta + np.sqrt(si**2 + sa**2) * rng.standard_normal(n_analytes) + 0.1
+    return CaseArrays.from_lists(
+        base, prior_mean=mu, sg=sg, cvi=cvi, cvi_log_sd=rng.uniform(0.2, 0.4, n_analytes),
+        sa=sa, new_y=new, prior_change=0.1, delta=np.log(1.2),
+    )
+
+
+def bench_mcmc_panel(n_analytes: int = 25, chains: int = 4, draws: int = 1000,
+                     tune: int = 1000, seed: int = 0) -> dict:
+    """Wall time of one ``n_analytes``-case panel: ``cold`` is the first call in this process
+    for a model of this structure (includes building and compiling), ``warm`` a second call
+    reusing the cached model. Also reports the load average when it ran."""
+    cases = _demo_panel(n_analytes)
+    t0 = time.perf_counter()
+    r1 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed)
+    cold = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    r2 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed + 1)
+    warm = time.perf_counter() - t0
+    load = os.getloadavg() if hasattr(os, "getloadavg") else (float("nan"),) * 3
+    return dict(
+        n_analytes=n_analytes, chains=chains, draws=draws, tune=tune,
+        cold_seconds=cold, warm_seconds=warm, converged=(r1.converged, r2.converged),
+        max_r_hat=r2.diagnostics["max_r_hat"], min_ess_bulk=r2.diagnostics["min_ess_bulk"],
+        load_average=tuple(float(x) for x in load), cpu_count=os.cpu_count(),
+    )
+
+
+def sbc_setpoint(n_rep: int = 100, draws: int = 400, tune: int = 400, chains: int = 2,
+                 thin: int = 8, n_baseline: int = 2, seed: int = 12345) -> dict:
+    """Simulation-based calibration of the set point (Talts et al. 2018, arXiv:1804.06788).
+
+    Each replicate draws theta and ln CVI from the prior of one invented case, simulates
+    ``n_baseline`` baseline results, fits the model (reusing the compiled model through
+    ``pm.set_data``) and records the rank of the true theta among ``draws * chains / thin``
+    thinned posterior draws. Under a correct sampler the ranks are uniform on {0, ..., L}.
+    Returns ranks, L, and a chi-square uniformity test over ``bins`` (scipy.stats.chisquare).
+    """
+    from scipy import stats
+
+    rng = np.random.default_rng(seed)
+    mu, sg, cvi0, s, sa = 4.0, 0.2, 0.12, 0.3, 0.03  # invented demo case
+    ranks = []
+    n_kept = None
+    for i in range(n_rep):
+        theta = mu + sg * rng.standard_normal()
+        cvi = cvi0 * np.exp(s * rng.standard_normal())
+        sd = np.sqrt(np.log1p(cvi**2) + sa**2)
+        y = theta + sd * rng.standard_normal(n_baseline)
+        cases = CaseArrays.from_lists([list(y)], prior_mean=mu, sg=sg, cvi=cvi0, cvi_log_sd=s,
+                                      sa=sa, new_y=np.nan, prior_change=0.1)
+        r = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed + i, cores=1)
+        th = r.idata.posterior["theta"].values[:, :, 0, 0]
+        kept = th[:, ::thin].ravel()
+        n_kept = kept.size
+        ranks.append(int(np.sum(kept < theta)))
+    ranks = np.asarray(ranks)
+    bins = max(2, min(10, n_rep // 5))
+    counts = np.histogram(ranks, bins=bins, range=(0, n_kept + 1))[0]
+    chi = stats.chisquare(counts)
+    ks = stats.kstest((ranks + rng.uniform(size=ranks.size)) / (n_kept + 1), "uniform")
+    return dict(ranks=ranks, n_kept=n_kept, bins=bins, counts=counts,
+                chisq_p=float(chi.pvalue), ks_p=float(ks.pvalue))

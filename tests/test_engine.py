@@ -1,0 +1,183 @@
+"""Exact engine against closed forms, scipy and simulation from the model.
+
+References: McIntosh MW, Urban N, Biostatistics 2003;4:27-40 (normal-normal empirical Bayes:
+B = sigma^2/(sigma^2 + n tau^2), posterior mean B mu + (1-B) ybar, posterior variance B tau^2,
+next value ~ N(post mean, sigma^2 + B tau^2)); scipy.stats as the numerical reference.
+"""
+import math
+
+import numpy as np
+import pytest
+from scipy import optimize, stats
+
+from bayesbase.engine import CaseArrays, cv_to_sigma, exact_assess, mixture_quantile, quadrature, sigma_to_cv
+
+MU = math.log(90.0)
+SG = cv_to_sigma(0.25)
+CVI = 0.10
+SA = cv_to_sigma(0.03)
+
+
+def _cases(baselines, new_y, cvi_log_sd=0.0, prior_change=0.1, tau=None, delta=np.nan):
+    return CaseArrays.from_lists(
+        baselines, prior_mean=MU, sg=SG, cvi=CVI, cvi_log_sd=cvi_log_sd, sa=SA,
+        new_y=new_y, prior_change=prior_change, tau=tau, delta=delta,
+    )
+
+
+def test_cv_sigma_round_trip_matches_lognormal():
+    # sigma = sqrt(ln(1 + CV^2)): the CV of scipy's lognorm(s=sigma) is the input CV
+    for cv in (0.01, 0.1, 0.5):
+        s = cv_to_sigma(cv)
+        d = stats.lognorm(s=s)
+        assert d.std() / d.mean() == pytest.approx(cv, rel=1e-10)
+        assert sigma_to_cv(s) == pytest.approx(cv, rel=1e-12)
+
+
+def test_gauss_hermite_integrates_normal_moments():
+    # E[Z^2] = 1, E[Z^4] = 3, E[exp(Z)] = exp(1/2) for Z ~ N(0,1)
+    x, w = quadrature(24)
+    assert np.sum(w * x**2) == pytest.approx(1.0, abs=1e-12)
+    assert np.sum(w * x**4) == pytest.approx(3.0, abs=1e-10)
+    assert np.sum(w * np.exp(x)) == pytest.approx(math.exp(0.5), rel=1e-12)
+
+
+@pytest.mark.parametrize("n", [0, 1, 2, 3, 6])
+def test_zero_cvi_uncertainty_equals_peb_algebra(n):
+    """With s -> 0 the exact engine is the normal-normal empirical-Bayes rule (McIntosh & Urban
+    2003) to 1e-9."""
+    rng = np.random.default_rng(100 + n)
+    base = list(rng.normal(MU + 0.1, 0.1, n))
+    y_new = MU + 0.25
+    out = exact_assess(_cases([base], y_new), coverage=0.95, ci_prob=0.95)
+    sigma2 = cv_to_sigma(CVI) ** 2 + SA**2
+    tau2 = SG**2
+    B = sigma2 / (sigma2 + n * tau2)
+    ybar = np.mean(base) if n else 0.0
+    post_mean = B * MU + (1 - B) * ybar
+    post_var = B * tau2
+    pred_sd = math.sqrt(sigma2 + post_var)
+    assert out["theta_mean"][0] == pytest.approx(post_mean, abs=1e-9)
+    lo, hi = stats.norm.ppf([0.025, 0.975], post_mean, math.sqrt(post_var))
+    assert out["theta_lower"][0] == pytest.approx(lo, abs=1e-9)
+    assert out["theta_upper"][0] == pytest.approx(hi, abs=1e-9)
+    plo, phi = stats.norm.ppf([0.025, 0.975], post_mean, pred_sd)
+    assert out["pi_lower"][0] == pytest.approx(plo, abs=1e-9)
+    assert out["pi_upper"][0] == pytest.approx(phi, abs=1e-9)
+    assert out["percentile"][0] == pytest.approx(stats.norm.cdf(y_new, post_mean, pred_sd), abs=1e-9)
+    # Bayes factor: ratio of the two predictive densities (scipy.stats.norm.pdf)
+    tau_change2 = SG**2 + cv_to_sigma(CVI) ** 2
+    bf = stats.norm.pdf(y_new, post_mean, math.sqrt(pred_sd**2 + tau_change2)) / stats.norm.pdf(y_new, post_mean, pred_sd)
+    assert out["bf10"][0] == pytest.approx(bf, rel=1e-9)
+    assert out["p_change"][0] == pytest.approx(0.1 * bf / (0.1 * bf + 0.9), abs=1e-9)
+
+
+def test_quadrature_error_below_1e4_against_dense_grid():
+    """Gauss-Hermite (24 nodes) vs a dense 4001-point grid over ln(CVI): error < 1e-4 on the
+    percentile and P(change) (and the other probabilities), for CVI uncertainty up to 0.5."""
+    rng = np.random.default_rng(7)
+    c = 150
+    base = [list(rng.normal(MU, 0.12, k)) for k in rng.integers(0, 4, c)]
+    for log_sd in (0.2, 0.4, 0.5):
+        cases = _cases(base, rng.normal(MU, 0.2, c), cvi_log_sd=log_sd, delta=math.log(1.2))
+        gh = exact_assess(cases, nodes=24)
+        grid = exact_assess(cases, nodes=3001, kind="grid", prune=0)
+        for key in ("percentile", "p_change", "p_increase", "p_exceed_delta"):
+            assert np.nanmax(np.abs(gh[key] - grid[key])) < 1e-4, (log_sd, key)
+        for key in ("pi_lower", "pi_upper", "theta_lower", "theta_upper"):
+            assert np.nanmax(np.abs(gh[key] - grid[key])) < 1e-4, (log_sd, key)
+
+
+def test_mixture_quantile_against_brentq():
+    # reference: scipy.optimize.brentq on the mixture CDF built from scipy.stats.norm.cdf
+    rng = np.random.default_rng(3)
+    w = rng.dirichlet(np.ones(5), 20)
+    m = rng.normal(0, 1, (20, 5))
+    s = rng.uniform(0.2, 2, (20, 5))
+    for q in (0.005, 0.025, 0.5, 0.975):
+        got = mixture_quantile(np.full(20, q), w, m, s)
+        for i in range(20):
+            ref = optimize.brentq(lambda x: np.sum(w[i] * stats.norm.cdf(x, m[i], s[i])) - q, -50, 50, xtol=1e-13)
+            assert got[i] == pytest.approx(ref, abs=1e-8)
+
+
+def _simulate(rng, n_sim, n_base, log_sd):
+    """Draw animals from the model itself: theta ~ N(mu, sG^2), ln CVI ~ N(ln CVI, s^2), results
+    with within-animal and analytical noise; the new result under H0 (no change)."""
+    theta = rng.normal(MU, SG, n_sim)
+    cvi = CVI * np.exp(log_sd * rng.standard_normal(n_sim))
+    si = cv_to_sigma(cvi)
+    sd = np.sqrt(si**2 + SA**2)
+    base = theta[:, None] + sd[:, None] * rng.standard_normal((n_sim, max(n_base, 1)))
+    if n_base == 0:
+        base = np.full((n_sim, 1), np.nan)
+    y = theta + sd * rng.standard_normal(n_sim)
+    r = np.where(np.isfinite(base), 1.0, 0.0)
+    return CaseArrays(
+        prior_mean=np.full(n_sim, MU), sg=np.full(n_sim, SG), cvi=np.full(n_sim, CVI),
+        cvi_log_sd=np.full(n_sim, log_sd), sa=np.full(n_sim, SA), base_y=base, base_r=r,
+        base_extra_var=np.zeros_like(base), base_censor=np.zeros_like(base), new_y=y,
+        new_r=np.ones(n_sim), new_extra_var=np.zeros(n_sim), new_censor=np.zeros(n_sim),
+        tau=np.full(n_sim, math.sqrt(SG**2 + cv_to_sigma(CVI) ** 2)), delta=np.full(n_sim, np.nan),
+        prior_change=np.full(n_sim, 0.1),
+    )
+
+
+@pytest.mark.parametrize("n_base", [0, 1, 2, 3])
+def test_personal_interval_coverage_in_binomial_band(n_base):
+    """Seeded simulation from the model: the 95 % personal interval covers a new healthy result
+    at the nominal rate; the count sits inside the binomial 99 % band (scipy.stats.binom)."""
+    rng = np.random.default_rng(2024 + n_base)
+    n_sim = 20_000
+    cases = _simulate(rng, n_sim, n_base, log_sd=0.3)
+    out = exact_assess(cases, coverage=0.95)
+    inside = (cases.new_y >= out["pi_lower"]) & (cases.new_y <= out["pi_upper"])
+    lo, hi = stats.binom.interval(0.99, n_sim, 0.95)
+    assert lo <= inside.sum() <= hi
+    # the percentile is uniform under the model: the same statement from the other side
+    outside = (out["percentile"] < 0.025) | (out["percentile"] > 0.975)
+    assert n_sim - hi <= outside.sum() <= n_sim - lo
+
+
+@pytest.mark.parametrize("threshold", [0.5, 0.8])
+def test_false_alarm_rate_of_p_change_matches_theory(threshold):
+    """Known sI (s = 0), n = 2 baselines: P(change) > c  <=>  |y - m|^2 > r*^2 with
+    r*^2 = (2 ln k - ln(V0/V1)) / (1/V0 - 1/V1), k the BF cut-off; under H0 the rate is
+    2 (1 - Phi(r*/sqrt(V0))). Simulated count inside the binomial 99 % band."""
+    rng = np.random.default_rng(12)
+    n_sim, n_base = 100_000, 2
+    cases = _simulate(rng, n_sim, n_base, log_sd=0.0)
+    out = exact_assess(cases, intervals=False)
+    sigma2 = cv_to_sigma(CVI) ** 2 + SA**2
+    B = sigma2 / (sigma2 + n_base * SG**2)
+    v0 = sigma2 + B * SG**2
+    v1 = v0 + cases.tau[0] ** 2
+    pi = 0.1
+    k = threshold / (1 - threshold) * (1 - pi) / pi
+    r2 = (2 * math.log(k) - math.log(v0 / v1)) / (1 / v0 - 1 / v1)
+    rate = 2 * stats.norm.sf(math.sqrt(r2 / v0))
+    lo, hi = stats.binom.interval(0.99, n_sim, rate)
+    assert lo <= np.sum(out["p_change"] > threshold) <= hi
+
+
+def test_no_baseline_is_population_prior_and_more_baselines_narrow_interval():
+    out = exact_assess(_cases([[], [MU], [MU, MU], [MU, MU, MU]], MU))
+    width = out["pi_upper"] - out["pi_lower"]
+    assert np.all(np.diff(width) < 0)
+    # zero baselines: predictive = N(mu, sG^2 + sI^2 + sA^2) when s = 0
+    assert out["pi_upper"][0] == pytest.approx(MU + stats.norm.ppf(0.975) * math.sqrt(SG**2 + cv_to_sigma(CVI) ** 2 + SA**2), abs=1e-9)
+
+
+def test_direction_and_tail_probability():
+    out = exact_assess(_cases([[MU, MU + 0.02]], MU + 0.8, delta=math.log(1.2), cvi_log_sd=0.3))
+    assert out["p_change"][0] > 0.9 and out["p_increase"][0] > 0.99
+    assert 0 < out["p_exceed_delta"][0] <= out["p_change"][0]
+    out = exact_assess(_cases([[MU, MU + 0.02]], MU - 0.5, cvi_log_sd=0.3))
+    assert out["p_increase"][0] < 0.01
+
+
+def test_bad_inputs_rejected():
+    with pytest.raises(ValueError):
+        CaseArrays.from_lists([[MU]], prior_mean=MU, sg=SG, cvi=0.0, cvi_log_sd=0.2, sa=SA, new_y=MU, prior_change=0.1)
+    with pytest.raises(ValueError):
+        exact_assess(_cases([[MU]], MU), coverage=1.5)
