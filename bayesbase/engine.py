@@ -196,9 +196,11 @@ def mixture_quantile(q, weights, means, sds, tol=1e-9, max_iter=60):
         hi = np.where(f > 0, np.minimum(hi, x), hi)
         step = f / np.maximum(dens, 1e-300)
         x_new = x - step
-        bad = ~((x_new > lo) & (x_new < hi))
+        done = np.abs(step) <= tol
+        # a Newton step leaving the bracket falls back to bisection (never for converged points,
+        # whose bracket may have collapsed onto them by rounding)
+        bad = ~done & ~((x_new > lo) & (x_new < hi))
         x_new = np.where(bad, 0.5 * (lo + hi), x_new)
-        done = np.abs(x_new - x) <= tol
         x = x_new
         if np.all(done):
             break

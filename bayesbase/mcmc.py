@@ -160,8 +160,7 @@ def _layout(cases: CaseArrays, patient, analyte):
         cvi_sd=grid(cases.cvi_log_sd, _NEUTRAL["cvi_sd"]),
         y_obs=y.astype(float),
         obs_ev=ev.astype(float),
-        obs_p=pidx[ci],
-        obs_a=aidx[ci],
+        obs_cell=(pidx * len(a_labels) + aidx)[ci].astype(np.int64),
         obs_lower=lower,
         obs_upper=upper,
     )
@@ -195,10 +194,9 @@ def build_model(data: dict, coords: dict, *, has_eta: bool, has_obs: bool, censo
         if has_obs:
             y_obs = pm.Data("y_obs", data["y_obs"], dims=DIM_OBS)
             ev = pm.Data("obs_ev", data["obs_ev"], dims=DIM_OBS)
-            op = pm.Data("obs_p", data["obs_p"], dims=DIM_OBS)
-            oa = pm.Data("obs_a", data["obs_a"], dims=DIM_OBS)
-            loc = theta[op, oa]
-            sd = pt.sqrt(si2[op, oa] + ev)
+            cell = pm.Data("obs_cell", data["obs_cell"], dims=DIM_OBS)  # flat grid index
+            loc = theta.ravel()[cell]
+            sd = pt.sqrt(si2.ravel()[cell] + ev)
             if censored:
                 if robust:
                     dist = pm.StudentT.dist(nu=nu, mu=loc, sigma=sd)

@@ -60,6 +60,7 @@ _KEYS = (
     "pct_per_year_avg_mean", "pct_per_year_avg_lower", "pct_per_year_avg_upper",
     "years_to_limit", "years_to_limit_lower", "years_to_limit_upper", "p_beyond_limit",
     "theta_last_mean", "r_hat", "ess", "divergences",
+    "slope_mean_mcse", "log_bf10_mcse", "years_to_limit_mcse",
 )
 
 
@@ -83,6 +84,15 @@ def build_trend_model(n_obs: int = 3) -> pm.Model:
     return model
 
 
+def _mcse(x, prob=None):
+    """Monte Carlo SE of the mean (or of the ``prob`` quantile) of (chain, draw) draws (ArviZ)."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
+        if prob is None:
+            return float(az.mcse(np.asarray(x)[None] if np.ndim(x) == 1 else x))
+        return float(az.mcse(x, method="quantile", prob=prob))
+
+
 def _quantile(x, q):
     # no interpolation: keeps +inf crossing times meaningful
     return float(np.quantile(x, q, method="inverted_cdf"))
@@ -94,7 +104,9 @@ def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slop
                target_accept=0.9, horizon=TREND_HORIZON_YEARS, model=None):
     """Drift model by NUTS for C series (same inputs and keys as :func:`bayesbase.trend.trend_exact`)
     plus diagnostics ``r_hat`` (max over theta0, z, beta), ``ess`` (min bulk ESS), ``divergences``
-    and ``converged`` (bool). Series that do not meet the trend rule are not sampled (NaN,
+    and ``converged`` (bool), and Monte Carlo standard errors ``slope_mean_mcse``,
+    ``log_bf10_mcse`` (delta method on the Savage-Dickey density average) and
+    ``years_to_limit_mcse`` (of the median, ArviZ quantile MCSE). Series that do not meet the trend rule are not sampled (NaN,
     ``eligible`` False). ``seed`` seeds every fit (series i gets a seed drawn from
     ``numpy.random.default_rng(seed)``). ``model``: a model from :func:`build_trend_model` to
     reuse across calls.
@@ -151,7 +163,14 @@ def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slop
             v = np.log1p(cvi_d * cvi_d)[:, None] + ev[None, :]  # (S, J)
             prec = 1.0 / sb**2 + np.sum(tc * tc / v, -1)
             mc = np.sum(tc * (yy[None, :] - th[:, None]) / v, -1) / prec
-            dens0 = np.mean(np.sqrt(prec / (2 * np.pi)) * np.exp(-0.5 * prec * mc * mc))
+            dens_draws = np.sqrt(prec / (2 * np.pi)) * np.exp(-0.5 * prec * mc * mc)
+            dens0 = np.mean(dens_draws)
+            shape = post["beta"].shape  # (chain, draw)
+            with warnings.catch_warnings():
+                warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
+                # Monte Carlo SE of the density average; delta method for its log
+                out["log_bf10_mcse"][i] = _mcse(dens_draws.reshape(shape)) / dens0
+                out["slope_mean_mcse"][i] = _mcse(beta.reshape(shape))
             prior0 = 1.0 / (sb * np.sqrt(2 * np.pi))
             log_bf = np.log(prior0) - np.log(dens0)
             p_drift = float(special.expit(np.log(pi[i]) - np.log1p(-pi[i]) + log_bf))
@@ -192,6 +211,9 @@ def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slop
                     t_cross = np.where(gap <= 0, 0.0, np.where(rate > 0, gap / np.where(rate > 0, rate, 1.0), np.inf))
                 t_cross = np.where(t_cross > horizon, np.inf, t_cross)
                 out["years_to_limit"][i] = _quantile(t_cross, 0.5)
+                if np.isfinite(out["years_to_limit"][i]):
+                    clipped = np.minimum(t_cross, 2.0 * horizon).reshape(shape)
+                    out["years_to_limit_mcse"][i] = _mcse(clipped, prob=0.5)
                 out["years_to_limit_lower"][i] = _quantile(t_cross, a)
                 out["years_to_limit_upper"][i] = _quantile(t_cross, 1 - a)
                 out["p_beyond_limit"][i] = np.mean(gap <= 0)

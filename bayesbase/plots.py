@@ -17,7 +17,7 @@ scientific figures):
 * the assessed result: a large star with a black edge, filled by P(change): sky blue below the
   uncertain band, orange inside it, vermillion above it;
 * censored results (``<x`` / ``>x``): a small chevron pointing the way the true value lies;
-* drift model (when computed): a black dash-dot line with a pale-yellow band for its credible
+* drift model (when P(drift) >= 0.5): a black dash-dot line with a pale-yellow band for its credible
   slope range, drawn through the geometric mean of the specimens used.
 """
 from __future__ import annotations
@@ -33,6 +33,10 @@ from matplotlib.patches import Patch
 import matplotlib.dates as mdates
 
 from .constants import UNCERTAIN_BAND
+
+#: The drift line is drawn when the drift model's P(drift) is at least this (a line for a
+#: stable analyte would suggest a drift the model does not support; modelling choice).
+DRIFT_DRAW_P = 0.5
 
 __all__ = [
     "PALETTE",
@@ -74,8 +78,8 @@ LEGEND_TEXT = (
      f"{UNCERTAIN_BAND[0]:.1f}, orange from {UNCERTAIN_BAND[0]:.1f} to {UNCERTAIN_BAND[1]:.1f}, "
      f"vermillion above {UNCERTAIN_BAND[1]:.1f}"),
     ("censored", "a chevron beside the point shows the true value lies below (v) or above (^) it"),
-    ("drift", "black dash-dot line with a pale-yellow band (credible range of the slope), when the "
-     "drift model was computed"),
+    ("drift", "black dash-dot line with a pale-yellow band (credible range of the slope), drawn "
+     f"when the drift model gives P(drift) \u2265 {DRIFT_DRAW_P}"),
 )
 
 _ROLE_STYLE = {
@@ -199,7 +203,9 @@ def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
 
     # drift line and band
     tr = trend
-    if tr is None and _finite(_get(row, "trend_pct_per_year")):
+    p_drift = _get(row, "trend_p_drift")
+    drift_shown = not _finite(p_drift) or float(p_drift) >= DRIFT_DRAW_P
+    if tr is None and drift_shown and _finite(_get(row, "trend_pct_per_year")):
         tr = {"pct_per_year": float(row["trend_pct_per_year"]),
               "pct_lower": _get(row, "trend_pct_lower"), "pct_upper": _get(row, "trend_pct_upper")}
     used = h[h["role"].isin(["baseline", "assessed"])] if len(h) else h
@@ -328,7 +334,7 @@ def legend_handles() -> list:
                markerfacecolor=PALETTE["probable"], markeredgecolor="#000",
                label=f"assessed, > {UNCERTAIN_BAND[1]:g}"),
         Line2D([], [], color=PALETTE["trend"], linestyle="-.", linewidth=1.0,
-               label="drift (where computed)"),
+               label=f"drift (P(drift) \u2265 {DRIFT_DRAW_P})"),
     ]
 
 

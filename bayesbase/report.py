@@ -963,6 +963,8 @@ def _pdf(ctx: dict, path: Path) -> None:
         return s
 
     def cautions_box():
+        if pdf.get_y() > pdf.h - pdf.b_margin - 14:  # keep the box on one page
+            pdf.add_page()
         pdf.set_draw_color(213, 94, 0)
         pdf.set_fill_color(255, 247, 240)
         pdf.set_font(ff, "B", 8.5)
@@ -1282,6 +1284,7 @@ def report_for_file(results_path_or_frame, patient: str, pack, out_html, pdf=Non
     path = None
     if with_path:
         kw = dict(engine=engine, **assess_kw)
+        kw["trend"] = False  # the ribbon needs the intervals only; the drift model is not used
         path = personal_interval_path(sub, pack, str(patient), assess, **kw)
     return build_report(assessment, pack, out_html, pdf=pdf, png_dir=png_dir, title=title,
                         interval_path=path, patient=str(patient))

@@ -505,7 +505,10 @@ def drift_power(n_specimens=(3, 4, 6), pct_per_year=10.0, n_series=20_000, seed=
 
     Defaults are creatinine-like: CVI 0.10 (from memory), CVA 0.03 (common practice),
     CVG 0.20 (from memory); ``centre`` 90 umol/L is invented for this demo.
-    Returns a pandas DataFrame, one row per n.
+    Returns a pandas DataFrame, one row per n: ``rcv_pct``; ``power_*`` (true drift of
+    ``pct_per_year``) and ``false_alarm_*`` (no drift) for the rules ``p_drift``,
+    ``p_drift_rising`` (P(drift) > cut and P(beta > 0 | H1) > 0.5), ``p_increase`` and
+    ``rcv_any_pair``. Trend columns are NaN when n is below the trend rule.
     """
     import pandas as pd  # local: the numeric core stays importable without pandas
 
@@ -519,6 +522,7 @@ def drift_power(n_specimens=(3, 4, 6), pct_per_year=10.0, n_series=20_000, seed=
     for n in n_specimens:
         times = np.arange(float(n))
         row = {"n_specimens": int(n), "pct_per_year": float(pct_per_year), "rcv_pct": 100 * rcv}
+        eligible_n = n >= TREND_MIN_SPECIMENS and (n - 1) >= TREND_MIN_SPAN_YEARS
         for label, b in (("power", beta1), ("false_alarm", 0.0)):
             theta0 = np.log(centre) + sg * rng.normal(size=n_series)
             y = _simulate(rng, n_series, times, np.full(n_series, b), theta0, si, sa)
@@ -528,11 +532,16 @@ def drift_power(n_specimens=(3, 4, 6), pct_per_year=10.0, n_series=20_000, seed=
             )
             x = np.exp(y)
             pair = np.any(np.abs(x[:, 1:] / x[:, :-1] - 1.0) > rcv, axis=-1)
-            row[f"{label}_p_drift"] = float(np.mean(res["p_drift"] > p_drift_cut))
+            nan = float("nan")
+            row[f"{label}_p_drift"] = (
+                float(np.mean(res["p_drift"] > p_drift_cut)) if eligible_n else nan
+            )
             row[f"{label}_p_drift_rising"] = float(
                 np.mean((res["p_drift"] > p_drift_cut) & (res["p_increase"] > 0.5))
+            ) if eligible_n else nan
+            row[f"{label}_p_increase"] = (
+                float(np.mean(res["p_increase"] > p_increase_cut)) if eligible_n else nan
             )
-            row[f"{label}_p_increase"] = float(np.mean(res["p_increase"] > p_increase_cut))
             row[f"{label}_rcv_any_pair"] = float(np.mean(pair))
         rows.append(row)
     return pd.DataFrame(rows)

@@ -161,3 +161,13 @@ def test_pyplot_never_imported():
             "print('matplotlib.pyplot' in sys.modules)") % str(__import__("pathlib").Path(__file__).parent)
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_drift_line_only_when_drift_is_probable():
+    hist, row, _ = demo(trend=True)
+    row["trend_p_drift"] = 0.2
+    ax = plots.analyte_panel(hist, row).axes[0]
+    assert not [l for l in ax.lines if l.get_linestyle() == "-."]
+    row["trend_p_drift"] = 0.97
+    ax = plots.analyte_panel(hist, row).axes[0]
+    assert len([l for l in ax.lines if l.get_linestyle() == "-."]) == 1
