@@ -94,7 +94,6 @@ from .constants import (
     CI_BOUNDS,
     DEFAULT_COVERAGE,
     DEFAULT_PRIOR_CHANGE,
-    DEFAULT_QUAD_NODES,
     DIM_ANALYTE,
     DIM_CI,
 )

@@ -1,0 +1,330 @@
+"""Drift model (bayesbase.trend, bayesbase.mcmc_trend) checked against outside references:
+scipy.stats.linregress and statsmodels OLS/WLS (flat-prior limit), scipy's multivariate normal
+and numerical integration (marginal likelihoods), the chi-square(1) law of the GLS slope
+statistic under H0 (false-alarm rate), binomial bands for calibration, the classical RCV
+formula (Fraser CG, Clin Chem Lab Med 2012;50:807), and PyMC NUTS (slow)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from scipy import integrate, special, stats
+
+from bayesbase.constants import DEFAULT_PRIOR_DRIFT, TREND_HORIZON_YEARS
+from bayesbase.engine import cv_to_sigma
+from bayesbase.trend import DEFAULT_SLOPE_SD, drift_power, trend_exact, trend_path
+
+Z975 = stats.norm.ppf(0.975)
+
+
+def _binom_band(n, p, level=0.99):
+    lo, hi = stats.binom.interval(level, n, p)
+    return lo / n, hi / n
+
+
+# ------------------------------------------------------------------ flat-prior limit = OLS / WLS
+TIMES = np.array([0.0, 0.7, 1.5, 2.1, 3.4, 4.0])
+Y = np.log(np.array([61.0, 66.0, 64.0, 73.0, 80.0, 79.0]))  # invented demo values (umol/L)
+FLAT = dict(prior_mean=4.0, sg=1e6, cvi=0.10, cvi_log_sd=0.0, sa=0.0, slope_sd=1e6)
+
+
+def _call(times, y, r=None, e=None, **kw):
+    p = dict(FLAT)
+    p.update(kw)
+    return trend_exact(times, y, r, e, p.pop("prior_mean"), p.pop("sg"), p.pop("cvi"),
+                       p.pop("cvi_log_sd"), p.pop("sa"), p.pop("slope_sd"), **p)
+
+
+def test_flat_prior_slope_is_ols():
+    """Reference: scipy.stats.linregress and statsmodels OLS. With sG, sB -> infinity and sI
+    known, the posterior of (theta0, beta) is N(OLS estimate, sI^2 (X'X)^-1)."""
+    out = _call(TIMES, Y)
+    lr = stats.linregress(TIMES, Y)
+    X = sm.add_constant(TIMES)
+    ols = sm.OLS(Y, X).fit()
+    assert out["eligible"][0]
+    assert abs(out["slope_mean"][0] - lr.slope) < 1e-6
+    assert abs(out["slope_mean"][0] - ols.params[1]) < 1e-6
+    si = float(cv_to_sigma(0.10))
+    sd_known = si * np.sqrt(ols.normalized_cov_params[1, 1])
+    assert abs(out["slope_sd"][0] - sd_known) < 1e-6
+    assert abs(out["slope_lower"][0] - (lr.slope - Z975 * sd_known)) < 1e-6
+    assert abs(out["slope_upper"][0] - (lr.slope + Z975 * sd_known)) < 1e-6
+    assert abs(out["p_increase"][0] - stats.norm.cdf(lr.slope / sd_known)) < 1e-6
+    assert abs(out["t_ref"][0] - TIMES.mean()) < 1e-12
+
+
+def test_flat_prior_path_is_ols_fit():
+    """Reference: statsmodels OLS fitted line; band = fit +/- z sI sqrt(x0' (X'X)^-1 x0)."""
+    at = np.array([-1.0, 0.0, 2.0, 4.0, 6.5])
+    path = trend_path(TIMES, Y, None, None, 4.0, 1e6, 0.10, 0.0, 0.0, 1e6, at)
+    ols = sm.OLS(Y, sm.add_constant(TIMES)).fit()
+    x0 = sm.add_constant(at, has_constant="add")
+    fit = ols.predict(x0)
+    se = float(cv_to_sigma(0.10)) * np.sqrt(np.einsum("ij,jk,ik->i", x0, ols.normalized_cov_params, x0))
+    np.testing.assert_allclose(path["mean"], fit, atol=1e-6)
+    np.testing.assert_allclose(path["lower"], fit - Z975 * se, atol=1e-6)
+    np.testing.assert_allclose(path["upper"], fit + Z975 * se, atol=1e-6)
+
+
+def test_flat_prior_replicates_is_wls():
+    """Reference: statsmodels WLS with weights 1/(sI^2 + sA^2/r_j + e_j)."""
+    r = np.array([1.0, 2.0, 3.0, 1.0, 2.0, 1.0])
+    e = np.array([0.0, 0.0, 0.001, 0.0, 0.002, 0.0])
+    sa = 0.05
+    out = _call(TIMES, Y, r, e, sa=sa)
+    v = cv_to_sigma(0.10) ** 2 + sa**2 / r + e
+    wls = sm.WLS(Y, sm.add_constant(TIMES), weights=1.0 / v).fit()
+    assert abs(out["slope_mean"][0] - wls.params[1]) < 1e-6
+    assert abs(out["slope_sd"][0] - np.sqrt(wls.normalized_cov_params[1, 1])) < 1e-6
+
+
+# ------------------------------------------------------------- marginal likelihoods and BF
+def _marginal_covs(times, v, sg, sb):
+    tc = times - times.mean()
+    s0 = np.diag(v) + sg**2
+    return s0, s0 + sb**2 * np.outer(tc, tc)
+
+
+def test_log_bf_known_si_matches_multivariate_normal():
+    """Reference: scipy.stats.multivariate_normal with the marginal covariances
+    V + sG^2 11' (H0) and V + sG^2 11' + sB^2 tc tc' (H1)."""
+    mu, sg, sa, sb = np.log(70.0), 0.2, 0.03, 0.1
+    r = np.array([1.0, 1.0, 2.0, 1.0, 1.0, 3.0])
+    out = trend_exact(TIMES, Y, r, None, mu, sg, 0.10, 0.0, sa, sb)
+    v = cv_to_sigma(0.10) ** 2 + sa**2 / r
+    c0, c1 = _marginal_covs(TIMES, v, sg, sb)
+    ref = (stats.multivariate_normal(np.full(6, mu), c1).logpdf(Y)
+           - stats.multivariate_normal(np.full(6, mu), c0).logpdf(Y))
+    assert abs(out["log_bf10"][0] - ref) < 1e-9
+    pi = DEFAULT_PRIOR_DRIFT
+    assert abs(out["p_drift"][0] - pi * np.exp(ref) / (pi * np.exp(ref) + 1 - pi)) < 1e-9
+
+
+def test_log_bf_uncertain_cvi_matches_numerical_integration():
+    """Reference: scipy.integrate.quad of the marginal likelihood over z, ln CVI = ln CVI_pack
+    + s z, z ~ N(0, 1), under each hypothesis."""
+    mu, sg, sa, sb, cvi, s = np.log(70.0), 0.2, 0.03, 0.1, 0.10, 0.35
+    out = trend_exact(TIMES, Y, None, None, mu, sg, cvi, s, sa, sb, nodes=24)
+
+    def ml(z, h):
+        v = cv_to_sigma(cvi * np.exp(s * z)) ** 2 + sa**2
+        c = _marginal_covs(TIMES, np.full(6, v), sg, sb)[h]
+        return stats.norm.pdf(z) * stats.multivariate_normal(np.full(6, mu), c).pdf(Y)
+
+    m0 = integrate.quad(ml, -10, 10, args=(0,), epsabs=0, epsrel=1e-11, limit=200)[0]
+    m1 = integrate.quad(ml, -10, 10, args=(1,), epsabs=0, epsrel=1e-11, limit=200)[0]
+    assert abs(out["log_bf10"][0] - np.log(m1 / m0)) < 1e-6
+
+
+# ------------------------------------------------------------------------ simulations
+def _gls_s(times, v, sg):
+    """t' Sigma0^-1 t for the centred times (numpy linear algebra, independent of the kernel)."""
+    tc = times - times.mean()
+    c0 = _marginal_covs(times, v, sg, 0.0)[0]
+    return float(tc @ np.linalg.solve(c0, tc))
+
+
+@pytest.mark.parametrize(
+    "times, r, prior_drift, cut",
+    [
+        (np.arange(6.0), np.ones(6), DEFAULT_PRIOR_DRIFT, 0.5),
+        (np.array([0.0, 0.4, 1.0]), np.array([1.0, 3.0, 2.0]), 0.5, 0.6),
+    ],
+    ids=["six-annual", "three-unequal"],
+)
+def test_false_alarm_rate_under_h0_matches_chi_square(times, r, prior_drift, cut):
+    """Under H0 with known sI, u = tc' Sigma0^-1 (y - mu) ~ N(0, s), s = tc' Sigma0^-1 tc, and
+    log BF = -0.5 ln(1 + sB^2 s) + 0.5 sB^2 u^2 / (1 + sB^2 s) (matrix determinant lemma and
+    Sherman-Morrison). P(drift) > cut <=> Q = u^2 / s > q*, Q ~ chi-square(1): expected rate
+    scipy.stats.chi2.sf(q*, 1); the simulated rate must lie in its binomial 99 % band."""
+    rng = np.random.default_rng(7101)
+    n = 20_000
+    mu, sg, sa, sb = np.log(90.0), 0.2, 0.03, DEFAULT_SLOPE_SD
+    si = float(cv_to_sigma(0.10))
+    v = si**2 + sa**2 / r
+    theta0 = mu + sg * rng.normal(size=n)
+    y = theta0[:, None] + rng.normal(size=(n, times.size)) * np.sqrt(v)
+    out = trend_exact(np.broadcast_to(times, y.shape), y, np.broadcast_to(r, y.shape), None, mu,
+                      sg, 0.10, 0.0, sa, sb, prior_drift=prior_drift, intervals=False)
+    s = _gls_s(times, v, sg)
+    k = sb**2 * s
+    log_bf_cut = special.logit(cut) - special.logit(prior_drift)
+    q_star = (2.0 * log_bf_cut + np.log1p(k)) * (1.0 + k) / k
+    expected = stats.chi2.sf(q_star, 1)
+    rate = np.mean(out["p_drift"] > cut)
+    lo, hi = _binom_band(n, expected)
+    assert 0.003 < expected < 0.2  # the design gives a rate the simulation can check
+    assert lo <= rate <= hi, (rate, expected, (lo, hi))
+
+
+def test_p_drift_calibrated_under_the_prior_mixture():
+    """Series simulated from the model's own prior (drift with probability pi_d, uncertain CVI):
+    in each bin of P(drift), the number of drifting series must match sum P(drift) within a
+    normal band for the Poisson-binomial (Bonferroni over bins, family 99 %)."""
+    rng = np.random.default_rng(7102)
+    n, pi = 20_000, 0.3
+    times = np.array([0.0, 0.5, 1.3, 2.0, 3.1])
+    mu, sg, sa, sb, cvi, s = np.log(90.0), 0.2, 0.03, DEFAULT_SLOPE_SD, 0.10, 0.25
+    drift = rng.random(n) < pi
+    beta = np.where(drift, sb * rng.normal(size=n), 0.0)
+    theta0 = mu + sg * rng.normal(size=n)
+    si = cv_to_sigma(cvi * np.exp(s * rng.normal(size=n)))
+    tc = times - times.mean()
+    sd = np.sqrt(si**2 + sa**2)[:, None]
+    y = theta0[:, None] + beta[:, None] * tc + sd * rng.normal(size=(n, times.size))
+    out = trend_exact(np.broadcast_to(times, y.shape), y, None, None, mu, sg, cvi, s, sa, sb,
+                      prior_drift=pi, intervals=False)
+    p = out["p_drift"]
+    edges = np.array([0.0, 0.1, 0.3, 0.5, 0.7, 0.9, 1.0])
+    z = stats.norm.ppf(1 - 0.01 / (2 * (edges.size - 1)))
+    for a, b in zip(edges[:-1], edges[1:]):
+        sel = (p >= a) & (p < b) if b < 1 else (p >= a)
+        assert sel.sum() > 200, (a, b, sel.sum())
+        exp = p[sel].sum()
+        sd_bin = np.sqrt(np.sum(p[sel] * (1 - p[sel])))
+        assert abs(drift[sel].sum() - exp) <= z * sd_bin, (a, b, drift[sel].sum(), exp, sd_bin)
+
+
+def test_time_to_limit_matches_monte_carlo_of_the_crossing_time():
+    """Known sI: the H1 posterior of (theta0, beta) is N(m, S) with S^-1 = X'V^-1X + diag(1/sG^2,
+    1/sB^2) (numpy here). Crossing time per draw = (ln L - theta_last)/beta for beta > 0
+    (0 if already beyond, +inf if receding); its quantiles from 400,000 seeded draws
+    must match the exact path within Monte Carlo error."""
+    times = np.arange(6.0)
+    y = np.log(np.array([98.0, 104.0, 111.0, 112.0, 125.0, 131.0]))  # invented demo values
+    mu, sg, sa, sb, lim = np.log(90.0), 0.2, 0.03, 0.1, np.log(159.0)
+    out = trend_exact(times, y, None, None, mu, sg, 0.10, 0.0, sa, sb, limit_upper=lim,
+                      limit_lower=np.log(44.0))
+    v = cv_to_sigma(0.10) ** 2 + sa**2
+    tc = times - times.mean()
+    X = np.column_stack([np.ones(6), tc])
+    prec = X.T @ X / v + np.diag([1 / sg**2, 1 / sb**2])
+    cov = np.linalg.inv(prec)
+    m = cov @ (X.T @ y / v + np.array([mu / sg**2, 0.0]))
+    d = np.random.default_rng(7103).multivariate_normal(m, cov, size=400_000)
+    th_last = d[:, 0] + d[:, 1] * tc[-1]
+    with np.errstate(divide="ignore"):
+        t = np.where(th_last >= lim, 0.0, np.where(d[:, 1] > 0, (lim - th_last) / d[:, 1], np.inf))
+    assert out["limit_side"][0] == "upper"
+    for key, q in (("years_to_limit", 0.5), ("years_to_limit_lower", 0.025)):
+        ref = np.quantile(t, q)
+        assert abs(out[key][0] - ref) < 0.02 * ref, (key, out[key][0], ref)
+    ref_hi = np.quantile(t, 0.975)
+    assert (ref_hi > TREND_HORIZON_YEARS) == np.isinf(out["years_to_limit_upper"][0])
+    assert abs(out["slope_mean"][0] - m[1]) < 1e-9
+    assert abs(out["p_increase"][0] - stats.norm.cdf(m[1] / np.sqrt(cov[1, 1]))) < 1e-9
+    assert abs(out["p_beyond_limit"][0] - np.mean(th_last >= lim)) < 5e-3
+
+
+# ---------------------------------------------------------------------------- rule, inputs
+def test_rule_not_met_gives_nan_and_a_reason():
+    t = np.array([[0.0, 1.0, np.nan], [0.0, 0.2, 0.4], [0.0, 0.25, 0.5]])
+    y = np.log(np.array([[60.0, 62.0, np.nan], [60.0, 62.0, 61.0], [60.0, 62.0, 61.0]]))
+    out = trend_exact(t, y, None, None, np.log(90), 0.2, 0.1, 0.2, 0.03, 0.1,
+                      limit_upper=np.log(159.0), limit_lower=np.log(44.0))
+    assert out["eligible"].tolist() == [False, False, True]
+    assert "fewer than 3" in out["reason"][0]
+    assert "span less than 0.5" in out["reason"][1]
+    assert out["reason"][2] == ""
+    for k in ("p_drift", "p_increase", "slope_mean", "pct_per_year_mean", "years_to_limit"):
+        assert np.all(np.isnan(out[k][:2])), k
+        assert np.isfinite(out[k][2]) or k == "years_to_limit"
+    assert out["n_used"].tolist() == [2.0, 3.0, 3.0]
+    assert list(out["limit_side"][:2]) == ["", ""]
+
+
+def test_padding_and_batching_do_not_change_a_series():
+    y1 = np.log([61.0, 66.0, 64.0, 73.0])
+    t1 = np.array([0.0, 0.9, 2.0, 3.0])
+    alone = trend_exact(t1, y1, None, None, np.log(90), 0.2, 0.1, 0.2, 0.03, 0.1)
+    t = np.array([[0.0, np.nan, 0.9, 2.0, 3.0, 5.0], [0.0, 1.0, 2.0, 3.0, 4.0, 5.0]])
+    y = np.array([[y1[0], np.log(70.0), y1[1], y1[2], y1[3], np.log(99.0)], np.log([90, 95, 99, 105, 111, 118])])
+    r = np.array([[1, 1, 1, 1, 1, 0], [1, 1, 1, 1, 1, 1]], float)
+    both = trend_exact(t, y, r, None, np.log(90), 0.2, 0.1, 0.2, 0.03, 0.1)
+    for k in ("p_drift", "slope_mean", "slope_lower", "pct_per_year_upper", "t_ref"):
+        assert abs(both[k][0] - alone[k][0]) < 1e-12, k
+
+
+def test_bad_inputs_raise():
+    with pytest.raises(ValueError, match="times"):
+        trend_exact(np.arange(3.0), np.zeros(4), None, None, 0.0, 0.2, 0.1, 0.2, 0.03, 0.1)
+    with pytest.raises(ValueError, match="sg"):
+        trend_exact(np.arange(3.0), np.zeros(3), None, None, 0.0, 0.0, 0.1, 0.2, 0.03, 0.1)
+    with pytest.raises(ValueError, match="prior_drift"):
+        trend_exact(np.arange(3.0), np.zeros(3), None, None, 0.0, 0.2, 0.1, 0.2, 0.03, 0.1,
+                    prior_drift=1.0)
+
+
+# ---------------------------------------------------------------------- creatinine scenario
+# Creatinine-like CVs: CVI 0.10 (from memory), CVA 0.03 (common practice), CVG 0.20 (from
+# memory); population interval [44, 159] umol/L and centre 90 umol/L invented for this demo.
+CREAT = dict(prior_mean=np.log(90.0), sg=float(cv_to_sigma(0.20)), cvi=0.10, cvi_log_sd=0.2,
+             sa=float(cv_to_sigma(0.03)), slope_sd=0.10)
+CREAT_VALUES = np.array([62.0, 66.0, 73.0, 79.0, 86.0, 95.0])  # invented, ~9 %/year rise
+
+
+def test_creatinine_rising_inside_the_interval():
+    assert np.all((CREAT_VALUES > 44) & (CREAT_VALUES < 159))
+    c = CREAT
+    out = trend_exact(np.arange(6.0), np.log(CREAT_VALUES), None, None, c["prior_mean"], c["sg"],
+                      c["cvi"], c["cvi_log_sd"], c["sa"], c["slope_sd"],
+                      limit_upper=np.log(159.0), limit_lower=np.log(44.0))
+    assert out["p_increase"][0] > 0.95
+    assert out["limit_side"][0] == "upper"
+    assert np.isfinite(out["years_to_limit"][0]) and out["years_to_limit"][0] > 0
+    assert out["years_to_limit_lower"][0] <= out["years_to_limit"][0] <= out["years_to_limit_upper"][0]
+    assert out["pct_per_year_lower"][0] < out["pct_per_year_mean"][0] < out["pct_per_year_upper"][0]
+    # model-averaged mean is the H1 mean shrunk by P(drift)
+    assert abs(out["pct_per_year_avg_mean"][0] - out["p_drift"][0] * out["pct_per_year_mean"][0]) < 1e-9
+
+
+# ---------------------------------------------------------------------------------- power
+def test_drift_power_table():
+    """Power rises with the number of annual specimens; at n = 6 both trend rules beat the
+    consecutive-pair RCV while raising fewer false alarms. The pair rule's single-pair false
+    alarm (n = 2) is checked against its closed form: d = ln(x2/x1) ~ N(0, 2 sigma^2),
+    sigma^2 = ln(1 + CVA^2) + ln(1 + CVI^2), flag when exp(d) - 1 > RCV or 1 - exp(d) > RCV."""
+    n = 10_000
+    df = drift_power(n_specimens=(2, 3, 4, 6), pct_per_year=10, n_series=n, seed=7104)
+    rcv = np.sqrt(2) * stats.norm.ppf(0.975) * np.hypot(0.03, 0.10)  # Fraser 2012
+    np.testing.assert_allclose(df["rcv_pct"], 100 * rcv, rtol=1e-12)
+    sig = np.sqrt(2 * (np.log1p(0.03**2) + np.log1p(0.10**2)))
+    p_pair = stats.norm.sf(np.log1p(rcv) / sig) + stats.norm.cdf(np.log(1 - rcv) / sig)
+    lo, hi = _binom_band(n, p_pair)
+    assert lo <= df["false_alarm_rcv_any_pair"].iloc[0] <= hi
+    assert np.isnan(df["power_p_drift"].iloc[0])  # n = 2 is below the trend rule
+    d = df.set_index("n_specimens").loc[[3, 4, 6]]
+    for col in ("power_p_drift", "power_p_increase", "power_rcv_any_pair"):
+        assert np.all(np.diff(d[col].to_numpy()) > 0), col
+    six = d.loc[6]
+    assert six["power_p_drift"] > six["power_rcv_any_pair"]
+    assert six["power_p_increase"] > six["power_rcv_any_pair"]
+    assert six["false_alarm_p_drift"] < six["false_alarm_rcv_any_pair"]
+    assert six["false_alarm_p_increase"] < six["false_alarm_rcv_any_pair"]
+
+
+# ------------------------------------------------------------------------ exact vs PyMC
+@pytest.mark.slow
+def test_exact_agrees_with_mcmc():
+    """Reference: PyMC NUTS on the same model (H1), Savage-Dickey Bayes factor; tolerances
+    are 4 Monte Carlo standard errors (plus 2 % on the time to limit for the quantile method)."""
+    from bayesbase.mcmc_trend import trend_mcmc
+
+    c = CREAT
+    t = np.array([np.arange(6.0), [0.0, 0.5, 1.5, 2.5, 3.0, np.nan]])
+    y = np.log(np.array([CREAT_VALUES, [88.0, 84.0, 90.0, 79.0, 83.0, np.nan]]))
+    args = (t, y, None, None, c["prior_mean"], c["sg"], c["cvi"], c["cvi_log_sd"], c["sa"],
+            c["slope_sd"])
+    kw = dict(limit_upper=np.log(159.0), limit_lower=np.log(44.0))
+    e = trend_exact(*args, **kw)
+    m = trend_mcmc(*args, **kw, draws=1000, tune=1000, chains=2, seed=7105)
+    assert np.all(m["converged"]), (m["r_hat"], m["ess"], m["divergences"])
+    assert np.all(np.abs(m["log_bf10"] - e["log_bf10"]) < 4 * m["log_bf10_mcse"] + 1e-3)
+    assert np.all(np.abs(m["slope_mean"] - e["slope_mean"]) < 4 * m["slope_mean_mcse"])
+    assert np.all(np.abs(m["p_increase"] - e["p_increase"]) < 0.03)
+    assert list(m["limit_side"]) == list(e["limit_side"])
+    fin = np.isfinite(e["years_to_limit"])
+    assert fin[0]
+    tol = 4 * m["years_to_limit_mcse"][fin] + 0.02 * e["years_to_limit"][fin]
+    assert np.all(np.abs(m["years_to_limit"][fin] - e["years_to_limit"][fin]) < tol)
