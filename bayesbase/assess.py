@@ -27,6 +27,7 @@ from .constants import (
     DIM_CI,
     DIM_PATIENT,
     CI_BOUNDS,
+    TREND_HORIZON_YEARS,
     TREND_MIN_SPAN_YEARS,
     TREND_MIN_SPECIMENS,
 )
@@ -693,7 +694,14 @@ def _trend_block(cases_meta, scal, settings, prior_drift, nodes):
             "trend_note": "" if elig else (f"trend not computed: needs >= {TREND_MIN_SPECIMENS} usable "
                                            f"specimens spanning >= {TREND_MIN_SPAN_YEARS} years"),
         }
+        if elig and not np.isfinite(d["trend_years_to_limit"]):
+            d["trend_note"] = f"set point not projected to reach a population limit within {TREND_HORIZON_YEARS:g} years"
         if elig and getattr(m["prior"], "age_dependent", None):
-            d["trend_note"] = f"set point known to move with age: {m['prior'].age_dependent}"
+            bd = m["row"].get("birth_date")
+            first = min(m["base_times"] + [scal["new_t"][i]])
+            age0 = (first - pd.Timestamp(bd).value / 1e9 / 86400 / _YEAR_DAYS) if (bd is not None and not pd.isna(bd)) else None
+            if age0 is None or age0 < 2.0:
+                d["trend_note"] = ("young or unknown age: this analyte's set point is known to move with age "
+                                   f"({m['prior'].age_dependent}); a drift may be growth, not disease")
         rows.append(d)
     return rows

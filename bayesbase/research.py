@@ -107,6 +107,7 @@ __all__ = [
     "compare",
     "write_outputs",
     "bench_compare",
+    "spec_from_pack",
     "peb_score",
     "mann_whitney_auc",
 ]
@@ -230,7 +231,9 @@ class Comparison:
 
 # --------------------------------------------------------------------------- inputs
 
-def _spec_from_pack(pack, name: str) -> AnalyteSpec:
+def spec_from_pack(pack, name: str) -> AnalyteSpec:
+    """The CVs of one pack analyte as an :class:`AnalyteSpec` (prior_change from the pack's
+    defaults)."""
     a = pack.get(name)
     pc = float(pack.defaults.get("prior_change", DEFAULT_PRIOR_CHANGE)) if pack.defaults else DEFAULT_PRIOR_CHANGE
     return AnalyteSpec(
@@ -255,7 +258,7 @@ def _resolve(species, analytes, priors):
             pack = load_pack(species, overrides=priors)
     specs = {}
     for a in analytes:
-        s = a if isinstance(a, AnalyteSpec) else _spec_from_pack(pack, a)
+        s = a if isinstance(a, AnalyteSpec) else spec_from_pack(pack, a)
         if s.name in specs:
             raise ValueError(f"analyte '{s.name}' listed twice")
         specs[s.name] = s
