@@ -277,9 +277,21 @@ def cmd_demo(args) -> int:
         files = report.report_for_file(
             frame, case["patient"], None, out / f"{case['id']}.html",
             pdf=None if args.no_pdf else out / f"{case['id']}.pdf", at=case.get("at"))
-        listed = a.table[a.table["p_change"] >= 0.5]
-        summary = ", ".join(f"{r.label} {'up' if r.p_increase >= 0.5 else 'down'} (P={r.p_change:.2f})"
-                            for r in listed.itertuples()) or "no probable change"
+        from .report import select_changes
+
+        t = a.table
+        listed = t[select_changes(t["p_change"].to_numpy())]
+        parts = [f"{r.label} {'up' if r.p_increase >= 0.5 else 'down'} (P(change) {r.p_change:.2f}"
+                 + (", compromised sample" if r.quality != "ok" else "") + ")"
+                 for r in listed.itertuples()]
+        if "trend_p_drift" in t:
+            for r in t[t["trend_p_drift"] >= 0.9].itertuples():
+                parts.append(f"{r.label} drifting {r.trend_pct_per_year:+.1f} %/year (P(drift) {r.trend_p_drift:.2f})")
+        comp = t[(t["quality"] != "ok") & ~t.index.isin(listed.index)]
+        parts += [f"{r.label} compromised sample" for r in comp.itertuples()]
+        if not t["comparable"].all():
+            parts.append("method changed: not directly comparable")
+        summary = "; ".join(parts) or "no probable change"
         lines.append(f"{case['id']:<42} {summary}")
         del files
     print("\n".join(lines))

@@ -88,9 +88,10 @@ def _mcse(x, prob=None):
     """Monte Carlo SE of the mean (or of the ``prob`` quantile) of (chain, draw) draws (ArviZ)."""
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
+        ds = az.convert_to_dataset({"x": np.asarray(x, float)})  # dims (chain, draw)
         if prob is None:
-            return float(az.mcse(np.asarray(x)[None] if np.ndim(x) == 1 else x))
-        return float(az.mcse(x, method="quantile", prob=prob))
+            return float(az.mcse(ds)["x"])
+        return float(az.mcse(ds, method="quantile", prob=prob)["x"])
 
 
 def _quantile(x, q):

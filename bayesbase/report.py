@@ -1030,7 +1030,7 @@ def _pdf(ctx: dict, path: Path) -> None:
         para("For every analyte: " + "; ".join(common) + ".", 7.5)
     cov = rows[0]["coverage"] if rows else DEFAULT_COVERAGE
     head = ("Analyte", "Result", "Population interval", f"Personal interval ({100 * cov:.0f} %)",
-            "Percentile", "P(change)", "Δ vs baseline mean", "Classical RCV", "Log-normal RCV",
+            "Centile", "P(change)", "Δ vs baseline mean", "Classical RCV", "Log-normal RCV",
             "II (CVI/CVG)", "Notes")
     widths = (27, 15, 24, 24, 15, 31, 17, 22, 26, 21, 55)
     tints = {"chg": (250, 221, 204), "unc": (251, 236, 204), "low": (226, 241, 251)}
@@ -1054,14 +1054,14 @@ def _pdf(ctx: dict, path: Path) -> None:
             tr.cell(txt(r["population"]))
             tr.cell(txt(r["personal"]))
             tr.cell(txt(r["percentile"]))
-            tr.cell(txt(f"{r['p_text']}{arrow}\n{r['change_pct']} of set point"),
+            tr.cell(txt(f"{r['p_text']}{arrow}\n{r['change_pct']} vs set point"),
                     style=FontFace(emphasis="BOLD", fill_color=tint) if tint else None)
             tr.cell(txt(r["delta_mean"]))
             tr.cell(txt(r["classical"]), style=bold if r["classical_beyond"] else None)
             tr.cell(txt(r["lognormal"]), style=bold if r["lognormal_beyond"] else None)
             tr.cell(txt(f"{r['ii']}\n{r['ii_short']}"))
             tr.cell(txt("; ".join(n for n in r["notes"] if n not in common) or "–"))
-    para("* outside the population interval (bold). Percentile: place of the result in the "
+    para("* outside the population interval (bold). Centile: percentile, the place of the result in the "
          "animal's own predictive distribution. P(change) shaded by band: blue below "
          f"{UNCERTAIN_BAND[0]}, orange {UNCERTAIN_BAND[0]}–{UNCERTAIN_BAND[1]}, vermillion above. "
          "RCV verdicts compare Δ (change from the baseline mean) with the two-sided 95 % RCV "
@@ -1273,7 +1273,9 @@ def report_for_file(results_path_or_frame, patient: str, pack, out_html, pdf=Non
     if isinstance(pack, str):
         pack = load_pack(pack)
     if isinstance(results_path_or_frame, pd.DataFrame):
-        results = validate(results_path_or_frame)
+        canonical = {"reported_value", "reported_unit", "censor", "source_row"}
+        results = (results_path_or_frame.copy() if canonical <= set(results_path_or_frame.columns)
+                   else validate(results_path_or_frame))
     else:
         results = load_results(results_path_or_frame)
     sub = results[results["patient"].astype(str) == str(patient)]
@@ -1281,9 +1283,15 @@ def report_for_file(results_path_or_frame, patient: str, pack, out_html, pdf=Non
         known = ", ".join(list(dict.fromkeys(results["patient"].astype(str)))[:10])
         raise BayesbaseError(f"patient {patient!r} not found in the results (patients: {known})")
     assessment = assess(sub, pack=pack, engine=engine, at=at, **assess_kw)
+    if pack is None and assessment.packs:
+        pack = next(iter(assessment.packs.values()))
     path = None
     if with_path:
-        kw = dict(engine=engine, **assess_kw)
+        # the ribbon of earlier personal intervals always uses the exact engine (one fit per
+        # specimen would be slow with MCMC; both engines fit the same model)
+        kw = dict(assess_kw)
+        kw.pop("seed", None)
+        kw["engine"] = "exact"
         kw["trend"] = False  # the ribbon needs the intervals only; the drift model is not used
         path = personal_interval_path(sub, pack, str(patient), assess, **kw)
     return build_report(assessment, pack, out_html, pdf=pdf, png_dir=png_dir, title=title,

@@ -657,7 +657,7 @@ def _summary(comp: Comparison) -> str:
                        f"{', '.join(str(n) for n in a['baselines'])}: " + "; ".join(fa) + ".")
             if s_focus is not None:
                 parts = []
-                for n in ns[:1] + [k for k in ns if k == 3]:
+                for n in sorted({ns[0], *(k for k in ns if k == 3)}):
                     c = {m: _cell(ta, method=m, n_baseline=n, shift_pct=s_focus) for m in
                          ("bayes_pi", "peb", "rcv_last", "model2", "population")}
                     if any(v is None for v in c.values()):

@@ -154,11 +154,9 @@ def prepare_series(times, y, r=None, extra_var=None, prior_mean=0.0, sg=1.0, cvi
     if np.any(mask & ~(np.nan_to_num(extra_var, nan=-1.0) >= 0)):
         raise ValueError("extra_var must be >= 0 for every usable specimen")
     n_used = mask.sum(-1)
-    tt = np.where(mask, times, np.nan)
-    with np.errstate(invalid="ignore"), _quiet_nanwarnings():
-        t_min = np.nanmin(np.where(n_used[:, None] > 0, tt, 0.0), axis=-1)
-        t_max = np.nanmax(np.where(n_used[:, None] > 0, tt, 0.0), axis=-1)
-        t_ref = np.where(n_used > 0, np.nansum(np.where(mask, times, 0.0), -1) / np.maximum(n_used, 1), np.nan)
+    t_min = np.min(np.where(mask, times, np.inf), axis=-1)
+    t_max = np.max(np.where(mask, times, -np.inf), axis=-1)
+    t_ref = np.where(n_used > 0, np.sum(np.where(mask, times, 0.0), -1) / np.maximum(n_used, 1), np.nan)
     span = np.where(n_used > 0, t_max - t_min, 0.0)
     eligible = (n_used >= TREND_MIN_SPECIMENS) & (span >= TREND_MIN_SPAN_YEARS)
     reason = np.full(c, "", dtype=object)
@@ -173,21 +171,6 @@ def prepare_series(times, y, r=None, extra_var=None, prior_mean=0.0, sg=1.0, cvi
         t_last=np.where(n_used > 0, t_max, np.nan), eligible=eligible, reason=reason,
     )
     return out
-
-
-class _quiet_nanwarnings:
-    """Silence numpy's all-NaN-slice warnings inside the block (padded rows are expected)."""
-
-    def __enter__(self):
-        import warnings
-
-        self._cm = warnings.catch_warnings()
-        self._cm.__enter__()
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return self
-
-    def __exit__(self, *exc):
-        return self._cm.__exit__(*exc)
 
 
 def _subset(p, idx):
