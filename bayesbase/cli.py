@@ -206,6 +206,8 @@ def _table_text(a) -> str:
             "dir": ("up" if r["p_increase"] >= 0.5 else "down") if r["p_change"] >= 0.5 else "",
             "RCV": {True: "exceeded", False: "within"}.get(r["rcv_exceeded_last"], "n/a"),
             "n_base": r["n_baseline"],
+            "drift": (f"{r['trend_pct_per_year']:+.1f}%/yr P={r['trend_p_drift']:.2f}"
+                      if r.get("trend_p_drift") == r.get("trend_p_drift") and r.get("trend_p_drift") is not None else ""),
             "notes": "; ".join(r["flags"])[:90],
         })
     with pd.option_context("display.width", 250, "display.max_colwidth", 90):

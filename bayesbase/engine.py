@@ -319,13 +319,16 @@ def exact_assess(
     d_mean = tau2 / v1 * resid
     d_sd = np.sqrt(tau2 * new_var / v1)
     p_inc = np.sum(w1 * special.ndtr(d_mean / d_sd), axis=-1)
-    delta = cases.delta[:, None]
-    with np.errstate(invalid="ignore"):
+    has_delta = np.isfinite(cases.delta)
+    if has_delta.any():
+        delta = np.where(has_delta, cases.delta, 0.0)[:, None]
         tail = special.ndtr((d_mean - delta) / d_sd) + special.ndtr((-delta - d_mean) / d_sd)
-    p_tail = np.sum(w1 * tail, axis=-1)
+        p_tail = np.sum(w1 * tail, axis=-1)
+    else:
+        p_tail = np.full(n, np.nan)
     out["log_bf10"] = np.where(has_y, log_bf, np.nan)
     out["bf10"] = np.exp(out["log_bf10"])
     out["p_change"] = np.where(has_y, p_change, np.nan)
     out["p_increase"] = np.where(has_y, p_inc, np.nan)
-    out["p_exceed_delta"] = np.where(has_y & np.isfinite(cases.delta), p_change * p_tail, np.nan)
+    out["p_exceed_delta"] = np.where(has_y & has_delta, p_change * p_tail, np.nan)
     return out

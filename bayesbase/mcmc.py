@@ -62,6 +62,7 @@ with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)
     import arviz as az
 import pymc as pm
+import pytensor
 import pytensor.tensor as pt
 import xarray as xr
 
@@ -91,6 +92,13 @@ _SUMMARY_KEYS = (
     "cvi_post_mean",
 )
 _NEUTRAL = dict(mu=0.0, sg=1.0, ln_cvi=float(np.log(0.1)), cvi_sd=0.0)
+
+with warnings.catch_warnings():
+    # A pip-installed PyTensor without a linked BLAS says so once, when the flag is first read
+    # (inside a graph rewrite, where an error-level warning filter turns it into a logged
+    # rewrite failure). Read it here once; this model has no matrix products that need BLAS.
+    warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
+    _ = pytensor.config.blas__ldflags
 
 # compiled-model cache: one PyMC model per structure, reused with pm.set_data
 _MODEL_CACHE: dict[tuple, pm.Model] = {}
@@ -151,8 +159,10 @@ def _layout(cases: CaseArrays, patient, analyte):
     y = cases.base_y[ci, cj]
     ev = cases.sa[ci] ** 2 / cases.base_r[ci, cj] + cases.base_extra_var[ci, cj]
     cens = cases.base_censor[ci, cj]
-    lower = np.where(cens > 0, y, -np.inf)
-    upper = np.where(cens < 0, y, np.inf)
+    # pm.Censored clips at its bounds: a value AT `lower` means "true value <= lower" (logcdf),
+    # a value AT `upper` means ">= upper" (logccdf). Left-censored "<x" -> lower = x.
+    lower = np.where(cens < 0, y, -np.inf)
+    upper = np.where(cens > 0, y, np.inf)
     data = dict(
         mu=grid(cases.prior_mean, _NEUTRAL["mu"]),
         sg=grid(cases.sg, _NEUTRAL["sg"]),
@@ -491,9 +501,6 @@ def mcmc_assess(
             # diagnostics below report the same fact as converged=False.
             warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
             warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
-            # a pip-installed PyTensor without a linked BLAS says so once; the model has no
-            # matrix products that would need it.
-            warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
             idata = pm.sample(
                 draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
                 target_accept=target_accept, progressbar=False, model=model,

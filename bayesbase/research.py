@@ -151,6 +151,9 @@ CHUNK = 100_000
 #: pack): 16 nodes change the predictive percentile by at most 1e-6 and P(change) by at most
 #: 1e-5 against 24 nodes, at about half the time; tests/test_research.py re-checks the bound.
 SIM_QUAD_NODES = 16
+#: simulated log results kept in memory between designs and shifts up to this many values
+#: (about 200 MB); larger studies regenerate them from the seed.
+_CACHE_VALUES = 25_000_000
 #: false-positive rates at which ROC curves are tabulated.
 ROC_FPR = np.unique(np.concatenate([[0.0], np.geomspace(1e-3, 1.0, 31), np.linspace(0, 1, 21)]))
 
@@ -269,22 +272,30 @@ def _resolve(species, analytes, priors):
 
 # --------------------------------------------------------------------------- simulation
 
-def _draws(seed: int, analyte: str, chunk: int, m: int, j: int) -> dict[str, np.ndarray]:
+def _draws(seed: int, analyte: str, chunk: int, m: int, j: int, heavy: bool = False
+           ) -> dict[str, np.ndarray]:
     """Standard draws of one chunk; the same for every scenario, design and shift.
 
     Drawn column by column (new result first, then baseline 1, 2, ...), so the new result and
-    the first n baselines do not depend on the largest n of the study."""
-    rng = np.random.default_rng([int(seed), zlib.crc32(analyte.encode()), int(chunk)])
+    the first n baselines do not depend on the largest n of the study. The Student-t draws of
+    ``heavy_tails`` come from a second stream of the same seed, drawn only when needed."""
+    key = [int(seed), zlib.crc32(analyte.encode()), int(chunk)]
+    rng = np.random.default_rng(key)
     theta = rng.standard_normal(m)
     cvi = rng.standard_normal(m)
     within = np.empty((m, j + 1))
     anal = np.empty((m, j + 1))
-    t = np.empty((m, j + 1))
     for col in [j, *range(j)]:
         within[:, col] = rng.standard_normal(m)
         anal[:, col] = rng.standard_normal(m)
-        t[:, col] = rng.standard_t(HEAVY_TAIL_DF, m)
-    return {"theta": theta, "within": within, "anal": anal, "cvi": cvi, "t": t}
+    out = {"theta": theta, "within": within, "anal": anal, "cvi": cvi}
+    if heavy:
+        rt = np.random.default_rng([*key, 1])
+        t = np.empty((m, j + 1))
+        for col in [j, *range(j)]:
+            t[:, col] = rt.standard_t(HEAVY_TAIL_DF, m)
+        out["t"] = t
+    return out
 
 
 def _simulate(spec: AnalyteSpec, scenario: str, d: dict[str, np.ndarray]) -> np.ndarray:
@@ -478,9 +489,20 @@ def compare(
     roc_rows: list[dict] = []
     t0 = time.perf_counter()
 
+    cache_ok = animals * (jmax + 1) <= _CACHE_VALUES
     for scen in scenarios:
         for name, spec in specs.items():
             nodes_a = 1 if spec.cvi_log_sd == 0 else nodes  # all nodes coincide then
+            cache: dict[int, np.ndarray] = {}
+
+            def sim(ci: int, m_: int) -> np.ndarray:
+                if ci in cache:
+                    return cache[ci]
+                y_ = _simulate(spec, scen, _draws(seed, name, ci, m_, jmax, scen == "heavy_tails"))
+                if cache_ok:
+                    cache[ci] = y_
+                return y_
+
             for n in baselines:
                 cuts = _cuts(spec, n, coverage, threshold)
                 methods = [m for m in METHODS if n >= 1 or m not in NEEDS_BASELINE]
@@ -488,7 +510,7 @@ def compare(
                 healthy = {m: [] for m in methods}
                 pos0 = {m: 0 for m in methods}
                 for ci, m_ in chunks:
-                    y = _simulate(spec, scen, _draws(seed, name, ci, m_, jmax))
+                    y = sim(ci, m_)
                     st, de = _score(spec, y[:, :n], y[:, jmax], cuts, coverage, threshold, nodes_a)
                     for m in methods:
                         healthy[m].append(st[m])
@@ -515,15 +537,14 @@ def compare(
                         u = {m: 0.0 for m in methods}
                         cnt = {m: np.zeros(ROC_FPR.size) for m in methods}
                         for ci, m_ in chunks:
-                            y = _simulate(spec, scen, _draws(seed, name, ci, m_, jmax))
+                            y = sim(ci, m_)
                             new = y[:, jmax] + math.log1p(s / 100.0)
                             st, de = _score(spec, y[:, :n], new, cuts, coverage, threshold, nodes_a)
                             for m in methods:
-                                x = st[m]
+                                xs = np.sort(st[m])  # sorted queries: faster binary search
                                 pos[m] += int(de[m].sum())
-                                above[m] += int(np.sum(x > mcut[m]))
-                                u[m] += _u_sum(h_sorted[m], x)
-                                xs = np.sort(x)
+                                above[m] += int(xs.size - np.searchsorted(xs, mcut[m], side="right"))
+                                u[m] += _u_sum(h_sorted[m], xs)
                                 cnt[m] += xs.size - np.searchsorted(xs, roc_cuts[m], side="right")
                             done += 1
                             if progress is not None:

@@ -276,7 +276,7 @@ def test_scenarios_change_the_truth_only(pack):
     should have: sigma = sqrt(ln(1 + CV^2)); heavy tails keep the SD (t with 4 df scaled by
     sqrt(2)), within a loose tolerance because its fourth moment is infinite."""
     spec = research.spec_from_pack(pack, "alt")
-    d = research._draws(SEED, "alt", 0, 40_000, 3)
+    d = research._draws(SEED, "alt", 0, 40_000, 3, heavy=True)
 
     def within_sd(scen):
         y = research._simulate(spec, scen, d)
