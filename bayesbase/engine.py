@@ -277,7 +277,8 @@ def exact_assess(
     if prune > 0 and w.shape[1] > 1:
         keep = np.max(w, axis=0) > prune
         m, pv, si2, w = m[:, keep], pv[:, keep], si2[:, keep], w[:, keep]
-        logw = np.log(w)
+        with np.errstate(divide="ignore"):  # weights that underflowed to 0 give -inf, as intended
+            logw = np.log(w)
         w = w / w.sum(-1, keepdims=True)
         logw = logw - np.log(np.sum(np.exp(logw), -1, keepdims=True))
     out: dict[str, np.ndarray] = {}

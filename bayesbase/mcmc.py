@@ -102,6 +102,9 @@ with warnings.catch_warnings():
 
 # compiled-model cache: one PyMC model per structure, reused with pm.set_data
 _MODEL_CACHE: dict[tuple, pm.Model] = {}
+# nutpie compiled models, per structure and shape (nutpie fixes the parameter count at compile)
+_NUTPIE_CACHE: dict[tuple, object] = {}
+SAMPLERS = ("pymc", "nutpie")
 
 
 @dataclass
@@ -222,9 +225,13 @@ def build_model(data: dict, coords: dict, *, has_eta: bool, has_obs: bool, censo
     return model
 
 
+def _model_key(structure, robust, nu):
+    return (structure["has_eta"], structure["has_obs"], structure["censored"], bool(robust),
+            float(nu) if robust else None)
+
+
 def _get_model(data, coords, structure, robust, nu, reuse=True):
-    key = (structure["has_eta"], structure["has_obs"], structure["censored"], bool(robust),
-           float(nu) if robust else None)
+    key = _model_key(structure, robust, nu)
     model = _MODEL_CACHE.get(key) if reuse else None
     if model is None:
         model = build_model(data, coords, robust=robust, nu=nu, **structure)
@@ -461,6 +468,7 @@ def mcmc_assess(
     attrs: dict | None = None,
     cores: int | None = None,
     reuse_model: bool = True,
+    sampler: str = "pymc",
 ) -> McmcResult:
     """Fit every case of ``cases`` in one PyMC model and summarise like ``exact_assess``.
 
@@ -470,6 +478,9 @@ def mcmc_assess(
     ``idata_path``: write the InferenceData to netCDF with attrs engine, seed, settings,
     bayesbase version and the caller's ``attrs`` (e.g. pack id and sha256).
     ``reuse_model``: reuse a cached model of the same structure via ``pm.set_data``.
+    ``sampler``: ``"pymc"`` (default, PyMC's NUTS) or ``"nutpie"`` (optional package
+    ``nutpie``, numba backend: a long first compile, then much faster sampling; the compiled
+    model is reused for panels of the same shape through ``with_data``).
 
     A fit that fails a convergence check is returned with ``diagnostics["converged"] = False``
     (never raised, never hidden): the caller marks every output of it.
@@ -480,11 +491,13 @@ def mcmc_assess(
         raise ValueError("draws >= 1, tune >= 0 and chains >= 1 are required")
     if robust and not nu > 0:
         raise ValueError("nu must be > 0")
+    if sampler not in SAMPLERS:
+        raise ValueError(f"sampler must be one of {SAMPLERS}, got {sampler!r}")
     data, coords, structure, pidx, aidx, patient, analyte = _layout(cases, patient, analyte)
     if cores is None:
         cores = max(1, min(chains, os.cpu_count() or 1))
     settings = dict(
-        sampler="pymc-nuts", draws=int(draws), tune=int(tune), chains=int(chains),
+        sampler=sampler, draws=int(draws), tune=int(tune), chains=int(chains),
         cores=int(cores), seed=int(seed), target_accept=float(target_accept),
         robust=bool(robust), nu=float(nu) if robust else None, coverage=float(coverage),
         ci_prob=float(ci_prob), pymc_version=pm.__version__,
@@ -501,11 +514,15 @@ def mcmc_assess(
             # diagnostics below report the same fact as converged=False.
             warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
             warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
-            idata = pm.sample(
-                draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
-                target_accept=target_accept, progressbar=False, model=model,
-                compute_convergence_checks=False, return_inferencedata=True,
-            )
+            if sampler == "nutpie":
+                idata = _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune,
+                                       chains, cores, seed, target_accept, reuse_model)
+            else:
+                idata = pm.sample(
+                    draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
+                    target_accept=target_accept, progressbar=False, model=model,
+                    compute_convergence_checks=False, return_inferencedata=True,
+                )
             settings["seconds"] = time.perf_counter() - t0
             cvi_sd = cases.cvi_log_sd
             diagnostics = _diagnostics(idata, pidx, aidx, cvi_sd)
@@ -526,6 +543,30 @@ def mcmc_assess(
         save_idata(idata, idata_path, settings, attrs)
     return McmcResult(summary=summary, mc_se=mc_se, idata=idata, diagnostics=diagnostics,
                       settings=settings, patient=patient, analyte=analyte)
+
+
+def _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune, chains, cores,
+                   seed, target_accept, reuse):
+    try:
+        import nutpie
+    except ImportError as exc:  # optional extra
+        raise ImportError("sampler='nutpie' needs the optional package nutpie "
+                          "(pip install 'nutpie>=0.16,<0.17')") from exc
+    key = _model_key(structure, robust, nu) + (
+        len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]), len(coords[DIM_OBS]))
+    cm = _NUTPIE_CACHE.get(key) if reuse else None
+    if cm is None:
+        cm = nutpie.compile_pymc_model(model, backend="numba", freeze_model=False)
+        if reuse:
+            _NUTPIE_CACHE[key] = cm
+    else:
+        cm = cm.with_data(**{k: v for k, v in data.items() if k in cm.shared_data})
+    idata = nutpie.sample(cm, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
+                          progress_bar=False, save_warmup=False, target_accept=target_accept)
+    # labels come from this call, not from the panel the model was compiled for
+    post = idata.posterior.assign_coords({DIM_PATIENT: coords[DIM_PATIENT],
+                                          DIM_ANALYTE: coords[DIM_ANALYTE]})
+    return az.InferenceData(posterior=post, sample_stats=idata.sample_stats)
 
 
 def _stamp(settings, attrs):
@@ -570,20 +611,21 @@ def _demo_panel(n_analytes: int, seed: int = 20240601) -> CaseArrays:
 
 
 def bench_mcmc_panel(n_analytes: int = 25, chains: int = 4, draws: int = 1000,
-                     tune: int = 1000, seed: int = 0) -> dict:
+                     tune: int = 1000, seed: int = 0, sampler: str = "pymc") -> dict:
     """Wall time of one ``n_analytes``-case panel: ``cold`` is the first call in this process
     for a model of this structure (includes building and compiling), ``warm`` a second call
     reusing the cached model. Also reports the load average when it ran."""
     cases = _demo_panel(n_analytes)
     t0 = time.perf_counter()
-    r1 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed)
+    r1 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler)
     cold = time.perf_counter() - t0
     t0 = time.perf_counter()
-    r2 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed + 1)
+    r2 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed + 1,
+                     sampler=sampler)
     warm = time.perf_counter() - t0
     load = os.getloadavg() if hasattr(os, "getloadavg") else (float("nan"),) * 3
     return dict(
-        n_analytes=n_analytes, chains=chains, draws=draws, tune=tune,
+        n_analytes=n_analytes, chains=chains, draws=draws, tune=tune, sampler=sampler,
         cold_seconds=cold, warm_seconds=warm, converged=(r1.converged, r2.converged),
         max_r_hat=r2.diagnostics["max_r_hat"], min_ess_bulk=r2.diagnostics["min_ess_bulk"],
         load_average=tuple(float(x) for x in load), cpu_count=os.cpu_count(),
