@@ -136,7 +136,7 @@ class McmcResult:
 def _layout(cases: CaseArrays, patient, analyte):
     """Map cases onto the patient x analyte grid and flatten baselines onto obs."""
     c = cases.n_cases
-    patient = np.array([f"p0"] * c if patient is None else patient, dtype=object).astype(str)
+    patient = np.array(["p0"] * c if patient is None else patient, dtype=object).astype(str)
     analyte = np.array([f"a{i}" for i in range(c)] if analyte is None else analyte,
                        dtype=object).astype(str)
     if patient.shape != (c,) or analyte.shape != (c,):
@@ -295,7 +295,6 @@ def _summaries(cases: CaseArrays, theta: np.ndarray, cvi: np.ndarray, n_chain: i
     c, s = theta.shape
     out: dict[str, np.ndarray] = {}
     se: dict[str, np.ndarray] = {}
-    nan = np.full(c, np.nan)
     out["n_baseline"] = cases.mask.sum(-1).astype(float)
     se["n_baseline"] = np.zeros(c)
     out["theta_mean"] = theta.mean(-1)

@@ -142,14 +142,20 @@ def test_idata_saved_with_provenance(panel_fit, tmp_path):
 
 
 @pytest.mark.slow
-def test_under_run_fit_is_reported_not_converged():
+def test_under_run_fit_is_reported_not_converged(tmp_path):
     """20 draws after 5 tuning steps cannot reach ESS 400: converged must be False (and the
-    summaries are still returned, for the caller to mark)."""
+    summaries are still returned, for the caller to mark). Also writes idata_path."""
+    import xarray as xr
+
+    path = tmp_path / "short.nc"
     r = mcmc.mcmc_assess(_panel(), draws=20, tune=5, chains=2, seed=3, patient=PATIENTS,
-                         analyte=ANALYTES)
+                         analyte=ANALYTES, idata_path=path, attrs={"pack_id": "demo_dog"})
     assert r.diagnostics["converged"] is False
     assert r.diagnostics["min_ess_bulk"] < mcmc.ESS_MIN
     assert np.all(np.isfinite(r.summary["theta_mean"]))
+    with xr.open_dataset(path, group="posterior", engine="h5netcdf") as ds:
+        assert ds.attrs["engine"] == "mcmc" and ds.attrs["pack_id"] == "demo_dog"
+        assert int(ds.attrs["setting_draws"]) == 20 and ds.sizes["draw"] == 20
 
 
 @pytest.mark.slow
