@@ -317,6 +317,12 @@ def assess(
     method_bias : ``{analyte: (bias_fraction, bias_sd_fraction)}`` for a method change between
         baseline and assessed result; the assessed value is corrected by the bias and its
         uncertainty enters the variance, and the comparison is then called comparable.
+
+    Baseline rule: earlier specimens of the same analyte whose state is healthy or blank (blank
+    is reported as "assumed healthy"); unwell specimens are shown but never used; a specimen
+    whose H/L/I index exceeds the pack's threshold for the analyte is left out (unless
+    ``keep_compromised``); for feeding-sensitive analytes a non-fasted specimen is left out when
+    fasted ones exist. Vectorised over patients: a clinic database is scored in one call.
     """
     if engine not in ("exact", "mcmc"):
         raise BayesbaseError(f"unknown engine '{engine}' (choose exact or mcmc)")
@@ -337,192 +343,242 @@ def assess(
     cache: dict = {}
 
     hist = frame.copy()
-    hist["role"] = "baseline"
-    hist["reason"] = ""
+    n_rows = len(hist)
     bd = pd.to_datetime(hist["birth_date"]) if "birth_date" in hist else pd.Series(pd.NaT, index=hist.index)
     hist["age_years"] = (hist["collected_at"] - bd).dt.days / _YEAR_DAYS
 
-    cases_meta: list[dict] = []
-    rows_y: list[list[float]] = []
-    rows_r: list[list[float]] = []
-    rows_e: list[list[float]] = []
-    rows_c: list[list[float]] = []
-    rows_t: list[list[float]] = []
-    scal: dict[str, list] = {k: [] for k in (
-        "prior_mean", "sg", "cvi", "cvi_log_sd", "sa", "new_y", "new_r", "new_extra_var",
-        "new_censor", "tau", "delta", "prior_change", "slope_sd", "new_t")}
-    packs_used: dict[str, Any] = {}
-
-    for pid, pf in frame.groupby("patient", sort=False):
-        species = pf["species"].iloc[0]
-        pk = _resolve_pack(pack, species, priors, cache)
-        if pk.species != species:
+    # -- packs per species
+    species_of = hist.groupby("patient", sort=False)["species"].first()
+    packs_by_species = {}
+    for sp in species_of.unique():
+        pk = _resolve_pack(pack, sp, priors, cache)
+        if pk.species != sp:
+            pid = species_of.index[species_of == sp][0]
             raise BayesbaseError(
-                f"patient {pid} is a {species} but pack '{pk.id}' is for {pk.species}; choose the {species} pack")
-        packs_used[pk.id] = pk
-        spec = pf.drop_duplicates("specimen")[["specimen", "collected_at"]]
-        target = _pick_assessed(spec, at)
-        t_target = spec.loc[spec["specimen"] == target, "collected_at"].iloc[0]
-        target_rows = pf[pf["specimen"] == target]
-        pc_default = prior_change if prior_change is not None else float(
-            pk.defaults.get("prior_change", DEFAULT_PRIOR_CHANGE))
-        for aid, arows in target_rows.groupby("analyte", sort=False):
-            try:
-                prior = pk.get(aid)
-            except AnalyteNotInPack as exc:
-                raise AnalyteNotInPack(
-                    f"{exc} (patient {pid}); add it with a lab override CSV (--priors) or drop it") from None
-            sub = pf[pf["analyte"] == aid]
-            flags: list[str] = []
-            earlier = sub[sub["collected_at"] < t_target]
-            later = sub[sub["collected_at"] > t_target]
-            hist.loc[later.index, "role"] = "later"
-            hist.loc[later.index, "reason"] = "collected after the assessed specimen"
-            hist.loc[arows.index, "role"] = "assessed"
-            # -- baseline selection
-            base_idx = []
-            extra = {}
-            fasted_exist = earlier["fasted"].eq(True).any() if "fasted" in earlier else False
-            feeding = _is_feeding_sensitive(prior)
-            for i, row in earlier.iterrows():
-                state = row.get("state") or ""
-                if state == "unwell":
-                    hist.loc[i, ["role", "reason"]] = ["unwell", "state unwell: shown, never used for the set point"]
-                    continue
-                probs = _index_problem(row, prior)
-                if probs:
-                    txt = "; ".join(f"{n} index {v:g} above {t:g} (interference: {d})" for n, v, t, d in probs)
-                    if keep_compromised:
-                        extra[i] = float(prior.si) ** 2
-                        hist.loc[i, "reason"] = f"kept with inflated variance: {txt}"
-                    else:
-                        hist.loc[i, ["role", "reason"]] = ["excluded", f"sample quality: {txt}"]
-                        continue
-                if feeding and fasted_exist and row.get("fasted") is False:
-                    hist.loc[i, ["role", "reason"]] = [
-                        "excluded", "not fasted (feeding-sensitive analyte; fasted baselines exist)"]
-                    continue
-                if state == "":
-                    hist.loc[i, "reason"] = "assumed healthy (state blank)"
-                base_idx.append(i)
-            base = hist.loc[base_idx]
-            n_assumed = int((base["state"].fillna("") == "").sum()) if len(base) else 0
-            if n_assumed:
-                flags.append(f"{n_assumed} baseline(s) assumed healthy (state blank)")
-            # group replicates per specimen: mean of logs, count
-            sa = float(prior.sa)
-            ys, rs, es, cs, ts = [], [], [], [], []
-            for sid, g in base.groupby("specimen", sort=False):
-                ys.append(float(np.mean(np.log(g["value"].astype(float)))))
-                rs.append(float(len(g)))
-                es.append(float(np.mean([extra.get(i, 0.0) for i in g.index])))
-                cen = g["censor"].iloc[0]
-                cs.append(-1.0 if cen == "left" else (1.0 if cen == "right" else 0.0))
-                ts.append(float(g["collected_at"].iloc[0].value) / 1e9 / 86400 / _YEAR_DAYS)
-            if any(c != 0 for c in cs):
-                flags.append("censored baseline value" + (
-                    " used at its limit (exact engine; use --engine mcmc to model it)" if engine == "exact" else ""))
-            # -- assessed result
-            a_log = float(np.mean(np.log(arows["value"].astype(float))))
-            a_r = float(len(arows))
-            a_row = arows.iloc[0]
-            a_cen = a_row["censor"]
-            new_extra = 0.0
-            if a_cen:
-                flags.append(f"assessed value is censored ({a_row['reported_value']})")
-            aprobs = _index_problem(a_row, prior)
-            quality = "ok"
-            if aprobs:
-                quality = ",".join(n for n, *_ in aprobs)
-                for n, v, t, d in aprobs:
-                    flags.append(
-                        f"{n} index {v:g} above {t:g}: expected interference {d}; the result is compromised "
-                        "and even a value inside the interval may be unreliable")
-            if feeding and a_row.get("fasted") is False:
-                flags.append("assessed specimen not fasted (feeding-sensitive analyte)")
-            # -- method comparability
-            comparable = True
-            a_meth = a_row.get("method")
-            base_meths = {m for m in base["method"].dropna().unique()} if "method" in base else set()
-            if isinstance(a_meth, str) and a_meth and base_meths and (base_meths - {a_meth}):
-                if aid in method_bias:
-                    b, bsd = method_bias[aid]
-                    a_log -= math.log1p(b)
-                    new_extra += math.log1p(bsd**2)
-                    flags.append(f"method changed ({', '.join(sorted(base_meths))} -> {a_meth}); "
-                                 f"corrected by a stated bias of {100*b:+.1f} % (SD {100*bsd:.1f} %)")
-                else:
-                    comparable = False
-                    flags.append(f"not directly comparable: method changed ({', '.join(sorted(base_meths))} -> {a_meth}) "
-                                 "and no between-method bias is given")
-            units_seen = set(sub.loc[sub.index.isin(base_idx) | sub.index.isin(arows.index), "reported_unit"])
-            if len(units_seen) > 1:
-                flags.append(f"reported in different units ({', '.join(sorted(units_seen))}); converted to {prior.unit}")
-            if not ys:
-                flags.append("no baseline: population prior alone")
-            if prior.cva_high:
-                flags.append("CVA > 0.5 CVI: RCV dominated by analytical imprecision")
-            if getattr(prior, "age_dependent", None):
-                ages = hist.loc[arows.index, "age_years"]
-                if ages.notna().any() and float(ages.iloc[0]) < 1.5:
-                    flags.append(f"young animal: {prior.age_dependent}")
-            breed = a_row.get("breed")
-            breed = breed if isinstance(breed, str) and breed else None
-            center = prior.center_for(breed)
-            if breed and center != prior.center:
-                flags.append(f"breed-specific centre used ({breed})")
-            sg = float(prior.sg)
-            si = float(prior.si)
-            tau = float(prior.shift_sd) if getattr(prior, "shift_sd", None) else math.sqrt(sg**2 + si**2)
-            if shift_scale:
-                tau *= float(shift_scale)
-            mcrc = getattr(prior, "mcrc", None)
-            cases_meta.append(dict(
-                patient=pid, species=species, breed=breed, analyte=aid, prior=prior, pack=pk,
-                specimen=target, collected_at=t_target, row=a_row,
-                value=float(arows["value"].iloc[0]) if len(arows) == 1 else float(np.exp(np.mean(np.log(arows["value"].astype(float))))),
-                base_values=[float(np.exp(y)) for y in ys], base_specimens=list(base.drop_duplicates("specimen")["specimen"]),
-                n_assumed=n_assumed, flags=flags, quality=quality, comparable=comparable, a_cen=a_cen,
-                base_times=ts, base_logs=ys, center=center, a_log=a_log,
-            ))
-            rows_y.append(ys)
-            rows_r.append(rs)
-            rows_e.append(es)
-            rows_c.append(cs)
-            rows_t.append(ts)
-            scal["prior_mean"].append(math.log(center))
-            scal["sg"].append(sg)
-            scal["cvi"].append(float(prior.cvi))
-            scal["cvi_log_sd"].append(float(prior.cvi_log_sd))
-            scal["sa"].append(sa)
-            scal["new_y"].append(a_log)
-            scal["new_r"].append(a_r)
-            scal["new_extra_var"].append(new_extra)
-            scal["new_censor"].append(-1.0 if a_cen == "left" else (1.0 if a_cen == "right" else 0.0))
-            scal["tau"].append(tau)
-            scal["delta"].append(math.log1p(mcrc) if mcrc else float("nan"))
-            scal["prior_change"].append(pc_default)
-            scal["slope_sd"].append(float(getattr(prior, "slope_sd", 0.1) or 0.1))
-            scal["new_t"].append(float(pd.Timestamp(t_target).value) / 1e9 / 86400 / _YEAR_DAYS)
+                f"patient {pid} is a {sp} but pack '{pk.id}' is for {pk.species}; choose the {sp} pack")
+        packs_by_species[sp] = pk
 
-    if not cases_meta:
+    # -- the assessed specimen of each patient
+    spec = hist.drop_duplicates(["patient", "specimen"])[["patient", "specimen", "collected_at"]]
+    if at is None:
+        last = spec.groupby("patient", sort=False).tail(1)
+        target = dict(zip(last["patient"], last["specimen"]))
+    else:
+        target = {pid: _pick_assessed(g, at) for pid, g in spec.groupby("patient", sort=False)}
+    t_of = dict(zip(zip(spec["patient"], spec["specimen"]), spec["collected_at"]))
+    hist["_target"] = hist["patient"].map(target)
+    t_target = pd.Series([t_of[(p, s)] for p, s in zip(target, target.values())], index=list(target))
+    hist["_t_target"] = hist["patient"].map(t_target)
+    key = hist["patient"].astype(str) + "\x1f" + hist["analyte"].astype(str)
+    hist["_key"] = key
+    is_assessed = (hist["specimen"] == hist["_target"]).to_numpy()
+    assessed_keys = pd.unique(key[is_assessed])
+    in_case = key.isin(set(assessed_keys)).to_numpy()
+    t_arr = hist["collected_at"].to_numpy()
+    tt_arr = hist["_t_target"].to_numpy()
+    earlier = in_case & ~is_assessed & (t_arr < tt_arr)
+    later = in_case & ~is_assessed & ~earlier
+
+    role = np.full(n_rows, "not assessed", dtype=object)
+    reason = np.full(n_rows, "analyte not measured in the assessed specimen", dtype=object)
+    role[is_assessed] = "assessed"
+    reason[is_assessed] = ""
+    role[later] = "later"
+    reason[later] = "collected with or after the assessed specimen"
+
+    # -- per-row prior fields (species x analyte)
+    sp_an = pd.unique(pd.Series(list(zip(hist["species"], hist["analyte"])))[in_case])
+    prior_of: dict = {}
+    for sp, aid in sp_an:
+        try:
+            prior_of[(sp, aid)] = packs_by_species[sp].get(aid)
+        except AnalyteNotInPack as exc:
+            pids = sorted(set(hist.loc[(hist["species"] == sp) & (hist["analyte"] == aid) & in_case, "patient"]))
+            raise AnalyteNotInPack(
+                f"{exc} (patient {', '.join(pids[:5])}); add it with a lab override CSV (--priors) or drop it") from None
+    pair = list(zip(hist["species"], hist["analyte"]))
+    state = hist["state"].fillna("").astype(str).to_numpy()
+    unwell = earlier & (state == "unwell")
+    role[unwell] = "unwell"
+    reason[unwell] = "state unwell: shown, never used for the set point"
+
+    # sample-quality indices above the pack's threshold
+    compromised = np.zeros(n_rows, dtype=bool)
+    comp_text = np.full(n_rows, "", dtype=object)
+    for idx in _INDEX_COLUMNS:
+        if idx not in hist:
+            continue
+        vals = pd.to_numeric(hist[idx], errors="coerce").to_numpy(dtype=float)
+        thr = np.array([getattr(prior_of.get(p), "hil_thresholds", {}).get(idx, np.nan) if p in prior_of else np.nan
+                        for p in pair], dtype=float)
+        over = np.isfinite(vals) & np.isfinite(thr) & (vals > thr) & in_case
+        for i in np.flatnonzero(over):
+            pr = prior_of[pair[i]]
+            txt = f"{idx} index {vals[i]:g} above {thr[i]:g} (interference: {pr.interference.get(idx, 'variable')})"
+            comp_text[i] = txt if not comp_text[i] else comp_text[i] + "; " + txt
+        compromised |= over
+    cand = earlier & ~unwell
+    excl_q = cand & compromised & (not keep_compromised)
+    role[excl_q] = "excluded"
+    reason[excl_q] = ["sample quality: " + t for t in comp_text[excl_q]]
+    kept_q = cand & compromised & keep_compromised
+    reason[kept_q] = ["kept with inflated variance: " + t for t in comp_text[kept_q]]
+    cand = cand & ~excl_q
+    # feeding-sensitive analytes: leave out non-fasted baselines when fasted ones exist
+    feeding = np.array([(_is_feeding_sensitive(prior_of[p]) if p in prior_of else False) for p in pair])
+    fasted = hist["fasted"] if "fasted" in hist else pd.Series(pd.NA, index=hist.index)
+    fasted_true = fasted.eq(True).fillna(False).to_numpy(dtype=bool)
+    fasted_false = fasted.eq(False).fillna(False).to_numpy(dtype=bool)
+    has_fasted = pd.Series(cand & fasted_true).groupby(key.to_numpy()).transform("any").to_numpy(dtype=bool)
+    excl_f = cand & feeding & has_fasted & fasted_false
+    role[excl_f] = "excluded"
+    reason[excl_f] = "not fasted (feeding-sensitive analyte; fasted baselines exist)"
+    base = cand & ~excl_f
+    role[base] = "baseline"
+    assumed = base & (state == "")
+    reason[assumed & ~kept_q] = "assumed healthy (state blank)"
+    hist["role"] = role
+    hist["reason"] = reason
+
+    # -- aggregate baselines per (case, specimen): mean log, replicates, extra variance
+    logv = np.log(hist["value"].to_numpy(dtype=float))
+    years = hist["collected_at"].to_numpy().astype("datetime64[ns]").astype("int64") / 1e9 / 86400 / _YEAR_DAYS
+    si_row = np.array([(float(prior_of[p].si) if p in prior_of else 0.0) for p in pair])
+    extra_row = np.where(kept_q, si_row**2, 0.0)
+    cen_row = hist["censor"].fillna("").astype(str).to_numpy()
+    cen_num = np.where(cen_row == "left", -1.0, np.where(cen_row == "right", 1.0, 0.0))
+    case_index = {k: i for i, k in enumerate(assessed_keys)}
+    C = len(assessed_keys)
+    if C == 0:
         raise BayesbaseError("the assessed specimen has no results")
-    J = max([len(y) for y in rows_y] + [1])
-    C = len(cases_meta)
+    bl = pd.DataFrame({
+        "case": key[base].map(case_index).to_numpy(), "specimen": hist["specimen"].to_numpy()[base],
+        "y": logv[base], "e": extra_row[base], "c": cen_num[base], "t": years[base],
+        "assumed": assumed[base],
+    })
+    agg = (bl.groupby(["case", "specimen"], sort=False)
+             .agg(y=("y", "mean"), r=("y", "size"), e=("e", "mean"), c=("c", "first"), t=("t", "first"),
+                  assumed=("assumed", "first"))
+             .reset_index()
+             .sort_values(["case", "t"], kind="stable"))
+    agg["j"] = agg.groupby("case").cumcount()
+    J = int(agg["j"].max()) + 1 if len(agg) else 1
+    ci_, cj_ = agg["case"].to_numpy(dtype=int), agg["j"].to_numpy(dtype=int)
 
-    def pad(rows, fill):
+    def padded(col, fill):
         a = np.full((C, J), fill, dtype=float)
-        for i, r in enumerate(rows):
-            a[i, : len(r)] = r
+        a[ci_, cj_] = agg[col].to_numpy(dtype=float)
         return a
 
+    base_y, base_r, base_e = padded("y", np.nan), padded("r", 0.0), padded("e", 0.0)
+    base_c, base_t = padded("c", 0.0), padded("t", np.nan)
+    n_base = np.bincount(ci_, minlength=C)
+    n_assumed = np.bincount(ci_, weights=agg["assumed"].to_numpy(dtype=float), minlength=C).astype(int)
+    base_specs = agg.groupby("case", sort=False)["specimen"].agg(";".join).reindex(range(C), fill_value="")
+    # methods and units seen in the baseline, per case
+    base_methods = (pd.DataFrame({"case": bl["case"], "m": hist["method"].to_numpy()[base] if "method" in hist else None})
+                    .dropna().groupby("case")["m"].agg(lambda s: tuple(sorted(set(s)))))
+    # -- assessed result per case (replicates: geometric mean)
+    arow = hist[is_assessed].copy()
+    arow["_case"] = arow["_key"].map(case_index)
+    arow["_logv"] = np.log(arow["value"].astype(float))
+    a_first = arow.groupby("_case", sort=True).head(1).set_index("_case").sort_index()
+    a_log = arow.groupby("_case", sort=True)["_logv"].mean().sort_index().to_numpy()
+    a_r = arow.groupby("_case", sort=True).size().sort_index().to_numpy(dtype=float)
+    a_units = arow.groupby("_case", sort=True)["reported_unit"].first().sort_index()
+    base_units = (pd.DataFrame({"case": bl["case"], "u": hist["reported_unit"].to_numpy()[base]})
+                  .groupby("case")["u"].agg(lambda s: tuple(sorted(set(s)))))
+
+    # -- per-case priors, scalars and flags
+    scal: dict[str, list] = {k: [] for k in (
+        "prior_mean", "sg", "cvi", "cvi_log_sd", "sa", "new_extra_var", "new_y",
+        "tau", "delta", "prior_change", "slope_sd")}
+    metas: list[dict] = []
+    packs_used: dict[str, Any] = {}
+    a_recs = a_first.to_dict("records")
+    a_unit_list = a_units.to_list()
+    for i in range(C):
+        r0 = a_recs[i]
+        sp, aid, pid = r0["species"], r0["analyte"], r0["patient"]
+        pk = packs_by_species[sp]
+        packs_used[pk.id] = pk
+        prior = prior_of[(sp, aid)]
+        flags: list[str] = []
+        if n_assumed[i]:
+            flags.append(f"{n_assumed[i]} baseline(s) assumed healthy (state blank)")
+        if np.any(base_c[i] != 0):
+            flags.append("censored baseline value" + (
+                " used at its limit (exact engine; use --engine mcmc to model it)" if engine == "exact" else ""))
+        y_new = float(a_log[i])
+        new_extra = 0.0
+        a_cen = r0["censor"] or ""
+        if a_cen:
+            flags.append(f"assessed value is censored ({r0['reported_value']})")
+        quality = "ok"
+        aprobs = _index_problem(r0, prior)
+        if aprobs:
+            quality = ",".join(n for n, *_ in aprobs)
+            for nme, v, t, d in aprobs:
+                flags.append(f"{nme} index {v:g} above {t:g}: expected interference {d}; the result is compromised "
+                             "and even a value inside the interval may be unreliable")
+        if _is_feeding_sensitive(prior) and r0.get("fasted") is False:
+            flags.append("assessed specimen not fasted (feeding-sensitive analyte)")
+        comparable = True
+        a_meth = r0.get("method") if "method" in r0 else None
+        bms = set(base_methods.get(i, ()))
+        if isinstance(a_meth, str) and a_meth and bms and (bms - {a_meth}):
+            if aid in method_bias:
+                b, bsd = method_bias[aid]
+                y_new -= math.log1p(b)
+                new_extra += math.log1p(bsd**2)
+                flags.append(f"method changed ({', '.join(sorted(bms))} -> {a_meth}); "
+                             f"corrected by a stated bias of {100*b:+.1f} % (SD {100*bsd:.1f} %)")
+            else:
+                comparable = False
+                flags.append(f"not directly comparable: method changed ({', '.join(sorted(bms))} -> {a_meth}) "
+                             "and no between-method bias is given")
+        units_seen = set(base_units.get(i, ())) | {a_unit_list[i]}
+        if len(units_seen) > 1:
+            flags.append(f"reported in different units ({', '.join(sorted(units_seen))}); converted to {prior.unit}")
+        if n_base[i] == 0:
+            flags.append("no baseline: population prior alone")
+        if prior.cva_high:
+            flags.append("CVA > 0.5 CVI: RCV dominated by analytical imprecision")
+        age = r0.get("age_years")
+        if getattr(prior, "age_dependent", None) and age is not None and not pd.isna(age) and float(age) < 1.5:
+            flags.append(f"young animal: {prior.age_dependent}")
+        breed = r0.get("breed")
+        breed = breed if isinstance(breed, str) and breed else None
+        center = prior.center_for(breed)
+        if breed and center != prior.center:
+            flags.append(f"breed-specific centre used ({breed})")
+        sg, si = float(prior.sg), float(prior.si)
+        tau = float(prior.shift_sd) if getattr(prior, "shift_sd", None) else math.sqrt(sg**2 + si**2)
+        if shift_scale:
+            tau *= float(shift_scale)
+        mcrc = getattr(prior, "mcrc", None)
+        pc = prior_change if prior_change is not None else float(pk.defaults.get("prior_change", DEFAULT_PRIOR_CHANGE))
+        scal["prior_mean"].append(math.log(center))
+        scal["sg"].append(sg)
+        scal["cvi"].append(float(prior.cvi))
+        scal["cvi_log_sd"].append(float(prior.cvi_log_sd))
+        scal["sa"].append(float(prior.sa))
+        scal["new_extra_var"].append(new_extra)
+        scal["new_y"].append(y_new)
+        scal["tau"].append(tau)
+        scal["delta"].append(math.log1p(mcrc) if mcrc else float("nan"))
+        scal["prior_change"].append(pc)
+        scal["slope_sd"].append(float(getattr(prior, "slope_sd", 0.1) or 0.1))
+        metas.append(dict(patient=pid, species=sp, breed=breed, analyte=aid, prior=prior, pack=pk,
+                          row=r0, flags=flags, quality=quality, comparable=comparable, a_cen=a_cen))
+
+    S = {k: np.asarray(v, dtype=float) for k, v in scal.items()}
+    new_cen = np.array([(-1.0 if m["a_cen"] == "left" else (1.0 if m["a_cen"] == "right" else 0.0)) for m in metas])
     cases = CaseArrays(
-        prior_mean=np.array(scal["prior_mean"]), sg=np.array(scal["sg"]), cvi=np.array(scal["cvi"]),
-        cvi_log_sd=np.array(scal["cvi_log_sd"]), sa=np.array(scal["sa"]),
-        base_y=pad(rows_y, np.nan), base_r=pad(rows_r, 0.0), base_extra_var=pad(rows_e, 0.0),
-        base_censor=pad(rows_c, 0.0), new_y=np.array(scal["new_y"]), new_r=np.array(scal["new_r"]),
-        new_extra_var=np.array(scal["new_extra_var"]), new_censor=np.array(scal["new_censor"]),
-        tau=np.array(scal["tau"]), delta=np.array(scal["delta"]), prior_change=np.array(scal["prior_change"]),
+        prior_mean=S["prior_mean"], sg=S["sg"], cvi=S["cvi"], cvi_log_sd=S["cvi_log_sd"], sa=S["sa"],
+        base_y=base_y, base_r=base_r, base_extra_var=base_e, base_censor=base_c,
+        new_y=S["new_y"], new_r=a_r, new_extra_var=S["new_extra_var"], new_censor=new_cen,
+        tau=S["tau"], delta=S["delta"], prior_change=S["prior_change"],
     )
     settings: dict[str, Any] = {"coverage": coverage, "ci_prob": ci_prob, "shift_scale": shift_scale or 1.0,
                                 "keep_compromised": keep_compromised}
@@ -538,89 +594,90 @@ def assess(
         opts = dict(mcmc_options or {})
         mres = _mcmc.mcmc_assess(
             cases, coverage=coverage, ci_prob=ci_prob, seed=seed,
-            patient=[m["patient"] for m in cases_meta], analyte=[m["analyte"] for m in cases_meta],
-            **opts,
+            patient=[m["patient"] for m in metas], analyte=[m["analyte"] for m in metas], **opts,
         )
         res = mres.summary
         conv = bool(mres.diagnostics.get("converged", False))
         converged = np.full(C, conv)
         settings.update({k: v for k, v in mres.settings.items() if k != "seed"})
         if not conv:
-            for m in cases_meta:
+            for m in metas:
                 m["flags"].append("MCMC DID NOT CONVERGE: do not use these numbers "
                                   f"(max r_hat {mres.diagnostics.get('max_r_hat')}, "
                                   f"divergences {mres.diagnostics.get('divergences')})")
 
-    # -- trend over the usable specimens (baselines + assessed)
-    trend_out = None
-    if trend:
-        trend_out = _trend_block(cases_meta, scal, settings, prior_drift, nodes)
+    # -- classical comparisons, vectorised over cases
+    cva = np.array([float(m["prior"].cva) for m in metas])
+    cvi = S["cvi"]
+    cvg = np.array([float(m["prior"].cvg) for m in metas])
+    rcv = classical.rcv_classical(cva, cvi)
+    rcv1 = classical.rcv_classical(cva, cvi, one_sided=True)
+    up, down = classical.rcv_lognormal(cva, cvi)
+    has_b = n_base > 0
+    last_idx = np.maximum(n_base - 1, 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        last = np.where(has_b, np.exp(base_y[np.arange(C), last_idx]), np.nan)
+        gmean = np.where(has_b, np.exp(np.nanmean(np.where(has_b[:, None], base_y, 0.0) if J else 0, axis=1)), np.nan)
+        gmean = np.where(has_b, np.exp(np.nansum(np.nan_to_num(base_y), axis=1) / np.maximum(n_base, 1)), np.nan)
+        v_eff = np.exp(S["new_y"])
+        d_last = v_eff / last - 1
+        d_mean = v_eff / gmean - 1
+        p_sig = np.where(has_b, classical.prob_significant_change(d_mean, cva, cvi), np.nan)
+        z = classical.z_two_sided(coverage)
+        st = np.sqrt(np.log1p(cva**2) + np.log1p(cvi**2))
+        h = z * st * np.sqrt(1.0 + 1.0 / np.maximum(n_base, 1))
+        m2lo = np.where(has_b, gmean * np.exp(-h), np.nan)
+        m2hi = np.where(has_b, gmean * np.exp(h), np.nan)
 
-    records = []
-    z2 = classical.z_two_sided(0.95)
-    for i, m in enumerate(cases_meta):
-        prior = m["prior"]
-        cva, cvi, cvg = float(prior.cva), float(prior.cvi), float(prior.cvg)
-        rcv = float(classical.rcv_classical(cva, cvi))
-        rcv1 = float(classical.rcv_classical(cva, cvi, one_sided=True))
-        up, down = (float(x) for x in classical.rcv_lognormal(cva, cvi))
-        bv = m["base_values"]
-        val = m["value"] if m["comparable"] or True else m["value"]
-        v_eff = float(np.exp(m["a_log"]))
-        if bv:
-            last = bv[-1]
-            gmean = float(np.exp(np.mean(np.log(bv))))
-            d_last = v_eff / last - 1
-            d_mean = v_eff / gmean - 1
-            ex_last = abs(d_last) > rcv
-            ex_mean = abs(d_mean) > rcv
-            ln_ex_last = bool(d_last > up or d_last < down)
-            ln_ex_mean = bool(d_mean > up or d_mean < down)
-            p_sig = float(classical.prob_significant_change(d_mean, cva, cvi))
-            m2lo, m2hi = classical.model2_interval(bv, cva, cvi, coverage)
-        else:
-            d_last = d_mean = np.nan
-            ex_last = ex_mean = ln_ex_last = ln_ex_mean = pd.NA
-            p_sig = np.nan
-            m2lo = m2hi = np.nan
-        sp = float(np.exp(res["theta_mean"][i]))
-        pop_lo, pop_hi = float(prior.ri_lower), float(prior.ri_upper)
-        rec = dict(
-            patient=m["patient"], species=m["species"], breed=m["breed"], analyte=m["analyte"],
-            label=_label(m["analyte"]), unit=prior.unit, specimen=m["specimen"], collected_at=m["collected_at"],
-            value=val, reported_value=m["row"]["reported_value"], reported_unit=m["row"]["reported_unit"],
-            censor=m["a_cen"], n_baseline=int(res["n_baseline"][i]),
-            baseline_specimens=";".join(m["base_specimens"]), assumed_healthy=m["n_assumed"],
-            set_point_mean=sp, set_point_lower=float(np.exp(res["theta_lower"][i])),
-            set_point_upper=float(np.exp(res["theta_upper"][i])),
-            pi_lower=float(np.exp(res["pi_lower"][i])), pi_upper=float(np.exp(res["pi_upper"][i])),
-            coverage=coverage, percentile=float(res["percentile"][i]), bayes_factor=float(res["bf10"][i]),
-            p_change=float(res["p_change"][i]), p_increase=float(res["p_increase"][i]),
-            p_exceed_delta=float(res["p_exceed_delta"][i]),
-            delta_pct=100 * float(prior.mcrc) if getattr(prior, "mcrc", None) else np.nan,
-            change_pct=100 * (v_eff / sp - 1),
-            rcv_classical_pct=100 * rcv, rcv_one_sided_pct=100 * rcv1,
-            rcv_lognormal_up_pct=100 * up, rcv_lognormal_down_pct=100 * down,
-            change_vs_last_pct=100 * d_last, change_vs_mean_pct=100 * d_mean,
-            rcv_exceeded_last=ex_last, rcv_exceeded_mean=ex_mean,
-            lognormal_exceeded_last=ln_ex_last, lognormal_exceeded_mean=ln_ex_mean,
-            p_significant=p_sig, model2_lower=m2lo, model2_upper=m2hi,
-            ii=float(classical.index_of_individuality(cvi, cvg)),
-            ii_total=float(classical.index_of_individuality(cvi, cvg, cva)),
-            n_for_setpoint=int(classical.n_for_setpoint(cva, cvi, 0.10)),
-            cva_high=bool(classical.cva_too_high(cva, cvi)),
-            pop_lower=pop_lo, pop_upper=pop_hi, outside_population=bool(val < pop_lo or val > pop_hi),
-            cvi_pct=100 * cvi, cvg_pct=100 * cvg, cva_pct=100 * cva, cvi_post_pct=100 * float(res["cvi_post_mean"][i]),
-            retest_group=prior.group, quality=m["quality"], comparable=m["comparable"],
-            flags=list(m["flags"]), engine=engine, converged=bool(converged[i]),
-            pack=m["pack"].id,
-        )
-        if trend_out is not None:
-            for k, v in trend_out[i].items():
-                rec[k] = v
-        records.append(rec)
-    table = pd.DataFrame.from_records(records)
-    del z2
+    def tri(mask):
+        return pd.array([bool(x) if hb else pd.NA for x, hb in zip(mask, has_b)], dtype="boolean")
+
+    values = np.array([float(np.exp(a_log[i])) if a_r[i] > 1 else float(a_recs[i]["value"]) for i in range(C)])
+    pop_lo = np.array([float(m["prior"].ri_lower) for m in metas])
+    pop_hi = np.array([float(m["prior"].ri_upper) for m in metas])
+    sp_mean = np.exp(res["theta_mean"])
+    mcrc_pct = np.array([100 * float(m["prior"].mcrc) if getattr(m["prior"], "mcrc", None) else np.nan for m in metas])
+    table = pd.DataFrame({
+        "patient": [m["patient"] for m in metas], "species": [m["species"] for m in metas],
+        "breed": [m["breed"] for m in metas], "analyte": [m["analyte"] for m in metas],
+        "label": [_label(m["analyte"]) for m in metas], "unit": [m["prior"].unit for m in metas],
+        "specimen": [target[m["patient"]] for m in metas],
+        "collected_at": [t_target[m["patient"]] for m in metas],
+        "value": values, "reported_value": [m["row"]["reported_value"] for m in metas],
+        "reported_unit": [m["row"]["reported_unit"] for m in metas], "censor": [m["a_cen"] for m in metas],
+        "n_baseline": n_base.astype(int), "baseline_specimens": base_specs.to_numpy(),
+        "assumed_healthy": n_assumed,
+        "set_point_mean": sp_mean, "set_point_lower": np.exp(res["theta_lower"]),
+        "set_point_upper": np.exp(res["theta_upper"]),
+        "pi_lower": np.exp(res["pi_lower"]), "pi_upper": np.exp(res["pi_upper"]), "coverage": coverage,
+        "percentile": res["percentile"], "bayes_factor": res["bf10"], "p_change": res["p_change"],
+        "p_increase": res["p_increase"], "p_exceed_delta": res["p_exceed_delta"], "delta_pct": mcrc_pct,
+        "change_pct": 100 * (v_eff / sp_mean - 1),
+        "rcv_classical_pct": 100 * rcv, "rcv_one_sided_pct": 100 * rcv1,
+        "rcv_lognormal_up_pct": 100 * up, "rcv_lognormal_down_pct": 100 * down,
+        "change_vs_last_pct": 100 * d_last, "change_vs_mean_pct": 100 * d_mean,
+        "rcv_exceeded_last": tri(np.abs(d_last) > rcv), "rcv_exceeded_mean": tri(np.abs(d_mean) > rcv),
+        "lognormal_exceeded_last": tri((d_last > up) | (d_last < down)),
+        "lognormal_exceeded_mean": tri((d_mean > up) | (d_mean < down)),
+        "p_significant": p_sig, "model2_lower": m2lo, "model2_upper": m2hi,
+        "ii": classical.index_of_individuality(cvi, cvg),
+        "ii_total": classical.index_of_individuality(cvi, cvg, cva),
+        "n_for_setpoint": classical.n_for_setpoint(cva, cvi, 0.10),
+        "cva_high": classical.cva_too_high(cva, cvi),
+        "pop_lower": pop_lo, "pop_upper": pop_hi, "outside_population": (values < pop_lo) | (values > pop_hi),
+        "cvi_pct": 100 * cvi, "cvg_pct": 100 * cvg, "cva_pct": 100 * cva,
+        "cvi_post_pct": 100 * res["cvi_post_mean"],
+        "retest_group": [m["prior"].group for m in metas], "quality": [m["quality"] for m in metas],
+        "comparable": [m["comparable"] for m in metas], "flags": [list(m["flags"]) for m in metas],
+        "engine": engine, "converged": converged, "pack": [m["pack"].id for m in metas],
+    })
+    if trend:
+        tr = _trend_block(metas, S, base_y, base_t, base_r, base_e, years, hist, is_assessed, settings,
+                          prior_drift, nodes, case_index)
+        if tr is not None:
+            for k, v in tr.items():
+                table[k] = v
+    hist = hist.drop(columns=["_target", "_t_target", "_key"])
     ids = sorted(packs_used)
     attrs = {
         "pack_id": ",".join(ids),
@@ -646,62 +703,63 @@ def _label(aid: str) -> str:
         return aid
 
 
-def _trend_block(cases_meta, scal, settings, prior_drift, nodes):
+def _trend_block(metas, S, base_y, base_t, base_r, base_e, years, hist, is_assessed, settings,
+                 prior_drift, nodes, case_index):
     """Drift model per case over baselines + assessed result (rule: >= TREND_MIN_SPECIMENS usable
     specimens spanning >= TREND_MIN_SPAN_YEARS)."""
     try:
         from . import trend as _trend
     except ImportError:
         return None
-    C = len(cases_meta)
-    J = max(len(m["base_logs"]) + 1 for m in cases_meta)
-    t = np.full((C, J), np.nan)
-    y = np.full((C, J), np.nan)
-    r = np.zeros((C, J))
-    e = np.zeros((C, J))
-    lim_u = np.empty(C)
-    lim_l = np.empty(C)
-    for i, m in enumerate(cases_meta):
-        ts = list(m["base_times"]) + [scal["new_t"][i]]
-        ys = list(m["base_logs"]) + [m["a_log"]]
-        n = len(ts)
-        t[i, :n] = ts
-        y[i, :n] = ys
-        r[i, :n] = 1.0
-        lim_u[i] = math.log(m["prior"].ri_upper)
-        lim_l[i] = math.log(m["prior"].ri_lower)
+    C = len(metas)
+    a_t = np.empty(C)
+    keys = hist["_key"].to_numpy()[is_assessed]
+    yrs = years[is_assessed]
+    for k, y in zip(keys, yrs):
+        a_t[case_index[k]] = y
+    t = np.concatenate([base_t, a_t[:, None]], axis=1)
+    y = np.concatenate([base_y, S["new_y"][:, None]], axis=1)
+    r = np.concatenate([base_r, np.ones((C, 1))], axis=1)
+    e = np.concatenate([base_e, S["new_extra_var"][:, None]], axis=1)
+    lim_u = np.log([m["prior"].ri_upper for m in metas])
+    lim_l = np.log([m["prior"].ri_lower for m in metas])
     pdrift = prior_drift if prior_drift is not None else DEFAULT_PRIOR_DRIFT
     out = _trend.trend_exact(
-        t, y, r, e, np.array(scal["prior_mean"]), np.array(scal["sg"]), np.array(scal["cvi"]),
-        np.array(scal["cvi_log_sd"]), np.array(scal["sa"]), np.array(scal["slope_sd"]),
+        t, y, r, e, S["prior_mean"], S["sg"], S["cvi"], S["cvi_log_sd"], S["sa"], S["slope_sd"],
         prior_drift=pdrift, limit_upper=lim_u, limit_lower=lim_l, nodes=nodes,
     )
     settings["trend_rule"] = (f">= {TREND_MIN_SPECIMENS} usable specimens spanning >= "
                               f"{TREND_MIN_SPAN_YEARS} years")
-    rows = []
-    for i, m in enumerate(cases_meta):
-        elig = bool(out["eligible"][i])
-        d = {
-            "trend_p_drift": float(out["p_drift"][i]) if elig else np.nan,
-            "trend_p_increase": float(out["p_increase"][i]) if elig else np.nan,
-            "trend_pct_per_year": float(out["pct_per_year_mean"][i]) if elig else np.nan,
-            "trend_pct_lower": float(out["pct_per_year_lower"][i]) if elig else np.nan,
-            "trend_pct_upper": float(out["pct_per_year_upper"][i]) if elig else np.nan,
-            "trend_years_to_limit": float(out["years_to_limit"][i]) if elig else np.nan,
-            "trend_years_lower": float(out["years_to_limit_lower"][i]) if elig else np.nan,
-            "trend_years_upper": float(out["years_to_limit_upper"][i]) if elig else np.nan,
-            "trend_limit": str(out["limit_side"][i]) if elig else "",
-            "trend_note": "" if elig else (f"trend not computed: needs >= {TREND_MIN_SPECIMENS} usable "
-                                           f"specimens spanning >= {TREND_MIN_SPAN_YEARS} years"),
-        }
-        if elig and not np.isfinite(d["trend_years_to_limit"]):
-            d["trend_note"] = f"set point not projected to reach a population limit within {TREND_HORIZON_YEARS:g} years"
-        if elig and getattr(m["prior"], "age_dependent", None):
+    elig = np.asarray(out["eligible"], dtype=bool)
+
+    def col(k):
+        return np.where(elig, np.asarray(out[k], dtype=float), np.nan)
+
+    res = {
+        "trend_p_drift": col("p_drift"), "trend_p_increase": col("p_increase"),
+        "trend_pct_per_year": col("pct_per_year_mean"), "trend_pct_lower": col("pct_per_year_lower"),
+        "trend_pct_upper": col("pct_per_year_upper"), "trend_years_to_limit": col("years_to_limit"),
+        "trend_years_lower": col("years_to_limit_lower"), "trend_years_upper": col("years_to_limit_upper"),
+        "trend_limit": [str(s) if e_ else "" for s, e_ in zip(out["limit_side"], elig)],
+    }
+    notes = []
+    first_t = np.nanmin(t, axis=1)
+    for i, m in enumerate(metas):
+        if not elig[i]:
+            notes.append(f"trend not computed: needs >= {TREND_MIN_SPECIMENS} usable specimens spanning >= "
+                         f"{TREND_MIN_SPAN_YEARS} years")
+            continue
+        note = ""
+        if not np.isfinite(res["trend_years_to_limit"][i]):
+            note = f"set point not projected to reach a population limit within {TREND_HORIZON_YEARS:g} years"
+        if getattr(m["prior"], "age_dependent", None):
             bd = m["row"].get("birth_date")
-            first = min(m["base_times"] + [scal["new_t"][i]])
-            age0 = (first - pd.Timestamp(bd).value / 1e9 / 86400 / _YEAR_DAYS) if (bd is not None and not pd.isna(bd)) else None
+            age0 = None
+            if bd is not None and not pd.isna(bd):
+                age0 = first_t[i] - pd.Timestamp(bd).value / 1e9 / 86400 / _YEAR_DAYS
             if age0 is None or age0 < 2.0:
-                d["trend_note"] = ("young or unknown age: this analyte's set point is known to move with age "
-                                   f"({m['prior'].age_dependent}); a drift may be growth, not disease")
-        rows.append(d)
-    return rows
+                note = ("young or unknown age: this analyte's set point is known to move with age "
+                        f"({m['prior'].age_dependent}); a drift may be growth, not disease")
+        notes.append(note)
+    res["trend_note"] = notes
+    return res
