@@ -86,6 +86,30 @@ def bench_report(n_analytes: int = 25) -> dict:
         return {"report_html_pdf_s": round(time.perf_counter() - t, 3), "analytes": n_analytes}
 
 
+def bench_assess_store(n_patients: int = 10_000, n_specimens: int = 3, n_analytes: int = 20) -> dict:
+    """Assess every patient of an invented store (exact engine): import, read back, assess."""
+    from .assess import assess
+    from .store import Store, synthetic_canonical
+
+    from .priors import load_pack
+
+    frame = synthetic_canonical(n_patients, n_specimens, 40)
+    frame = frame[frame["analyte"].isin(set(load_pack("dog").analytes))]
+    keep = list(dict.fromkeys(frame["analyte"]))[:n_analytes]
+    frame = frame[frame["analyte"].isin(keep)].reset_index(drop=True)
+    with tempfile.TemporaryDirectory() as d:
+        with Store(Path(d) / "bench.sqlite") as st:
+            st.import_frame(frame, source="bench")
+            t = time.perf_counter()
+            res = st.results()
+            t_read = time.perf_counter() - t
+        t = time.perf_counter()
+        a = assess(res)
+        t_assess = time.perf_counter() - t
+    return {"patients": n_patients, "cases": len(a.table), "read_s": round(t_read, 2),
+            "assess_s": round(t_assess, 2), "cases_per_s": round(len(a.table) / t_assess)}
+
+
 def _maybe(module: str, func: str, **kw):
     import importlib
 
@@ -103,6 +127,7 @@ def run(quick: bool = False, only=None):
         ("trend", lambda: _maybe("trend", "bench_trend", n_series=20_000 if quick else 100_000)),
         ("store_import", lambda: _maybe("store", "bench_import", n_rows=100_000 if quick else 1_000_000)),
         ("store_history", lambda: _maybe("store", "bench_history")),
+        ("assess_store", lambda: bench_assess_store(1_000 if quick else 10_000)),
         ("compare", lambda: _maybe("research", "bench_compare", animals=100_000 if quick else 1_000_000)),
         ("mcmc_panel", lambda: _maybe("mcmc", "bench_mcmc_panel", **({"draws": 200} if quick else {}))),
     ]
