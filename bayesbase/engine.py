@@ -217,18 +217,39 @@ def _posterior_given_nodes(cases: CaseArrays, x_nodes, w_nodes):
     # centre at the prior mean for numerical stability
     yc = np.where(mask, cases.base_y - cases.prior_mean[:, None], 0.0)  # (C,J)
     ev = (cases.sa[:, None] ** 2) / r + cases.base_extra_var  # (C,J)
-    v = si2[:, :, None] + ev[:, None, :]  # (C,K,J)
-    inv_v = np.where(mask[:, None, :], 1.0 / v, 0.0)
-    prec = 1.0 / sg2[:, None] + inv_v.sum(-1)  # (C,K)
-    b = (inv_v * yc[:, None, :]).sum(-1)
+    n_b = mask.sum(-1).astype(float)  # (C,)
+    # Fast path: when every baseline of a case has the same variance (same replicates, no extra
+    # variance: the usual case) the sums over j collapse to counts, sums and sums of squares.
+    ev0 = ev[:, 0]
+    uniform = np.all((ev == ev0[:, None]) | ~mask, axis=-1)
+    prec = np.empty_like(si2)
+    b = np.empty_like(si2)
+    sum_logv = np.empty_like(si2)
+    sum_y2v = np.empty_like(si2)
+    if uniform.any():
+        u = uniform
+        v0 = si2[u] + ev0[u, None]  # (Cu,K)
+        inv0 = 1.0 / v0
+        sy = yc[u].sum(-1)[:, None]
+        syy = (yc[u] ** 2).sum(-1)[:, None]
+        nb = n_b[u, None]
+        prec[u] = 1.0 / sg2[u, None] + nb * inv0
+        b[u] = sy * inv0
+        sum_logv[u] = nb * (_LOG_2PI + np.log(v0))
+        sum_y2v[u] = syy * inv0
+    if not uniform.all():
+        g = ~uniform
+        v = si2[g][:, :, None] + ev[g][:, None, :]  # (Cg,K,J)
+        mg = mask[g][:, None, :]
+        inv_v = np.where(mg, 1.0 / v, 0.0)
+        yg = yc[g][:, None, :]
+        prec[g] = 1.0 / sg2[g, None] + inv_v.sum(-1)
+        b[g] = (inv_v * yg).sum(-1)
+        sum_logv[g] = np.where(mg, _LOG_2PI + np.log(v), 0.0).sum(-1)
+        sum_y2v[g] = (inv_v * yg**2).sum(-1)
     m_c = b / prec
     pv = 1.0 / prec
-    log_ml = -0.5 * (
-        np.where(mask[:, None, :], _LOG_2PI + np.log(v), 0.0).sum(-1)
-        + np.log(sg2[:, None] * prec)
-        + (inv_v * yc[:, None, :] ** 2).sum(-1)
-        - m_c * m_c * prec
-    )
+    log_ml = -0.5 * (sum_logv + np.log(sg2[:, None] * prec) + sum_y2v - m_c * m_c * prec)
     logw = np.log(w_nodes)[None, :] + log_ml
     logw = logw - _logsumexp(logw, axis=-1)[:, None]
     return m_c + cases.prior_mean[:, None], pv, si2, logw

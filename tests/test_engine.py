@@ -181,3 +181,37 @@ def test_bad_inputs_rejected():
         CaseArrays.from_lists([[MU]], prior_mean=MU, sg=SG, cvi=0.0, cvi_log_sd=0.2, sa=SA, new_y=MU, prior_change=0.1)
     with pytest.raises(ValueError):
         exact_assess(_cases([[MU]], MU), coverage=1.5)
+
+
+def test_unequal_replicates_and_extra_variance_match_joint_normal():
+    """Baselines with different replicate counts and extra variance (the general path), s = 0:
+    the predictive of the new result equals the conditional of the joint normal of (baselines,
+    y*) with covariance sG^2 11' + diag(v) (numpy linear algebra / scipy.stats as reference)."""
+    y = np.array([MU + 0.05, MU - 0.02, MU + 0.10])
+    r = np.array([1.0, 3.0, 2.0])
+    extra = np.array([0.0, 0.004, 0.0])
+    si2 = cv_to_sigma(CVI) ** 2
+    cases = CaseArrays(
+        prior_mean=np.array([MU]), sg=np.array([SG]), cvi=np.array([CVI]), cvi_log_sd=np.array([0.0]),
+        sa=np.array([SA]), base_y=y[None], base_r=r[None], base_extra_var=extra[None],
+        base_censor=np.zeros((1, 3)), new_y=np.array([MU + 0.3]), new_r=np.array([1.0]),
+        new_extra_var=np.array([0.0]), new_censor=np.array([0.0]), tau=np.array([0.3]),
+        delta=np.array([np.nan]), prior_change=np.array([0.1]),
+    )
+    out = exact_assess(cases)
+    v = si2 + SA**2 / r + extra
+    v_new = si2 + SA**2
+    cov = SG**2 * np.ones((4, 4)) + np.diag(np.append(v, v_new))
+    s11, s12, s22 = cov[:3, :3], cov[:3, 3], cov[3, 3]
+    cond_mean = MU + s12 @ np.linalg.solve(s11, y - MU)
+    cond_var = s22 - s12 @ np.linalg.solve(s11, s12)
+    lo, hi = stats.norm.ppf([0.025, 0.975], cond_mean, math.sqrt(cond_var))
+    assert out["pi_lower"][0] == pytest.approx(lo, abs=1e-9)
+    assert out["pi_upper"][0] == pytest.approx(hi, abs=1e-9)
+    assert out["percentile"][0] == pytest.approx(stats.norm.cdf(MU + 0.3, cond_mean, math.sqrt(cond_var)), abs=1e-9)
+    # mixing a uniform case into the same call does not change it (both paths in one chunk)
+    both = CaseArrays.from_lists([list(y)], prior_mean=MU, sg=SG, cvi=CVI, cvi_log_sd=0.0, sa=SA,
+                                 new_y=MU + 0.3, prior_change=0.1, tau=0.3)
+    stacked = CaseArrays(**{f: np.concatenate([getattr(cases, f), getattr(both, f)]) for f in cases.__dataclass_fields__})
+    out2 = exact_assess(stacked)
+    assert out2["pi_lower"][0] == pytest.approx(out["pi_lower"][0], abs=1e-12)
