@@ -435,6 +435,7 @@ def assess(
     reason[excl_f] = "not fasted (feeding-sensitive analyte; fasted baselines exist)"
     base = cand & ~excl_f
     role[base] = "baseline"
+    reason[base & ~kept_q] = ""
     assumed = base & (state == "")
     reason[assumed & ~kept_q] = "assumed healthy (state blank)"
     hist["role"] = role

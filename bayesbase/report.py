@@ -541,6 +541,8 @@ def _patient_info(history: pd.DataFrame, row0) -> dict:
 def _specimen_lines(history: pd.DataFrame, patient: str) -> list[dict]:
     """One entry per specimen: date, role summary (per analyte where roles differ), reasons."""
     h = history[history["patient"].astype(str) == str(patient)]
+    if "role" in h:  # rows of analytes the assessed specimen did not measure play no part
+        h = h[h["role"] != "not assessed"]
     out = []
     for spec, g in h.groupby("specimen", sort=False):
         when = g["collected_at"].min()
