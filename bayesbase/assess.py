@@ -387,7 +387,8 @@ def assess(
     reason[later] = "collected with or after the assessed specimen"
 
     # -- per-row prior fields (species x analyte)
-    sp_an = pd.unique(pd.Series(list(zip(hist["species"], hist["analyte"])))[in_case])
+    pair = list(zip(hist["species"].tolist(), hist["analyte"].tolist()))
+    sp_an = dict.fromkeys(p for p, ic in zip(pair, in_case.tolist()) if ic)
     prior_of: dict = {}
     for sp, aid in sp_an:
         try:
@@ -396,7 +397,6 @@ def assess(
             pids = sorted(set(hist.loc[(hist["species"] == sp) & (hist["analyte"] == aid) & in_case, "patient"]))
             raise AnalyteNotInPack(
                 f"{exc} (patient {', '.join(pids[:5])}); add it with a lab override CSV (--priors) or drop it") from None
-    pair = list(zip(hist["species"], hist["analyte"]))
     state = hist["state"].fillna("").astype(str).to_numpy()
     unwell = earlier & (state == "unwell")
     role[unwell] = "unwell"
@@ -475,10 +475,21 @@ def assess(
     base_c, base_t = padded("c", 0.0), padded("t", np.nan)
     n_base = np.bincount(ci_, minlength=C)
     n_assumed = np.bincount(ci_, weights=agg["assumed"].to_numpy(dtype=float), minlength=C).astype(int)
-    base_specs = agg.groupby("case", sort=False)["specimen"].agg(";".join).reindex(range(C), fill_value="")
-    # methods and units seen in the baseline, per case
-    base_methods = (pd.DataFrame({"case": bl["case"], "m": hist["method"].to_numpy()[base] if "method" in hist else None})
-                    .dropna().groupby("case")["m"].agg(lambda s: tuple(sorted(set(s)))))
+    spec_lists: dict[int, list] = {}
+    for c_, sp_ in zip(agg["case"].tolist(), agg["specimen"].tolist()):
+        spec_lists.setdefault(c_, []).append(str(sp_))
+    base_specs = np.array([";".join(spec_lists.get(i, [])) for i in range(C)], dtype=object)
+    # methods and units seen in the baseline, per case (plain loops: faster than groupby lambdas)
+    base_case_list = bl["case"].tolist()
+
+    def _sets(values):
+        out: dict[int, set] = {}
+        for c_, v_ in zip(base_case_list, values):
+            if isinstance(v_, str) and v_:
+                out.setdefault(c_, set()).add(v_)
+        return out
+
+    base_methods = _sets(hist["method"].to_numpy(dtype=object)[base].tolist()) if "method" in hist else {}
     # -- assessed result per case (replicates: geometric mean)
     arow = hist[is_assessed].copy()
     arow["_case"] = arow["_key"].map(case_index)
@@ -487,8 +498,7 @@ def assess(
     a_log = arow.groupby("_case", sort=True)["_logv"].mean().sort_index().to_numpy()
     a_r = arow.groupby("_case", sort=True).size().sort_index().to_numpy(dtype=float)
     a_units = arow.groupby("_case", sort=True)["reported_unit"].first().sort_index()
-    base_units = (pd.DataFrame({"case": bl["case"], "u": hist["reported_unit"].to_numpy()[base]})
-                  .groupby("case")["u"].agg(lambda s: tuple(sorted(set(s)))))
+    base_units = _sets(hist["reported_unit"].to_numpy(dtype=object)[base].tolist())
 
     # -- per-case priors, scalars and flags
     scal: dict[str, list] = {k: [] for k in (
@@ -496,7 +506,8 @@ def assess(
         "tau", "delta", "prior_change", "slope_sd")}
     metas: list[dict] = []
     packs_used: dict[str, Any] = {}
-    a_recs = a_first.to_dict("records")
+    _cols = list(a_first.columns)
+    a_recs = [dict(zip(_cols, vals)) for vals in zip(*[a_first[c].tolist() for c in _cols])]
     a_unit_list = a_units.to_list()
     for i in range(C):
         r0 = a_recs[i]
@@ -646,7 +657,7 @@ def assess(
         "collected_at": [t_target[m["patient"]] for m in metas],
         "value": values, "reported_value": [m["row"]["reported_value"] for m in metas],
         "reported_unit": [m["row"]["reported_unit"] for m in metas], "censor": [m["a_cen"] for m in metas],
-        "n_baseline": n_base.astype(int), "baseline_specimens": base_specs.to_numpy(),
+        "n_baseline": n_base.astype(int), "baseline_specimens": base_specs,
         "assumed_healthy": n_assumed,
         "set_point_mean": sp_mean, "set_point_lower": np.exp(res["theta_lower"]),
         "set_point_upper": np.exp(res["theta_upper"]),
