@@ -113,3 +113,15 @@ def test_results_are_stamped_with_provenance(assessed):
         assert "sample" not in ds.dims
         assert ds.attrs["engine"] == "exact"
         assert all(math.isfinite(x) for x in a.table["p_change"])
+
+
+def test_every_case_folder_is_packaged():
+    """Each case folder must be listed in pyproject.toml so a non-editable install ships it."""
+    import tomllib
+
+    from conftest import ROOT
+
+    with open(ROOT / "pyproject.toml", "rb") as fh:
+        packages = set(tomllib.load(fh)["tool"]["setuptools"]["packages"])
+    for d, _ in CASES:
+        assert f"bayesbase.case_library.{d.name}" in packages, f"add bayesbase.case_library.{d.name} to pyproject.toml"
