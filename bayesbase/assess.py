@@ -629,7 +629,6 @@ def assess(
     last_idx = np.maximum(n_base - 1, 0)
     with np.errstate(invalid="ignore", divide="ignore"):
         last = np.where(has_b, np.exp(base_y[np.arange(C), last_idx]), np.nan)
-        gmean = np.where(has_b, np.exp(np.nanmean(np.where(has_b[:, None], base_y, 0.0) if J else 0, axis=1)), np.nan)
         gmean = np.where(has_b, np.exp(np.nansum(np.nan_to_num(base_y), axis=1) / np.maximum(n_base, 1)), np.nan)
         v_eff = np.exp(S["new_y"])
         d_last = v_eff / last - 1

@@ -121,7 +121,9 @@ def chance_any_outside(n: int, level: float = 0.95) -> float:
     Correlated analytes make this an overstatement."""
     if n < 0:
         raise ValueError("n must be >= 0")
-    return 1.0 - level ** int(n)
+    from .classical import chance_any_outside as _chance  # one kernel for the formula
+
+    return float(_chance(int(n), level))
 
 
 def individuality_words(ii: float) -> str:
