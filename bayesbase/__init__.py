@@ -24,7 +24,7 @@ __all__ = ["assess", "load_results", "validate", "load_pack", "__version__"]
 
 def __getattr__(name):  # lazy exports keep `bayesbase --help` fast
     if name == "assess":
-        from .assess import assess
+        from .assessment import assess
         return assess
     if name in ("load_results", "validate"):
         from . import data

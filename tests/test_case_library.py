@@ -7,7 +7,7 @@ import math
 import pytest
 
 from bayesbase import classical
-from bayesbase.assess import assess
+from bayesbase.assessment import assess
 from bayesbase.data import load_results
 from bayesbase.priors import load_pack
 

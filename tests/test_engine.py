@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from bayesbase.engine import CaseArrays, cv_to_sigma, exact_assess, mixture_quantile, quadrature, sigma_to_cv
+from bayesbase.model.engine import CaseArrays, cv_to_sigma, exact_assess, mixture_quantile, quadrature, sigma_to_cv
 
 MU = math.log(90.0)
 SG = cv_to_sigma(0.25)

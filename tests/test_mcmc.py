@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-mcmc = pytest.importorskip("bayesbase.mcmc")
+mcmc = pytest.importorskip("bayesbase.mcmc.engine")
 
-from bayesbase.engine import CaseArrays, cv_to_sigma, exact_assess  # noqa: E402
+from bayesbase.model.engine import CaseArrays, cv_to_sigma, exact_assess  # noqa: E402
 
 # Invented demo panel: two dogs; dog "d2" has no urea (a padded grid cell); 0-3 baselines.
 PATIENTS = ["d1", "d1", "d1", "d1", "d2", "d2", "d2"]

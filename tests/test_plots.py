@@ -17,7 +17,7 @@ import pytest
 from matplotlib.colors import to_hex
 from matplotlib.figure import Figure
 
-from bayesbase import plots
+from bayesbase.report import figures as plots
 from bayesbase.constants import UNCERTAIN_BAND
 
 # the eight Okabe-Ito colours (Okabe & Ito 2008), plus greys used for neutral marks
@@ -156,7 +156,7 @@ def test_svg_has_no_external_reference():
 
 def test_pyplot_never_imported():
     code = ("import sys; sys.path.insert(0, %r); from test_plots import demo; "
-            "from bayesbase import plots; h, r, p = demo(); "
+            "from bayesbase.report import figures as plots; h, r, p = demo(); "
             "plots.figure_png(plots.analyte_panel(h, r, p), dpi=30); "
             "print('matplotlib.pyplot' in sys.modules)") % str(__import__("pathlib").Path(__file__).parent)
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)

@@ -18,6 +18,7 @@ import pytest
 
 from bayesbase import report, units
 from bayesbase.constants import CAUTIONS, PANEL_FDR, PROBABLE_CHANGE
+from bayesbase.errors import BayesbaseError
 
 SEED = 20261202
 
@@ -428,7 +429,7 @@ def test_several_patients_need_a_choice(tmp_path):
     a1, a2 = fake_assessment("A", 2), fake_assessment("B", 2)
     both = FakeAssessment(pd.concat([a1.table, a2.table]), pd.concat([a1.history, a2.history]),
                           a1.attrs)
-    with pytest.raises(report.BayesbaseError, match="pass patient"):
+    with pytest.raises(BayesbaseError, match="pass patient"):
         report.build_report(both, fake_pack(), tmp_path / "x.html")
     f = report.build_report(both, fake_pack(), tmp_path / "b.html", patient="B")
     assert "patient B" in f.html.read_text(encoding="utf-8")
@@ -443,7 +444,7 @@ def test_case_report_end_to_end(case, tmp_path):
     """A case from the case library through data -> priors -> assess -> report."""
     import tomllib
 
-    from bayesbase.assess import assess
+    from bayesbase.assessment import assess
     from bayesbase.data import load_results
     from bayesbase.priors import load_pack
 

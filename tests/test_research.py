@@ -26,10 +26,10 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from bayesbase import research
+from bayesbase.research import compare as research
 from bayesbase.classical import model2_interval, rcv_classical
 from bayesbase.constants import CAUTIONS
-from bayesbase.engine import exact_assess
+from bayesbase.model.engine import exact_assess
 from bayesbase.priors import load_pack
 
 N_ANIMALS = 40_000

@@ -11,8 +11,8 @@ import statsmodels.api as sm
 from scipy import integrate, special, stats
 
 from bayesbase.constants import DEFAULT_PRIOR_DRIFT, TREND_HORIZON_YEARS
-from bayesbase.engine import cv_to_sigma
-from bayesbase.trend import DEFAULT_SLOPE_SD, drift_power, trend_exact, trend_path
+from bayesbase.model.engine import cv_to_sigma
+from bayesbase.model.trend import DEFAULT_SLOPE_SD, drift_power, trend_exact, trend_path
 
 Z975 = stats.norm.ppf(0.975)
 
@@ -311,7 +311,7 @@ def test_drift_power_table():
 def test_exact_agrees_with_mcmc():
     """Reference: PyMC NUTS on the same model (H1), Savage-Dickey Bayes factor; tolerances
     are 4 Monte Carlo standard errors (plus 2 % on the time to limit for the quantile method)."""
-    from bayesbase.mcmc_trend import trend_mcmc
+    from bayesbase.mcmc.trend import trend_mcmc
 
     c = CREAT
     t = np.array([np.arange(6.0), [0.0, 0.5, 1.5, 2.5, 3.0, np.nan]])

@@ -66,9 +66,9 @@ import pytensor
 import pytensor.tensor as pt
 import xarray as xr
 
-from . import __version__
-from .constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DIM_ANALYTE, DIM_OBS, DIM_PATIENT
-from .engine import CaseArrays, mixture_quantile
+from .. import __version__
+from ..constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DIM_ANALYTE, DIM_OBS, DIM_PATIENT
+from ..model.engine import CaseArrays, mixture_quantile
 
 __all__ = [
     "McmcResult",

@@ -59,8 +59,8 @@ import time
 import numpy as np
 from scipy import special
 
-from .classical import rcv_classical
-from .constants import (
+from ..classical import rcv_classical
+from ..constants import (
     DEFAULT_CI_PROB,
     DEFAULT_PRIOR_DRIFT,
     DEFAULT_QUAD_NODES,

@@ -15,7 +15,7 @@ import numpy as np
 
 def bench_exact(n_cases: int = 1_000_000, seed: int = 0) -> dict:
     """Exact engine throughput on invented cases with three baselines each."""
-    from .engine import CaseArrays, cv_to_sigma, exact_assess
+    from ..model.engine import CaseArrays, cv_to_sigma, exact_assess
 
     rng = np.random.default_rng(seed)
     n = n_cases
@@ -44,7 +44,7 @@ def bench_exact(n_cases: int = 1_000_000, seed: int = 0) -> dict:
 
 
 def _panel_csv(path: Path, n_analytes: int = 25) -> Path:
-    from .priors import load_pack
+    from ..priors import load_pack
 
     pack = load_pack("dog")
     analytes = list(pack.analytes)[:n_analytes]
@@ -75,8 +75,8 @@ def bench_cli_panel(n_analytes: int = 25) -> dict:
 
 def bench_report(n_analytes: int = 25) -> dict:
     """Wall time of one 25-analyte report (HTML + PDF) with the exact engine, in process."""
-    from . import report
-    from .data import load_results
+    from .. import report
+    from ..data import load_results
 
     with tempfile.TemporaryDirectory() as d:
         csv = _panel_csv(Path(d) / "panel.csv", n_analytes)
@@ -88,10 +88,10 @@ def bench_report(n_analytes: int = 25) -> dict:
 
 def bench_assess_store(n_patients: int = 10_000, n_specimens: int = 3, n_analytes: int = 20) -> dict:
     """Assess every patient of an invented store (exact engine): import, read back, assess."""
-    from .assess import assess
-    from .store import Store, synthetic_canonical
+    from ..assessment import assess
+    from ..store import Store, synthetic_canonical
 
-    from .priors import load_pack
+    from ..priors import load_pack
 
     frame = synthetic_canonical(n_patients, n_specimens, 40)
     frame = frame[frame["analyte"].isin(set(load_pack("dog").analytes))]

@@ -40,13 +40,13 @@ with warnings.catch_warnings():
 import pymc as pm
 import pytensor.tensor as pt
 
-from .constants import (
+from ..constants import (
     DEFAULT_CI_PROB,
     DEFAULT_PRIOR_DRIFT,
     DIM_OBS,
     TREND_HORIZON_YEARS,
 )
-from .trend import prepare_series
+from ..model.trend import prepare_series
 
 __all__ = ["trend_mcmc", "build_trend_model"]
 

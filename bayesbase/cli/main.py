@@ -6,8 +6,8 @@ import argparse
 import sys
 from pathlib import Path
 
-from . import __version__
-from .constants import CAUTIONS, DEFAULT_COVERAGE
+from .. import __version__
+from ..constants import CAUTIONS, DEFAULT_COVERAGE
 
 DEMO_DIR = "bayesbase-output"
 
@@ -117,7 +117,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _load_frame(args):
     if getattr(args, "db", None):
-        from .store import Store
+        from ..store import Store
 
         with Store(args.db) as st:
             return st.results(args.patient) if getattr(args, "patient", None) else st.results()
@@ -125,16 +125,16 @@ def _load_frame(args):
         raise SystemExit(_err("give a results FILE or --db PATH"))
     path = Path(args.file)
     if path.suffix.lower() == ".json":
-        from . import data, fhir
+        from .. import data, fhir
 
         return data.validate(fhir.read_bundle(path), source=path.name)
-    from .data import load_results
+    from ..data import load_results
 
     return load_results(path)
 
 
 def _run_assess(args, frame, patient=None):
-    from .assess import assess
+    from ..assessment import assess
 
     return assess(
         frame, pack=args.pack, priors=args.priors, engine=args.engine, coverage=args.coverage,
@@ -145,7 +145,7 @@ def _run_assess(args, frame, patient=None):
 
 
 def cmd_check(args) -> int:
-    from .data import load_results
+    from ..data import load_results
 
     frame = load_results(args.file)
     import pandas as pd
@@ -163,7 +163,7 @@ def cmd_check(args) -> int:
 
 
 def cmd_priors(args) -> int:
-    from . import priors
+    from .. import priors
 
     if args.priors_command in (None, "list"):
         for name in priors.available_packs():
@@ -240,7 +240,7 @@ def cmd_assess(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from . import report
+    from .. import report
 
     frame = _load_frame(args)
     patients = sorted(frame["patient"].unique())
@@ -261,9 +261,9 @@ def cmd_demo(args) -> int:
     import tomllib
     from importlib import resources
 
-    from . import report
-    from .assess import assess
-    from .data import load_results
+    from .. import report
+    from ..assessment import assess
+    from ..data import load_results
 
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
@@ -279,7 +279,7 @@ def cmd_demo(args) -> int:
         files = report.report_for_file(
             frame, case["patient"], None, out / f"{case['id']}.html",
             pdf=None if args.no_pdf else out / f"{case['id']}.pdf", at=case.get("at"))
-        from .report import select_changes
+        from ..report import select_changes
 
         t = a.table
         listed = t[select_changes(t["p_change"].to_numpy())]
@@ -303,7 +303,7 @@ def cmd_demo(args) -> int:
 
 
 def _store(args):
-    from .store import Store, default_db_path
+    from ..store import Store, default_db_path
 
     return Store(args.db or default_db_path())
 
@@ -357,7 +357,7 @@ def cmd_forget(args) -> int:
 
 
 def cmd_compare(args) -> int:
-    from . import research
+    from .. import research
 
     def progress(done, total):
         print(f"\r{done}/{total}", end="", file=sys.stderr, flush=True)
@@ -376,7 +376,7 @@ def cmd_compare(args) -> int:
 
 
 def cmd_bench(args) -> int:
-    from . import bench
+    from .. import bench
 
     only = args.only.split(",") if args.only else None
     for name, res in bench.run(quick=args.quick, only=only):
@@ -397,7 +397,7 @@ def main(argv=None) -> int:
     if not args.command:
         ap.print_help()
         return 0
-    from .errors import BayesbaseError
+    from ..errors import BayesbaseError
 
     try:
         return COMMANDS[args.command](args)

@@ -80,8 +80,8 @@ import pandas as pd
 import xarray as xr
 from scipy import stats
 
-from . import __version__
-from .classical import (
+from .. import __version__
+from ..classical import (
     index_of_individuality,
     ii_category,
     model2_interval,
@@ -89,7 +89,7 @@ from .classical import (
     rcv_lognormal,
     z_two_sided,
 )
-from .constants import (
+from ..constants import (
     CAUTIONS,
     CI_BOUNDS,
     DEFAULT_COVERAGE,
@@ -97,7 +97,7 @@ from .constants import (
     DIM_ANALYTE,
     DIM_CI,
 )
-from .engine import CaseArrays, cv_to_sigma, exact_assess
+from ..model.engine import CaseArrays, cv_to_sigma, exact_assess
 
 __all__ = [
     "METHODS",
@@ -254,7 +254,7 @@ def _resolve(species, analytes, priors):
         analytes = (analytes,)
     pack = None
     if any(not isinstance(a, AnalyteSpec) for a in analytes):
-        from .priors import Pack, load_pack
+        from ..priors import Pack, load_pack
 
         if isinstance(priors, Pack):
             pack = priors

@@ -32,7 +32,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 import matplotlib.dates as mdates
 
-from .constants import UNCERTAIN_BAND
+from ..constants import UNCERTAIN_BAND
 
 #: The drift line is drawn when the drift model's P(drift) is at least this (a line for a
 #: stable analyte would suggest a drift the model does not support; modelling choice).

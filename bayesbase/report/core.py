@@ -47,8 +47,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .constants import (
+from .. import __version__
+from ..constants import (
     CAUTIONS,
     DEFAULT_CI_PROB,
     DEFAULT_COVERAGE,
@@ -56,8 +56,8 @@ from .constants import (
     PROBABLE_CHANGE,
     UNCERTAIN_BAND,
 )
-from .errors import BayesbaseError
-from . import plots
+from ..errors import BayesbaseError
+from . import figures as plots
 
 __all__ = [
     "ReportFiles",
@@ -121,7 +121,7 @@ def chance_any_outside(n: int, level: float = 0.95) -> float:
     Correlated analytes make this an overstatement."""
     if n < 0:
         raise ValueError("n must be >= 0")
-    from .classical import chance_any_outside as _chance  # one kernel for the formula
+    from ..classical import chance_any_outside as _chance  # one kernel for the formula
 
     return float(_chance(int(n), level))
 
@@ -226,7 +226,7 @@ def _label(row) -> str:
 
 def _unit(row) -> str:
     try:
-        from .units import display_unit
+        from ..units import display_unit
 
         return display_unit(str(row["analyte"]))
     except Exception:  # unknown analyte in a fake or future registry: fall back to the code
@@ -571,7 +571,7 @@ def _specimen_lines(history: pd.DataFrame, patient: str) -> list[dict]:
 
 def _label_of(analyte: str) -> str:
     try:
-        from .units import label
+        from ..units import label
 
         return label(analyte)
     except Exception:  # unknown to the registry: show the id
@@ -1270,9 +1270,9 @@ def report_for_file(results_path_or_frame, patient: str, pack, out_html, pdf=Non
     ``pack`` is a Pack or a pack id (``"dog"``). With ``with_path`` (default) the personal
     interval is recomputed at every earlier specimen for the stepped ribbon.
     """
-    from .assess import assess
-    from .data import load_results, validate
-    from .priors import load_pack
+    from ..assessment import assess
+    from ..data import load_results, validate
+    from ..priors import load_pack
 
     if isinstance(pack, str):
         pack = load_pack(pack)

@@ -16,8 +16,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from . import __version__, classical
-from .constants import (
+from .. import __version__, classical
+from ..constants import (
     DEFAULT_CI_PROB,
     DEFAULT_COVERAGE,
     DEFAULT_PRIOR_CHANGE,
@@ -31,8 +31,8 @@ from .constants import (
     TREND_MIN_SPAN_YEARS,
     TREND_MIN_SPECIMENS,
 )
-from .engine import CaseArrays, cv_to_sigma, exact_assess
-from .errors import AnalyteNotInPack, BayesbaseError
+from ..model.engine import CaseArrays, cv_to_sigma, exact_assess
+from ..errors import AnalyteNotInPack, BayesbaseError
 
 __all__ = ["assess", "Assessment", "FEEDING_SENSITIVE_DEFAULT"]
 
@@ -209,7 +209,7 @@ def _to_dataset(table: pd.DataFrame, attrs: dict):
 
 
 def _coerce_results(results, now=None) -> pd.DataFrame:
-    from . import data as _data
+    from .. import data as _data
 
     if isinstance(results, (str, Path)):
         return _data.load_results(results, now=now)
@@ -222,7 +222,7 @@ def _coerce_results(results, now=None) -> pd.DataFrame:
 
 
 def _resolve_pack(pack, species: str, priors, cache: dict):
-    from .priors import Pack, load_pack
+    from ..priors import Pack, load_pack
 
     if isinstance(pack, Pack):
         key = ("obj", id(pack))
@@ -601,7 +601,7 @@ def assess(
         settings["nodes"] = nodes
         settings["quadrature"] = "Gauss-Hermite over ln(CVI)"
     else:
-        from . import mcmc as _mcmc  # PyMC is imported only here
+        from .. import mcmc as _mcmc  # PyMC is imported only here
 
         opts = dict(mcmc_options or {})
         mres = _mcmc.mcmc_assess(
@@ -708,7 +708,7 @@ def assess(
 
 def _label(aid: str) -> str:
     try:
-        from .units import label
+        from ..units import label
         return label(aid)
     except Exception:  # registry missing an entry: fall back to the id
         return aid
@@ -719,7 +719,7 @@ def _trend_block(metas, S, base_y, base_t, base_r, base_e, years, hist, is_asses
     """Drift model per case over baselines + assessed result (rule: >= TREND_MIN_SPECIMENS usable
     specimens spanning >= TREND_MIN_SPAN_YEARS)."""
     try:
-        from . import trend as _trend
+        from ..model import trend as _trend
     except ImportError:
         return None
     C = len(metas)

@@ -30,7 +30,7 @@ from dataclasses import dataclass, fields
 import numpy as np
 from scipy import special
 
-from .constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DEFAULT_QUAD_NODES
+from ..constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DEFAULT_QUAD_NODES
 
 __all__ = [
     "CaseArrays",

@@ -1,0 +1,1 @@
+"""Research tools: the method-comparison simulator (:mod:`.compare`)."""
