@@ -1,0 +1,168 @@
+"""Commands on a results file: demo, check, assess, report."""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+from ..constants import CAUTIONS
+from .common import add_assess_options, err, load_frame, run_assess
+
+DEMO_DIR = "bayesbase-output"
+
+
+def add_parsers(sub) -> None:
+    p = sub.add_parser("demo", help="assess every case of the built-in case library and write reports")
+    p.add_argument("--out", default=DEMO_DIR, help=f"output folder (default: ./{DEMO_DIR})")
+    p.add_argument("--no-pdf", action="store_true", help="HTML only")
+    p.set_defaults(run=cmd_demo)
+
+    p = sub.add_parser("check", help="validate a results file and print the normalised table or every problem")
+    p.add_argument("file")
+    p.add_argument("--rows", type=int, default=40, help="rows of the normalised table to print")
+    p.set_defaults(run=cmd_check)
+
+    p = sub.add_parser("assess", help="assess the latest (or --at) specimen against the animal's history")
+    p.add_argument("file", nargs="?", help="results file (CSV/XLSX/FHIR JSON), or use --db")
+    add_assess_options(p)
+    p.add_argument("--format", choices=["table", "csv", "json"], default="table")
+    p.add_argument("--out", help="write the output to this file instead of stdout")
+    p.add_argument("--idata", help="mcmc engine: save the InferenceData to this netCDF file")
+    p.set_defaults(run=cmd_assess)
+
+    p = sub.add_parser("report", help="write the clinician's report (HTML, optional PDF) for one patient")
+    p.add_argument("file", nargs="?", help="results file, or use --db")
+    add_assess_options(p)
+    p.add_argument("--out", default="report.html")
+    p.add_argument("--pdf", help="also write a PDF here")
+    p.add_argument("--png-dir", help="also save the plots as PNG here")
+    p.set_defaults(run=cmd_report)
+
+
+def cmd_check(args) -> int:
+    from ..data import load_results
+
+    frame = load_results(args.file)
+    import pandas as pd
+
+    with pd.option_context("display.width", 200, "display.max_columns", 30):
+        cols = ["patient", "species", "specimen", "collected_at", "analyte", "value", "unit",
+                "reported_value", "reported_unit", "censor", "state"]
+        print(frame[cols].head(args.rows).to_string(index=False))
+    notes = frame.attrs.get("notes") or []
+    print(f"\n{len(frame)} rows, {frame['patient'].nunique()} patient(s), "
+          f"{frame['specimen'].nunique()} specimen(s): valid.")
+    for n in notes:
+        print(f"note: {n}")
+    return 0
+
+
+def _table_text(a) -> str:
+    import pandas as pd
+
+    t = a.table.copy()
+    rows = []
+    for r in t.to_dict("records"):
+        rows.append({
+            "patient": r["patient"], "analyte": r["label"],
+            "value": f"{r['value']:.4g} {r['unit']}",
+            "population": f"{r['pop_lower']:.3g}-{r['pop_upper']:.3g}",
+            "personal": f"{r['pi_lower']:.3g}-{r['pi_upper']:.3g}",
+            "pctile": f"{100*r['percentile']:.0f}",
+            "P(change)": f"{r['p_change']:.2f}",
+            "dir": ("up" if r["p_increase"] >= 0.5 else "down") if r["p_change"] >= 0.5 else "",
+            "RCV": {True: "exceeded", False: "within"}.get(r["rcv_exceeded_last"], "n/a"),
+            "n_base": r["n_baseline"],
+            "drift": (f"{r['trend_pct_per_year']:+.1f}%/yr P={r['trend_p_drift']:.2f}"
+                      if r.get("trend_p_drift") == r.get("trend_p_drift") and r.get("trend_p_drift") is not None else ""),
+            "notes": "; ".join(r["flags"])[:90],
+        })
+    with pd.option_context("display.width", 250, "display.max_colwidth", 90):
+        text = pd.DataFrame(rows).to_string(index=False)
+    head = (f"pack {a.attrs['pack_id']} ({a.attrs['pack_sha256'][:12]}), engine {a.attrs['engine']}, "
+            f"personal interval coverage {a.attrs['coverage']:.0%}")
+    return head + "\n" + text + "\n\n" + " ".join(CAUTIONS)
+
+
+def cmd_assess(args) -> int:
+    frame = load_frame(args)
+    a = run_assess(args, frame)
+    if args.format == "json":
+        text = a.to_json()
+    elif args.format == "csv":
+        t = a.table.copy()
+        t["flags"] = t["flags"].map(lambda f: "; ".join(f))
+        text = t.to_csv(index=False)
+    else:
+        text = _table_text(a)
+    if args.out:
+        Path(args.out).write_text(text, encoding="utf-8")
+        print(f"wrote {args.out}")
+    else:
+        print(text)
+    if not a.converged:
+        print("warning: the MCMC fit did not converge; every row is marked", file=sys.stderr)
+        return 3
+    return 0
+
+
+def cmd_report(args) -> int:
+    from .. import report
+
+    frame = load_frame(args)
+    patients = sorted(frame["patient"].unique())
+    pid = args.patient
+    if pid is None:
+        if len(patients) != 1:
+            return err(f"the file holds {len(patients)} patients; choose one with --patient")
+        pid = patients[0]
+    files = report.report_for_file(frame, pid, args.pack, args.out, pdf=args.pdf, at=args.at,
+                                   engine=args.engine, png_dir=args.png_dir, priors=args.priors,
+                                   coverage=args.coverage, prior_change=args.prior_change,
+                                   keep_compromised=args.keep_compromised, seed=args.seed)
+    print(f"wrote {files.html}" + (f" and {files.pdf}" if files.pdf else ""))
+    return 0
+
+
+def cmd_demo(args) -> int:
+    import tomllib
+    from importlib import resources
+
+    from .. import report
+    from ..assessment import assess
+    from ..data import load_results
+
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    root = resources.files("bayesbase.case_library")
+    lines = []
+    for case_dir in sorted((p for p in root.iterdir() if p.is_dir() and (p / "case.toml").is_file()),
+                           key=lambda p: p.name):
+        case = tomllib.loads((case_dir / "case.toml").read_text(encoding="utf-8"))
+        with resources.as_file(case_dir / "results.csv") as csv_path:
+            frame = load_results(csv_path)
+        a = assess(frame, patient=case["patient"], at=case.get("at"))
+        (out / f"{case['id']}.json").write_text(a.to_json(), encoding="utf-8")
+        files = report.report_for_file(
+            frame, case["patient"], None, out / f"{case['id']}.html",
+            pdf=None if args.no_pdf else out / f"{case['id']}.pdf", at=case.get("at"))
+        from ..report import select_changes
+
+        t = a.table
+        listed = t[select_changes(t["p_change"].to_numpy())]
+        parts = [f"{r.label} {'up' if r.p_increase >= 0.5 else 'down'} (P(change) {r.p_change:.2f}"
+                 + (", compromised sample" if r.quality != "ok" else "") + ")"
+                 for r in listed.itertuples()]
+        if "trend_p_drift" in t:
+            for r in t[t["trend_p_drift"] >= 0.9].itertuples():
+                parts.append(f"{r.label} drifting {r.trend_pct_per_year:+.1f} %/year (P(drift) {r.trend_p_drift:.2f})")
+        comp = t[(t["quality"] != "ok") & ~t.index.isin(listed.index)]
+        parts += [f"{r.label} compromised sample" for r in comp.itertuples()]
+        if not t["comparable"].all():
+            parts.append("method changed: not directly comparable")
+        summary = "; ".join(parts) or "no probable change"
+        lines.append(f"{case['id']:<42} {summary}")
+        del files
+    print("\n".join(lines))
+    print(f"\nwrote an HTML{'' if args.no_pdf else ' and PDF'} report and a JSON assessment per case to {out}/")
+    print(" ".join(CAUTIONS))
+    return 0
