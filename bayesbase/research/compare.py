@@ -438,6 +438,179 @@ def _wilson(k: int, n: int, level: float = 0.95) -> tuple[float, float]:
 
 # --------------------------------------------------------------------------- compare
 
+def _check_options(scenarios, baselines, shifts, animals, alpha, threshold, coverage):
+    """Normalised (scenarios, baselines, shifts, animals); ValueError on a bad option."""
+    if isinstance(scenarios, str):
+        scenarios = (scenarios,)
+    for s in scenarios:
+        if s not in SCENARIOS:
+            raise ValueError(f"unknown scenario {s!r}; choose from {', '.join(SCENARIOS)}")
+    if len(set(scenarios)) != len(scenarios):
+        raise ValueError("a scenario is listed twice")
+    baselines = tuple(sorted({int(n) for n in baselines}))
+    if not baselines or baselines[0] < 0:
+        raise ValueError("baselines must be non-negative integers")
+    shifts = tuple(sorted({0.0, *(float(s) for s in shifts)}))
+    if shifts[0] <= -100:
+        raise ValueError("shifts are percentages above -100")
+    animals = int(animals)
+    if animals < 100:
+        raise ValueError("animals must be at least 100")
+    if not 0 < alpha < 1 or not 0 < threshold < 1 or not 0 < coverage < 1:
+        raise ValueError("alpha, threshold and coverage must lie in (0, 1)")
+    return tuple(scenarios), baselines, shifts, animals
+
+
+@dataclass
+class _Run:
+    """What one comparison run shares across its loops: settings, chunks and progress."""
+
+    seed: int
+    animals: int
+    jmax: int
+    chunks: list
+    total: int
+    coverage: float
+    threshold: float
+    alpha: float
+    progress: Callable[[int, int], None] | None
+    done: int = 0
+
+    def tick(self) -> None:
+        self.done += 1
+        if self.progress is not None:
+            self.progress(self.done, self.total)
+
+
+def _simulator(run: _Run, spec, name: str, scen: str):
+    """sim(ci, m) -> simulated log results of chunk ci, cached when they fit in memory."""
+    cache: dict[int, np.ndarray] = {}
+    cache_ok = run.animals * (run.jmax + 1) <= _CACHE_VALUES
+
+    def sim(ci: int, m_: int) -> np.ndarray:
+        if ci in cache:
+            return cache[ci]
+        y_ = _simulate(spec, scen, _draws(run.seed, name, ci, m_, run.jmax, scen == "heavy_tails"))
+        if cache_ok:
+            cache[ci] = y_
+        return y_
+
+    return sim
+
+
+def _healthy_pass(run: _Run, spec, sim, n, methods, cuts, nodes_a):
+    """Pass 1: the healthy new result (shift 0), kept in full for quantiles and ranks."""
+    healthy = {m: [] for m in methods}
+    pos0 = {m: 0 for m in methods}
+    for ci, m_ in run.chunks:
+        y = sim(ci, m_)
+        st, de = _score(spec, y[:, :n], y[:, run.jmax], cuts, run.coverage, run.threshold, nodes_a)
+        for m in methods:
+            healthy[m].append(st[m])
+            pos0[m] += int(de[m].sum())
+        run.tick()
+    h_sorted = {m: np.sort(np.concatenate(healthy[m])) for m in methods}
+    return h_sorted, pos0
+
+
+def _shift_pass(run: _Run, spec, sim, n, s, methods, cuts, nodes_a, h_sorted, mcut, roc_cuts):
+    """Scores of a shifted new result: positives, matched sensitivity, AUC and ROC points."""
+    pos = {m: 0 for m in methods}
+    above = {m: 0 for m in methods}
+    u = {m: 0.0 for m in methods}
+    cnt = {m: np.zeros(ROC_FPR.size) for m in methods}
+    for ci, m_ in run.chunks:
+        y = sim(ci, m_)
+        new = y[:, run.jmax] + math.log1p(s / 100.0)
+        st, de = _score(spec, y[:, :n], new, cuts, run.coverage, run.threshold, nodes_a)
+        for m in methods:
+            xs = np.sort(st[m])  # sorted queries: faster binary search
+            pos[m] += int(de[m].sum())
+            above[m] += int(xs.size - np.searchsorted(xs, mcut[m], side="right"))
+            u[m] += _u_sum(h_sorted[m], xs)
+            cnt[m] += xs.size - np.searchsorted(xs, roc_cuts[m], side="right")
+        run.tick()
+    animals = run.animals
+    sens = {m: above[m] / animals for m in methods}
+    auc = {m: u[m] / (float(animals) * animals) for m in methods}
+    tpr = {m: cnt[m] / animals for m in methods}
+    return pos, sens, auc, tpr
+
+
+def _method_rows(key: dict, methods, cuts, animals, pos, mcut, mfpr, sens, auc, roc_fpr, tpr,
+                 rows: list, roc_rows: list) -> None:
+    """One table row per method (undefined methods get NaN) and the ROC points of each."""
+    for m in METHODS:
+        row = dict(key, method=m, n_animals=animals, threshold=cuts[m])
+        if m in methods:
+            lo, hi = _wilson(pos[m], animals)
+            row.update(positives=pos[m], positive_rate=pos[m] / animals, lower=lo,
+                       upper=hi, matched_threshold=mcut[m], matched_fpr=mfpr[m],
+                       sensitivity_matched=sens[m], auc=auc[m], defined=True)
+            for f_, t_ in zip(roc_fpr[m], tpr[m]):
+                roc_rows.append(dict(scenario=key["scenario"], analyte=key["analyte"], method=m,
+                                     n_baseline=key["n_baseline"], shift_pct=key["shift_pct"],
+                                     fpr=float(f_), tpr=float(t_)))
+        else:
+            row.update(positives=np.nan, positive_rate=np.nan, lower=np.nan,
+                       upper=np.nan, matched_threshold=np.nan, matched_fpr=np.nan,
+                       sensitivity_matched=np.nan, auc=np.nan, defined=False)
+        rows.append(row)
+
+
+def _score_baselines(run: _Run, spec, sim, name, scen, n, shifts, nodes_a, rows, roc_rows) -> None:
+    """Every method and shift for one analyte, scenario and number of baselines."""
+    cuts = _cuts(spec, n, run.coverage, run.threshold)
+    methods = [m for m in METHODS if n >= 1 or m not in NEEDS_BASELINE]
+    h_sorted, pos0 = _healthy_pass(run, spec, sim, n, methods, cuts, nodes_a)
+    alpha, animals = run.alpha, run.animals
+    mcut = {m: float(np.quantile(h_sorted[m], 1.0 - alpha, method="higher")) for m in methods}
+    mfpr = {m: float(np.mean(h_sorted[m] > mcut[m])) for m in methods}
+    roc_cuts = {m: np.quantile(h_sorted[m], 1.0 - ROC_FPR, method="higher") for m in methods}
+    roc_fpr = {m: 1.0 - np.searchsorted(h_sorted[m], roc_cuts[m], side="right") / animals
+               for m in methods}
+    for s in shifts:
+        if s == 0:
+            pos, sens, tpr = dict(pos0), dict(mfpr), dict(roc_fpr)
+            auc = {m: 0.5 for m in methods}  # healthy against itself
+        else:
+            pos, sens, auc, tpr = _shift_pass(run, spec, sim, n, s, methods, cuts, nodes_a,
+                                              h_sorted, mcut, roc_cuts)
+        key = dict(scenario=scen, analyte=name, n_baseline=n, shift_pct=s)
+        _method_rows(key, methods, cuts, animals, pos, mcut, mfpr, sens, auc, roc_fpr, tpr,
+                     rows, roc_rows)
+
+
+def _compare_attrs(species, pack, run: _Run, baselines, shifts, scenarios, nodes, specs, t0) -> dict:
+    return {
+        "species": species,
+        "pack_id": pack.id if pack is not None else None,
+        "pack_sha256": pack.sha256 if pack is not None else None,
+        "seed": int(run.seed),
+        "animals": run.animals,
+        "chunk": CHUNK,
+        "baselines": list(baselines),
+        "shifts_pct": list(shifts),
+        "scenarios": list(scenarios),
+        "threshold": run.threshold,
+        "alpha": run.alpha,
+        "coverage": run.coverage,
+        "quadrature_nodes": nodes,
+        "engine": "exact (bayesbase.engine.exact_assess, intervals=False)",
+        "ci_method": "Wilson score interval, 95 % (scipy.stats.binomtest.proportion_ci)",
+        "auc_method": "Mann-Whitney U / (n1 n2), rank-based, ties one half",
+        "population_interval": "model-implied: exp(ln center +/- z sqrt(sG^2 + sI^2 + sA^2))",
+        "rcv_mean_rule": "classical RCV sqrt(2) z CVT applied unchanged against the arithmetic "
+                         "mean of the baselines (laboratory practice; conservative for n > 1)",
+        "analytes": {k: dict(cvi=v.cvi, cvg=v.cvg, cva=v.cva, cvi_log_sd=v.cvi_log_sd,
+                             center=v.center, unit=v.unit, ii=v.ii, tau=v.tau,
+                             prior_change=v.prior_change, source=v.source)
+                     for k, v in specs.items()},
+        "version": __version__,
+        "elapsed_s": round(time.perf_counter() - t0, 3),
+    }
+
+
 def compare(
     species: str = "dog",
     analytes: Sequence[str | AnalyteSpec] = ("creatinine", "alt"),
@@ -464,114 +637,23 @@ def compare(
     ``progress(done, total)`` is called after every chunk of engine work. ``nodes``:
     quadrature nodes of the exact engine (see :data:`SIM_QUAD_NODES`).
     """
-    if isinstance(scenarios, str):
-        scenarios = (scenarios,)
-    for s in scenarios:
-        if s not in SCENARIOS:
-            raise ValueError(f"unknown scenario {s!r}; choose from {', '.join(SCENARIOS)}")
-    if len(set(scenarios)) != len(scenarios):
-        raise ValueError("a scenario is listed twice")
-    baselines = tuple(sorted({int(n) for n in baselines}))
-    if not baselines or baselines[0] < 0:
-        raise ValueError("baselines must be non-negative integers")
-    shifts = tuple(sorted({0.0, *(float(s) for s in shifts)}))
-    if shifts[0] <= -100:
-        raise ValueError("shifts are percentages above -100")
-    animals = int(animals)
-    if animals < 100:
-        raise ValueError("animals must be at least 100")
-    if not 0 < alpha < 1 or not 0 < threshold < 1 or not 0 < coverage < 1:
-        raise ValueError("alpha, threshold and coverage must lie in (0, 1)")
+    scenarios, baselines, shifts, animals = _check_options(
+        scenarios, baselines, shifts, animals, alpha, threshold, coverage)
     specs, pack = _resolve(species, analytes, priors)
-
     jmax = max(baselines)
     chunks = [(i, min(CHUNK, animals - i * CHUNK)) for i in range(math.ceil(animals / CHUNK))]
     total = len(scenarios) * len(specs) * len(baselines) * len(shifts) * len(chunks)
-    done = 0
+    run = _Run(seed=seed, animals=animals, jmax=jmax, chunks=chunks, total=total,
+               coverage=coverage, threshold=threshold, alpha=alpha, progress=progress)
     rows: list[dict] = []
     roc_rows: list[dict] = []
     t0 = time.perf_counter()
-
-    cache_ok = animals * (jmax + 1) <= _CACHE_VALUES
     for scen in scenarios:
         for name, spec in specs.items():
             nodes_a = 1 if spec.cvi_log_sd == 0 else nodes  # all nodes coincide then
-            cache: dict[int, np.ndarray] = {}
-
-            def sim(ci: int, m_: int) -> np.ndarray:
-                if ci in cache:
-                    return cache[ci]
-                y_ = _simulate(spec, scen, _draws(seed, name, ci, m_, jmax, scen == "heavy_tails"))
-                if cache_ok:
-                    cache[ci] = y_
-                return y_
-
+            sim = _simulator(run, spec, name, scen)  # one cache per analyte and scenario
             for n in baselines:
-                cuts = _cuts(spec, n, coverage, threshold)
-                methods = [m for m in METHODS if n >= 1 or m not in NEEDS_BASELINE]
-                # pass 1: healthy new result (shift 0), kept in full for quantiles and ranks
-                healthy = {m: [] for m in methods}
-                pos0 = {m: 0 for m in methods}
-                for ci, m_ in chunks:
-                    y = sim(ci, m_)
-                    st, de = _score(spec, y[:, :n], y[:, jmax], cuts, coverage, threshold, nodes_a)
-                    for m in methods:
-                        healthy[m].append(st[m])
-                        pos0[m] += int(de[m].sum())
-                    done += 1
-                    if progress is not None:
-                        progress(done, total)
-                h_sorted = {m: np.sort(np.concatenate(healthy[m])) for m in methods}
-                del healthy
-                mcut = {m: float(np.quantile(h_sorted[m], 1.0 - alpha, method="higher")) for m in methods}
-                mfpr = {m: float(np.mean(h_sorted[m] > mcut[m])) for m in methods}
-                roc_cuts = {m: np.quantile(h_sorted[m], 1.0 - ROC_FPR, method="higher") for m in methods}
-                roc_fpr = {m: 1.0 - np.searchsorted(h_sorted[m], roc_cuts[m], side="right") / animals
-                           for m in methods}
-                for s in shifts:
-                    if s == 0:
-                        pos = dict(pos0)
-                        sens = dict(mfpr)
-                        auc = {m: 0.5 for m in methods}  # healthy against itself
-                        tpr = dict(roc_fpr)
-                    else:
-                        pos = {m: 0 for m in methods}
-                        above = {m: 0 for m in methods}
-                        u = {m: 0.0 for m in methods}
-                        cnt = {m: np.zeros(ROC_FPR.size) for m in methods}
-                        for ci, m_ in chunks:
-                            y = sim(ci, m_)
-                            new = y[:, jmax] + math.log1p(s / 100.0)
-                            st, de = _score(spec, y[:, :n], new, cuts, coverage, threshold, nodes_a)
-                            for m in methods:
-                                xs = np.sort(st[m])  # sorted queries: faster binary search
-                                pos[m] += int(de[m].sum())
-                                above[m] += int(xs.size - np.searchsorted(xs, mcut[m], side="right"))
-                                u[m] += _u_sum(h_sorted[m], xs)
-                                cnt[m] += xs.size - np.searchsorted(xs, roc_cuts[m], side="right")
-                            done += 1
-                            if progress is not None:
-                                progress(done, total)
-                        sens = {m: above[m] / animals for m in methods}
-                        auc = {m: u[m] / (float(animals) * animals) for m in methods}
-                        tpr = {m: cnt[m] / animals for m in methods}
-                    for m in METHODS:
-                        row = dict(scenario=scen, analyte=name, method=m, n_baseline=n, shift_pct=s,
-                                   n_animals=animals, threshold=cuts[m])
-                        if m in methods:
-                            lo, hi = _wilson(pos[m], animals)
-                            row.update(positives=pos[m], positive_rate=pos[m] / animals, lower=lo,
-                                       upper=hi, matched_threshold=mcut[m], matched_fpr=mfpr[m],
-                                       sensitivity_matched=sens[m], auc=auc[m], defined=True)
-                            for f_, t_ in zip(roc_fpr[m], tpr[m]):
-                                roc_rows.append(dict(scenario=scen, analyte=name, method=m,
-                                                     n_baseline=n, shift_pct=s, fpr=float(f_),
-                                                     tpr=float(t_)))
-                        else:
-                            row.update(positives=np.nan, positive_rate=np.nan, lower=np.nan,
-                                       upper=np.nan, matched_threshold=np.nan, matched_fpr=np.nan,
-                                       sensitivity_matched=np.nan, auc=np.nan, defined=False)
-                        rows.append(row)
+                _score_baselines(run, spec, sim, name, scen, n, shifts, nodes_a, rows, roc_rows)
 
     table = pd.DataFrame(rows)
     table["ii"] = table["analyte"].map({k: v.ii for k, v in specs.items()})
@@ -582,33 +664,7 @@ def compare(
     table = table[cols]
     roc = pd.DataFrame(roc_rows, columns=["scenario", "analyte", "method", "n_baseline",
                                           "shift_pct", "fpr", "tpr"])
-    attrs = {
-        "species": species,
-        "pack_id": pack.id if pack is not None else None,
-        "pack_sha256": pack.sha256 if pack is not None else None,
-        "seed": int(seed),
-        "animals": animals,
-        "chunk": CHUNK,
-        "baselines": list(baselines),
-        "shifts_pct": list(shifts),
-        "scenarios": list(scenarios),
-        "threshold": threshold,
-        "alpha": alpha,
-        "coverage": coverage,
-        "quadrature_nodes": nodes,
-        "engine": "exact (bayesbase.engine.exact_assess, intervals=False)",
-        "ci_method": "Wilson score interval, 95 % (scipy.stats.binomtest.proportion_ci)",
-        "auc_method": "Mann-Whitney U / (n1 n2), rank-based, ties one half",
-        "population_interval": "model-implied: exp(ln center +/- z sqrt(sG^2 + sI^2 + sA^2))",
-        "rcv_mean_rule": "classical RCV sqrt(2) z CVT applied unchanged against the arithmetic "
-                         "mean of the baselines (laboratory practice; conservative for n > 1)",
-        "analytes": {k: dict(cvi=v.cvi, cvg=v.cvg, cva=v.cva, cvi_log_sd=v.cvi_log_sd,
-                             center=v.center, unit=v.unit, ii=v.ii, tau=v.tau,
-                             prior_change=v.prior_change, source=v.source)
-                     for k, v in specs.items()},
-        "version": __version__,
-        "elapsed_s": round(time.perf_counter() - t0, 3),
-    }
+    attrs = _compare_attrs(species, pack, run, baselines, shifts, scenarios, nodes, specs, t0)
     ds = _to_dataset(table, attrs)
     comp = Comparison(table=table, roc=roc, dataset=ds, attrs=attrs, summary_text="", specs=specs)
     comp.summary_text = _summary(comp)
