@@ -74,7 +74,6 @@ __all__ = [
     "McmcResult",
     "mcmc_assess",
     "build_model",
-    "bench_mcmc_panel",
     "sbc_setpoint",
     "RHAT_MAX",
     "ESS_MIN",
@@ -587,7 +586,7 @@ def save_idata(idata, path, settings, attrs=None):
     return path
 
 
-# ----------------------------------------------------------------------------- benchmarks
+# ----------------------------------------------------------------------------- demo panel
 def _demo_panel(n_analytes: int, seed: int = 20240601) -> CaseArrays:
     """Invented demo panel (numbers are for benchmarking only): one dog, ``n_analytes``
     analytes with 0-4 baselines and CVs drawn in plausible ranges."""
@@ -606,28 +605,6 @@ def _demo_panel(n_analytes: int, seed: int = 20240601) -> CaseArrays:
     return CaseArrays.from_lists(
         base, prior_mean=mu, sg=sg, cvi=cvi, cvi_log_sd=rng.uniform(0.2, 0.4, n_analytes),
         sa=sa, new_y=new, prior_change=0.1, delta=np.log(1.2),
-    )
-
-
-def bench_mcmc_panel(n_analytes: int = 25, chains: int = 4, draws: int = 1000,
-                     tune: int = 1000, seed: int = 0, sampler: str = "pymc") -> dict:
-    """Wall time of one ``n_analytes``-case panel: ``cold`` is the first call in this process
-    for a model of this structure (includes building and compiling), ``warm`` a second call
-    reusing the cached model. Also reports the load average when it ran."""
-    cases = _demo_panel(n_analytes)
-    t0 = time.perf_counter()
-    r1 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler)
-    cold = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    r2 = mcmc_assess(cases, draws=draws, tune=tune, chains=chains, seed=seed + 1,
-                     sampler=sampler)
-    warm = time.perf_counter() - t0
-    load = os.getloadavg() if hasattr(os, "getloadavg") else (float("nan"),) * 3
-    return dict(
-        n_analytes=n_analytes, chains=chains, draws=draws, tune=tune, sampler=sampler,
-        cold_seconds=cold, warm_seconds=warm, converged=(r1.converged, r2.converged),
-        max_r_hat=r2.diagnostics["max_r_hat"], min_ess_bulk=r2.diagnostics["min_ess_bulk"],
-        load_average=tuple(float(x) for x in load), cpu_count=os.cpu_count(),
     )
 
 

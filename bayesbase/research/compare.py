@@ -106,7 +106,6 @@ __all__ = [
     "Comparison",
     "compare",
     "write_outputs",
-    "bench_compare",
     "spec_from_pack",
     "peb_score",
     "mann_whitney_auc",
@@ -964,26 +963,3 @@ def _html(comp: Comparison, figs, s_focus) -> str:
                  "assumed CVs; a misspecification scenario shows how far they move.</p>")
     parts.append("</body></html>")
     return "\n".join(parts)
-
-
-# --------------------------------------------------------------------------- benchmark
-
-def bench_compare(animals: int = 1_000_000, analyte: str = "creatinine", n_baseline: int = 3,
-                  shifts: Sequence[float] = (0, 10, 20, 30, 50), species: str = "dog") -> dict:
-    """Benchmark (not a test): ``animals`` simulated animals for one analyte and one design
-    (one number of baselines, the given shifts, every method, scenario ``model``)."""
-    t0 = time.perf_counter()
-    comp = compare(species=species, analytes=(analyte,), baselines=(n_baseline,), shifts=shifts,
-                   animals=animals, seed=1, scenarios=("model",))
-    dt = time.perf_counter() - t0
-    return {
-        "name": "compare",
-        "animals": animals,
-        "analyte": analyte,
-        "n_baseline": n_baseline,
-        "shifts": len(comp.attrs["shifts_pct"]),
-        "engine_calls_per_animal": len(comp.attrs["shifts_pct"]),
-        "seconds": round(dt, 2),
-        "animal_evaluations_per_s": round(animals * len(comp.attrs["shifts_pct"]) / dt),
-        "target_s": 60.0,
-    }
