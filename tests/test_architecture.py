@@ -12,7 +12,7 @@ PKG = Path(__file__).resolve().parents[1] / "bayesbase"
 
 LAYER = {
     "constants": 0, "errors": 0,
-    "units": 1, "classical": 1,
+    "units": 1, "classical": 1, "evidence": 1,
     "data": 2, "priors": 2,
     "engine": 3, "trend": 3, "mcmc": 3, "mcmc_trend": 3,
     "assess": 4, "store": 4, "fhir": 4,
