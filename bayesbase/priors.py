@@ -39,6 +39,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from . import evidence as _evidence
 from .errors import AnalyteNotInPack, PackError
 
 try:  # layer 1; guarded so that the pack schema works without the registry
@@ -56,6 +57,9 @@ __all__ = [
     "load_pack",
     "check_file",
     "describe",
+    "describe_text",
+    "CviStudy",
+    "DESIGNS",
     "OVERRIDE_COLUMNS",
 ]
 
@@ -80,6 +84,29 @@ class CitedNumber:
     value: float
     source: str
     provenance: str
+    note: str | None = None
+    locator: str | None = None
+
+
+@dataclass(frozen=True)
+class CviStudy:
+    """One published estimate of CVI (fraction) behind an analyte's prior, with its design.
+
+    ``se_log`` is the standard error of ln(CVI): from the study's 95 % CI when given
+    (ln(upper/lower)/3.92), else the design approximation of :mod:`bayesbase.evidence`.
+    ``pooled`` studies enter the DerSimonian-Laird combination that gives the pack's CVI.
+    """
+
+    value: float
+    source: str
+    provenance: str
+    design: str
+    n_animals: int
+    n_specimens: int | None
+    se_log: float
+    se_basis: str
+    pooled: bool
+    locator: str | None = None
     note: str | None = None
 
 
@@ -121,6 +148,7 @@ class AnalytePrior:
     slope_sd: float
     shift_sd: float | None
     sources: dict[str, str] = field(repr=False)
+    cvi_studies: tuple[CviStudy, ...] = field(default=(), repr=False)
 
     # log-scale SDs: sigma = sqrt(ln(1 + CV^2))
     @property
@@ -200,7 +228,7 @@ def _breed_key(breed: str) -> str:
 
 # --------------------------------------------------------------------------- schema
 
-_T_STR, _T_BOOL, _T_CITED, _T_TABLE = "string", "boolean", "cited number", "table"
+_T_STR, _T_BOOL, _T_CITED, _T_TABLE, _T_LIST = "string", "boolean", "cited number", "table", "list of tables"
 
 # key -> (kind, required, range) ; range = (lo, hi, lo_inclusive, hi_inclusive) or None
 _POS = (0.0, math.inf, False, False)
@@ -230,9 +258,18 @@ _ANALYTE_KEYS = {
     "age_dependent": (_T_STR, False, None),
     "breed_centers": (_T_TABLE, False, None),
     "note": (_T_STR, False, None),
+    "cvi_studies": (_T_LIST, False, None),
 }
 _TOP_KEYS = ("pack", "defaults", "retest_groups", "analytes")
-_CITED_KEYS = ("value", "source", "provenance", "note")
+_CITED_KEYS = ("value", "source", "provenance", "locator", "note")
+#: Keys of one entry of an analyte's ``cvi_studies`` list (the evidence behind its CVI).
+_STUDY_KEYS = ("value", "source", "provenance", "locator", "note", "design", "n_animals", "n_specimens",
+               "n_replicates", "cva", "ci_lower", "ci_upper", "pooled")
+#: Designs of a biological-variation study: short-term (days to weeks apart, e.g. weekly x 6)
+#: or long-term (months apart, e.g. monthly for a year or annual visits).
+DESIGNS = ("short-term", "long-term")
+#: Relative tolerance between a pack's combined cvi / cvi_log_sd and their recomputation.
+COMBINE_RTOL = 0.02
 _INTERFERENCE_KEYS = (*HIL, "source", "provenance", "note")
 
 
@@ -313,9 +350,17 @@ def _check_cited(c: _Collector, path: str, v: Any, rng=None) -> CitedNumber | No
     if prov == "from memory" and not (isinstance(note, str) and note.strip()):
         c.add(f"{path}.note", "a 'from memory' number needs a rationale in note")
         ok = False
+    locator = v.get("locator")
+    if locator is not None and not (isinstance(locator, str) and locator.strip()):
+        c.add(f"{path}.locator", "must be a non-empty string (table and page, or 'abstract')")
+        ok = False
+    elif prov == "read" and locator is None:
+        c.add(f"{path}.locator", "a 'read' number needs a locator: where in the source it was seen "
+                                 "(table and page, or 'abstract')")
+        ok = False
     if not ok:
         return None
-    return CitedNumber(float(value), source.strip(), prov, note)
+    return CitedNumber(float(value), source.strip(), prov, note, locator.strip() if locator else None)
 
 
 def _check_keys(c: _Collector, path: str, table: dict, spec: dict) -> dict[str, Any]:
@@ -346,6 +391,11 @@ def _check_keys(c: _Collector, path: str, table: dict, spec: dict) -> dict[str, 
         elif kind == _T_TABLE:
             if not isinstance(v, dict):
                 c.add(p, f"expected a table, got {type(v).__name__} {v!r}")
+            else:
+                out[key] = v
+        elif kind == _T_LIST:
+            if not isinstance(v, list) or not all(isinstance(x, dict) for x in v):
+                c.add(p, f"expected a list of tables, got {type(v).__name__}")
             else:
                 out[key] = v
     return out
@@ -412,6 +462,9 @@ def _check_analyte(c: _Collector, p: str, aid: str, got: dict, groups: dict, kno
     if cvi and lsd and cvi.provenance == "from memory" and lsd.value < MIN_LOG_SD_FROM_MEMORY:
         c.add(f"{p}.cvi_log_sd", f"a from-memory CVI needs cvi_log_sd >= {MIN_LOG_SD_FROM_MEMORY}, "
                                  f"got {lsd.value:g}")
+    studies = got.get("cvi_studies")
+    if studies is not None:
+        got["_studies"] = _check_studies(c, f"{p}.cvi_studies", studies, cvi, lsd)
     intf = got.get("interference")
     if intf is not None:
         q = f"{p}.interference"
@@ -449,6 +502,76 @@ def _check_analyte(c: _Collector, p: str, aid: str, got: dict, groups: dict, kno
             cn = _check_cited(c, f"{p}.breed_centers.{b}", v, _POS)
             if cn is not None:
                 got["_breeds"][b] = cn
+
+
+def _int_key(c: _Collector, path: str, v: Any, lo: int) -> int | None:
+    if not isinstance(v, int) or isinstance(v, bool) or v < lo:
+        c.add(path, f"expected an integer >= {lo}, got {v!r}")
+        return None
+    return v
+
+
+def _check_studies(c: _Collector, path: str, studies: list, cvi: CitedNumber | None,
+                   lsd: CitedNumber | None) -> tuple[CviStudy, ...]:
+    """Check the ``cvi_studies`` list; when studies are pooled, the analyte's ``cvi`` and
+    ``cvi_log_sd`` must equal their DerSimonian-Laird combination (bayesbase.evidence)."""
+    out: list[CviStudy] = []
+    for i, st in enumerate(studies):
+        q = f"{path}[{i}]"
+        _unknown_keys(c, q, st, _STUDY_KEYS)
+        cn = _check_cited(c, q, {k: st[k] for k in _CITED_KEYS if k in st}, _CV)
+        design = st.get("design")
+        if design not in DESIGNS:
+            c.add(f"{q}.design", f"{design!r} is not a design" + _hint(str(design), DESIGNS))
+        n_a = _int_key(c, f"{q}.n_animals", st.get("n_animals"), 1)
+        n_s = st.get("n_specimens")
+        if n_s is not None:
+            n_s = _int_key(c, f"{q}.n_specimens", n_s, 2)
+        n_r = st.get("n_replicates", 1)
+        n_r = _int_key(c, f"{q}.n_replicates", n_r, 1)
+        cva = st.get("cva")
+        if cva is not None and not (_is_number(cva) and 0 < cva < 2):
+            c.add(f"{q}.cva", f"expected a fraction in (0, 2), got {cva!r}")
+            cva = None
+        lo, hi = st.get("ci_lower"), st.get("ci_upper")
+        if (lo is None) != (hi is None):
+            c.add(q, "give both ci_lower and ci_upper (95 % CI of CVI) or neither")
+        pooled = st.get("pooled", True)
+        if not isinstance(pooled, bool):
+            c.add(f"{q}.pooled", f"expected true or false, got {pooled!r}")
+            pooled = False
+        if cn is None or design not in DESIGNS or n_a is None or n_r is None:
+            continue
+        if lo is not None and hi is not None:
+            if not (_is_number(lo) and _is_number(hi) and 0 < lo <= cn.value <= hi):
+                c.add(q, f"need 0 < ci_lower <= value <= ci_upper, got {lo!r}, {cn.value:g}, {hi!r}")
+                continue
+            se = _evidence.log_sd_from_ci(float(lo), float(hi))
+            basis = f"95 % CI {lo:g}-{hi:g}: ln(upper/lower)/3.92"
+        elif n_s is not None:
+            se = _evidence.se_log_cv_from_design(cn.value, n_a, n_s, cva, n_r)
+            basis = (f"design approximation, df = {n_a} x ({n_s} - 1) = {n_a * (n_s - 1)}"
+                     + (f", CVA {cva:g} with {n_r} replicates" if cva is not None and n_r >= 2 else ""))
+        else:
+            c.add(q, "give ci_lower/ci_upper or n_specimens (needed for the SE of ln CVI)")
+            continue
+        out.append(CviStudy(cn.value, cn.source, cn.provenance, design, n_a, n_s, se, basis, pooled,
+                            cn.locator, cn.note))
+    pooled_studies = [s for s in out if s.pooled]
+    if len(out) == len(studies) and pooled_studies:
+        designs = {s.design for s in pooled_studies}
+        if len(designs) > 1:
+            c.add(path, "pooled studies mix short-term and long-term designs; pool one design and "
+                        "list the other with pooled = false")
+        elif cvi is not None and lsd is not None:
+            comb = _evidence.combine_log_cvi([math.log(s.value) for s in pooled_studies],
+                                             [s.se_log for s in pooled_studies])
+            for name, cited, want in (("cvi", cvi, comb["cvi"]), ("cvi_log_sd", lsd, comb["cvi_log_sd"])):
+                if not math.isclose(cited.value, want, rel_tol=COMBINE_RTOL):
+                    c.add(f"{path.rsplit('.', 1)[0]}.{name}",
+                          f"{cited.value:g} does not match the combination of the pooled studies "
+                          f"({want:.4g}; DerSimonian-Laird, bayesbase.evidence.combine_log_cvi)")
+    return tuple(out)
 
 
 def _build(parts: dict, sha: str) -> Pack:
@@ -494,7 +617,8 @@ def _build(parts: dict, sha: str) -> Pack:
             hil_thresholds={k: v.value for k, v in a.get("_hil", {}).items()},
             feeding_sensitive=bool(a.get("feeding_sensitive", False)),
             age_dependent=a.get("age_dependent"), group=a["group"], slope_sd=cn["slope_sd"].value,
-            shift_sd=cn["shift_sd"].value if "shift_sd" in cn else None, sources=asrc)
+            shift_sd=cn["shift_sd"].value if "shift_sd" in cn else None, sources=asrc,
+            cvi_studies=a.get("_studies", ()))
     return Pack(id=meta["id"], species=meta["species"], title=meta["title"], version=meta["version"],
                 sha256=sha, analytes=analytes, retest_groups=groups, defaults=defaults, sources=sources,
                 cited=cited, description=meta.get("description", ""))
@@ -773,6 +897,13 @@ def describe(pack: Pack, analyte: str | None = None):
                 unit = _FIELD_UNITS.get(fld, prior.unit)
             rows.append(dict(analyte=aid, field=fld, value=cn.value, unit=unit, source=cn.source,
                              provenance=cn.provenance))
+        for i, st in enumerate(prior.cvi_studies, start=1):
+            src = (f"{st.source}" + (f" [{st.locator}]" if st.locator else "")
+                   + f" ({st.design}, {st.n_animals} animals"
+                   + (f" x {st.n_specimens} specimens" if st.n_specimens else "")
+                   + f"; SE ln CVI {st.se_log:.3f} from {st.se_basis}; {'pooled' if st.pooled else 'listed, not pooled'})")
+            rows.append(dict(analyte=aid, field=f"cvi_study.{i}", value=st.value, unit="fraction", source=src,
+                             provenance=st.provenance))
         rows.append(dict(analyte=aid, field="ii", value=prior.ii, unit="ratio",
                          source="derived here: CVI / CVG (Harris orientation)", provenance="derived"))
         if prior.interference:
@@ -781,3 +912,53 @@ def describe(pack: Pack, analyte: str | None = None):
                                     f"{prior.sources.get('interference', '')}",
                              provenance=prior.sources.get("interference.provenance", "")))
     return pd.DataFrame(rows, columns=["analyte", "field", "value", "unit", "source", "provenance"])
+
+
+def _short(text: str, limit: int) -> str:
+    return text if len(text) <= limit else text[: max(limit - 3, 1)].rstrip() + "..."
+
+
+def describe_text(pack: Pack, analyte: str | None = None, full: bool = False, width: int = 100) -> str:
+    """Readable text of a pack for a terminal of ``width`` columns (what ``bayesbase priors show``
+    prints): per analyte the cited numbers, then the studies behind CVI and their combination.
+
+    Sources are cut to one line unless ``full`` is true, in which case they are wrapped whole.
+    """
+    import textwrap
+
+    ids = [pack.get(analyte).analyte] if analyte is not None else list(pack.analytes)
+    out: list[str] = [f"pack {pack.id}  version {pack.version}  sha256 {pack.sha256[:16]}...",
+                      "CVs are fractions; II = CVI/CVG (Harris; < 0.6: subject-based limits preferable)."]
+    indent = " " * 6
+
+    def src_lines(label: str, text: str) -> list[str]:
+        first = f"    {label}"
+        if not full:
+            return [_short(f"{first} {text}", width)]
+        return textwrap.wrap(text, width=width, initial_indent=first + " ", subsequent_indent=indent)
+
+    for aid in ids:
+        prior = pack.analytes[aid]
+        out.append("")
+        out.extend(textwrap.wrap(
+            f"{aid} [{prior.unit}]  CVI {prior.cvi:.4g} (SD ln {prior.cvi_log_sd:.3g})  CVG {prior.cvg:.4g}"
+            f"  CVA {prior.cva:.4g}  II {prior.ii:.2f}  centre {prior.center:.4g}"
+            f" ({prior.ri_lower:.4g}-{prior.ri_upper:.4g})", width=width, subsequent_indent="    "))
+        for fld, cn in pack.cited[aid].items():
+            loc = f" [{cn.locator}]" if cn.locator else ""
+            out.extend(src_lines(f"{fld} = {cn.value:.4g} ({cn.provenance}):", cn.source + loc))
+        if prior.cvi_studies:
+            pooled = [st for st in prior.cvi_studies if st.pooled]
+            out.append(f"  studies behind CVI ({len(pooled)} pooled of {len(prior.cvi_studies)}):")
+            for i, st in enumerate(prior.cvi_studies, start=1):
+                head = (f"  {i}. CVI {st.value:.4g} {st.design}, n={st.n_animals}"
+                        + (f"x{st.n_specimens}" if st.n_specimens else "")
+                        + f", SE ln {st.se_log:.3f}, {st.provenance}"
+                        + ("" if st.pooled else ", not pooled") + ":")
+                text = st.source + (f" [{st.locator}]" if st.locator else "")
+                if full and st.note:
+                    text += f". Note: {st.note}"
+                out.extend(src_lines(head.strip(), text))
+            out.append(f"    combination: CVI {prior.cvi:.4g}, SD of ln CVI {prior.cvi_log_sd:.3g} "
+                       "(DerSimonian-Laird; bayesbase.evidence)")
+    return "\n".join(out)

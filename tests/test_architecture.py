@@ -18,7 +18,7 @@ PKG = Path(__file__).resolve().parents[1] / "bayesbase"
 #: layer of every unit (DEVELOPERS.md, "Module map")
 LAYER = {
     "constants": 0, "errors": 0, "contract": 0,
-    "units": 1, "classical": 1,
+    "units": 1, "classical": 1, "evidence": 1,
     "data": 2, "priors": 2,
     "model": 3, "mcmc": 3,
     "assessment": 4, "store": 4, "fhir": 4,

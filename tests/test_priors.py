@@ -54,6 +54,8 @@ def _val(v):
         return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
     if isinstance(v, dict):
         return "{ " + ", ".join(f'"{k}" = {_val(x)}' for k, x in v.items()) + " }"
+    if isinstance(v, list):
+        return "[ " + ", ".join(_val(x) for x in v) + " ]"
     raise TypeError(v)
 
 
@@ -81,7 +83,11 @@ def test_every_number_is_a_cited_number(name):
         if isinstance(leaf, (int, float)) and not isinstance(leaf, bool):
             n_numbers += 1
             where = ".".join(path)
-            assert key == "value", f"{where}: a bare number outside a cited-number table"
+            # a cvi_studies entry is one cited number whose design counts, CVA and CI come from the
+            # same source, so they sit beside its value
+            study_key = key in ("n_animals", "n_specimens", "n_replicates", "cva", "ci_lower", "ci_upper")
+            assert key == "value" or (study_key and "value" in parent and "design" in parent), \
+                f"{where}: a bare number outside a cited-number table"
             assert isinstance(parent.get("source"), str) and parent["source"].strip(), where
             assert parent.get("provenance") in priors.PROVENANCES, where
             if parent["provenance"] == "from memory":
@@ -206,15 +212,36 @@ def test_log_scale_sd_matches_lognormal_cv():
 
 def test_cat_values_match_baral_2014():
     # Baral RM et al., J Feline Med Surg 2014;16(4):317-325, feline CVw (CVI) and CVg as transcribed
-    # at james.westgard.com (Nov 2013): creatinine 5.97 / 11.43 %, cholesterol 10.74 / 22.35 %,
-    # sodium 0.86 / 0.57 %.
+    # in a secondary table (Westgard blog, Nov 2013): creatinine 5.97 / 11.43 %, cholesterol
+    # 10.74 / 22.35 %, sodium 0.86 / 0.57 %. Creatinine's pack CVI is a combination (next test);
+    # its Baral study entry keeps 5.97 %.
     pack = priors.load_pack("cat")
     for analyte, cvi, cvg in (("creatinine", 0.0597, 0.1143), ("cholesterol", 0.1074, 0.2235),
                               ("sodium", 0.0086, 0.0057)):
         a = pack.get(analyte)
-        assert a.cvi == pytest.approx(cvi) and a.cvg == pytest.approx(cvg)
-        assert "Baral RM" in pack.cited[analyte]["cvi"].source
-        assert pack.cited[analyte]["cvi"].provenance == "read"
+        baral = [st for st in a.cvi_studies if st.source.startswith("Baral RM")]
+        assert len(baral) == 1 and baral[0].value == pytest.approx(cvi)
+        assert baral[0].provenance == "read" and baral[0].locator
+        assert "secondary" in baral[0].note  # read on a mirror: said so in the note
+        assert a.cvg == pytest.approx(cvg)
+    assert pack.get("cholesterol").cvi == pytest.approx(0.1074)
+    assert pack.cited["sodium"]["cvi"].provenance == "read"
+
+
+def test_cat_creatinine_cvi_is_the_dersimonian_laird_combination():
+    # Pooled short-term studies: Baral 2014 (5.97 %, 14 cats x 6 weekly) and Summers et al. (RCV 19.8 %,
+    # abstract -> CVI 6.48 % with CVA 3 %, 11 cats x 6 weekly); Finch 2018 (8.82 %, long-term, total
+    # within-cat CV) is listed but not pooled. By hand: w = 140, 110; mu = (140 ln .0597 + 110 ln .0648)
+    # / 250 = -2.78235 with tau = 0 (Q = 0.41 < 1) but the floor tau = 0.15 applies for k < 3:
+    # w* = 1/(1/140 + .0225), 1/(1/110 + .0225); SE(mu)^2 = 1/sum(w*); sd = sqrt(SE^2 + .0225).
+    a = priors.load_pack("cat").get("creatinine")
+    pooled = [st for st in a.cvi_studies if st.pooled]
+    assert [st.design for st in a.cvi_studies] == ["short-term", "short-term", "long-term"]
+    assert len(pooled) == 2
+    w = [1 / (1 / 140 + 0.0225), 1 / (1 / 110 + 0.0225)]
+    mu = (w[0] * math.log(0.0597) + w[1] * math.log(0.0648)) / sum(w)
+    assert a.cvi == pytest.approx(math.exp(mu), rel=1e-3)
+    assert a.cvi_log_sd == pytest.approx(math.sqrt(1 / sum(w) + 0.0225), abs=1e-3)
 
 
 def test_dog_glucose_and_fructosamine_match_beagle_study():
@@ -247,7 +274,8 @@ def test_harris_index_low_and_high():
     # Harris II = CVI/CVG. Baral 2014 abstract (pubmed 24217705) classes feline creatinine and
     # cholesterol as high individuality (II < 0.6 in Harris orientation) and sodium as low (II > 1.4).
     cat = priors.load_pack("cat")
-    assert cat.ii("creatinine") == pytest.approx(5.97 / 11.43)
+    # creatinine CVI is the combination 6.21 % (Baral 5.97 % with Summers 6.48 %) over Baral's CVG 11.43 %
+    assert cat.ii("creatinine") == pytest.approx(cat.get("creatinine").cvi / 0.1143)
     assert cat.ii("creatinine") < 0.6
     assert cat.ii("cholesterol") < 0.6
     assert cat.ii("sodium") > 1.4
@@ -315,6 +343,87 @@ def test_override_checked_without_pack(tmp_path):
     bad = _csv(tmp_path, "analyte,cvi_pct\nkreatinine,15\n", "bad.csv")
     problems = priors.check_file(bad)
     assert problems and "row 2, column 'analyte'" in problems[0] and "creatinine" in problems[0]
+
+
+# --------------------------------------------------------------------------- evidence schema
+
+def test_read_number_requires_a_locator(tmp_path):
+    def mutate(d):
+        del d["analytes"]["glucose"]["cvi"]["locator"]
+    problems = priors.check_file(_write_pack(tmp_path, mutate))
+    assert len(problems) == 1
+    assert "analytes.glucose.cvi.locator" in problems[0] and "'read' number needs a locator" in problems[0]
+
+    def blank(d):
+        d["analytes"]["glucose"]["cva"]["locator"] = " "
+    assert any("cva.locator" in p for p in priors.check_file(_write_pack(tmp_path, blank)))
+
+
+@pytest.mark.parametrize("name", PACKS)
+def test_every_read_number_and_study_has_a_locator(name):
+    pack = priors.load_pack(name)
+    for aid, fields in pack.cited.items():
+        for fld, cn in fields.items():
+            if cn.provenance == "read":
+                assert cn.locator, (aid, fld)
+        for st in pack.analytes[aid].cvi_studies:
+            assert st.provenance != "read" or st.locator, aid
+            assert st.design in priors.DESIGNS and st.se_log > 0
+
+
+def test_study_keys_are_strict_and_combination_is_rechecked(tmp_path):
+    def typo(d):
+        d["analytes"]["creatinine"]["cvi_studies"][0]["n_animal"] = 20
+    problems = priors.check_file(_write_pack(tmp_path, typo))
+    assert any("cvi_studies[0].n_animal" in p and "did you mean 'n_animals'" in p for p in problems)
+
+    def stale(d):  # a CVI that no longer matches its studies is refused
+        d["analytes"]["creatinine"]["cvi_studies"][0]["value"] = 0.12
+    problems = priors.check_file(_write_pack(tmp_path, stale, name="cat"))
+    assert any("analytes.creatinine.cvi:" in p and "combination" in p for p in problems)
+
+    def mixed(d):  # pooling a long-term with short-term studies is refused
+        d["analytes"]["creatinine"]["cvi_studies"][2]["pooled"] = True
+    problems = priors.check_file(_write_pack(tmp_path, mixed, name="cat"))
+    assert any("mix short-term and long-term" in p for p in problems)
+
+    def bad_design(d):
+        d["analytes"]["glucose"]["cvi_studies"][0]["design"] = "longterm"
+    problems = priors.check_file(_write_pack(tmp_path, bad_design))
+    assert any("design" in p and "did you mean 'long-term'" in p for p in problems)
+
+
+def test_study_se_from_ci_uses_ln_ratio_over_3_92(tmp_path):
+    # a study with a published 95 % CI of CVI gets SE(ln CVI) = ln(upper/lower)/3.92, and the pack's
+    # cvi_log_sd must then equal sqrt(SE^2 + 2 tau_floor^2) for a single study
+    lo, hi = 0.07, 0.12
+    se = math.log(hi / lo) / (2 * stats.norm.ppf(0.975))
+    want = math.sqrt(se**2 + 2 * 0.15**2)
+
+    def mutate(d):
+        st = d["analytes"]["glucose"]["cvi_studies"][0]
+        st.pop("n_specimens")
+        st["ci_lower"], st["ci_upper"] = lo, hi
+        d["analytes"]["glucose"]["cvi_log_sd"]["value"] = round(want, 4)
+    path = _write_pack(tmp_path, mutate)
+    assert priors.check_file(path) == []
+    st = priors.load_pack(path).get("glucose").cvi_studies[0]
+    assert st.se_log == pytest.approx(se) and "3.92" in st.se_basis
+
+
+def test_describe_text_lists_studies_within_100_columns():
+    cat = priors.load_pack("cat")
+    text = priors.describe_text(cat)
+    assert max(len(line) for line in text.splitlines()) <= 100
+    block = priors.describe_text(cat, "creatinine")
+    assert "studies behind CVI (2 pooled of 3)" in block and "not pooled" in block
+    assert "combination: CVI 0.0621" in block
+    full = priors.describe_text(cat, "creatinine", full=True)
+    assert max(len(line) for line in full.splitlines()) <= 100
+    assert "doi:10.1177/1098612X18757591" in full.replace("\n", " ").replace("      ", "")
+    assert len(full) > len(block)
+    df = priors.describe(cat, "creatinine")
+    assert {"cvi_study.1", "cvi_study.2", "cvi_study.3"} <= set(df["field"])
 
 
 # --------------------------------------------------------------------------- describe
