@@ -10,6 +10,7 @@ def add_parsers(sub) -> None:
     q = psub.add_parser("show", help="print a pack's values with their sources")
     q.add_argument("pack", nargs="?", default="dog")
     q.add_argument("--analyte")
+    q.add_argument("--full", action="store_true", help="print whole source texts (default: one line each)")
     q.add_argument("--priors", help="lab override CSV to layer over the pack")
     psub.add_parser("list", help="list the built-in packs")
     q = psub.add_parser("check", help="validate a pack TOML or a lab override CSV")
@@ -27,14 +28,7 @@ def cmd_priors(args) -> int:
         return 0
     if args.priors_command == "show":
         pk = priors.load_pack(args.pack, overrides=args.priors)
-        df = priors.describe(pk, analyte=args.analyte)
-        import pandas as pd
-
-        print(f"pack {pk.id}  version {pk.version}  sha256 {pk.sha256}")
-        print("index of individuality shown as Harris's CVI/CVG (low < 0.6: the population interval "
-              "tells little about change in one animal)")
-        with pd.option_context("display.width", 250, "display.max_colwidth", 140, "display.max_rows", 10000):
-            print(df.to_string(index=False))
+        print(priors.describe_text(pk, analyte=args.analyte, full=args.full))
         return 0
     problems = priors.check_file(args.file)
     if problems:
