@@ -5,8 +5,9 @@ Layer 4: imports ``bayesbase.constants``, ``errors``, ``units`` and (for validat
 Reading (:func:`read_bundle`)
 -----------------------------
 Input: a ``Bundle`` (any ``type``; ``collection`` is what files usually carry) of ``Patient``,
-``Observation`` and optionally ``Specimen`` resources, as a path, JSON text, or an already
-parsed ``dict``. Output: a raw frame in the tidy results contract (columns ``patient, species,
+``Observation`` and optionally ``Specimen`` resources, as a path (``str`` or ``Path``; a
+``str`` beginning with ``{`` or ``[`` is JSON text), JSON text as ``bytes``, or already parsed
+JSON. Output: a raw frame in the tidy results contract (columns ``patient, species,
 breed, sex, birth_date, specimen, collected_at, analyte, value, unit, method, replicate,
 fasted, haemolysis, lipaemia, icterus, state``) to be validated by
 :func:`bayesbase.data.validate`, so that names and units are checked in one place
@@ -49,6 +50,22 @@ Every problem is a :class:`~bayesbase.errors.Problem` whose ``column`` is the re
 e.g. ``Bundle.entry[3].resource(Observation/obs-12).valueQuantity.code``; all problems are
 collected and raised together as :class:`~bayesbase.errors.ValidationError`.
 
+Malformed input never raises anything else (tests/test_fhir_robustness.py, with property
+tests over arbitrary JSON):
+
+* an element of the wrong JSON type (``identifier``, ``extension`` or ``coding`` that is not an
+  array, ``collection`` or ``valueQuantity`` that is not an object, a code that is not a
+  string, ...) is a problem at its path (``...extension(patient-animal).extension``); what
+  merely follows from it (e.g. "no species" after a broken extension array) is not repeated;
+* ``valueQuantity.value`` must be a finite JSON number: NaN, +-Infinity, and numbers beyond
+  double precision (``1e400``, a 400-digit integer) are refused at ``valueQuantity.value``; an
+  integer longer than CPython's int/str conversion limit (4300 digits by default) is read as
+  out of range rather than raising; messages describe huge values instead of echoing them;
+* ``comparator`` must be one of the four codes; the replicate extension's ``valueInteger`` a
+  positive integer (at most 2**31 - 1, a sanity bound of the project); ``birthDate`` a FHIR date;
+* JSON nested beyond the parser's depth limit is refused as "nested too deeply" naming the
+  file; an unreadable path (a directory, a name too long) is refused as "cannot read the file".
+
 Writing (:func:`write_bundle`)
 ------------------------------
 A ``Bundle`` of type ``collection``: one Patient per patient (patient-animal extension with
@@ -63,7 +80,9 @@ no offset, per :mod:`bayesbase.data`); ``utc_offset=""`` writes them bare.
 from __future__ import annotations
 
 import json
+import math
 import re
+import sys
 from pathlib import Path
 
 from .errors import Problem, ValidationError
@@ -146,18 +165,167 @@ _COMPARATOR = {"<": "left", "<=": "left", ">": "right", ">=": "right"}
 # reading
 # ---------------------------------------------------------------------------------------------
 class _Ctx:
+    """Problems found so far (each once: a concept read twice reports its fault once)."""
+
     def __init__(self, source: str):
         self.source = source
         self.problems: list[Problem] = []
+        self._seen: set[tuple[str, str]] = set()
+        self._under: set[str] = set()  # every path prefix of a reported problem
+        self.analyte_errors: dict[str, KeyError | None] = {}  # name -> resolve_analyte outcome
 
     def add(self, where: str, message: str, hint: str | None = None) -> None:
+        if (where, message) in self._seen:
+            return
+        self._seen.add((where, message))
         self.problems.append(Problem(self.source, None, where, message, hint))
+        self._under.add(where)
+        self._under.update(where[:m.start()] for m in re.finditer(r"[.\[]", where))
+
+    def has_under(self, path: str) -> bool:
+        """True when a problem was already reported at ``path`` or inside it (a consequence
+        of that fault is then not reported again)."""
+        return path in self._under
+
+    # typed access: a field of the wrong JSON type is a located problem, never an exception
+    def obj(self, parent, key: str, where: str) -> dict | None:
+        """``parent[key]`` when it is a JSON object; None when absent (or of the wrong type,
+        which is reported at ``where.key``)."""
+        v = parent.get(key) if isinstance(parent, dict) else None
+        if v is None or isinstance(v, dict):
+            return v
+        self.add(f"{where}.{key}", f"{key} must be a JSON object, not {_jtype(v)}",
+                 "see the FHIR R4 JSON representation of this element")
+        return None
+
+    def arr(self, parent, key: str, where: str) -> list[tuple[str, dict]]:
+        """The objects of the JSON array ``parent[key]`` as (path, object) pairs; an array
+        of the wrong type, or an item that is not an object, is reported."""
+        v = parent.get(key) if isinstance(parent, dict) else None
+        if v is None:
+            return []
+        if not isinstance(v, list):
+            self.add(f"{where}.{key}", f"{key} must be a JSON array, not {_jtype(v)}",
+                     "FHIR JSON writes repeating elements as arrays, even with one item")
+            return []
+        out = []
+        for i, item in enumerate(v):
+            if isinstance(item, dict):
+                out.append((f"{where}.{key}[{i}]", item))
+            else:
+                self.add(f"{where}.{key}[{i}]", f"{key} item must be a JSON object, "
+                         f"not {_jtype(item)}")
+        return out
+
+    def text(self, parent, key: str, where: str, *, integer_ok: bool = False) -> str | None:
+        """``parent[key]`` as text (None when absent or empty); an integer is accepted where
+        ``integer_ok`` (ids and codes some systems write as numbers); other types are reported."""
+        v = parent.get(key) if isinstance(parent, dict) else None
+        if v is None:
+            return None
+        if isinstance(v, str):
+            return v if v.strip() else None
+        if integer_ok and isinstance(v, int) and not isinstance(v, bool) and _int_text_ok(v):
+            return str(v)
+        self.add(f"{where}.{key}", f"{key} must be a JSON string, not {_jtype(v)}")
+        return None
+
+
+def _max_digits() -> int:
+    """Digits beyond which CPython refuses int <-> text conversion
+    (``sys.get_int_max_str_digits``: 4300 by default, 0 for no limit)."""
+    return getattr(sys, "get_int_max_str_digits", lambda: 0)() or 10 ** 9
+
+
+def _int_text_ok(v: int) -> bool:
+    # bit_length * log10(2) bounds the number of digits from below; stay well inside the limit
+    return v.bit_length() * 0.30103 < _max_digits() - 2
+
+
+class _Overflowed(float):
+    """A JSON number beyond double precision, kept as +-inf with the text it was written as
+    (every reader of a value refuses it with a located message that shows that text)."""
+
+    written: str = ""
+
+
+def _overflowed(text: str) -> _Overflowed:
+    out = _Overflowed(float(text))
+    out.written = text
+    return out
+
+
+def _json_int(text: str):
+    """``parse_int`` hook: an integer too long for CPython's int conversion becomes +-inf."""
+    if len(text) - text.startswith("-") >= _max_digits():
+        return _overflowed(text)
+    return int(text)
+
+
+def _json_float(text: str):
+    """``parse_float`` hook: a number that overflows double precision keeps its text."""
+    value = float(text)
+    return _overflowed(text) if math.isinf(value) else value
+
+
+def _jtype(v) -> str:
+    """A short description of a JSON value for a message (never the whole value)."""
+    if v is None:
+        return "null"
+    if isinstance(v, bool):
+        return f"the boolean {'true' if v else 'false'}"
+    if isinstance(v, (int, float)):
+        return f"the number {_show(v)}"
+    if isinstance(v, str):
+        return f"the text {_show(v)}"
+    if isinstance(v, list):
+        return f"an array of {len(v)} item(s)"
+    if isinstance(v, dict):
+        return "an object"
+    return type(v).__name__
+
+
+def _show(v, limit: int = 48) -> str:
+    """repr-like text of a JSON scalar, shortened; huge integers are described, not printed."""
+    if isinstance(v, bool) or v is None:
+        return json.dumps(v)
+    if isinstance(v, int):
+        if not _int_text_ok(v) or v.bit_length() > 160:
+            return f"(an integer of about {int(v.bit_length() * 0.30103) + 1} digits)"
+        return str(v)
+    if isinstance(v, _Overflowed):
+        w = v.written.lstrip("-")
+        digits = len(w) if w.isdigit() else 0
+        shown = v.written if len(v.written) <= 24 else f"{v.written[:12]}..."
+        return f"{shown} (a number of {digits} digits)" if digits > 24 else shown
+    if isinstance(v, float):
+        return repr(v)
+    if isinstance(v, str):
+        r = repr(v)
+        return r if len(r) <= limit else r[:limit - 4] + "...'"
+    return _jtype(v)
+
+
+def _pathpart(v) -> str:
+    """A resource type or id as shown inside a resource path."""
+    if isinstance(v, str):
+        return v if len(v) <= 64 else v[:61] + "..."
+    return "?" if v is None else _show(v, 24)
 
 
 def _load_json(path_or_obj, source):
-    if isinstance(path_or_obj, dict):
+    if isinstance(path_or_obj, (dict, list)):
         return path_or_obj, source or "<bundle>"
-    if isinstance(path_or_obj, (str, Path)) and not str(path_or_obj).lstrip().startswith("{"):
+    if isinstance(path_or_obj, (bytes, bytearray)):
+        src = source or "<bundle>"
+        try:
+            text = bytes(path_or_obj).decode("utf-8-sig")
+        except UnicodeDecodeError as exc:
+            raise ValidationError([Problem(src, None, None,
+                                           f"not UTF-8 text, so not FHIR JSON ({exc.reason})")]) \
+                from None
+    elif isinstance(path_or_obj, Path) or (
+            isinstance(path_or_obj, str) and path_or_obj.lstrip()[:1] not in ("{", "[")):
         path = Path(path_or_obj)
         src = source or str(path)
         try:
@@ -168,48 +336,61 @@ def _load_json(path_or_obj, source):
             raise ValidationError([Problem(src, None, None,
                                            f"not UTF-8 text, so not FHIR JSON ({exc.reason})")]) \
                 from None
-    else:
-        text = str(path_or_obj)
+        except (OSError, ValueError) as exc:  # a directory, no permission, name too long, NUL
+            reason = getattr(exc, "strerror", None) or str(exc)
+            raise ValidationError([Problem(src, None, None,
+                                           f"cannot read the file ({reason})")]) from None
+    elif isinstance(path_or_obj, str):
+        text = path_or_obj
         src = source or "<bundle>"
+    else:  # an already parsed JSON scalar (number, boolean, null)
+        return path_or_obj, source or "<bundle>"
     try:
-        return json.loads(text), src
+        return json.loads(text, parse_int=_json_int, parse_float=_json_float), src
     except json.JSONDecodeError as exc:
         raise ValidationError([Problem(
             src, None, None, f"not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg})",
             "a FHIR Bundle in JSON format is expected")]) from None
+    except RecursionError:
+        raise ValidationError([Problem(
+            src, None, None, "the JSON is nested too deeply to read (arrays or objects inside "
+            "one another beyond the JSON reader's depth limit)",
+            "a FHIR Bundle nests a few levels deep; this file is not one")]) from None
 
 
-def _codings(concept) -> list[dict]:
+def _codings(ctx: _Ctx, concept, where: str) -> list[tuple[str, dict]]:
+    """(path, coding) pairs of a CodeableConcept at ``where``."""
+    return ctx.arr(concept, "coding", where)
+
+
+def _texts(ctx: _Ctx, concept, where: str) -> list[str]:
+    """``text`` then every coding's ``display`` of a CodeableConcept, stripped, non-empty."""
     if not isinstance(concept, dict):
         return []
-    return [c for c in concept.get("coding") or [] if isinstance(c, dict)]
+    out = [ctx.text(concept, "text", where)]
+    out += [ctx.text(c, "display", cw) for cw, c in _codings(ctx, concept, where)]
+    return [t.strip() for t in out if t and t.strip()]
 
 
-def _texts(concept) -> list[str]:
-    if not isinstance(concept, dict):
-        return []
-    out = [concept.get("text")] + [c.get("display") for c in _codings(concept)]
-    return [str(t).strip() for t in out if t and str(t).strip()]
+def _concept(ctx: _Ctx, parent, key: str, where: str) -> tuple[dict | None, str]:
+    return ctx.obj(parent, key, where), f"{where}.{key}"
 
 
-def _ext(resource, url):
-    for e in (resource or {}).get("extension") or []:
-        if isinstance(e, dict) and e.get("url") == url:
-            return e
-    return None
+def _ext(ctx: _Ctx, resource, url: str, where: str, label: str):
+    """(extension, its path) of the first extension of ``resource`` with this url, or
+    (None, path). ``label`` names it in paths, e.g. ``extension(patient-animal)``."""
+    for _, e in ctx.arr(resource, "extension", where):
+        if e.get("url") == url:
+            return e, f"{where}.extension({label})"
+    return None, f"{where}.extension({label})"
 
 
-def _sub_ext(ext, url):
-    for e in (ext or {}).get("extension") or []:
-        if isinstance(e, dict) and e.get("url") == url:
-            return e
-    return None
-
-
-def _first_identifier(resource) -> str | None:
-    for ident in resource.get("identifier") or []:
-        if isinstance(ident, dict) and ident.get("value") not in (None, ""):
-            return str(ident["value"])
+def _identifier(ctx: _Ctx, resource, where: str) -> str | None:
+    """The first non-empty ``identifier[].value`` (text, or an integer written as a number)."""
+    for iw, ident in ctx.arr(resource, "identifier", where):
+        value = ctx.text(ident, "value", iw, integer_ok=True)
+        if value is not None:
+            return value
     return None
 
 
@@ -226,66 +407,99 @@ def _time(text) -> str | None:
     return f"{date}T{clock}" if clock else date
 
 
-def _species(ext, ctx, where) -> str | None:
-    sp = _sub_ext(ext, "species")
+def _species(ctx: _Ctx, ext, ext_where: str) -> str | None:
+    sp, sw = _ext_sub(ctx, ext, "species", ext_where)
     if sp is None:
-        ctx.add(f"{where}.extension(patient-animal).species",
+        if ctx.has_under(f"{ext_where}.extension"):
+            return None
+        ctx.add(f"{ext_where}.species",
                 "Patient has no species (the patient-animal extension's species is required)")
         return None
-    concept = sp.get("valueCodeableConcept")
-    for c in _codings(concept):
-        hit = SPECIES_CODES.get((str(c.get("system", "")).rstrip("/"), str(c.get("code", ""))))
+    concept, cw = _concept(ctx, sp, "valueCodeableConcept", sw)
+    codings = _codings(ctx, concept, cw)
+    shown = []
+    for kw, c in codings:
+        system = ctx.text(c, "system", kw) or ""
+        code = ctx.text(c, "code", kw, integer_ok=True) or ""
+        hit = SPECIES_CODES.get((system.rstrip("/"), code))
         if hit:
             return hit
-    for t in _texts(concept):
+        shown.append(f"{_show(system)}|{_show(code)}")
+    texts = _texts(ctx, concept, cw)
+    for t in texts:
         hit = _SPECIES_TEXT.get(t.lower())
         if hit:
             return hit
-    shown = ", ".join(_texts(concept) or [f"{c.get('system')}|{c.get('code')}"
-                                          for c in _codings(concept)]) or "nothing"
-    ctx.add(f"{where}.extension(patient-animal).species",
+    if ctx.has_under(sw):
+        return None
+    shown = ", ".join(_show(t) for t in texts) or ", ".join(shown) or "nothing"
+    ctx.add(f"{ext_where}.species",
             f"species not recognised ({shown})",
             "use SNOMED CT 448771007 (dog) / 448169003 (cat), NCBI taxonomy 9615 / 9685 / 9796, "
             "or the text dog, cat, horse")
     return None
 
 
+def _ext_sub(ctx: _Ctx, ext, url: str, ext_where: str):
+    """(sub-extension, its path) with this url inside a complex extension, or (None, path)."""
+    for _, e in ctx.arr(ext, "extension", ext_where):
+        if e.get("url") == url:
+            return e, f"{ext_where}.{url}"
+    return None, f"{ext_where}.{url}"
+
+
 def _patient(res, ctx, where) -> dict:
-    pid = _first_identifier(res) or res.get("id")
+    pid = _identifier(ctx, res, where) or ctx.text(res, "id", where, integer_ok=True)
     if not pid:
         ctx.add(f"{where}.id", "Patient has neither an identifier nor an id")
-    ext = _ext(res, PATIENT_ANIMAL)
+    ext, ext_where = _ext(ctx, res, PATIENT_ANIMAL, where, "patient-animal")
+    breed = status = None
     if ext is None:
-        ctx.add(f"{where}.extension", "Patient has no species: the patient-animal extension "
-                f"({PATIENT_ANIMAL}) is missing")
+        if not ctx.has_under(f"{where}.extension"):
+            ctx.add(f"{where}.extension", "Patient has no species: the patient-animal extension "
+                    f"({PATIENT_ANIMAL}) is missing")
         species = None
     else:
-        species = _species(ext, ctx, where)
-    breed = None
-    if ext is not None:
-        b = _sub_ext(ext, "breed")
+        species = _species(ctx, ext, ext_where)
+        b, bw = _ext_sub(ctx, ext, "breed", ext_where)
         if b is not None:
-            texts = _texts(b.get("valueCodeableConcept"))
+            texts = _texts(ctx, *_concept(ctx, b, "valueCodeableConcept", bw))
             breed = texts[0] if texts else None
-    gender = str(res.get("gender") or "").lower() or None
-    status = None
-    if ext is not None:
-        g = _sub_ext(ext, "genderStatus")
+        g, gw = _ext_sub(ctx, ext, "genderStatus", ext_where)
         if g is not None:
-            concept = g.get("valueCodeableConcept")
-            codes = [str(c.get("code", "")).lower() for c in _codings(concept)]
-            codes += [t.lower() for t in _texts(concept)]
-            for code in codes:
-                if code in ("neutered", "intact"):
-                    status = code
-                    break
+            concept, cw = _concept(ctx, g, "valueCodeableConcept", gw)
+            codes = [ctx.text(c, "code", kw) for kw, c in _codings(ctx, concept, cw)]
+            codes = [c.lower() for c in codes if c] + [t.lower() for t in _texts(ctx, concept, cw)]
+            status = next((c for c in codes if c in ("neutered", "intact")), None)
+    gender = (ctx.text(res, "gender", where) or "").lower() or None
     if gender in ("male", "female"):
         sex = f"{gender}_{status}" if status else gender
     else:
         sex = None
-    birth = res.get("birthDate")
-    return {"id": str(pid) if pid else None, "species": species, "breed": breed, "sex": sex,
+    birth = ctx.text(res, "birthDate", where)
+    if birth is not None and _time(birth) is None:
+        ctx.add(f"{where}.birthDate", f"birthDate {_show(birth)} is not a FHIR date",
+                "write it as YYYY-MM-DD")
+    return {"id": pid, "species": species, "breed": breed, "sex": sex,
             "birth_date": _time(birth) if birth else None}
+
+
+def _specimen(res, ctx, where) -> dict:
+    """What the reader takes from a Specimen: id, collection time, fasting status, state."""
+    sid = _identifier(ctx, res, where) or ctx.text(res, "id", where, integer_ok=True)
+    coll = ctx.obj(res, "collection", where)
+    cw = f"{where}.collection"
+    collected = ctx.text(coll, "collectedDateTime", cw)
+    fasted = None
+    concept, fw = _concept(ctx, coll, "fastingStatusCodeableConcept", cw)
+    for kw, c in _codings(ctx, concept, fw):
+        code = ctx.text(c, "code", kw)
+        fasted = {"F": "yes", "NF": "no"}.get((code or "").upper(), fasted)
+    state = None
+    se, sw = _ext(ctx, res, STATE_EXTENSION, where, "health-state")
+    if se is not None:
+        state = ctx.text(se, "valueCode", sw) or ctx.text(se, "valueString", sw)
+    return {"id": sid, "collected": collected, "fasted": fasted, "state": state}
 
 
 def _ref_keys(ref: str) -> list[str]:
@@ -297,17 +511,24 @@ def _ref_keys(ref: str) -> list[str]:
     return keys
 
 
-def _number(v):
-    if isinstance(v, bool):
+def _as_float(v) -> float | None:
+    """A JSON number as a float (+-inf when it overflows); None for anything else."""
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
         return None
-    if isinstance(v, (int, float)):
+    try:
         return float(v)
+    except OverflowError:
+        return math.inf if v > 0 else -math.inf
+
+
+def _number(v) -> float | None:
+    """A JSON number, or text holding one, as a float (possibly non-finite); else None."""
     if isinstance(v, str):
         try:
             return float(v.strip())
         except ValueError:
             return None
-    return None
+    return _as_float(v)
 
 
 def _fmt(v) -> str:
@@ -317,13 +538,13 @@ def _fmt(v) -> str:
     return repr(v) if isinstance(v, float) else str(v)
 
 
-def _quality_kind(res) -> str | None:
-    code = res.get("code") or {}
-    for c in _codings(code):
+def _quality_kind(ctx: _Ctx, res, where: str) -> str | None:
+    code, cw = _concept(ctx, res, "code", where)
+    for kw, c in _codings(ctx, code, cw):
         if c.get("system") == QUALITY_SYSTEM and c.get("code") in ("haemolysis", "lipaemia",
                                                                     "icterus"):
             return c["code"]
-    for t in _texts(code):
+    for t in _texts(ctx, code, cw):
         for kind, rx in _QUALITY:
             if rx.search(t) and ("index" in t.lower() or "indices" in t.lower()
                                  or len(t.split()) == 1):
@@ -335,12 +556,17 @@ def _analyte_name(res, ctx, where):
     """Analyte name as reported (a name bayesbase.units resolves), or None with a problem."""
     from . import units
 
-    code = res.get("code")
-    if not isinstance(code, dict):
-        ctx.add(f"{where}.code", "Observation has no code")
+    code, cw = _concept(ctx, res, "code", where)
+    if code is None:
+        if res.get("code") is None:
+            ctx.add(cw, "Observation has no code")
         return None
-    loinc_codes = [str(c.get("code")) for c in _codings(code)
-                   if str(c.get("system", "")).rstrip("/") == LOINC and c.get("code")]
+    loinc_codes = []
+    for kw, c in _codings(ctx, code, cw):
+        system = ctx.text(c, "system", kw) or ""
+        lc = ctx.text(c, "code", kw)
+        if system.rstrip("/") == LOINC and lc:
+            loinc_codes.append(lc.strip())
     for lc in loinc_codes:
         if lc in LOINC_TO_ANALYTE:
             return LOINC_TO_ANALYTE[lc]
@@ -348,24 +574,27 @@ def _analyte_name(res, ctx, where):
     for lc in loinc_codes:
         if lc in registry:
             return registry[lc]
-    texts = _texts(code)
+    shown = f" (LOINC {', '.join(_show(c, 24) for c in loinc_codes)})" if loinc_codes else ""
+    texts = _texts(ctx, code, cw)
+    first_error = None
     for t in texts:
-        try:
-            units.resolve_analyte(t)
-        except KeyError:
-            continue
-        return t
+        if t not in ctx.analyte_errors:  # one look-up per distinct name (suggestions are slow)
+            try:
+                units.resolve_analyte(t)
+                ctx.analyte_errors[t] = None
+            except KeyError as exc:
+                ctx.analyte_errors[t] = exc
+        if ctx.analyte_errors[t] is None:
+            return t
+        first_error = first_error or ctx.analyte_errors[t]
+    if ctx.has_under(cw):
+        return None
     if texts:
-        try:
-            units.resolve_analyte(texts[0])
-        except KeyError as exc:
-            hint = getattr(exc, "hint", None)
-            ctx.add(f"{where}.code", f"unknown analyte '{texts[0]}'"
-                    + (f" (LOINC {', '.join(loinc_codes)})" if loinc_codes else ""), hint)
-            return None
-    ctx.add(f"{where}.code", "Observation code is not recognised"
-            + (f" (LOINC {', '.join(loinc_codes)})" if loinc_codes else "")
-            + " and has no text", "give a LOINC code the project knows or code.text")
+        hint = getattr(first_error, "hint", None)
+        ctx.add(cw, f"unknown analyte {_show(texts[0])}{shown}", hint)
+        return None
+    ctx.add(cw, f"Observation code is not recognised{shown} and has no text",
+            "give a LOINC code the project knows or code.text")
     return None
 
 
@@ -390,33 +619,75 @@ def _registry_loinc() -> dict:
     return _REG_LOINC
 
 
+#: Replicate numbers accepted (a sanity bound of the project: a 32-bit positive integer).
+_MAX_REPLICATE = 2 ** 31 - 1
+
+
+def _replicate(ctx: _Ctx, res, where: str) -> int | None:
+    ext, ew = _ext(ctx, res, REPLICATE_EXTENSION, where, "replicate")
+    if ext is None:
+        return None
+    v = ext.get("valueInteger")
+    if isinstance(v, int) and not isinstance(v, bool) and 1 <= v <= _MAX_REPLICATE:
+        return v
+    ctx.add(f"{ew}.valueInteger", f"replicate number {_show(v)} is not a positive integer",
+            f"number the replicates of one analyte on one specimen 1, 2, ... "
+            f"up to {_MAX_REPLICATE}")
+    return None
+
+
+def _quality_value(ctx: _Ctx, res, where: str, kind: str) -> float | None:
+    """The value of a sample-quality index Observation (valueQuantity.value, valueInteger or
+    valueString), finite; else None with a located problem."""
+    vq = ctx.obj(res, "valueQuantity", where)
+    for field, raw in ((f"{where}.valueQuantity.value", (vq or {}).get("value")),
+                       (f"{where}.valueInteger", res.get("valueInteger")),
+                       (f"{where}.valueString", res.get("valueString"))):
+        v = _number(raw)
+        if v is None:
+            continue
+        if not math.isfinite(v):
+            ctx.add(field, f"{kind} index {_show(raw)} is out of range: not a finite number")
+            return None
+        return v
+    ctx.add(f"{where}.value[x]", f"{kind} index has no numeric value")
+    return None
+
+
 def _parse(bundle, ctx: _Ctx):
     """Bundle dict -> (rows, paths) with problems collected in ctx."""
     from . import units
 
     if not isinstance(bundle, dict) or bundle.get("resourceType") != "Bundle":
-        rt = bundle.get("resourceType") if isinstance(bundle, dict) else type(bundle).__name__
-        ctx.add("resourceType", f"not a FHIR Bundle (resourceType is {rt!r})",
+        what = (_show(bundle.get("resourceType")) if isinstance(bundle, dict)
+                else f"absent: the JSON is {_jtype(bundle)}")
+        ctx.add("resourceType", f"not a FHIR Bundle (resourceType is {what})",
                 "export the results as a Bundle of Observation and Patient resources")
         return [], []
-    entries = bundle.get("entry") or []
-    if not isinstance(entries, list):
-        ctx.add("Bundle.entry", "Bundle.entry must be a list")
+    entries = bundle.get("entry")
+    if entries is not None and not isinstance(entries, list):
+        ctx.add("Bundle.entry", f"Bundle.entry must be a JSON array, not {_jtype(entries)}")
         return [], []
     refs: dict[str, tuple[str, int, dict]] = {}
     observations, patients, specimens = [], {}, {}
-    for i, entry in enumerate(entries):
+    for i, entry in enumerate(entries or []):
         res = entry.get("resource") if isinstance(entry, dict) else None
         if not isinstance(res, dict):
             ctx.add(f"Bundle.entry[{i}]", "entry has no resource")
             continue
         rt = res.get("resourceType")
-        where = f"Bundle.entry[{i}].resource({rt}/{res.get('id', '?')})"
+        where = f"Bundle.entry[{i}].resource({_pathpart(rt)}/{_pathpart(res.get('id', '?'))})"
+        if not isinstance(rt, str):
+            ctx.add(f"{where}.resourceType",
+                    f"resourceType must be a JSON string, not {_jtype(rt)}")
+            continue
         keys = []
-        if entry.get("fullUrl"):
-            keys.append(str(entry["fullUrl"]))
-        if res.get("id"):
-            keys.append(f"{rt}/{res['id']}")
+        full = ctx.text(entry, "fullUrl", f"Bundle.entry[{i}]")
+        if full:
+            keys.append(full)
+        rid = ctx.text(res, "id", where, integer_ok=True)
+        if rid:
+            keys.append(f"{rt}/{rid}")
         for k in keys:
             refs[k] = (rt, i, res)
         if rt == "Observation":
@@ -424,139 +695,140 @@ def _parse(bundle, ctx: _Ctx):
         elif rt == "Patient":
             patients[i] = _patient(res, ctx, where)
         elif rt == "Specimen":
-            specimens[i] = res
+            specimens[i] = _specimen(res, ctx, where)
     if not observations:
         ctx.add("Bundle.entry", "the Bundle holds no Observation resources",
                 "each result must be an Observation")
         return [], []
 
-    def resolve(ref_obj, want):
-        if not isinstance(ref_obj, dict) or not ref_obj.get("reference"):
-            return None
-        for k in _ref_keys(str(ref_obj["reference"])):
+    def resolve(ref_obj, want, ref_where):
+        ref = ctx.text(ref_obj, "reference", ref_where)
+        if not ref:
+            return None, None
+        for k in _ref_keys(ref):
             hit = refs.get(k)
             if hit and hit[0] == want:
-                return hit
-        return None
+                return hit, ref
+        return None, ref
 
     rows, paths, quality = [], [], {}
     for i, where, res in observations:
-        status = str(res.get("status") or "").lower()
+        status = (ctx.text(res, "status", where) or "").lower()
         if status in _SKIP_STATUS:
             continue
         if status and status not in _READ_STATUS:
-            ctx.add(f"{where}.status", f"unknown status '{status}'",
+            ctx.add(f"{where}.status", f"unknown status {_show(status)}",
                     "final, amended, corrected, preliminary are read; entered-in-error, "
                     "cancelled are skipped")
             continue
-        subj = res.get("subject")
-        hit = resolve(subj, "Patient")
+        ref_where = f"{where}.subject"
+        subj = ctx.obj(res, "subject", where)
+        hit, ref = resolve(subj, "Patient", ref_where)
         if hit is None:
-            ref = subj.get("reference") if isinstance(subj, dict) else None
-            ctx.add(f"{where}.subject",
-                    f"subject {ref!r} is not a Patient in this Bundle" if ref else
+            ctx.add(ref_where,
+                    f"subject {_show(ref)} is not a Patient in this Bundle" if ref else
                     "Observation has no subject", "include the Patient resource in the Bundle")
             continue
         pat = patients.get(hit[1])
         if pat is None or pat["id"] is None:
             continue
-        spec_hit = resolve(res.get("specimen"), "Specimen")
-        spec_res = spec_hit[2] if spec_hit else None
-        when = res.get("effectiveDateTime")
-        if _time(when) is None and isinstance(res.get("effectivePeriod"), dict):
-            when = res["effectivePeriod"].get("start")
-        if _time(when) is None and spec_res is not None:
-            when = (spec_res.get("collection") or {}).get("collectedDateTime")
+        ref_where = f"{where}.specimen"
+        spec_obj = ctx.obj(res, "specimen", where)
+        spec_hit, spec_ref = resolve(spec_obj, "Specimen", ref_where)
+        spec = specimens.get(spec_hit[1]) if spec_hit else None
+        when = ctx.text(res, "effectiveDateTime", where)
+        if _time(when) is None:
+            period = ctx.obj(res, "effectivePeriod", where)
+            if period is not None:
+                when = ctx.text(period, "start", f"{where}.effectivePeriod")
+        if _time(when) is None and spec is not None:
+            when = spec["collected"]
         when = when.strip() if _time(when) is not None else None
         if when is None:
             bad = res.get("effectiveDateTime")
             ctx.add(f"{where}.effectiveDateTime",
-                    f"collection time {bad!r} is not a FHIR dateTime" if bad else
+                    f"collection time {_show(bad)} is not a FHIR dateTime" if bad else
                     "Observation has no effectiveDateTime (collection time)")
             continue
-        if spec_res is not None:
-            specimen = _first_identifier(spec_res) or str(spec_res.get("id"))
-        elif isinstance(res.get("specimen"), dict) and res["specimen"].get("reference"):
-            specimen = _ref_keys(str(res["specimen"]["reference"]))[-1].split("/")[-1]
-        elif isinstance(res.get("specimen"), dict) and res["specimen"].get("display"):
-            specimen = str(res["specimen"]["display"])
+        if spec is not None and spec["id"]:
+            specimen = spec["id"]
+        elif spec_ref:
+            specimen = _ref_keys(spec_ref)[-1].split("/")[-1]
+        elif spec_obj is not None and ctx.text(spec_obj, "display", ref_where):
+            specimen = ctx.text(spec_obj, "display", ref_where)
         else:
-            specimen = f"{pat['id']}|{res.get('effectiveDateTime') or when}"
-        qkind = _quality_kind(res)
+            specimen = f"{pat['id']}|{ctx.text(res, 'effectiveDateTime', where) or when}"
+        qkind = _quality_kind(ctx, res, where)
         if qkind is not None:
-            vq = res.get("valueQuantity") if isinstance(res.get("valueQuantity"), dict) else {}
-            v = _number(vq.get("value"))
-            if v is None:
-                v = _number(res.get("valueInteger"))
-            if v is None:
-                v = _number(res.get("valueString"))
-            if v is None:
-                ctx.add(f"{where}.value[x]", f"{qkind} index has no numeric value")
-                continue
-            quality[(pat["id"], specimen, qkind)] = v
+            v = _quality_value(ctx, res, where, qkind)
+            if v is not None:
+                quality[(pat["id"], specimen, qkind)] = v
             continue
         name = _analyte_name(res, ctx, where)
-        vq = res.get("valueQuantity")
-        if not isinstance(vq, dict):
-            if res.get("dataAbsentReason") is not None:
+        vq = ctx.obj(res, "valueQuantity", where)
+        vw = f"{where}.valueQuantity"
+        if vq is None:
+            if res.get("dataAbsentReason") is not None or res.get("valueQuantity") is not None:
                 continue
             other = [k for k in res if k.startswith("value")]
-            ctx.add(f"{where}.valueQuantity",
-                    "Observation has no valueQuantity" + (f" (it has {other[0]})" if other else ""),
+            ctx.add(vw, "Observation has no valueQuantity"
+                    + (f" (it has {_show(other[0])})" if other else ""),
                     "a quantitative result needs valueQuantity {value, unit, system, code}")
             continue
         value = vq.get("value")
-        if _number(value) is None or isinstance(value, str):
-            ctx.add(f"{where}.valueQuantity.value", f"value {value!r} is not a number")
+        number = _as_float(value)
+        if number is None:
+            ctx.add(f"{vw}.value", "valueQuantity has no value" if value is None else
+                    f"value {_show(value)} is not a number", "FHIR JSON writes it as a number")
+            continue
+        if not math.isfinite(number):
+            ctx.add(f"{vw}.value", f"value {_show(value)} is out of range: not a finite number",
+                    "a result must be a finite number no larger than about 1.8e308, the limit "
+                    "of double precision")
             continue
         comparator = vq.get("comparator")
-        if comparator is not None and comparator not in _COMPARATOR:
-            ctx.add(f"{where}.valueQuantity.comparator", f"unknown comparator {comparator!r}",
+        if comparator is not None and not (isinstance(comparator, str)
+                                           and comparator in _COMPARATOR):
+            ctx.add(f"{vw}.comparator", f"unknown comparator {_show(comparator)}",
                     "use <, <=, >= or >")
             continue
         system = vq.get("system")
-        code = vq.get("code")
+        code = ctx.text(vq, "code", vw)
         unit_field = "code"
-        if code in (None, "") or (system not in (None, UCUM)):
-            code, unit_field = vq.get("unit"), "unit"
-        if code in (None, ""):
-            ctx.add(f"{where}.valueQuantity.code", "valueQuantity has no UCUM code or unit")
+        if code is None or (system not in (None, UCUM)):
+            code, unit_field = ctx.text(vq, "unit", vw), "unit"
+        if code is None:
+            ctx.add(f"{vw}.code", "valueQuantity has no UCUM code or unit")
             continue
         if name is None:
             continue
         try:
-            units.conversion_factor(name, str(code), reported_name=name)
+            units.conversion_factor(name, code, reported_name=name)
         except KeyError as exc:
             ctx.add(f"{where}.code", str(exc))
             continue
         except ValueError as exc:
             hint = getattr(exc, "hint", None)
             message = getattr(exc, "message", str(exc))
-            ctx.add(f"{where}.valueQuantity.{unit_field}",
-                    f"UCUM code {code!r} is not a valid unit for {name}: {message}", hint)
+            ctx.add(f"{vw}.{unit_field}",
+                    f"UCUM code {_show(code)} is not a valid unit for {name}: {message}", hint)
             continue
         method = None
-        m = res.get("method")
-        if _texts(m):
-            method = _texts(m)[0]
-        elif isinstance(res.get("device"), dict) and res["device"].get("display"):
-            method = str(res["device"]["display"])
-        rep_ext = _ext(res, REPLICATE_EXTENSION)
-        replicate = rep_ext.get("valueInteger") if rep_ext else None
-        fasted, state = None, None
-        if spec_res is not None:
-            coll = spec_res.get("collection") or {}
-            for c in _codings(coll.get("fastingStatusCodeableConcept")):
-                fasted = {"F": "yes", "NF": "no"}.get(str(c.get("code")).upper(), fasted)
-            se = _ext(spec_res, STATE_EXTENSION)
-            if se is not None:
-                state = se.get("valueCode") or se.get("valueString")
+        m, mw = _concept(ctx, res, "method", where)
+        device = ctx.obj(res, "device", where)
+        if _texts(ctx, m, mw):
+            method = _texts(ctx, m, mw)[0]
+        elif device is not None and ctx.text(device, "display", f"{where}.device"):
+            method = ctx.text(device, "display", f"{where}.device")
+        replicate = _replicate(ctx, res, where)
         rows.append({
             "patient": pat["id"], "species": pat["species"], "breed": pat["breed"],
             "sex": pat["sex"], "birth_date": pat["birth_date"], "specimen": specimen,
             "collected_at": when, "analyte": name,
-            "value": (comparator or "") + _fmt(value), "unit": str(code), "method": method,
-            "replicate": replicate, "fasted": fasted, "state": state or "",
+            "value": (comparator or "") + _fmt(value), "unit": code, "method": method,
+            "replicate": replicate,
+            "fasted": spec["fasted"] if spec else None,
+            "state": (spec["state"] if spec else None) or "",
         })
         paths.append(where)
     # replicate numbering, sample-quality indices
