@@ -365,7 +365,7 @@ def test_import_rules_inside_the_package():
 
 
 def test_bench_interval_returns_timings():
-    from bayesbase.interval import bench_interval
+    from bayesbase.bench.interval import bench_interval
 
     res = bench_interval(n_animals=130, n_analytes=2, n_boot=200)
     assert res["animals"] == 130 and all(v > 0 for k, v in res.items() if k.startswith("seconds"))

@@ -122,6 +122,7 @@ PLAN = (
     ("assess_store", "bench.core", "bench_assess_store", {"n_patients": 1_000}),
     ("compare", "bench.research", "bench_compare", {"animals": 100_000}),
     ("mcmc_panel", "bench.mcmc", "bench_mcmc_panel", {"draws": 200}),
+    ("interval", "bench.interval", "bench_interval", {"n_animals": 130, "n_boot": 300}),
 )
 
 

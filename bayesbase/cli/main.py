@@ -8,11 +8,11 @@ import sys
 
 from .. import __version__
 from ..constants import CAUTIONS
-from . import priors_cmd, research_cmds, results, store_cmds
+from . import jobs, priors_cmd, research_cmds, results, store_cmds
 from .common import err
 
 #: groups of commands in the order `bayesbase --help` lists them
-GROUPS = (results, priors_cmd, store_cmds, research_cmds)
+GROUPS = (results, priors_cmd, store_cmds, jobs, research_cmds)
 
 
 def build_parser() -> argparse.ArgumentParser:

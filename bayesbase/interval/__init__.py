@@ -6,14 +6,15 @@ keep_outliers=False, seed=0)`` returns an :class:`~bayesbase.interval.core.Inter
 
 Modules: ``stats`` (numpy/scipy kernels), ``core`` (the pipeline; pandas, no plotting), ``pack``
 (pack fragment TOML), ``report`` (HTML; the only module importing matplotlib), ``outputs``
-(all-or-nothing file writing), ``cli`` (``add_parser``/``run``), ``bench`` (``bench_interval``).
+(all-or-nothing file writing), ``cli`` (``add_parser``/``run``); its benchmark is
+:func:`bayesbase.bench.interval.bench_interval`.
 
 The package import is light (nothing below is imported until used) so that the command line's
 ``--help`` stays fast.
 """
 from __future__ import annotations
 
-__all__ = ["estimate", "bench_interval", "IntervalResult", "IntervalError"]
+__all__ = ["estimate", "IntervalResult", "IntervalError"]
 
 
 def __getattr__(name):  # lazy exports
@@ -21,8 +22,4 @@ def __getattr__(name):  # lazy exports
         from . import core
 
         return getattr(core, name)
-    if name == "bench_interval":
-        from .bench import bench_interval
-
-        return bench_interval
     raise AttributeError(name)

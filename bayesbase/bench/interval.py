@@ -38,7 +38,7 @@ def bench_interval(n_animals: int = 400, n_analytes: int = 12, n_boot: int = 100
     """Time :func:`bayesbase.interval.estimate` on an invented sample (no partition, and by breed:
     groups of about 133 animals use the nonparametric method; the 40-119 path is timed on a
     subsample of 80 animals, where every limit needs a bootstrap)."""
-    from .core import estimate
+    from ..interval.core import estimate
 
     frame = _frame(n_animals, n_analytes, seed)
     t = time.perf_counter()

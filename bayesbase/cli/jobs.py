@@ -1,0 +1,17 @@
+"""Commands of the research and laboratory jobs, each defined in its own package with
+``add_parser(sub)`` and ``run(args)``: ``interval`` (population reference interval)."""
+from __future__ import annotations
+
+#: (command, module defining add_parser and run); the modules import nothing heavy at load
+JOBS = (
+    ("interval", "bayesbase.interval.cli"),
+)
+
+
+def add_parsers(sub) -> None:
+    import importlib
+
+    for command, module in JOBS:
+        mod = importlib.import_module(module)
+        mod.add_parser(sub)
+        sub.choices[command].set_defaults(run=mod.run)
