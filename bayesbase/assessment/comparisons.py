@@ -1,0 +1,73 @@
+"""Stage 8: the classical comparisons beside the model, from :mod:`bayesbase.classical`:
+classical and log-normal RCV against the last baseline and the baseline mean, the probability
+of a significant change, the model-2 personal interval, Harris's index of individuality."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .. import classical
+from .cases import CaseBatch
+
+__all__ = ["classical_cvs", "model2_intervals", "classical_comparisons"]
+
+
+def classical_cvs(b: CaseBatch) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(CVA, CVI, CVG) fractions per case, from the pack."""
+    cva = np.array([float(p.cva) for p in b.prior])
+    cvg = np.array([float(p.cvg) for p in b.prior])
+    return cva, b.scalars["cvi"], cvg
+
+
+def model2_intervals(b: CaseBatch, coverage: float) -> tuple[np.ndarray, np.ndarray]:
+    """Model-2 interval of every case (:func:`bayesbase.classical.model2_interval` over the
+    baseline specimens; NaN without a baseline)."""
+    cva, cvi, _ = classical_cvs(b)
+    lo, hi = np.full(len(b), np.nan), np.full(len(b), np.nan)
+    for i in np.flatnonzero(b.baselines.n > 0):
+        values = np.exp(b.baselines.y[i, : b.baselines.n[i]])
+        lo[i], hi[i] = classical.model2_interval(values, cva[i], cvi[i], coverage=coverage)
+    return lo, hi
+
+
+def _tri(mask, has_baseline) -> pd.arrays.BooleanArray:
+    """True/False where a baseline exists, missing elsewhere."""
+    return pd.arrays.BooleanArray(np.asarray(mask, dtype=bool), ~np.asarray(has_baseline, dtype=bool))
+
+
+def _changes(b: CaseBatch):
+    """Relative change of the assessed result against the last baseline and the baseline mean
+    (geometric), NaN without a baseline."""
+    n, y = b.baselines.n, b.baselines.y
+    has_b = n > 0
+    last_idx = np.maximum(n - 1, 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        last = np.where(has_b, np.exp(y[np.arange(len(b)), last_idx]), np.nan)
+        gmean = np.where(has_b, np.exp(np.nansum(np.nan_to_num(y), axis=1) / np.maximum(n, 1)), np.nan)
+        v_eff = np.exp(b.scalars["new_y"])
+        return v_eff / last - 1, v_eff / gmean - 1
+
+
+def classical_comparisons(b: CaseBatch, coverage: float) -> dict[str, object]:
+    """The classical columns of the results table, in table order."""
+    cva, cvi, cvg = classical_cvs(b)
+    rcv = classical.rcv_classical(cva, cvi)
+    up, down = classical.rcv_lognormal(cva, cvi)
+    has_b = b.baselines.n > 0
+    d_last, d_mean = _changes(b)
+    with np.errstate(invalid="ignore"):
+        p_sig = np.where(has_b, classical.prob_significant_change(d_mean, cva, cvi), np.nan)
+    m2lo, m2hi = model2_intervals(b, coverage)
+    return {
+        "rcv_classical_pct": 100 * rcv, "rcv_one_sided_pct": 100 * classical.rcv_classical(cva, cvi, one_sided=True),
+        "rcv_lognormal_up_pct": 100 * up, "rcv_lognormal_down_pct": 100 * down,
+        "change_vs_last_pct": 100 * d_last, "change_vs_mean_pct": 100 * d_mean,
+        "rcv_exceeded_last": _tri(np.abs(d_last) > rcv, has_b), "rcv_exceeded_mean": _tri(np.abs(d_mean) > rcv, has_b),
+        "lognormal_exceeded_last": _tri((d_last > up) | (d_last < down), has_b),
+        "lognormal_exceeded_mean": _tri((d_mean > up) | (d_mean < down), has_b),
+        "p_significant": p_sig, "model2_lower": m2lo, "model2_upper": m2hi,
+        "ii": classical.index_of_individuality(cvi, cvg),
+        "ii_total": classical.index_of_individuality(cvi, cvg, cva),
+        "n_for_setpoint": classical.n_for_setpoint(cva, cvi, 0.10),
+        "cva_high": classical.cva_too_high(cva, cvi),
+    }

@@ -1,0 +1,61 @@
+"""Stage 1: the options of one assessment, checked once (a frozen dataclass)."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+from ..constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DEFAULT_PRIOR_DRIFT, DEFAULT_QUAD_NODES
+from ..errors import BayesbaseError
+
+__all__ = ["Options", "ENGINES"]
+
+#: engines an assessment can run: the conjugate update with quadrature, or PyMC (same model)
+ENGINES = ("exact", "mcmc")
+
+
+@dataclass(frozen=True)
+class Options:
+    """Everything :func:`bayesbase.assessment.assess` takes besides the results (see its
+    docstring for the meaning of each field). Construction checks the values."""
+
+    pack: Any = None
+    priors: Any = None
+    engine: str = "exact"
+    coverage: float = DEFAULT_COVERAGE
+    prior_change: float | None = None
+    shift_scale: float | None = None
+    at: Any = None
+    patient: Any = None
+    keep_compromised: bool = False
+    method_bias: Mapping[str, tuple[float, float]] = field(default_factory=dict)
+    seed: int = 0
+    ci_prob: float = DEFAULT_CI_PROB
+    nodes: int = DEFAULT_QUAD_NODES
+    trend: bool = True
+    prior_drift: float | None = None
+    mcmc_options: Mapping[str, Any] = field(default_factory=dict)
+    now: Any = None
+
+    def __post_init__(self):
+        if self.engine not in ENGINES:
+            raise BayesbaseError(f"unknown engine '{self.engine}' (choose exact or mcmc)")
+        if not 0 < self.coverage < 1:
+            raise BayesbaseError("coverage must lie between 0 and 1")
+        if self.prior_change is not None and not 0 < self.prior_change < 1:
+            raise BayesbaseError("prior probability of change must lie between 0 and 1")
+        object.__setattr__(self, "method_bias", dict(self.method_bias or {}))
+        object.__setattr__(self, "mcmc_options", dict(self.mcmc_options or {}))
+
+    @property
+    def patients(self) -> set[str] | None:
+        """The patient ids asked for (None: every patient)."""
+        if self.patient is None:
+            return None
+        if isinstance(self.patient, (str, int)):
+            return {str(self.patient)}
+        return {str(p) for p in self.patient}
+
+    @property
+    def drift_prior(self) -> float:
+        """Prior probability of drift of the trend model."""
+        return self.prior_drift if self.prior_drift is not None else DEFAULT_PRIOR_DRIFT

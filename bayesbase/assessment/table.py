@@ -1,0 +1,102 @@
+"""Stage 10: assembly of the results table (one row per case) and its provenance attributes."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .. import __version__
+from .cases import CaseBatch
+from .engine_step import EngineResult
+from .options import Options
+from .roles import Targets
+
+__all__ = ["analyte_label", "results_table", "provenance"]
+
+
+def analyte_label(aid: str) -> str:
+    """Display name of an analyte; its id when the registry has no entry."""
+    try:
+        from ..units import label
+        return label(aid)
+    except Exception:  # registry missing an entry: fall back to the id
+        return aid
+
+
+def assessed_values(b: CaseBatch) -> np.ndarray:
+    """Assessed value per case: the reported value, or the geometric mean of replicates."""
+    single = np.array(b.assessed.col("value"), dtype=float)
+    return np.where(b.assessed.n_rep > 1, np.exp(b.assessed.log_mean), single)
+
+
+def _identity(b: CaseBatch, targets: Targets, values: np.ndarray) -> dict:
+    when = targets.collected_at.to_dict()
+    return {
+        "patient": b.patient, "species": b.species, "breed": b.breed, "analyte": b.analyte,
+        "label": [analyte_label(a) for a in b.analyte], "unit": [p.unit for p in b.prior],
+        "specimen": [targets.specimen[p] for p in b.patient],
+        "collected_at": [when[p] for p in b.patient],
+        "value": values, "reported_value": b.assessed.col("reported_value"),
+        "reported_unit": b.assessed.col("reported_unit"), "censor": b.censor,
+        "n_baseline": b.baselines.n.astype(int), "baseline_specimens": b.baselines.specimens,
+        "assumed_healthy": b.baselines.n_assumed,
+    }
+
+
+def _model(b: CaseBatch, res: dict, coverage: float) -> dict:
+    sp_mean = np.exp(res["theta_mean"])
+    mcrc_pct = np.array([100 * float(p.mcrc) if p.mcrc else np.nan for p in b.prior])
+    return {
+        "set_point_mean": sp_mean, "set_point_lower": np.exp(res["theta_lower"]),
+        "set_point_upper": np.exp(res["theta_upper"]),
+        "pi_lower": np.exp(res["pi_lower"]), "pi_upper": np.exp(res["pi_upper"]), "coverage": coverage,
+        "percentile": res["percentile"], "bayes_factor": res["bf10"], "p_change": res["p_change"],
+        "p_increase": res["p_increase"], "p_exceed_delta": res["p_exceed_delta"], "delta_pct": mcrc_pct,
+        "change_pct": 100 * (np.exp(b.scalars["new_y"]) / sp_mean - 1),
+    }
+
+
+def _population(b: CaseBatch, values: np.ndarray, res: dict, cva: np.ndarray, cvg: np.ndarray) -> dict:
+    pop_lo = np.array([float(p.ri_lower) for p in b.prior])
+    pop_hi = np.array([float(p.ri_upper) for p in b.prior])
+    return {
+        "pop_lower": pop_lo, "pop_upper": pop_hi, "outside_population": (values < pop_lo) | (values > pop_hi),
+        "cvi_pct": 100 * b.scalars["cvi"], "cvg_pct": 100 * cvg, "cva_pct": 100 * cva,
+        "cvi_post_pct": 100 * res["cvi_post_mean"],
+    }
+
+
+def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classical_cols: dict,
+                  cvs: tuple, quality: list, flags: list, opts: Options) -> pd.DataFrame:
+    """One row per case; column order is part of the contract (DEVELOPERS.md)."""
+    values = assessed_values(b)
+    cva, _, cvg = cvs
+    cols = _identity(b, targets, values)
+    cols.update(_model(b, engine.summary, opts.coverage))
+    cols.update(classical_cols)
+    cols.update(_population(b, values, engine.summary, cva, cvg))
+    cols.update({
+        "retest_group": [p.group for p in b.prior], "quality": quality,
+        "comparable": (~b.method.changed | b.method.corrected).tolist(), "flags": [list(f) for f in flags],
+        "engine": opts.engine, "converged": engine.converged, "pack": [pk.id for pk in b.pack],
+    })
+    return pd.DataFrame(cols)
+
+
+def provenance(b: CaseBatch, engine: EngineResult, opts: Options) -> tuple[dict, dict]:
+    """(packs used by id in case order, attrs stamped on the assessment)."""
+    packs_used = {pk.id: pk for pk in b.pack}
+    ids = sorted(packs_used)
+    attrs = {
+        "pack_id": ",".join(ids),
+        "pack_sha256": ",".join(packs_used[k].sha256 for k in ids),
+        "engine": opts.engine,
+        "seed": opts.seed,
+        "settings": engine.settings,
+        "version": __version__,
+        "coverage": opts.coverage,
+        "ci_prob": opts.ci_prob,
+        "prior_change": sorted(set(b.scalars["prior_change"].tolist())),
+        "prior_drift": opts.drift_prior,
+        "at": None if opts.at is None else str(opts.at),
+    }
+    return packs_used, attrs
