@@ -11,7 +11,7 @@ results.sqlite`` when ``XDG_DATA_HOME`` is set; else, on macOS and Windows, the 
 directory from ``platformdirs`` when it is installed; else ``~/.local/share/bayesbase/
 results.sqlite``.
 
-Tables (schema version 1)
+Tables (schema version 2)
 -------------------------
 ``patients``   one row per animal: ``id`` (as given), species, breed, sex, birth_date.
 ``owners``     owner identity, kept out of the analytical tables: one row per patient, filled
@@ -25,13 +25,19 @@ Tables (schema version 1)
                file); ``UNIQUE(specimen, analyte, replicate)``.
                ``method`` lives here rather than on ``specimens`` because the canonical frame
                carries it per result (two analysers may measure one specimen).
-``import_log`` one row per import: file, sha256, imported_at (UTC), rows_added, rows_skipped,
+``import_log`` one row per import: file (its name; blanked when a patient it touched is
+               forgotten), sha256, imported_at (UTC), rows_added, rows_skipped,
                rows_replaced. ``import_patients`` links an import to the patients it touched.
 ``replaced``   every stored value an import changed: entity (patient / specimen / result),
                its key, the field, old and new values, and the import id. A field that was
                empty and is filled by a later import is recorded here too (old value NULL).
 ``meta``       key/value pairs: the per-store random salt used for pseudonyms.
-``schema_version`` the version reached by the forward migrations in :data:`MIGRATIONS`.
+``schema_version`` the version reached by the forward migrations in :data:`MIGRATIONS`
+               (version 2 rewrites texts of missing values left by earlier versions to NULL).
+
+A missing optional attribute (breed, sex, birth date, method, fasting, sample-quality index,
+laboratory) is stored as SQL NULL, never as the text of a missing value ('NaT', 'nan', ...);
+a blank state is stored as ''.
 
 Indexes: ``specimens(patient, collected_at)``; ``results(specimen, analyte, replicate)`` (the
 UNIQUE index, whose leading column serves every lookup by specimen, so no second index on
@@ -41,7 +47,9 @@ Import rules
 ------------
 * One transaction per import (``BEGIN IMMEDIATE`` ... ``COMMIT``): every row is stored or none.
 * Input goes through :func:`bayesbase.data.validate` (unless it already is a canonical frame):
-  a :class:`~bayesbase.errors.ValidationError` lists every bad row and nothing is stored.
+  a :class:`~bayesbase.errors.ValidationError` lists every bad row and nothing is stored. The
+  store itself refuses a value (or a given sample-quality index) that is not a finite number,
+  naming the file, row and column, whatever way the frame arrived.
 * A row already stored with the same canonical content is skipped (re-importing a file adds 0
   rows: ``ImportSummary.nothing_new``).
 * A conflict (same specimen + analyte + replicate with a different canonical value, censoring,
@@ -50,13 +58,18 @@ Import rules
   :class:`ImportConflict` (a :class:`~bayesbase.errors.StoreError`) listing every conflict,
   unless ``replace=True``: then the new values overwrite the stored ones and the old and new
   values go to ``replaced``. An empty field in the new input never conflicts (the stored value
-  is kept); an empty stored field is filled from the new input.
+  is kept; missing compares equal to missing); an empty stored field is filled from the new
+  input.
 
 Concurrency
 -----------
 WAL journal (readers are not blocked by a writer), ``PRAGMA busy_timeout`` (30 s by default) so a
 second writer waits for the first instead of failing, ``synchronous=FULL`` (a committed import
-survives a crash of the process or of the machine), foreign keys on.
+survives a crash of the process or of the machine), foreign keys on. Opening a store is bounded
+by the busy timeout as a whole: switching a new file to WAL does not call SQLite's busy handler,
+so it is retried on SQLITE_BUSY until the timeout; the schema is created and migrated in one
+``BEGIN IMMEDIATE`` transaction (concurrent first imports create it once); an up-to-date store
+is only read when opened, so a reader never waits for a writer.
 
 Pseudonyms
 ----------
@@ -67,6 +80,16 @@ the store is created and kept in ``meta``; the same store always gives the same 
 store a different one, and the pseudonym cannot be reversed without the salt. Owner data are never
 exported; ``source_file`` / ``source_row`` are not exported; dates (collection, birth) are kept
 because the analysis needs them.
+
+Exports and forgetting
+----------------------
+CSV exports neutralise spreadsheet formulas (:func:`neutralise_formulas`, after the OWASP "CSV
+Injection" guidance): a text cell that begins with ``=``, ``+``, ``-``, ``@``, tab, carriage
+return or NUL gets a leading single quote; numbers stay numbers. :meth:`Store.forget` deletes
+with ``PRAGMA secure_delete = ON`` (set on every connection: deleted content is overwritten with
+zeros), blanks the file name of every import that touched the patient (a name may carry the id)
+and checkpoints and truncates the WAL, so the patient's ids and values are left in no byte of
+the database files.
 """
 from __future__ import annotations
 
@@ -74,6 +97,7 @@ import hashlib
 import hmac
 import math
 import os
+import re
 import sqlite3
 import sys
 import time
@@ -96,6 +120,9 @@ __all__ = [
     "patient_pseudonym",
     "specimen_pseudonym",
     "pseudonymise_frame",
+    "neutralise_formulas",
+    "FORMULA_PREFIXES",
+    "MISSING_TEXTS",
     "bench_import",
     "bench_history",
 ]
@@ -116,6 +143,17 @@ _HIL = ("haemolysis", "lipaemia", "icterus")
 #: unit conversion; modelling choice of this project).
 VALUE_RTOL = 1e-9
 DEFAULT_TIMEOUT_S = 30.0
+
+#: Texts that pandas / Python print for a missing value; never stored (schema version 2
+#: rewrites them to NULL in stores written by earlier versions).
+MISSING_TEXTS = ("NaT", "nan", "NaN", "None", "<NA>")
+_MISSING_TEXTS_SQL = ", ".join(f"'{t}'" for t in MISSING_TEXTS)
+#: First characters that make a spreadsheet program read a text cell as a formula: the OWASP
+#: "CSV Injection" guidance (common practice) lists =, +, -, @, tab and carriage return; OWASP
+#: ASVS 5.0 (requirement 1.2.10) adds NUL. Exported text cells starting with one of them get a
+#: leading single quote (:func:`neutralise_formulas`).
+FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r", "\0")
+_PLAIN_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
 
 # ---------------------------------------------------------------------------------------------
 # schema: forward migrations, applied in order; never edit a released step, append a new one.
@@ -186,6 +224,19 @@ MIGRATIONS: list[list[str]] = [
             old_value TEXT,
             new_value TEXT)""",
         """CREATE INDEX replaced_patient ON replaced (patient)""",
+    ],
+    [  # version 2: a missing value is SQL NULL. Earlier versions could store the text pandas
+        # or Python print for a missing value ('NaT' for a missing birth date, ...), which then
+        # never compared equal to itself; rewrite those texts (and '' in optional text fields).
+        *(f"UPDATE {table} SET {col} = NULL WHERE {col} IN ({_MISSING_TEXTS_SQL}, '')"
+          for table, col in (("patients", "breed"), ("patients", "sex"),
+                             ("patients", "birth_date"), ("specimens", "laboratory"),
+                             ("results", "method"), ("results", "source_file"))),
+        *(f"UPDATE specimens SET {col} = NULL WHERE {col} IN ({_MISSING_TEXTS_SQL})"
+          for col in ("fasted", "haemolysis", "lipaemia", "icterus")),
+        f"UPDATE specimens SET state = '' WHERE state IN ({_MISSING_TEXTS_SQL})",
+        f"UPDATE replaced SET old_value = NULL WHERE old_value IN ({_MISSING_TEXTS_SQL})",
+        f"UPDATE replaced SET new_value = NULL WHERE new_value IN ({_MISSING_TEXTS_SQL})",
     ],
 ]
 SCHEMA_VERSION = len(MIGRATIONS)
@@ -271,13 +322,16 @@ class ImportSummary:
 
 
 class Removed(int):
-    """Total rows removed by :meth:`Store.forget`; ``by_table`` gives the count per table."""
+    """Total rows removed by :meth:`Store.forget`; ``by_table`` gives the count per table;
+    ``wal_cleared`` tells whether the write-ahead log was checkpointed and truncated."""
 
     by_table: dict[str, int]
+    wal_cleared: bool
 
     def __new__(cls, by_table: dict[str, int]):
         obj = super().__new__(cls, sum(by_table.values()))
         obj.by_table = dict(by_table)
+        obj.wal_cleared = False
         return obj
 
 
@@ -307,20 +361,27 @@ def _py(v):
 
 
 def _col(frame, name, kind="str"):
-    """Column as a Python list ready for executemany (missing -> None); vectorised enough for
-    a million rows."""
+    """Column as a Python list ready for executemany; every missing value (None, NaN, NaT,
+    pd.NA, whatever the dtype) becomes None, i.e. SQL NULL, never the text of a missing value;
+    vectorised enough for a million rows."""
     s = frame[name]
     if kind == "float":
         return [None if x != x else x
                 for x in s.to_numpy(dtype="float64", na_value=math.nan).tolist()]
+    missing = s.isna().to_numpy(dtype=bool)
+    arr = s.to_numpy(dtype=object)
     if kind == "time":
-        return [None if x is None else _iso(x) for x in s.to_numpy(dtype=object, na_value=None)]
-    arr = s.to_numpy(dtype=object, na_value=None)
+        return [None if m else _iso(x) for x, m in zip(arr, missing)]
     if kind == "int":
-        return [None if x is None else int(x) for x in arr]
+        return [None if m else int(x) for x, m in zip(arr, missing)]
     if kind == "bool":
-        return [None if x is None else int(bool(x)) for x in arr]
-    return [None if x is None else (x if type(x) is str else str(x)) for x in arr]
+        return [None if m else int(bool(x)) for x, m in zip(arr, missing)]
+    return [None if m else (x if type(x) is str else str(x)) for x, m in zip(arr, missing)]
+
+
+def _blank_to_none(values: list) -> list:
+    """An empty optional text ('' as a file says "nothing") stored as NULL."""
+    return [None if v == "" else v for v in values]
 
 
 def _iso(ts) -> str:
@@ -394,6 +455,32 @@ def pseudonymise_frame(frame, salt: bytes):
     return out
 
 
+def neutralise_formulas(frame):
+    """Copy of a frame safe to open in a spreadsheet program: every text cell that begins with
+    a formula character (:data:`FORMULA_PREFIXES`, from the OWASP "CSV Injection" guidance) gets
+    a leading single quote, as that guidance recommends. Numeric columns are untouched, and so
+    is a text cell that is a plain decimal number (``-5``, ``+2.5e3``: a spreadsheet reads it as
+    that number, not as a formula). Use it for every CSV or XLSX export."""
+    import pandas as pd
+
+    out = frame.copy()
+    for name in out.columns:
+        col = out[name]
+        if not (isinstance(col.dtype, pd.StringDtype) or col.dtype == object):
+            continue
+        if isinstance(col.dtype, pd.StringDtype):
+            text = col
+        else:  # object column: only its str cells are text
+            text = col.where(col.map(lambda x: isinstance(x, str)), None).astype("string")
+        mask = (text.str.startswith(FORMULA_PREFIXES).fillna(False)
+                & ~text.str.fullmatch(_PLAIN_NUMBER).fillna(False)).to_numpy(dtype=bool)
+        if mask.any():
+            values = col.to_numpy(dtype=object, copy=True)
+            values[mask] = ["'" + v for v in values[mask]]
+            out[name] = pd.array(values, dtype=col.dtype) if col.dtype != object else values
+    return out
+
+
 # ---------------------------------------------------------------------------------------------
 # canonical frame helpers
 # ---------------------------------------------------------------------------------------------
@@ -436,6 +523,36 @@ def _coerce_canonical(frame):
     df = pd.DataFrame(out)
     df = df.sort_values(_SORT, kind="mergesort").reset_index(drop=True)
     return df
+
+
+def _non_finite_problems(canon, source: str) -> list[Problem]:
+    """Values the store refuses to hold: a measured value that is not a finite number, or a
+    sample-quality index that is given but not finite (inf or NaN; IEEE 754). The validator
+    refuses implausible values first; this guard is defence in depth for frames that reach the
+    store by another way."""
+    import numpy as np
+
+    problems: list[Problem] = []
+    rows = canon["source_row"] if "source_row" in canon else None
+    for col in ("value", *_HIL):
+        if col not in canon:
+            continue
+        try:
+            v = canon[col].to_numpy(dtype="float64", na_value=math.nan)
+        except (TypeError, ValueError):
+            continue  # not numbers at all: the insert's own checks report it
+        bad = ~np.isfinite(v)
+        if col != "value":
+            bad &= ~np.isnan(v)  # an index not given is missing, not bad
+        for i in np.flatnonzero(bad)[:200]:
+            r = None if rows is None or _is_missing(rows.iloc[i]) else int(rows.iloc[i])
+            what = f"{col} {v[i]!r}"
+            if col == "value" and "reported_value" in canon:
+                rv, ru = canon["reported_value"].iloc[i], canon["reported_unit"].iloc[i]
+                what = f"value {rv} {ru} gives {v[i]!r} {canon['unit'].iloc[i]}"
+            problems.append(Problem(source, r, col, f"{what}: not a finite number",
+                                    "the store holds finite numbers only; correct the value"))
+    return problems
 
 
 def _is_canonical(frame) -> bool:
@@ -499,19 +616,39 @@ class Store:
         self.path.parent.mkdir(parents=True, exist_ok=True)
         self._conn = None
         self._salt_cache: bytes | None = None
+        self.timeout = float(timeout)
+        # opening is bounded by the busy timeout as a whole, however many steps must wait
+        deadline = time.monotonic() + self.timeout
         try:
             self._conn = sqlite3.connect(str(self.path), timeout=timeout, isolation_level=None,
                                          check_same_thread=False)
             c = self._conn
             c.execute(f"PRAGMA busy_timeout = {int(timeout * 1000)}")
-            mode = c.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+            # Switching a new file to WAL takes an exclusive lock without calling the busy
+            # handler: when another process is creating the same store at that moment it fails
+            # at once with SQLITE_BUSY, so it is retried here until the busy timeout.
+            mode = _retry_busy(lambda: c.execute("PRAGMA journal_mode = WAL").fetchone()[0],
+                               deadline)
             if str(mode).lower() != "wal":
                 raise StoreError(f"{self.path}: could not switch the database to WAL mode "
                                  f"(journal mode is {mode})")
             c.execute("PRAGMA foreign_keys = ON")
             c.execute("PRAGMA synchronous = FULL")
             c.execute("PRAGMA temp_store = MEMORY")
-            self._migrate()
+            # deleted content is overwritten with zeros (forget leaves no bytes behind); set
+            # here rather than relying on how this SQLite library was compiled
+            c.execute("PRAGMA secure_delete = ON")
+            if int(c.execute("PRAGMA secure_delete").fetchone()[0]) != 1:
+                raise StoreError(f"{self.path}: this SQLite library cannot turn on "
+                                 "secure_delete")
+            _retry_busy(self._migrate, deadline)
+        except sqlite3.OperationalError as exc:
+            self.close()
+            if _is_busy(exc):
+                raise StoreError(
+                    f"{self.path}: the store is busy: another process held a lock on it for "
+                    f"longer than the busy timeout ({self.timeout:g} s); try again") from exc
+            raise StoreError(f"{self.path}: not a usable bayesbase database ({exc})") from exc
         except sqlite3.DatabaseError as exc:
             self.close()
             raise StoreError(f"{self.path}: not a usable bayesbase database ({exc})") from exc
@@ -548,12 +685,20 @@ class Store:
         row = self.connection.execute("SELECT max(version) FROM schema_version").fetchone()
         return int(row[0] or 0)
 
-    def _migrate(self) -> None:
+    def _stored_version(self) -> int:
         c = self._conn
-        c.execute("CREATE TABLE IF NOT EXISTS schema_version ("
-                  "version INTEGER PRIMARY KEY, applied_at TEXT NOT NULL)")
-        current = int(c.execute("SELECT coalesce(max(version), 0) FROM schema_version")
-                      .fetchone()[0])
+        if c.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' "
+                     "AND name = 'schema_version'").fetchone() is None:
+            return 0
+        return int(c.execute("SELECT coalesce(max(version), 0) FROM schema_version")
+                   .fetchone()[0])
+
+    def _migrate(self) -> None:
+        """Bring the schema to :data:`SCHEMA_VERSION`. An up-to-date store is only read (a
+        reader takes no write lock); otherwise creation and every migration run in one
+        ``BEGIN IMMEDIATE`` transaction, so concurrent first opens create the store once."""
+        c = self._conn
+        current = self._stored_version()
         if current > SCHEMA_VERSION:
             raise StoreError(f"{self.path}: database schema version {current} is newer than this "
                              f"bayesbase understands ({SCHEMA_VERSION}); upgrade bayesbase")
@@ -561,8 +706,13 @@ class Store:
             return
         c.execute("BEGIN IMMEDIATE")
         try:
-            current = int(c.execute("SELECT coalesce(max(version), 0) FROM schema_version")
-                          .fetchone()[0])  # another process may have migrated meanwhile
+            c.execute("CREATE TABLE IF NOT EXISTS schema_version ("
+                      "version INTEGER PRIMARY KEY, applied_at TEXT NOT NULL)")
+            current = self._stored_version()  # another process may have migrated meanwhile
+            if current > SCHEMA_VERSION:
+                raise StoreError(f"{self.path}: database schema version {current} is newer "
+                                 f"than this bayesbase understands ({SCHEMA_VERSION}); upgrade "
+                                 "bayesbase")
             for version in range(current + 1, SCHEMA_VERSION + 1):
                 for step in MIGRATIONS[version - 1]:
                     c.execute(step)
@@ -570,7 +720,8 @@ class Store:
                           (version, _now_utc()))
             c.execute("COMMIT")
         except BaseException:
-            c.execute("ROLLBACK")
+            if c.in_transaction:
+                c.execute("ROLLBACK")
             raise
 
     # -- pseudonyms ---------------------------------------------------------------------------
@@ -630,7 +781,7 @@ class Store:
             raw = frame.drop(columns=[c for c in frame.columns if _norm(c) == "owner"])
             frame = data.validate(raw, source=source)
         canon = frame
-        problems = _internal_problems(canon, source)
+        problems = _non_finite_problems(canon, source) + _internal_problems(canon, source)
         if problems:
             raise ValidationError(problems)
         if sha256 is None:
@@ -667,8 +818,9 @@ class Store:
 
         # ---- patients ------------------------------------------------------------------------
         pat = canon.drop_duplicates("patient")[["patient", *_PATIENT_FIELDS]]
-        pat_rows = list(zip(_col(pat, "patient"), _col(pat, "species"), _col(pat, "breed"),
-                            _col(pat, "sex"), _col(pat, "birth_date", "time")))
+        pat_rows = list(zip(_col(pat, "patient"), _col(pat, "species"),
+                            _blank_to_none(_col(pat, "breed")), _blank_to_none(_col(pat, "sex")),
+                            _col(pat, "birth_date", "time")))
         c.execute("CREATE TEMP TABLE _tmp_patients (id TEXT PRIMARY KEY, species TEXT, "
                   "breed TEXT, sex TEXT, birth_date TEXT)")
         c.executemany("INSERT INTO _tmp_patients VALUES (?, ?, ?, ?, ?)", pat_rows)
@@ -711,7 +863,7 @@ class Store:
             _col(spec, "patient"), _col(spec, "specimen"), _col(spec, "collected_at", "time"),
             [s or "" for s in _col(spec, "state")], _col(spec, "fasted", "bool"),
             _col(spec, "haemolysis", "float"), _col(spec, "lipaemia", "float"),
-            _col(spec, "icterus", "float"), _col(spec, "laboratory")))
+            _col(spec, "icterus", "float"), _blank_to_none(_col(spec, "laboratory"))))
         c.execute("CREATE TEMP TABLE _tmp_specimens (patient TEXT, id TEXT, collected_at TEXT, "
                   "state TEXT, fasted INTEGER, haemolysis REAL, lipaemia REAL, icterus REAL, "
                   "laboratory TEXT, PRIMARY KEY (patient, id))")
@@ -737,6 +889,8 @@ class Store:
                     conflicts.append(Conflict("specimen", row[0], row[1], None, None, f, old, new))
                 if kind:
                     spec_updates.append((f, new, s[0]))
+                    if f == "state" and old == "":
+                        old = None  # a blank state is an empty field: logged as NULL
                     changes.append((s[10], "specimen", row[1], None, None, f, old, new))
         new_spec = [r for r in spec_rows if (r[0], r[1]) not in stored_spec]
 
@@ -760,7 +914,8 @@ class Store:
             c.executemany("INSERT INTO _tmp_results VALUES (?, ?, ?, ?, ?, ?, ?, ?)", zip(
                 range(len(old_part)), spk, _col(old_part, "analyte"),
                 _col(old_part, "replicate", "int"), _col(old_part, "value", "float"),
-                _col(old_part, "unit"), _col(old_part, "censor"), _col(old_part, "method")))
+                _col(old_part, "unit"), _col(old_part, "censor"),
+                _blank_to_none(_col(old_part, "method"))))
             join = ("FROM _tmp_results t JOIN results r ON r.specimen = t.specimen "
                     "AND r.analyte = t.analyte AND r.replicate = t.replicate")
             differ = c.execute(
@@ -836,7 +991,8 @@ class Store:
             tuples = zip(spks, _col(new_rows, "analyte"), _col(new_rows, "reported_value"),
                          _col(new_rows, "reported_unit"), _col(new_rows, "value", "float"),
                          _col(new_rows, "unit"), [x or "" for x in _col(new_rows, "censor")],
-                         _col(new_rows, "replicate", "int"), _col(new_rows, "method"),
+                         _col(new_rows, "replicate", "int"),
+                         _blank_to_none(_col(new_rows, "method")),
                          [import_id] * rows_added, _col(new_rows, "source_row", "int"),
                          [None if f == source else f for f in _col(new_rows, "source_file")])
             c.executemany(
@@ -855,7 +1011,7 @@ class Store:
                           "source_row = ?, source_file = ? WHERE pk = ?",
                           (str(row["reported_value"]), str(row["reported_unit"]),
                            float(row["value"]), str(row["unit"]), str(row["censor"] or ""),
-                           _py(row["method"]), import_id, _py(row["source_row"]),
+                           _py(row["method"]) or None, import_id, _py(row["source_row"]),
                            None if _py(row["source_file"]) == source else _py(row["source_file"]),
                            rpk))
                 ppk = pat_pk[str(row["patient"])]
@@ -866,7 +1022,8 @@ class Store:
                     changes.append((ppk, "result", str(row["specimen"]), str(row["analyte"]),
                                     int(row["replicate"]), f, o, nw))
             else:  # method filled on an otherwise identical row
-                c.execute("UPDATE results SET method = ? WHERE pk = ?", (_py(row["method"]), rpk))
+                c.execute("UPDATE results SET method = ? WHERE pk = ?",
+                          (_py(row["method"]) or None, rpk))
                 changes.append((pat_pk[str(row["patient"])], "result", str(row["specimen"]),
                                 str(row["analyte"]), int(row["replicate"]), "method", None,
                                 _py(row["method"])))
@@ -1008,11 +1165,13 @@ class Store:
         values as reported beside the canonical ones; reads back with
         :func:`bayesbase.data.load_results`) for one patient, or all when ``patient`` is None.
         Owner data are never written; with ``pseudonymise`` patient and specimen ids are replaced
-        by pseudonyms and ``source_file``/``source_row`` are blanked (module docstring)."""
+        by pseudonyms and ``source_file``/``source_row`` are blanked (module docstring). A text
+        cell that a spreadsheet would run as a formula gets a leading single quote
+        (:func:`neutralise_formulas`); numbers are written as numbers."""
         from . import data
 
         df = self._export_frame(patient, pseudonymise)
-        return data.to_tidy_csv(df, Path(path))
+        return data.to_tidy_csv(neutralise_formulas(df), Path(path))
 
     def export_fhir(self, patient: str | None, path, pseudonymise: bool = True) -> Path:
         """Write a FHIR R4 Bundle (type collection) for one patient (or all)."""
@@ -1025,8 +1184,15 @@ class Store:
     def forget(self, patient: str) -> Removed:
         """Remove everything stored under a patient: results, specimens, the patient row, owner
         rows, the `replaced` log rows about it, and its import links (an import log entry that no
-        longer links to any patient is removed too). Returns the total rows removed; the
-        returned int's ``by_table`` gives the count per table."""
+        longer links to any patient is removed too). The file name of every import that touched
+        the patient is blanked (a file name may carry the id or the animal's name); the other
+        patients' rows from such an import then show an empty ``source_file``.
+
+        Deleted content is overwritten with zeros (``secure_delete``) and the WAL is then
+        checkpointed and truncated, so the patient's ids and values are left in no byte of the
+        database files. Returns the total rows removed; the returned int's ``by_table`` gives the
+        count per table and ``wal_cleared`` is False when another connection kept the WAL from
+        being truncated (it is cleared at a later checkpoint)."""
         c = self.connection
         c.execute("BEGIN IMMEDIATE")
         try:
@@ -1058,12 +1224,19 @@ class Store:
                 "SELECT 1 FROM import_patients WHERE import = ? LIMIT 1", (i,)).fetchone() is None]
             c.executemany("DELETE FROM import_log WHERE id = ?", [(i,) for i in orphan])
             counts["import_log"] = len(orphan)
+            kept = [(i,) for i in imports if i not in set(orphan)]
+            c.executemany("UPDATE import_log SET file = '' WHERE id = ?", kept)
+            c.executemany("UPDATE results SET source_file = NULL WHERE import = ? "
+                          "AND source_file IS NOT NULL", kept)
             c.execute("COMMIT")
         except BaseException:
             if c.in_transaction:
                 c.execute("ROLLBACK")
             raise
-        return Removed(counts)
+        removed = Removed(counts)
+        busy = c.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()[0]
+        removed.wal_cleared = int(busy) == 0
+        return removed
 
     def integrity_check(self) -> str:
         """``PRAGMA integrity_check`` ('ok' when the file is sound)."""
@@ -1071,6 +1244,30 @@ class Store:
 
 
 # ---------------------------------------------------------------------------------------------
+def _is_busy(exc: BaseException) -> bool:
+    """True for SQLITE_BUSY / SQLITE_LOCKED (another connection holds a lock)."""
+    code = getattr(exc, "sqlite_errorcode", None)
+    if code is not None:
+        return (code & 0xFF) in (5, 6)  # SQLITE_BUSY, SQLITE_LOCKED (sqlite3.h)
+    text = str(exc).lower()
+    return "locked" in text or "busy" in text
+
+
+def _retry_busy(fn, deadline: float):
+    """Call ``fn`` until it does not fail with SQLITE_BUSY / SQLITE_LOCKED or the monotonic
+    ``deadline`` (the busy timeout) passes; waits 1 ms, doubling to at most 50 ms."""
+    wait = 0.001
+    while True:
+        try:
+            return fn()
+        except sqlite3.OperationalError as exc:
+            left = deadline - time.monotonic()
+            if not _is_busy(exc) or left <= 0:
+                raise
+            time.sleep(min(wait, left))
+            wait = min(wait * 2, 0.05)
+
+
 def _now_utc() -> str:
     return datetime.now(timezone.utc).replace(microsecond=0).isoformat()
 

@@ -43,6 +43,42 @@ def _without_source(frame):
     return frame.drop(columns=["source_file", "source_row"]).reset_index(drop=True)
 
 
+REQUIRED = ["patient", "species", "specimen", "collected_at", "analyte", "value", "unit"]
+
+
+def _variant(frame, variant):
+    """The frame as given ("full") or with every optional attribute missing ("bare": breed,
+    sex, birth_date, method, fasted, sample-quality indices missing, state blank)."""
+    if variant == "full":
+        return frame
+    n = len(frame)
+    out = frame.copy()
+    for c in ("breed", "sex", "method"):
+        out[c] = pd.array([None] * n, dtype=frame[c].dtype)
+    out["birth_date"] = pd.Series(pd.NaT, index=out.index, dtype="datetime64[ns]")
+    out["fasted"] = pd.array([None] * n, dtype="boolean")
+    for c in ("haemolysis", "lipaemia", "icterus"):
+        out[c] = np.nan
+    out["state"] = pd.array([""] * n, dtype=frame["state"].dtype)
+    return st._coerce_canonical(out)
+
+
+def _results_file(frame, path, variant):
+    """A tidy results file of the frame: every canonical column ("full"), or only the required
+    columns with values and units as reported ("bare": a file without any optional column)."""
+    if variant == "full":
+        return data.to_tidy_csv(frame, path)
+    out = pd.DataFrame({c: frame[c].astype(str) for c in REQUIRED[:5]})
+    out["collected_at"] = frame["collected_at"].dt.strftime("%Y-%m-%dT%H:%M:%S")
+    out["value"] = frame["reported_value"].astype(str)
+    out["unit"] = frame["reported_unit"].astype(str)
+    out.to_csv(path, index=False)
+    return path
+
+
+VARIANTS = pytest.mark.parametrize("variant", ["full", "bare"])
+
+
 # --------------------------------------------------------------------------------- schema
 def test_schema_pragmas_and_version(tmp_path):
     db = tmp_path / "s.sqlite"
@@ -60,8 +96,10 @@ def test_schema_pragmas_and_version(tmp_path):
         assert "specimens(patient,collected_at)" in idx["specimens_patient_time"].replace(" ", "")
         salt = c.execute("SELECT value FROM meta WHERE key='pseudonym_salt'").fetchone()[0]
         assert re.fullmatch(r"[0-9a-f]{64}", salt)
+        assert c.execute("PRAGMA secure_delete").fetchone()[0] == 1
     with Store(db) as s:  # reopening applies nothing twice
-        assert s.connection.execute("SELECT count(*) FROM schema_version").fetchone()[0] == 1
+        assert (s.connection.execute("SELECT count(*) FROM schema_version").fetchone()[0]
+                == st.SCHEMA_VERSION)
 
 
 def test_newer_schema_is_refused(tmp_path):
@@ -97,8 +135,9 @@ def test_default_location_rules(monkeypatch, tmp_path):
 
 
 # --------------------------------------------------------------------------------- imports
-def test_frame_round_trip_and_reimport(tmp_path):
-    frame = synthetic_canonical(3, 6, 5)
+@VARIANTS
+def test_frame_round_trip_and_reimport(tmp_path, variant):
+    frame = _variant(synthetic_canonical(3, 6, 5), variant)
     with Store(tmp_path / "s.sqlite") as s:
         first = s.import_frame(frame, "demo.csv", "a" * 64)
         assert (first.rows_added, first.rows_skipped, first.rows_replaced) == (90, 0, 0)
@@ -113,11 +152,12 @@ def test_frame_round_trip_and_reimport(tmp_path):
         pdt.assert_frame_equal(one, frame[frame["patient"] == "DEMO-0001"].reset_index(drop=True))
 
 
-def test_csv_round_trip_same_canonical_values(tmp_path):
+@VARIANTS
+def test_csv_round_trip_same_canonical_values(tmp_path, variant):
     # tidy CSV -> store -> CSV export (no pseudonyms) -> the same canonical frame
     frame = synthetic_canonical(2, 4, 6)
     frame.loc[3, ["reported_value", "censor"]] = ["<" + frame.loc[3, "reported_value"], "left"]
-    src = data.to_tidy_csv(frame, tmp_path / "in.csv")
+    src = _results_file(frame, tmp_path / "in.csv", variant)
     original = data.load_results(src, now=NOW)
     with Store(tmp_path / "s.sqlite") as s:
         summary = s.import_file(src)
@@ -131,8 +171,9 @@ def test_csv_round_trip_same_canonical_values(tmp_path):
     assert len(one) == int((original["patient"] == "DEMO-0000").sum())
 
 
-def test_same_file_twice_adds_nothing(tmp_path):
-    src = data.to_tidy_csv(synthetic_canonical(2, 3, 4), tmp_path / "r.csv")
+@VARIANTS
+def test_same_file_twice_adds_nothing(tmp_path, variant):
+    src = _results_file(synthetic_canonical(2, 3, 4), tmp_path / "r.csv", variant)
     with Store(tmp_path / "s.sqlite") as s:
         assert s.import_file(src).rows_added == 24
         second = s.import_file(src)
@@ -166,8 +207,9 @@ def test_one_bad_row_in_ten_thousand_stores_nothing(tmp_path):
         assert _count(db, table) == 0
 
 
-def test_conflict_lists_every_difference_and_stores_nothing(tmp_path):
-    frame = synthetic_canonical(2, 3, 4)
+@VARIANTS
+def test_conflict_lists_every_difference_and_stores_nothing(tmp_path, variant):
+    frame = _variant(synthetic_canonical(2, 3, 4), variant)
     db = tmp_path / "s.sqlite"
     with Store(db) as s:
         s.import_frame(frame, "first.csv", "1" * 64)
@@ -191,8 +233,9 @@ def test_conflict_lists_every_difference_and_stores_nothing(tmp_path):
         assert len(s.imports()) == 1
 
 
-def test_replace_overwrites_and_logs_old_and_new(tmp_path):
-    frame = synthetic_canonical(1, 2, 3)
+@VARIANTS
+def test_replace_overwrites_and_logs_old_and_new(tmp_path, variant):
+    frame = _variant(synthetic_canonical(1, 2, 3), variant)
     with Store(tmp_path / "s.sqlite") as s:
         s.import_frame(frame, "first.csv", "1" * 64)
         old_value = float(frame.loc[1, "value"])
@@ -283,8 +326,9 @@ def test_history_and_wide_table(tmp_path):
 
 
 # --------------------------------------------------------------------------------- privacy
-def test_owner_column_is_kept_apart_and_forget_removes_everything(tmp_path):
-    frame = synthetic_canonical(2, 3, 2)
+@VARIANTS
+def test_owner_column_is_kept_apart_and_forget_removes_everything(tmp_path, variant):
+    frame = _variant(synthetic_canonical(2, 3, 2), variant)
     raw = data.read_table(data.to_tidy_csv(frame, tmp_path / "tmp.csv"))
     raw["owner"] = np.where(raw["patient"] == "DEMO-0000", "Invented Owner Alpha",
                             "Invented Owner Beta")
@@ -307,6 +351,9 @@ def test_owner_column_is_kept_apart_and_forget_removes_everything(tmp_path):
         assert int(removed) == sum(removed.by_table.values())
         dump = "\n".join(con.iterdump())
         assert "DEMO-0000" not in dump and "Alpha" not in dump and "only0.csv" not in dump
+        # the shared import stays for DEMO-0001, its file name blanked (it may carry an id)
+        assert s.imports()["file"].tolist() == [""] and "with_owner" not in dump
+        assert removed.wal_cleared
         assert set(s.results()["patient"]) == {"DEMO-0001"}
         assert len(s.results()) == 6 and s.integrity_check() == "ok"
         assert con.execute("PRAGMA foreign_key_check").fetchall() == []
