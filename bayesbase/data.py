@@ -12,29 +12,48 @@ Public API
 Input rules (documented choices of this project)
 ------------------------------------------------
 * Text files: comma, semicolon, tab or pipe delimited (the delimiter is the one that occurs most
-  often in the header line); UTF-8 with or without BOM, UTF-16 with BOM, otherwise Windows-1252 /
-  Latin-1 (so a Latin-1 ``µmol/L`` reads correctly). XLSX: the first worksheet, header in row 1.
+  often in the header line); UTF-8 with or without BOM, UTF-16 with BOM, UTF-16 LE/BE without BOM
+  (recognised by its zero bytes), otherwise Windows-1252 / Latin-1 (so a Latin-1 ``µmol/L`` reads
+  correctly; also after a UTF-8 BOM when the rest is not UTF-8, with a note). Blank lines (or
+  lines of delimiters only) above the header and at the end are skipped; row numbers stay the
+  lines a user sees. A first data row wider than the header is a problem, never re-read as an
+  index. XLSX: the first worksheet, header in its first non-blank row.
 * Column names are case- and space-insensitive, with synonyms (``patient_id`` -> ``patient``,
   ``date``/``collected`` -> ``collected_at``, ``result`` -> ``value``, ``units`` -> ``unit``,
   ``analyser``/``analyzer`` -> ``method``, ``hemolysis`` -> ``haemolysis``, ``lipemia`` ->
   ``lipaemia``, ``sex_neuter`` -> ``sex`` ...; see ``COLUMN_SYNONYMS``). An unknown column that
   looks like a misspelling of a known one is a problem (with a did-you-mean hint); other unknown
-  columns are ignored and listed in ``frame.attrs["notes"]``.
+  columns are ignored and listed in ``frame.attrs["notes"]``. Two columns that mean the same
+  (``unit`` and ``units``, ``Patient`` and ``patient`` ...) are a problem and stop validation.
 * Dates: ISO 8601 (``2024-03-05``, ``2024-03-05T09:30``, ``2024-03-05 09:30:00``, with an offset
   such as ``+02:00`` or ``Z``) or day-first ``05/03/2024``, ``05.03.2024``, ``05-03-2024``
   (optionally followed by ``HH:MM[:SS]``). Day first, never month first. Times with an offset are
   converted to UTC; naive times are taken as they are (treated as UTC). A collection time more
   than ``FUTURE_TOLERANCE`` (14 h, the largest UTC offset in use) after ``now`` is "in the
-  future", so local clock times are never flagged by mistake.
+  future", so local clock times are never flagged by mistake; one before 1900 is not a plausible
+  collection (or birth) date. A partial date (``2025``, ``2025-09``) is refused, never completed.
 * Values: a number > 0 in the reported unit. Censored results ``<5``, ``< 5``, ``<=5``, ``≤5``,
   ``>2000``, ``>= 2000`` become value = the limit with censor ``"left"`` / ``"right"``. A decimal
   comma (``1,2``) is accepted unless the file is comma-delimited; thousands separators are not.
+  Digits are 0-9 only: look-alikes (Arabic-Indic, full-width, mathematical bold ...) are refused
+  with their Unicode name. After conversion every value must lie in the analyte's plausibility
+  envelope (``plausible`` in ``models/analytes.toml``: what a living animal can have, far wider
+  than a reference interval); outside it (including overflow to infinity and subnormal numbers)
+  the row is refused with the range in the canonical and the reported unit. No non-finite value
+  is ever returned.
 * ``state``: ``healthy``, ``unwell`` or blank (blank = assumed healthy); ``well``/``normal`` are
   read as healthy and ``sick``/``ill``/``diseased`` as unwell.
 * ``fasted``: yes/no, true/false, 1/0, y/n, fasted/fed or blank.
 * ``replicate``: a whole number >= 1; 1 when absent or blank.
-* Identical duplicates (same specimen, analyte and replicate with the same value) are dropped
-  and counted in the notes; the same key with different values is a problem.
+* A specimen is keyed by (patient, specimen): two animals may both have a draw ``S1``; one draw
+  of one animal has one collection time.
+* Identical duplicates (same patient, specimen, analyte and replicate with the same value) are
+  dropped and counted in the notes; the same key with different values is a problem.
+* Ids (patient, specimen) with control or invisible characters (NUL, U+202E, zero-width joiner,
+  BOM ...) are refused; such characters are removed from free text (breed, method, reported
+  value and unit) with a note, and shown as ``<U+XXXX>`` in every message and note.
+* Text that begins with ``=``, ``+``, ``-``, ``@``, tab or carriage return in patient, specimen,
+  breed or method is noted as formula-like (OWASP guidance on CSV injection); it is not refused.
 * ``censor``, ``reported_value`` and ``reported_unit`` columns are read when present (so a file
   written by :func:`to_tidy_csv` reads back unchanged); ``source_file`` and ``source_row`` are
   always those of the file being read.
@@ -44,10 +63,12 @@ row numbers are spreadsheet rows (header = row 1, first data row = 2); they are 
 """
 from __future__ import annotations
 
+import codecs
 import difflib
 import io
 import re
 import time
+import unicodedata
 from datetime import date, datetime
 from datetime import time as dtime
 from pathlib import Path
@@ -142,7 +163,15 @@ FUTURE_TOLERANCE = pd.Timedelta(hours=14)
 EARLIEST_DATE = pd.Timestamp("1900-01-01")
 
 _NUMBER = re.compile(
-    r"^(<=|>=|=<|=>|<|>|≤|≥)?\s*([+-]?(?:\d+(?:[.,]\d*)?|[.,]\d+)(?:[eE][+-]?\d+)?)$")
+    r"^(<=|>=|=<|=>|<|>|≤|≥)?\s*([+-]?(?:\d+(?:[.,]\d*)?|[.,]\d+)(?:[eE][+-]?\d+)?)$", re.ASCII)
+#: Year only or year and month (``2025``, ``2025-09``, ``09/2025``): refused, never completed.
+_PARTIAL_DATE = re.compile(r"^(?:\d{4}(?:[-/.]\d{1,2})?|\d{1,2}[-/.]\d{4})$", re.ASCII)
+#: Text columns checked for spreadsheet-formula look (OWASP CSV-injection guidance).
+FORMULA_COLUMNS = ("patient", "specimen", "breed", "method")
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+#: ANSI / VT100 escape sequences (CSI ... final byte, OSC ... BEL or ST) in free text.
+_ANSI = re.compile(r"\x1b\[[0-?]*[ -/]*[@-~]|\x1b\][^\x07\x1b]*(?:\x07|\x1b\\)?|\x1b[@-_]?")
+_INVISIBLE_CATEGORIES = ("Cc", "Cf", "Zl", "Zp", "Cs")
 _LEFT = {"<", "<=", "=<", "≤"}
 _DAYFIRST_FORMATS = ("%d/%m/%Y", "%d/%m/%Y %H:%M", "%d/%m/%Y %H:%M:%S",
                      "%d.%m.%Y", "%d.%m.%Y %H:%M", "%d.%m.%Y %H:%M:%S",
@@ -158,19 +187,111 @@ def _normalise_column(name: object) -> str:
     return COLUMN_SYNONYMS.get(text, text)
 
 
-def _decode(data: bytes) -> tuple[str, str]:
-    if data.startswith(b"\xef\xbb\xbf"):
-        return data[3:].decode("utf-8"), "utf-8-sig"
-    if data.startswith((b"\xff\xfe", b"\xfe\xff")):
-        return data.decode("utf-16"), "utf-16"
-    try:
-        return data.decode("utf-8"), "utf-8"
-    except UnicodeDecodeError:
-        pass
+def _char_name(ch: str) -> str:
+    name = unicodedata.name(ch, "")
+    return f"U+{ord(ch):04X} {name}".strip()
+
+
+def _visible(text: str) -> str:
+    """``text`` with control and invisible format characters shown as ``<U+XXXX>``.
+
+    Used for every message and note, so that no terminal escape or bidirectional override taken
+    from an input reaches a terminal or a report.
+    """
+    if text.isascii() and text.isprintable():
+        return text
+    return "".join(f"<U+{ord(c):04X}>" if unicodedata.category(c) in _INVISIBLE_CATEGORIES else c
+                   for c in text)
+
+
+def _invisible_char(text: str) -> str | None:
+    """Description of the first control/invisible character of an id, or None."""
+    if text.isascii() and text.isprintable():
+        return None
+    for c in text:
+        if unicodedata.category(c) in _INVISIBLE_CATEGORIES:
+            return _char_name(c)
+    return None
+
+
+def _clean_free_text(text: str) -> str:
+    """Free text without ANSI escape sequences and control/invisible characters."""
+    if text.isascii() and text.isprintable():
+        return text
+    text = _ANSI.sub("", text)
+    text = re.sub(r"[\t\n\r\x0b\x0c\x85\u2028\u2029]+", " ", text)
+    return "".join(c for c in text
+                   if unicodedata.category(c) not in _INVISIBLE_CATEGORIES).strip()
+
+
+def _lookalike_digit(text: str) -> str | None:
+    """Description of the first digit that is not 0-9 (Arabic-Indic, full-width, ...), or None."""
+    if text.isascii():
+        return None
+    for c in text:
+        if not c.isascii() and (c.isdigit() or unicodedata.category(c) == "Nd"):
+            return _char_name(c)
+    return None
+
+
+def _looks_utf16(data: bytes) -> str | None:
+    """'utf-16-le' / 'utf-16-be' when a BOM-less file has the zero-byte pattern of UTF-16 text
+    (every other byte zero for ASCII characters), else None."""
+    sample = data[:4096]
+    if len(sample) < 4:
+        return None
+    even, odd = sample[0::2], sample[1::2]
+    z_even, z_odd = even.count(0) / len(even), odd.count(0) / len(odd)
+    if z_odd > 0.3 and z_even < 0.05:
+        return "utf-16-le"
+    if z_even > 0.3 and z_odd < 0.05:
+        return "utf-16-be"
+    return None
+
+
+def _decode_8bit(data: bytes) -> tuple[str, str]:
     try:
         return data.decode("cp1252"), "cp1252"
-    except UnicodeDecodeError:
+    except UnicodeDecodeError:  # the five bytes cp1252 leaves undefined
         return data.decode("latin-1"), "latin-1"
+
+
+def _decode(data: bytes, name: str) -> tuple[str, str, str | None]:
+    """(text, encoding, note or None) of a text file's bytes."""
+    if data.startswith(codecs.BOM_UTF8):
+        try:
+            return data[3:].decode("utf-8"), "utf-8-sig", None
+        except UnicodeDecodeError:
+            text, enc = _decode_8bit(data[3:])
+            return text, enc, (f"{name}: starts with a UTF-8 byte-order mark but is not UTF-8; "
+                               f"read as {enc}")
+    if data.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+        try:
+            return data.decode("utf-16"), "utf-16", None
+        except UnicodeDecodeError as exc:
+            raise ValidationError([Problem(
+                name, None, None, "starts with a UTF-16 byte-order mark but is not valid UTF-16",
+                "save the file again as UTF-8 CSV")]) from exc
+    guess = _looks_utf16(data)
+    if guess:
+        try:
+            text = data.decode(guess)
+        except UnicodeDecodeError:
+            pass
+        else:
+            return text, guess, (f"{name}: no byte-order mark; read as UTF-16 "
+                                 f"{guess[-2:].upper()} (detected from its zero bytes)")
+    try:
+        return data.decode("utf-8"), "utf-8", None
+    except UnicodeDecodeError:
+        pass
+    text, enc = _decode_8bit(data)
+    return text, enc, f"{name}: not UTF-8; read as {enc}"
+
+
+#: Lines that hold nothing but spaces, tabs and delimiters count as blank.
+_BLANK_LINES = re.compile(r"(?:[ \t,;|]*(?:\r\n|\r|\n))*")
+_LINE_BREAK = re.compile(r"\r\n|\r|\n")
 
 
 def _sniff_delimiter(text: str) -> str:
@@ -194,16 +315,21 @@ def _cell_text(v: object) -> str:
     return str(v)
 
 
-def _read_xlsx(path: Path) -> pd.DataFrame:
+def _read_xlsx(path: Path) -> tuple[pd.DataFrame, int]:
+    """(table, number of blank rows above the header) of the first worksheet."""
     from openpyxl import load_workbook
 
     wb = load_workbook(path, read_only=True, data_only=True)
     try:
         ws = wb.worksheets[0]
         rows = ws.iter_rows(values_only=True)
-        header = next(rows, None)
-        if header is None:
-            return pd.DataFrame()
+        skipped = 0
+        for header in rows:
+            if any(_cell_text(h).strip() for h in header):
+                break
+            skipped += 1
+        else:
+            return pd.DataFrame(), 0
         header = [_cell_text(h) for h in header]
         while header and not header[-1].strip():
             header.pop()
@@ -212,61 +338,94 @@ def _read_xlsx(path: Path) -> pd.DataFrame:
     finally:
         wb.close()
     names = [h if h.strip() else f"unnamed_{i + 1}" for i, h in enumerate(header)]
-    return pd.DataFrame(body, columns=names, dtype=object)
+    df = pd.DataFrame(body, columns=names, dtype=object)
+    df.index = df.index + skipped
+    return df, skipped
 
 
 def read_table(path: str | Path) -> pd.DataFrame:
     """Read a results file as a table of strings with normalised column names.
 
     The index is the data-row position in the file (spreadsheet row = index + 2) and survives
-    the dropping of blank rows, so problems name the rows a user sees. ``attrs`` holds
-    ``source`` (file name), ``delimiter`` (None for XLSX), ``encoding`` and ``notes``.
+    the dropping of blank rows, so problems name the rows a user sees. Blank lines above the
+    header are skipped and counted in the index. ``attrs`` holds ``source`` (file name),
+    ``delimiter`` (None for XLSX), ``encoding``, ``notes``, ``header_row`` (the header's own
+    line) and ``original_columns`` (the header as written).
     """
     path = Path(path)
     name = path.name
     if not path.is_file():
-        raise ValidationError([Problem(name, None, None, "file not found", str(path))])
+        raise ValidationError([Problem(_visible(name), None, None, "file not found",
+                                       _visible(str(path)))])
     suffix = path.suffix.lower()
     notes: list[str] = []
     delimiter: str | None
+    skipped = 0
     if suffix in (".xlsx", ".xlsm"):
         try:
-            df = _read_xlsx(path)
+            df, skipped = _read_xlsx(path)
         except Exception as exc:  # openpyxl raises several types for a damaged file
-            raise ValidationError([Problem(name, None, None, f"cannot read as XLSX: {exc}")]) from exc
+            raise ValidationError([Problem(_visible(name), None, None,
+                                           _visible(f"cannot read as XLSX: {exc}"))]) from exc
         delimiter, encoding = None, "xlsx"
     elif suffix == ".xls":
-        raise ValidationError([Problem(name, None, None, "the old binary .xls format is not read",
+        raise ValidationError([Problem(_visible(name), None, None,
+                                       "the old binary .xls format is not read",
                                        "save the sheet as .xlsx or CSV")])
     else:
-        text, encoding = _decode(path.read_bytes())
-        if encoding in ("cp1252", "latin-1"):
-            notes.append(f"{name}: not UTF-8; read as {encoding}")
+        text, encoding, note = _decode(path.read_bytes(), _visible(name))
+        if note:
+            notes.append(note)
+        lead = _BLANK_LINES.match(text).group(0)
+        if lead:
+            skipped = len(_LINE_BREAK.findall(lead))
+            text = text[len(lead):]
         delimiter = _sniff_delimiter(text)
-        if not text.strip():
+        if not text.strip() or not text.strip(" \t,;|\r\n\ufeff"):
             df = pd.DataFrame()
         else:
             try:
                 df = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
                                  na_filter=False, skip_blank_lines=False, engine="c")
+            except pd.errors.EmptyDataError:  # e.g. nothing but a stray byte-order mark
+                df = pd.DataFrame()
             except pd.errors.ParserError as exc:
                 m = re.search(r"line (\d+), saw (\d+)", str(exc))
-                row = int(m.group(1)) if m else None
+                row = int(m.group(1)) + skipped if m else None
                 msg = (f"has {m.group(2)} fields where the header has fewer" if m
-                       else f"cannot be parsed: {exc}")
-                raise ValidationError([Problem(name, row, None, f"row {msg}",
-                                               f"delimiter '{delimiter}'; quote values "
-                                               "that contain it")]) from exc
+                       else _visible(f"cannot be parsed: {exc}"))
+                raise ValidationError([Problem(_visible(name), row, None, f"row {msg}",
+                                               _visible(f"delimiter '{delimiter}'; quote values "
+                                                        "that contain it"))]) from exc
+            if not isinstance(df.index, pd.RangeIndex):
+                # pandas takes the extra leading fields of a first data row that is wider
+                # than the header as an index: a misread, never accepted silently
+                width = len(df.columns) + df.index.nlevels
+                raise ValidationError([Problem(
+                    _visible(name), skipped + 2, None,
+                    f"row has {width} fields where the header has {len(df.columns)}",
+                    _visible(f"delimiter '{delimiter}'; quote values that contain it, or name "
+                             "every column in the header"))])
+            df.index = df.index + skipped
+    original = [str(c) for c in df.columns]
     if len(df.columns):
         df.columns = [_normalise_column(c) for c in df.columns]
         if len(df):
             df = df.fillna("")
+            # a row is blank when every cell is empty or white space (by position: two columns
+            # may share a name); decided on each column's distinct values, not row by row
             blank = np.ones(len(df), dtype=bool)
-            for c in df.columns:
-                blank &= df[c].to_numpy(dtype=object) == ""
+            for j in range(df.shape[1]):
+                cand = np.flatnonzero(blank)
+                if cand.size == 0:
+                    break
+                codes, uniq = pd.factorize(df.iloc[cand, j].to_numpy(dtype=object))
+                empty_u = np.array([not str(u).strip() for u in uniq] + [True], dtype=bool)
+                blank[cand] = empty_u[codes]
             if blank.any():
                 df = df.loc[~blank]
-    df.attrs = {"source": name, "delimiter": delimiter, "encoding": encoding, "notes": notes}
+    df.attrs = {"source": name, "delimiter": delimiter, "encoding": encoding, "notes": notes,
+                "header_row": skipped + 1, "original_columns": original}
     return df
 
 
@@ -305,8 +464,11 @@ class _Col:
 
 
 class _Problems:
+    """Collects problems; every message, hint, column and file name is made visible
+    (control and invisible characters shown as ``<U+XXXX>``)."""
+
     def __init__(self, file: str, rows: np.ndarray):
-        self.file = file
+        self.file = _visible(file)
         self.rows = rows
         self.items: list[Problem] = []
 
@@ -320,10 +482,14 @@ class _Problems:
         hints = [hint] * pos.size if (hint is None or isinstance(hint, str)) else \
             list(np.asarray(hint, dtype=object)[pos])
         rows = self.rows[pos].tolist()
-        self.items.extend(Problem(self.file, r, column, m, h) for r, m, h in zip(rows, msgs, hints))
+        column = None if column is None else _visible(str(column))
+        self.items.extend(Problem(self.file, r, column, _visible(str(m)),
+                                  None if h is None else _visible(str(h)))
+                          for r, m, h in zip(rows, msgs, hints))
 
     def one(self, row, column, message, hint=None) -> None:
-        self.items.append(Problem(self.file, row, column, message, hint))
+        self.items.append(Problem(self.file, row, None if column is None else _visible(str(column)),
+                                  _visible(message), None if hint is None else _visible(hint)))
 
     def raise_if_any(self) -> None:
         if self.items:
@@ -348,12 +514,16 @@ def _parse_number(text: str, decimal_comma: bool):
 
 
 def _numbers(col: _Col, decimal_comma: bool, censoring: bool):
-    """Per-row (values, censor, error) arrays; error is None, 'empty', 'not a number', ..."""
+    """Per-row (values, censor, error) arrays; error is None, 'empty', 'not a number',
+    'decimal comma' or 'digits' (digits that only look like 0-9)."""
     uniq = col.uniq
     val = np.array(pd.to_numeric(pd.Series(uniq, dtype=object), errors="coerce"), dtype=float)
     censor = np.full(len(uniq), "", dtype=object)
     err = np.full(len(uniq), None, dtype=object)
-    for i in np.flatnonzero(~np.isfinite(val)):
+    for i, text in enumerate(uniq):
+        if not text.isascii() and _lookalike_digit(text):
+            val[i], err[i] = np.nan, "digits"
+    for i in np.flatnonzero(~np.isfinite(val) & (err == None)):  # noqa: E711
         text = uniq[i]
         if text == "":
             err[i] = "empty"
@@ -368,8 +538,21 @@ def _numbers(col: _Col, decimal_comma: bool, censoring: bool):
 
 
 def _parse_dates(col: _Col) -> tuple[np.ndarray, np.ndarray]:
-    """Per-row datetime64[ns] (NaT when blank or bad) and a per-row 'unparsable' flag."""
+    """Per-row datetime64[ns] (NaT when blank or bad) and a per-row error: None, 'unparsable',
+    'partial' (year or year and month only) or 'digits' (digits that only look like 0-9).
+
+    Dates outside the datetime64[ns] range (before 1677, after 2262) are kept as the range's
+    bounds, so that they are reported as before 1900 or in the future."""
     uniq = pd.Series(col.uniq, dtype=object)
+    kind = np.full(len(uniq), None, dtype=object)
+    for i, text in enumerate(col.uniq):
+        if _PARTIAL_DATE.match(text):
+            kind[i] = "partial"
+        elif not text.isascii() and _lookalike_digit(text):
+            kind[i] = "digits"
+    refused = kind != None  # noqa: E711
+    if refused.any():
+        uniq = uniq.where(~refused, "")
     parsed = pd.to_datetime(uniq, format="ISO8601", utc=True, errors="coerce")
     parsed = parsed.dt.tz_localize(None)
     todo = parsed.isna().to_numpy() & (uniq != "").to_numpy()
@@ -383,16 +566,41 @@ def _parse_dates(col: _Col) -> tuple[np.ndarray, np.ndarray]:
             parsed.iloc[idx] = sub[got].to_numpy()
             todo[idx] = False
     ok = parsed.notna().to_numpy()
-    lo, hi = pd.Timestamp.min.as_unit("us"), pd.Timestamp.max.as_unit("us")
+    lo, hi = pd.Timestamp.min, pd.Timestamp.max  # the datetime64[ns] range
     in_range = ok & (parsed >= lo).to_numpy() & (parsed <= hi).to_numpy()
     bad = (uniq != "").to_numpy() & ~ok
+    kind[bad] = "unparsable"
     values = np.full(len(uniq), np.datetime64("NaT"), dtype="datetime64[ns]")
     values[in_range] = parsed[in_range].to_numpy().astype("datetime64[ns]")
     # outside the ns range: keep as "far future/past" markers via the bounds
     far = ok & ~in_range
-    values[far & (parsed > hi).to_numpy()] = np.datetime64(pd.Timestamp.max.as_unit("ns"))
-    values[far & (parsed < lo).to_numpy()] = np.datetime64(pd.Timestamp.min.as_unit("ns"))
-    return values[col.codes], bad[col.codes]
+    values[far & (parsed > hi).to_numpy()] = np.datetime64(pd.Timestamp.max.value, "ns")
+    values[far & (parsed < lo).to_numpy()] = np.datetime64(pd.Timestamp.min.value, "ns")
+    return values[col.codes], kind[col.codes]
+
+
+def _date_problems(prob: _Problems, c: _Col, err: np.ndarray, column: str, expected: str,
+                   partial_hint: str) -> None:
+    """Unparsable, partial and look-alike-digit dates of one column."""
+    if (err == "unparsable").any():
+        prob.add(err == "unparsable", column, c.map(lambda u: f"unparsable date '{u}'"), expected)
+    if (err == "partial").any():
+        prob.add(err == "partial", column,
+                 c.map(lambda u: f"partial date '{u}': the day (or month and day) is missing"),
+                 partial_hint)
+    if (err == "digits").any():
+        prob.add(err == "digits", column,
+                 c.map(lambda u: f"date '{u}' uses look-alike digits ({_lookalike_digit(u)})"),
+                 "retype the date with the digits 0-9")
+
+
+def _digit_problems(prob: _Problems, c: _Col, err: np.ndarray, column: str, what: str) -> None:
+    """Numbers written with digits that only look like 0-9 (Arabic-Indic, full-width, ...)."""
+    bad = err == "digits"
+    if bad.any():
+        prob.add(bad, column,
+                 c.map(lambda u: f"{what} '{u}' uses look-alike digits ({_lookalike_digit(u)})"),
+                 "retype the number with the digits 0-9; the character only looks like a digit")
 
 
 def _rows_text(rows: list[int], limit: int = 3) -> str:
@@ -400,9 +608,11 @@ def _rows_text(rows: list[int], limit: int = 3) -> str:
     return ("row " if len(rows) == 1 else "rows ") + head + (", ..." if len(rows) > limit else "")
 
 
-def _conflicts(prob: _Problems, key_codes, key_uniq, other_codes, other_text, valid, column, what,
+def _conflicts(prob: _Problems, key_codes, key_text, other_codes, other_text, valid, column, what,
                other_name) -> None:
-    """One problem per key (e.g. patient) whose rows carry more than one `other` (e.g. species)."""
+    """One problem per key (e.g. patient) whose rows carry more than one `other` (e.g. species).
+
+    ``key_text(code)`` names a key in the message (e.g. ``"patient 'Rex'"``)."""
     pos = np.flatnonzero(valid)
     if pos.size == 0:
         return
@@ -420,7 +630,7 @@ def _conflicts(prob: _Problems, key_codes, key_uniq, other_codes, other_text, va
             parts.append(f"{other_text(o)} ({_rows_text(prob.rows[g2['p'].to_numpy()].tolist())})")
         first_bad = grp["p"].to_numpy()[grp["o"].to_numpy() != first_o][0]
         prob.add([first_bad], column,
-                 f"{what} '{key_uniq[k]}' is recorded with more than one {other_name}: "
+                 f"{key_text(k)} is recorded with more than one {other_name}: "
                  + " and ".join(parts),
                  f"one {what} has one {other_name}; correct the rows or use distinct {what} ids")
 
@@ -471,44 +681,51 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
     else:
         rows = np.arange(n, dtype=np.int64) + 2
     prob = _Problems(file, rows)
+    header_row = int(attrs.get("header_row") or 1)
 
-    # ---- columns
+    # ---- columns (by position: two columns may carry the same normalised name)
     if len(raw.columns) == 0:
         prob.one(1, None, "the file is empty: expected a header row naming the columns "
                  + ", ".join(REQUIRED_COLUMNS))
         prob.raise_if_any()
-    source_of: dict[str, object] = {}
+    shown = attrs.get("original_columns")
+    if not isinstance(shown, (list, tuple)) or len(shown) != len(raw.columns):
+        shown = [str(c) for c in raw.columns]
+    source_of: dict[str, int] = {}  # canonical column -> position in raw
     misspelt: dict[str, object] = {}  # canonical column -> the unknown column that resembles it
-    for original in raw.columns:
+    duplicated = False
+    for j, original in enumerate(shown):
         canon = _normalise_column(original)
         if canon in _KNOWN:
             if canon in source_of:
-                prob.one(1, str(original), f"column '{original}' duplicates column "
-                         f"'{source_of[canon]}' (both mean '{canon}')", "keep one of them")
+                duplicated = True
+                prob.one(header_row, str(original), f"column '{original}' duplicates column "
+                         f"'{shown[source_of[canon]]}' (both mean '{canon}')", "keep one of them")
             else:
-                source_of[canon] = original
+                source_of[canon] = j
             continue
         close = difflib.get_close_matches(canon, sorted(_KNOWN | set(COLUMN_SYNONYMS)), n=1,
                                           cutoff=0.8)
         if close:
             target = COLUMN_SYNONYMS.get(close[0], close[0])
             misspelt[target] = original
-            prob.one(1, str(original), f"unknown column '{original}'",
+            prob.one(header_row, str(original), f"unknown column '{original}'",
                      f"did you mean '{target}'?")
         else:
             notes.append(f"column '{original}' is not part of the results contract and was ignored")
     # a required column whose misspelling was already reported is not reported twice
     missing = [c for c in REQUIRED_COLUMNS if c not in source_of and c not in misspelt]
     for c in missing:
-        prob.one(1, c, f"required column '{c}' is missing",
-                 "columns found: " + ", ".join(str(x) for x in raw.columns))
+        prob.one(header_row, c, f"required column '{c}' is missing",
+                 "columns found: " + ", ".join(str(x) for x in shown))
     if n == 0:
-        prob.one(2, None, "no data rows below the header")
+        prob.one(header_row + 1, None, "no data rows below the header")
+    if n == 0 or duplicated:
         prob.raise_if_any()
 
     def col(name: str) -> _Col:
-        original = source_of.get(name)
-        return _Col(None if original is None else raw[original], n)
+        j = source_of.get(name)
+        return _Col(None if j is None else raw.iloc[:, j], n)
 
     present = set(source_of)
 
@@ -520,6 +737,16 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
     if "specimen" in present:
         prob.add(specimen.empty(), "specimen", "specimen is empty",
                  "every row needs the id of its blood draw")
+    id_bad = {}
+    for name, c in (("patient", patient), ("specimen", specimen)):
+        inv_u = np.array([_invisible_char(u) for u in c.uniq], dtype=object)
+        bad_u = inv_u != None  # noqa: E711
+        id_bad[name] = bad_u[c.codes]
+        if name in present and bad_u.any():
+            prob.add(id_bad[name], name,
+                     c.map(lambda u, name=name: f"{name} id '{u}' contains an invisible or "
+                           f"control character ({_invisible_char(u)})"),
+                     "retype the id: invisible characters make ids that look the same differ")
 
     species_c = col("species")
     species_u = np.array([SPECIES_ALIASES.get(re.sub(r"\s+", " ", u.lower()), None)
@@ -538,23 +765,33 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
             prob.add(bad, "species", msgs, hints)
 
     breed_c = col("breed")
-    breed_u = np.array([re.sub(r"\s+", " ", u.lower()) for u in breed_c.uniq], dtype=object)
     sex_c = col("sex")
     sex_u = np.array([_SEX.get(k, k) for k in
                       (re.sub(r"[^0-9a-z]+", "_", u.lower()).strip("_") for u in sex_c.uniq)],
                      dtype=object)
     method_c = col("method")
+    rv_c = col("reported_value")
+    ru_c = col("reported_unit")
+    cleaned_rows = np.zeros(n, dtype=bool)
+    for c in (breed_c, method_c, rv_c, ru_c):
+        clean = np.array([_clean_free_text(u) for u in c.uniq], dtype=object)
+        changed = clean != c.uniq
+        if changed.any():
+            cleaned_rows |= changed[c.codes]
+            c.uniq = clean
+    breed_u = np.array([re.sub(r"\s+", " ", u.lower()) for u in breed_c.uniq], dtype=object)
 
     # ---- dates
     collected_c = col("collected_at")
-    collected, coll_bad = _parse_dates(collected_c)
+    collected, coll_err = _parse_dates(collected_c)
     coll_ok = ~np.isnat(collected)
     if "collected_at" in present:
         prob.add(collected_c.empty(), "collected_at", "collection date is empty",
                  "expected a date such as 2024-03-05 or 2024-03-05T09:30")
-        if coll_bad.any():
-            prob.add(coll_bad, "collected_at", collected_c.map(lambda u: f"unparsable date '{u}'"),
-                     "expected 2024-03-05, 2024-03-05T09:30 or day-first 05/03/2024")
+        _date_problems(prob, collected_c, coll_err, "collected_at",
+                       "expected 2024-03-05, 2024-03-05T09:30 or day-first 05/03/2024",
+                       "a collection date needs year, month and day: write the full date of "
+                       "the draw, e.g. 2024-03-05")
         limit = np.datetime64(now_ts + FUTURE_TOLERANCE, "ns")
         future = coll_ok & (collected > limit)
         prob.add(future, "collected_at",
@@ -562,14 +799,21 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
                  f"reference time {now_ts.isoformat(sep=' ', timespec='minutes')} UTC")
         early = coll_ok & (collected < np.datetime64(EARLIEST_DATE, "ns"))
         prob.add(early, "collected_at",
-                 collected_c.map(lambda u: f"collection date '{u}' is before 1900"),
+                 collected_c.map(lambda u: f"collection date '{u}' is before 1900: not a "
+                                 "plausible collection date"),
                  "check the year")
         coll_ok = coll_ok & ~future & ~early
     birth_c = col("birth_date")
-    birth, birth_bad = _parse_dates(birth_c)
+    birth, birth_err = _parse_dates(birth_c)
     if "birth_date" in present:
-        prob.add(birth_bad, "birth_date", birth_c.map(lambda u: f"unparsable date '{u}'"),
-                 "expected 2019-06-01 or day-first 01/06/2019, or blank")
+        _date_problems(prob, birth_c, birth_err, "birth_date",
+                       "expected 2019-06-01 or day-first 01/06/2019, or blank",
+                       "write a full date (year, month and day); if only the year or month of "
+                       "birth is known, choose the day yourself, e.g. 2019-06-01")
+        early_b = ~np.isnat(birth) & (birth < np.datetime64(EARLIEST_DATE, "ns"))
+        prob.add(early_b, "birth_date",
+                 birth_c.map(lambda u: f"birth date '{u}' is before 1900: not a plausible "
+                             "birth date"), "check the year")
         after = ~np.isnat(birth) & coll_ok & (birth > collected)
         prob.add(after, "birth_date",
                  birth_c.map(lambda u: f"birth date '{u}' is after the collection date"),
@@ -634,6 +878,7 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
     value_ok = verr == None  # noqa: E711
     if "value" in present:
         prob.add(verr == "empty", "value", "value is empty", "expected a number such as 1.2 or <5")
+        _digit_problems(prob, value_c, verr, "value", "value")
         nn = verr == "not a number"
         if nn.any():
             prob.add(nn, "value", value_c.map(lambda u: f"non-numeric value '{u}'"),
@@ -660,7 +905,35 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
         use = ~bad & (censor == "")
         censor = np.where(use, cin, censor)
         censor = np.where(censor == None, "", censor)  # noqa: E711
-    value = reported * factor
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        value = reported * factor
+    # ---- plausibility envelope of each analyte (canonical unit), after conversion
+    lo_u = np.full(len(pair_uniq), np.nan)
+    hi_u = np.full(len(pair_uniq), np.nan)
+    for i, p in enumerate(pair_uniq):
+        aid = aid_u[int(p) // n_units]
+        if aid is not None and np.isfinite(factor_u[i]):
+            env = units.plausible_range(aid)
+            lo_u[i], hi_u[i] = env["min"], env["max"]
+    lo, hi = lo_u[pair_codes], hi_u[pair_codes]
+    implausible = value_ok & unit_ok & analyte_ok & ~((value >= lo) & (value <= hi))
+    if implausible.any():
+        pos = np.flatnonzero(implausible)
+        msgs = []
+        for q in pos:
+            aid = aid_u[analyte_c.codes[q]]
+            cu, ru, f = canon_unit[q], unit_c.uniq[unit_c.codes[q]], factor[q]
+            text = (f"value '{value_c.uniq[value_c.codes[q]]}' {ru} is outside the plausible "
+                    f"range for {units.label(aid)}: {lo[q]:g} to {hi[q]:g} {cu}")
+            if f != 1.0:
+                text += f" ({lo[q] / f:.3g} to {hi[q] / f:.3g} {ru})"
+            msgs.append(text)
+        per_row = np.full(n, "", dtype=object)
+        per_row[pos] = msgs
+        prob.add(pos, "value", per_row,
+                 "no living animal has this value: check the number and its unit (the envelope "
+                 "is the analyte's 'plausible' entry in models/analytes.toml)")
+    value_ok &= ~implausible
 
     # ---- optional columns
     replicate_c = col("replicate")
@@ -669,7 +942,8 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
     rep_bad = ~rep_blank & ((rep_err != None) | ~(np.floor(rep_val) == rep_val)  # noqa: E711
                             | ~(rep_val >= 1) | ~(rep_val < 2**31))
     if "replicate" in present:
-        prob.add(rep_bad, "replicate", replicate_c.map(lambda u: f"replicate '{u}' is not a "
+        _digit_problems(prob, replicate_c, rep_err, "replicate", "replicate")
+        prob.add(rep_bad & (rep_err != "digits"), "replicate", replicate_c.map(lambda u: f"replicate '{u}' is not a "
                                                        "whole number of at least 1"),
                  "expected 1, 2, ... or blank (= 1)")
     replicate = np.where(rep_blank | rep_bad, 1.0, rep_val).astype(np.int64)
@@ -690,7 +964,8 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
         v, _, e = _numbers(c, decimal_comma, censoring=False)
         blank = e == "empty"
         if name in present:
-            nn = ~blank & (e != None)  # noqa: E711
+            _digit_problems(prob, c, e, name, f"{name} index")
+            nn = ~blank & (e != None) & (e != "digits")  # noqa: E711
             prob.add(nn, name, c.map(lambda u, name=name: f"{name} index '{u}' is not a number"),
                      "expected the numeric index as the analyser reports it, or blank")
             neg = (e == None) & (v < 0)  # noqa: E711
@@ -707,19 +982,25 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
     state_u = np.where(state_u == None, "", state_u)  # noqa: E711
 
     # ---- consistency across rows (only on rows whose own fields are valid)
-    pat_ok = ~patient.empty()
-    spec_ok = ~specimen.empty()
+    # A specimen is keyed by (patient, specimen): clinics number draws per animal (S1, S2, ...).
+    pat_ok = ~patient.empty() & ~id_bad["patient"]
+    spec_ok = ~specimen.empty() & ~id_bad["specimen"] & pat_ok
+    ps_codes, ps_uniq = pd.factorize(patient.codes.astype(np.int64) * len(specimen.uniq)
+                                     + specimen.codes)
+    ps_uniq = np.asarray(ps_uniq, dtype=np.int64)
+
+    def spec_text(k) -> str:
+        p_code, s_code = divmod(int(ps_uniq[k]), len(specimen.uniq))
+        return f"specimen '{specimen.uniq[s_code]}' of patient '{patient.uniq[p_code]}'"
+
     if present >= {"patient", "species"}:
         sp_codes = np.where(species_ok, pd.factorize(species)[0], -1)
-        _conflicts(prob, patient.codes, patient.uniq, sp_codes, lambda o: species[sp_codes == o][0],
-                   pat_ok & species_ok, "species", "patient", "species")
-    if present >= {"specimen", "patient"}:
-        _conflicts(prob, specimen.codes, specimen.uniq, patient.codes,
-                   lambda o: f"patient '{patient.uniq[o]}'", spec_ok & pat_ok, "patient",
-                   "specimen", "patient")
+        _conflicts(prob, patient.codes, lambda k: f"patient '{patient.uniq[k]}'", sp_codes,
+                   lambda o: species[sp_codes == o][0], pat_ok & species_ok, "species", "patient",
+                   "species")
     if present >= {"specimen", "collected_at"}:
         ct_codes = pd.factorize(collected.astype(np.int64))[0]
-        _conflicts(prob, specimen.codes, specimen.uniq, ct_codes,
+        _conflicts(prob, ps_codes, spec_text, ct_codes,
                    lambda o: f"'{pd.Timestamp(collected[ct_codes == o][0]).isoformat()}'",
                    spec_ok & coll_ok, "collected_at", "specimen", "collection time")
 
@@ -729,7 +1010,7 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
     if present >= {"specimen", "analyte", "value", "unit"} and row_ok.any():
         pos = np.flatnonzero(row_ok)
         aid_codes = pd.factorize(aid_u[analyte_c.codes][pos])[0]
-        key = pd.DataFrame({"s": specimen.codes[pos], "a": aid_codes, "r": replicate[pos]})
+        key = pd.DataFrame({"s": ps_codes[pos], "a": aid_codes, "r": replicate[pos]})
         dup = key.duplicated(keep=False).to_numpy()
         if dup.any():
             d = key[dup].assign(p=pos[dup], v=value[pos[dup]], c=censor[pos[dup]])
@@ -749,7 +1030,7 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
                     f"{analyte_c.uniq[analyte_c.codes[q]]} {value_c.uniq[value_c.codes[q]]} "
                     f"{unit_c.uniq[unit_c.codes[q]]} (row {rows[q]})" for q in (first, other))
                 prob.add([other], "value",
-                         f"specimen '{specimen.uniq[specimen.codes[first]]}' has {aid} replicate "
+                         f"{spec_text(ps_codes[first])} has {aid} replicate "
                          f"{replicate[first]} more than once with different values: {shown}",
                          "number repeated measurements with the replicate column, or remove "
                          "the wrong row")
@@ -760,10 +1041,27 @@ def validate(raw: pd.DataFrame, source: str | None = None, now=None) -> pd.DataF
     n_assumed = int((state_u[state_c.codes] == "").sum())
     if n_assumed:
         notes.append(f"{n_assumed} row(s) with a blank state are assumed healthy")
+    if cleaned_rows.any():
+        notes.append("control characters (terminal escapes, invisible marks) were removed from "
+                     "free text (breed, method, reported value or unit) in "
+                     + _rows_text(rows[cleaned_rows].tolist()))
+    text_cols = {"patient": patient, "specimen": specimen, "breed": breed_c, "method": method_c}
+    for name in FORMULA_COLUMNS:
+        c = text_cols[name]
+        if name not in present:
+            continue
+        hit_u = np.array([u[:1] in _FORMULA_START for u in c.uniq], dtype=bool)
+        if hit_u.any():
+            hit = hit_u[c.codes]
+            example = c.uniq[np.flatnonzero(hit_u)[0]]
+            notes.append(
+                f"column '{name}', {_rows_text(rows[hit].tolist())}: text beginning with "
+                f"=, +, -, @, tab or carriage return (e.g. '{example[:40]}') looks like a "
+                "spreadsheet formula; a spreadsheet program may run it when the file or an "
+                "export is opened (OWASP guidance on CSV injection): check where it came from")
+    notes = [_visible(str(x)) for x in notes]
 
     # ---- build the canonical frame
-    rv_c = col("reported_value")
-    ru_c = col("reported_unit")
     reported_value = np.where(rv_c.empty(), value_c.values(), rv_c.values())
     reported_unit = np.where(ru_c.empty(), unit_c.values(), ru_c.values())
     aid = aid_u[analyte_c.codes]
@@ -897,7 +1195,8 @@ def _bench_frame(n_rows: int, seed: int) -> pd.DataFrame:
     hi = np.array([p[3] for p in panel])[k]
     vals = np.round(rng.uniform(lo, hi), 2)
     vtext = np.char.mod("%.2f", vals).astype(object)
-    vtext[rng.random(n_rows) < 0.002] = "<5"
+    # a few censored enzyme results (ALT, ALKP): '<5' is plausible only for analytes that low
+    vtext[(rng.random(n_rows) < 0.01) & np.isin(k, (2, 3))] = "<5"
     return pd.DataFrame({
         "patient": np.char.add("P", patient.astype(str)).astype(object),
         "species": np.where(patient % 3 == 0, "cat", "dog").astype(object),

@@ -47,6 +47,7 @@ __all__ = [
     "label",
     "loinc",
     "analyte_info",
+    "plausible_range",
 ]
 
 
@@ -202,7 +203,32 @@ def _check_conversions(where: str, table: object, problems: list[str]) -> dict[s
 
 
 _ANALYTE_KEYS = {"label", "unit", "display_unit", "aliases", "loinc", "loinc_source", "loinc_note",
-                 "molar_mass", "molar_mass_source", "valence", "conversions", "reported_as"}
+                 "molar_mass", "molar_mass_source", "valence", "conversions", "reported_as",
+                 "plausible"}
+_RANGE_KEYS = {"min", "max", "source", "provenance", "note"}
+
+
+def _check_range(where: str, entry: object, problems: list[str]) -> dict | None:
+    """``plausible = { min, max, source, provenance, note? }`` in the canonical unit."""
+    if not isinstance(entry, dict):
+        problems.append(f"{where}: expected a table with min, max, source, provenance")
+        return None
+    extra = set(entry) - _RANGE_KEYS
+    missing = {"min", "max", "source", "provenance"} - set(entry)
+    if extra or missing:
+        problems.append(f"{where}: keys must be min, max, source, provenance and optional note "
+                        f"(missing {sorted(missing)}, unexpected {sorted(extra)})")
+        return None
+    lo, hi = entry["min"], entry["max"]
+    if any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in (lo, hi)) \
+            or not (0 < lo < hi < float("inf")):
+        problems.append(f"{where}: need finite numbers with 0 < min < max")
+        return None
+    if not str(entry["source"]).strip() or not str(entry["provenance"]).strip():
+        problems.append(f"{where}: source and provenance must not be empty")
+        return None
+    return {"min": float(lo), "max": float(hi), "source": str(entry["source"]),
+            "provenance": str(entry["provenance"]), "note": str(entry.get("note", ""))}
 
 
 @lru_cache(maxsize=1)
@@ -227,11 +253,13 @@ def _registry() -> dict:
         extra = set(spec) - _ANALYTE_KEYS
         if extra:
             problems.append(f"{where}: unknown keys {sorted(extra)}")
-        for key in ("label", "unit", "display_unit", "aliases", "conversions"):
+        required = ("label", "unit", "display_unit", "aliases", "conversions", "plausible")
+        for key in required:
             if key not in spec:
                 problems.append(f"{where}: missing '{key}'")
-        if any(k not in spec for k in ("label", "unit", "display_unit", "aliases", "conversions")):
+        if any(k not in spec for k in required):
             continue
+        plausible = _check_range(where + ".plausible", spec["plausible"], problems)
         conv = _check_conversions(where + ".conversions", spec["conversions"], problems)
         unit = spec["unit"]
         if conv.get(unit, {}).get("factor") != 1.0:
@@ -265,6 +293,7 @@ def _registry() -> dict:
             "valence": spec.get("valence"),
             "conversions": conv,
             "reported_as": reported_as,
+            "plausible": plausible,
         }
     if not analytes:
         problems.append("no [analytes.*] tables")
@@ -414,3 +443,10 @@ def analyte_info(analyte: str) -> dict:
     import copy
 
     return copy.deepcopy(_spec(analyte))
+
+
+def plausible_range(analyte: str) -> dict:
+    """The analyte's plausibility envelope in its canonical unit: ``{"min", "max", "source",
+    "provenance", "note"}`` (values outside it cannot come from a living animal; see the header
+    of ``models/analytes.toml``)."""
+    return dict(_spec(analyte)["plausible"])

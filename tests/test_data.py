@@ -157,11 +157,13 @@ def test_identical_duplicates_dropped_and_counted(tmp_path):
     assert any("duplicate" in note for note in frame.attrs["notes"])
 
 
-def test_specimen_under_two_patients_or_two_times(tmp_path):
+def test_specimen_ids_are_per_patient_but_one_draw_has_one_time(tmp_path):
+    # specimens are keyed by (patient, specimen): Tom's S1 is not Rex's S1 (issue 11)
     path = write(tmp_path, good_csv(["Tom,cat,S1,2024-03-05,ast,30,U/L",
                                      "Rex,dog,S2,2024-04-06,alt,30,U/L"]))
     problems = problems_of(path)
-    assert [(p.row, p.column) for p in problems] == [(5, "patient"), (6, "collected_at")]
+    assert [(p.row, p.column) for p in problems] == [(6, "collected_at")]
+    assert "specimen 'S2' of patient 'Rex'" in problems[0].message
 
 
 @pytest.mark.parametrize("text", ["", "\n\n", "\ufeff"])

@@ -50,7 +50,7 @@ def cmd_check(args) -> int:
         print(frame[cols].head(args.rows).to_string(index=False))
     notes = frame.attrs.get("notes") or []
     print(f"\n{len(frame)} rows, {frame['patient'].nunique()} patient(s), "
-          f"{frame['specimen'].nunique()} specimen(s): valid.")
+          f"{len(frame[['patient', 'specimen']].drop_duplicates())} specimen(s): valid.")
     for n in notes:
         print(f"note: {n}")
     return 0

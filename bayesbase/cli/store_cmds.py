@@ -16,13 +16,15 @@ def add_parsers(sub) -> None:
     p.set_defaults(run=cmd_patients)
 
     p = sub.add_parser("history", help="one patient's results over time, from the store")
-    p.add_argument("patient")
+    p.add_argument("patient", help="patient id; an id beginning with '-' goes after '--', "
+                   "options first: bayesbase history --db s.sqlite -- -REX-1")
     p.add_argument("--analyte")
     p.add_argument("--db")
     p.set_defaults(run=cmd_history)
 
     p = sub.add_parser("export", help="export one patient's results (pseudonymised by default)")
-    p.add_argument("--patient", required=True)
+    p.add_argument("--patient", required=True,
+                   help="patient id; write an id beginning with '-' with '=': --patient=-REX-1")
     p.add_argument("--format", choices=["csv", "fhir"], default="csv")
     p.add_argument("--out", required=True)
     p.add_argument("--db")
@@ -30,7 +32,8 @@ def add_parsers(sub) -> None:
     p.set_defaults(run=cmd_export)
 
     p = sub.add_parser("forget", help="remove a patient and everything under it from the store")
-    p.add_argument("patient")
+    p.add_argument("patient", help="patient id; an id beginning with '-' goes after '--', "
+                   "options first: bayesbase forget --db s.sqlite -- -REX-1")
     p.add_argument("--db")
     p.set_defaults(run=cmd_forget)
 
