@@ -1,14 +1,16 @@
 """Tests of bayesbase.report: panel false-discovery selection, the many-results chance line,
-HTML safety (escaping, no network references), PDF content.
+retest advice from the pack, HTML safety (autoescape, no network references), the PDF from the
+same content model, the P(change) marks.
 
-The fake assessment below is invented demo data (one dog, five specimens, 25 analytes) shaped
-exactly like the documented Assessment.table / Assessment.history columns of DEVELOPERS.md.
+Every report here is built from a real assessment of a case-library case (invented demo
+patients, case_library/<case>/results.csv) with the real prior packs.
 """
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import re
-from dataclasses import dataclass, field
+from functools import lru_cache
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -17,151 +19,47 @@ import pandas as pd
 import pytest
 
 from bayesbase import report, units
-from bayesbase.constants import CAUTIONS, PANEL_FDR, PROBABLE_CHANGE
+from bayesbase.assessment import assess
+from bayesbase.constants import CAUTIONS, PANEL_FDR, PROBABLE_CHANGE, UNCERTAIN_BAND
+from bayesbase.data import load_results
 from bayesbase.errors import BayesbaseError
+from bayesbase.report import figures, wording
+from bayesbase.report.content import DRIFT_SENTENCE_P
+
+from conftest import case_dirs, load_case
 
 SEED = 20261202
+CASES = {d.name: (d, load_case(d)) for d in case_dirs()}
 
 
-# --------------------------------------------------------------------------- fake inputs
-@dataclass(frozen=True)
-class Cited:
-    value: float
-    source: str
-    provenance: str
-    note: str | None = None
+# --------------------------------------------------------------------------- real inputs
+@lru_cache(maxsize=None)
+def case_frame(name: str) -> pd.DataFrame:
+    d, _ = CASES[name]
+    return load_results(d / "results.csv")
 
 
-@dataclass(frozen=True)
-class RetestGroup:
-    hours_min: float
-    hours_max: float
-    source: str = "common practice"
+@lru_cache(maxsize=None)
+def case_assessment(name: str):
+    _, meta = CASES[name]
+    return assess(case_frame(name), patient=meta["patient"], at=meta.get("at"))
 
 
-@dataclass
-class FakePack:
-    id: str = "dog-demo"
-    title: str = "Invented demo pack"
-    version: str = "0"
-    sha256: str = "0" * 64
-    cited: dict = field(default_factory=dict)
-    retest_groups: dict = field(default_factory=dict)
-
-
-@dataclass
-class FakeAssessment:
-    table: pd.DataFrame
-    history: pd.DataFrame
-    attrs: dict
-
-
-ANALYTES = ['creatinine', 'urea', 'sdma', 'glucose', 'cholesterol', 'triglycerides',
-            'total_bilirubin', 'fructosamine', 'bile_acids', 'total_protein', 'albumin',
-            'globulin', 'alt', 'ast', 'alp', 'ggt', 'ck', 'lipase', 'calcium', 'phosphate',
-            'sodium', 'potassium', 'chloride', 'haematocrit', 'wbc']
-GROUP = {a: ("haematology" if a in ("haematocrit", "wbc") else
-             "liver" if a in ("alt", "ast", "alp", "ggt", "bile_acids", "total_bilirubin") else
-             "chemistry") for a in ANALYTES}
-# P(change) per analyte: a few high, some uncertain, most low (invented)
-P_CHANGE = dict(zip(ANALYTES, [0.97, 0.35, 0.55, 0.05, 0.02, 0.12, 0.03, 0.04, 0.08, 0.02, 0.01,
-                               0.03, 0.995, 0.62, 0.04, 0.02, 0.06, 0.09, 0.03, 0.07, 0.01, 0.02,
-                               0.02, 0.05, 0.88]))
-
-
-def fake_assessment(patient="Demo-1", n_analytes=25, trend=True):
-    rng = np.random.default_rng(SEED)
-    t0 = pd.Timestamp("2024-01-10 09:00")
-    specs = [("S1", t0), ("S2", t0 + pd.Timedelta(days=150)), ("S3", t0 + pd.Timedelta(days=330)),
-             ("S4", t0 + pd.Timedelta(days=520)), ("S5", t0 + pd.Timedelta(days=700))]
-    birth = pd.Timestamp("2017-03-01")
-    hist, tab = [], []
-    for a in ANALYTES[:n_analytes]:
-        centre = float(rng.uniform(5, 200))  # invented demo magnitudes
-        cvi = float(rng.uniform(0.04, 0.2))
-        cvg = float(rng.uniform(0.1, 0.3))
-        cva = 0.03
-        vals = centre * np.exp(rng.normal(0, cvi, size=len(specs)))
-        p = P_CHANGE[a]
-        if p > 0.8:
-            vals[-1] *= 1.45
-        for (s, t), v in zip(specs, vals):
-            role, reason = "baseline", ""
-            if s == "S2":
-                role, reason = "unwell", "state unwell"
-            if s == "S3" and a in ("alt", "ast", "potassium"):
-                role, reason = "excluded", "haemolysis index above the pack threshold"
-            if s == "S5":
-                role, reason = "assessed", ""
-            hist.append(dict(patient=patient, species="dog", breed="labrador retriever",
-                             sex="female_neutered", birth_date=birth, specimen=s, collected_at=t,
-                             analyte=a, value=float(v), unit=units.canonical_unit(a),
-                             reported_value=f"{v:.4g}", reported_unit=units.canonical_unit(a),
-                             censor="", method="demo analyser", replicate=1, fasted=True,
-                             haemolysis=np.nan, lipaemia=np.nan, icterus=np.nan,
-                             state="unwell" if s == "S2" else "", source_file="demo.csv",
-                             source_row=len(hist) + 2, role=role, reason=reason,
-                             age_years=(t - birth).days / 365.25))
-        base = vals[[0, 2, 3]] if a not in ("alt", "ast", "potassium") else vals[[0, 3]]
-        sp = float(np.exp(np.mean(np.log(base))))
-        val = float(vals[-1])
-        rcv = 2.77 * np.hypot(cvi, cva) * 100
-        up = (np.exp(1.96 * np.sqrt(2) * np.sqrt(np.log1p(cvi**2) + np.log1p(cva**2))) - 1) * 100
-        down = 100 * (1 / (1 + up / 100) - 1)
-        chg = 100 * (val / sp - 1)
-        row = dict(
-            patient=patient, species="dog", breed="labrador retriever", analyte=a,
-            label=units.label(a), unit=units.canonical_unit(a), specimen="S5",
-            collected_at=specs[-1][1], value=val, reported_value=f"{val:.4g}",
-            reported_unit=units.canonical_unit(a), censor="", n_baseline=len(base),
-            baseline_specimens="S1;S3;S4", assumed_healthy=len(base),
-            set_point_mean=sp, set_point_lower=sp * 0.9, set_point_upper=sp * 1.1,
-            pi_lower=sp * np.exp(-1.96 * cvi * 1.1), pi_upper=sp * np.exp(1.96 * cvi * 1.1),
-            coverage=0.95, percentile=float(np.clip(0.5 + chg / 100, 0.001, 0.999)),
-            bayes_factor=p / (1 - p) * 9, p_change=p, p_increase=0.9 if chg > 0 else 0.1,
-            p_exceed_delta=np.nan, delta_pct=np.nan, change_pct=chg, rcv_classical_pct=rcv,
-            rcv_one_sided_pct=rcv * 1.645 / 1.96, rcv_lognormal_up_pct=up,
-            rcv_lognormal_down_pct=down, change_vs_last_pct=100 * (val / vals[-2] - 1),
-            change_vs_mean_pct=chg, rcv_exceeded_last=abs(chg) > rcv,
-            rcv_exceeded_mean=abs(chg) > rcv, lognormal_exceeded_last=(chg > up) or (chg < down),
-            lognormal_exceeded_mean=(chg > up) or (chg < down), p_significant=0.5,
-            model2_lower=sp * 0.8, model2_upper=sp * 1.2, ii=cvi / cvg,
-            ii_total=np.hypot(cvi, cva) / cvg, n_for_setpoint=4, cva_high=cva > 0.5 * cvi,
-            pop_lower=centre * np.exp(-1.96 * cvg), pop_upper=centre * np.exp(1.96 * cvg),
-            outside_population=bool(val > centre * np.exp(1.96 * cvg)),
-            cvi_pct=100 * cvi, cvg_pct=100 * cvg, cva_pct=100 * cva, retest_group=GROUP[a],
-            quality="haemolysis" if a == "potassium" else "ok", comparable=True,
-            flags=["fed: feeding-sensitive analyte"] if a == "triglycerides" else [],
-            engine="exact", converged=True,
-            trend_p_drift=np.nan, trend_p_increase=np.nan, trend_pct_per_year=np.nan,
-            trend_pct_lower=np.nan, trend_pct_upper=np.nan, trend_years_to_limit=np.nan,
-            trend_limit=np.nan,
-        )
-        if trend and a == "creatinine":
-            row.update(trend_p_drift=0.97, trend_p_increase=0.99, trend_pct_per_year=9.0,
-                       trend_pct_lower=4.0, trend_pct_upper=14.0, trend_years_to_limit=3.1,
-                       trend_limit="upper")
-        tab.append(row)
-    attrs = dict(pack_id="dog-demo", pack_sha256="ab" * 32, engine="exact", seed=1234,
-                 settings={"nodes": 24, "ci_prob": 0.95}, version="0.1.0", coverage=0.95,
-                 prior_change=0.1)
-    return FakeAssessment(pd.DataFrame(tab), pd.DataFrame(hist), attrs)
-
-
-def fake_pack():
-    cited = {a: {"cvi": Cited(0.1, f"Invented demo source for {a} CVI", "demo"),
-                 "cvg": Cited(0.2, "Invented demo source (CVG)", "demo"),
-                 "cva": Cited(0.03, "common practice", "demo")} for a in ANALYTES}
-    groups = {"haematology": RetestGroup(24, 48), "liver": RetestGroup(168, 336),
-              "chemistry": RetestGroup(72, 168)}
-    return FakePack(cited=cited, retest_groups=groups)
+def drift_case() -> str:
+    """A case whose assessment carries a drift sentence (P(drift) >= DRIFT_SENTENCE_P)."""
+    for name in CASES:
+        t = case_assessment(name).table
+        if "trend_p_drift" in t and (t["trend_p_drift"] >= DRIFT_SENTENCE_P).any():
+            return name
+    pytest.fail("the case library has no drift case")
 
 
 class _Collect(HTMLParser):
     def __init__(self):
         super().__init__(convert_charrefs=True)
         self.tags, self.attrs, self.text = [], [], []
-        self.rows, self._row, self._cell, self._in_results = [], None, None, False
+        self.rows, self.row_marks = [], []
+        self._row, self._cell, self._in_results, self._marks = None, None, False, None
 
     def handle_starttag(self, tag, attrs):
         self.tags.append(tag)
@@ -170,9 +68,13 @@ class _Collect(HTMLParser):
         if tag == "table" and "results" in (d.get("class") or ""):
             self._in_results = True
         if self._in_results and tag == "tr":
-            self._row = []
+            self._row, self._marks = [], []
         if self._in_results and tag in ("td", "th"):
             self._cell = []
+        if self._in_results and tag == "svg":
+            self._marks.append({"label": d.get("aria-label"), "fills": []})
+        if self._in_results and tag == "polygon" and self._marks:
+            self._marks[-1]["fills"].append(d.get("fill"))
 
     def handle_endtag(self, tag):
         if tag == "table":
@@ -182,6 +84,7 @@ class _Collect(HTMLParser):
             self._cell = None
         if self._in_results and tag == "tr" and self._row is not None:
             self.rows.append(self._row)
+            self.row_marks.append(self._marks)
             self._row = None
 
     def handle_data(self, data):
@@ -195,6 +98,18 @@ def parse(path):
     p.feed(Path(path).read_text(encoding="utf-8"))
     p.close()
     return p
+
+
+def html_text(path) -> str:
+    return " ".join(" ".join(parse(path).text).split())
+
+
+def pdf_text(path) -> str:
+    import pypdf
+
+    reader = pypdf.PdfReader(str(path))
+    assert len(reader.pages) > 0
+    return " ".join(" ".join(page.extract_text() or "" for page in reader.pages).split())
 
 
 def _float(s):
@@ -264,65 +179,97 @@ def test_individuality_words_cutoffs():
     assert report.individuality_words(1.6) == "population interval informative"
 
 
+def test_retest_windows_in_reading_units():
+    # hand conversions: 24 h = 1 day, 168 h = 7 days = 1 week
+    assert wording.hours_text(24, 48) == "24\u201348 h"
+    assert wording.hours_text(72, 168) == "3\u20137 days"
+    assert wording.hours_text(168, 336) == "1\u20132 weeks"
+    assert wording.hours_text(None, 48) == "at the next visit"
+
+
+# --------------------------------------------------------------------------- summary and advice
 def test_panel_summary_lines():
-    a = fake_assessment()
+    a = case_assessment("dog_liver_enzymes_after_anticonvulsant")
     s = report.panel_summary(a.table)
     mask = report.select_changes(a.table["p_change"].to_numpy())
-    assert [c["analyte"] for c in s["changes"]] == list(
+    assert mask.sum() >= 2  # ALP and ALT rise after the anticonvulsant (case.toml)
+    assert [c.analyte for c in s.changes] == list(
         a.table.loc[mask].sort_values("p_change", ascending=False)["analyte"])
-    assert s["n"] == 25
-    assert "1 \u2212 0.95^25 = 72 %" in s["outside_line"]  # 1 - 0.95^25 = 0.7226
-    assert len(s["drift"]) == 1
-    d = s["drift"][0]
-    assert "Creatinine has been rising about 9 %/year" in d
-    assert "P(drift) 0.97" in d and "~3.1 years" in d and "upper population limit" in d
+    assert s.expected_false == pytest.approx(float(np.sum(1 - a.table.loc[mask, "p_change"])))
+    assert s.n == 4
+    assert "1 \u2212 0.95^4 = 19 %" in s.outside_line  # 1 - 0.95^4 = 0.1855 (by hand)
+    assert s.outside_line.startswith(f"{int(a.table['outside_population'].sum())} of 4 results")
+
+    name = drift_case()
+    t = case_assessment(name).table
+    s = report.panel_summary(t)
+    drifting = t[t["trend_p_drift"] >= DRIFT_SENTENCE_P]
+    assert len(s.drift) == len(drifting) >= 1
+    r, d = drifting.iloc[0], s.drift[0]
+    verb = "rising" if r["trend_pct_per_year"] >= 0 else "falling"
+    assert d.startswith(f"{r['label']} has been {verb} about {abs(r['trend_pct_per_year']):.0f} %/year")
+    assert f"P(drift) {r['trend_p_drift']:.2f}" in d
+    assert f"~{r['trend_years_to_limit']:.1f} years" in d
+    assert f"{r['trend_limit']} population limit" in d
 
 
 def test_retest_advice_uses_pack_groups():
-    a = fake_assessment()
-    adv = {x["group"]: x for x in report.retest_advice(a.table, fake_pack())}
-    # wbc p = 0.88 is not uncertain; haematocrit p = 0.05 neither: no haematology retest
-    assert "haematology" not in adv
-    assert adv["liver"]["when"] == "1\u20132 weeks"          # 168-336 h in the fake pack
-    assert "AST" in adv["liver"]["analytes"]                   # p = 0.62 uncertain
-    assert "ALT" not in adv["liver"]["analytes"]               # p = 0.995
-    chem = adv["chemistry"]
-    assert "Potassium" in chem["analytes"]                     # haemolysed sample
-    assert "Triglycerides" in chem["analytes"]                 # flagged
-    assert chem["when"] == "3\u20137 days"
-    t = a.table.copy()
+    a = case_assessment("dog_haemolysed_specimen")
+    pack = a.packs["dog"]
+    adv = {x.group: x for x in report.retest_advice(a.table, pack)}
+    liver = adv["liver"]
+    assert liver.when == "1\u20132 weeks"                    # 168-336 h in the dog pack
+    assert (pack.retest_groups["liver"].hours_min, pack.retest_groups["liver"].hours_max) == (168, 336)
+    assert liver.source == pack.sources["retest_groups.liver.hours_min"]
+    assert "AST" in liver.analytes                            # p = 0.63: uncertain
+    assert "ALT" in liver.analytes                            # haemolysed sample
+    assert dict(liver.reasons)["ALT"] == "sample compromised (haemolysis)"
+    assert adv["electrolytes"].analytes == ("Potassium",)     # haemolysed sample
+    assert adv["electrolytes"].when == "24\u201372 h"
+    assert "renal" not in adv                                 # creatinine: clear answer, clean sample
+    # a haematology answer in the uncertain band gets the haematology window (24-48 h)
+    t = case_assessment("dog_stable_wellness").table.copy()
+    assert not report.retest_advice(t, pack)                  # nothing uncertain, nothing compromised
     t.loc[t["analyte"] == "wbc", "p_change"] = 0.5
-    adv = {x["group"]: x for x in report.retest_advice(t, fake_pack())}
-    assert adv["haematology"]["when"] == "24\u201348 h"
+    adv = {x.group: x for x in report.retest_advice(t, pack)}
+    assert list(adv) == ["haematology"] and adv["haematology"].when == "24\u201348 h"
+    assert adv["haematology"].reasons == (("WBC", "P(change) 0.50 is uncertain"),)
 
 
 def test_personal_interval_path_calls_assess_per_specimen():
-    a = fake_assessment(n_analytes=3)
-    results = a.history.drop(columns=["role", "reason", "age_years"])
+    name = "dog_unwell_visit_and_censored"
+    frame = case_frame(name)
+    patient = CASES[name][1]["patient"]
     calls = []
 
-    def fake_assess(sub, pack, at, **kw):
+    def spy(sub, pack, at, **kw):  # the real assess, recording what it was asked
         calls.append((at, sorted(sub["specimen"].unique()), kw))
-        last = sub[sub["specimen"] == at]
-        t = last.assign(pi_lower=last["value"] * 0.5, pi_upper=last["value"] * 2.0)
-        return FakeAssessment(t, sub, {})
+        return assess(sub, pack=pack, at=at, **kw)
 
-    path = report.personal_interval_path(results, None, "Demo-1", fake_assess, engine="exact")
-    assert [c[0] for c in calls] == ["S2", "S3", "S4", "S5"]
-    assert calls[0][1] == ["S1", "S2"] and calls[-1][1] == ["S1", "S2", "S3", "S4", "S5"]
-    assert calls[0][2] == {"engine": "exact"}
+    path = report.personal_interval_path(frame, None, patient, spy, engine="exact", trend=False)
+    specs = list(frame.sort_values("collected_at").drop_duplicates("specimen")["specimen"])
+    assert len(specs) == 4
+    assert [c[0] for c in calls] == specs[1:]
+    assert calls[0][1] == sorted(specs[:2]) and calls[-1][1] == sorted(specs)
+    assert calls[0][2] == {"engine": "exact", "trend": False}
     assert list(path.columns) == ["patient", "analyte", "specimen", "collected_at", "pi_lower",
                                   "pi_upper"]
-    assert len(path) == 4 * 3
+    measured = frame[frame["specimen"].isin(specs[1:])].drop_duplicates(["specimen", "analyte"])
+    assert len(path) == len(measured)
+    assert (path["pi_lower"] < path["pi_upper"]).all()
 
 
 # --------------------------------------------------------------------------- the report itself
 @pytest.fixture(scope="module")
 def built(tmp_path_factory):
     d = tmp_path_factory.mktemp("rep")
-    a = fake_assessment()
-    files = report.build_report(a, fake_pack(), d / "r.html", pdf=d / "r.pdf", png_dir=d / "png",
-                                dpi=72)
+    name = "dog_liver_enzymes_after_anticonvulsant"
+    a = case_assessment(name)
+    meta = CASES[name][1]
+    path = report.personal_interval_path(case_frame(name), None, meta["patient"], assess,
+                                         engine="exact", trend=False)
+    files = report.build_report(a, None, d / "r.html", pdf=d / "r.pdf", png_dir=d / "png",
+                                interval_path=path, dpi=72)
     return a, files
 
 
@@ -360,7 +307,7 @@ def test_every_analyte_row_with_its_numbers(built):
 
 def test_cautions_on_top_and_bottom(built):
     _, files = built
-    text = " ".join(" ".join(parse(files.html).text).split())
+    text = html_text(files.html)
     for c in CAUTIONS:
         assert text.count(c) >= 2, c
     assert text.find(CAUTIONS[0]) < text.find("Panel summary")
@@ -381,14 +328,35 @@ def test_no_external_references(built):
 
 def test_summary_lists_selected_changes_and_sections_order(built):
     a, files = built
-    text = " ".join(" ".join(parse(files.html).text).split())
+    text = html_text(files.html)
     i_sum, i_tab = text.find("Panel summary"), text.find("Results over time")
     assert 0 < i_sum < i_tab
     summary_part = text[i_sum: text.find("What to do next")]
-    for lab in ("ALT", "Creatinine"):  # p 0.995 and 0.97 are selected
+    listed = a.table.loc[report.select_changes(a.table["p_change"].to_numpy()), "label"]
+    assert set(listed) == {"ALP", "ALT"}  # the case's expected changes (case.toml)
+    for lab in listed:
         assert lab in summary_part
-    assert "Age at assessed specimen: 8.8 years" in text  # 2017-03-01 to 2025-12-10
-    assert "haemolysis index above the pack threshold" in text
+    # age at the assessed specimen, from the case file: born 2020-01-25, assessed 2026-10-20
+    assert "Age at assessed specimen: 6.7 years" in text  # 2460 days / 365.25 = 6.73
+    for spec in a.history["specimen"].unique():
+        assert spec in text
+
+
+def test_exclusion_reason_in_header(tmp_path):
+    """A haemolysed earlier specimen is left out, and the header says why."""
+    name = "dog_unwell_visit_and_censored"
+    frame = case_frame(name).copy()
+    frame["haemolysis"] = frame["haemolysis"].astype(float)
+    earlier = frame["specimen"] == "D07-2025-06-03"
+    frame.loc[earlier, "haemolysis"] = 400.0  # invented: that draw recorded as haemolysed
+    a = assess(frame, patient=CASES[name][1]["patient"])
+    reasons = a.history.loc[a.history["role"] == "excluded", "reason"]
+    assert len(reasons) and all(r.startswith("sample quality: haemolysis") for r in reasons)
+    files = report.build_report(a, None, tmp_path / "x.html")
+    text = html_text(files.html)
+    assert "left out" in text
+    for r in reasons.unique():
+        assert r in text
 
 
 def test_pngs_written(built):
@@ -400,13 +368,9 @@ def test_pngs_written(built):
 
 
 def test_pdf_has_table_and_cautions(built):
-    import pypdf
     a, files = built
-    raw = files.pdf.read_bytes()
-    assert raw[:5] == b"%PDF-"
-    reader = pypdf.PdfReader(str(files.pdf))
-    assert len(reader.pages) > 0
-    text = " ".join(" ".join(page.extract_text() or "" for page in reader.pages).split())
+    assert files.pdf.read_bytes()[:5] == b"%PDF-"
+    text = pdf_text(files.pdf)
     for lab in a.table["label"]:
         assert lab in text, lab
     for c in CAUTIONS:
@@ -414,48 +378,95 @@ def test_pdf_has_table_and_cautions(built):
     assert "µmol/L" in text  # Unicode survives (DejaVu font)
 
 
-def test_patient_name_is_escaped(tmp_path):
+def test_html_and_pdf_say_the_same_sentences(built):
+    """Both outputs are laid out from one content model: its sentences appear in both."""
+    a, files = built
+    content = report.build_content(a, dpi=40)
+    sentences = [content.summary.intro, content.summary.outside_line, content.table_key,
+                 content.method, *content.summary.drift, *(c.line.text for c in content.summary.changes),
+                 *(x.line.text for x in content.advice)]
+    if content.no_advice:
+        sentences.append(content.no_advice)
+    html_, pdf_ = html_text(files.html), pdf_text(files.pdf)
+    for s in sentences:
+        s = " ".join(s.split())
+        assert s in html_, s
+        assert s in pdf_, s
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        content.title = "changed"  # the content model is frozen
+
+
+def test_patient_breed_and_specimen_are_escaped(tmp_path):
+    """Autoescape: markup in a patient id, a breed or a specimen id is shown as text."""
     evil = "<script>alert(1)</script>"
-    a = fake_assessment(patient=evil, n_analytes=3)
-    files = report.build_report(a, fake_pack(), tmp_path / "x.html")
+    name = "dog_haemolysed_specimen"
+    frame = case_frame(name).copy()
+    assessed_spec = CASES[name][1]["at"]
+    frame["patient"] = evil
+    frame["breed"] = evil
+    frame["specimen"] = frame["specimen"].where(frame["specimen"] != assessed_spec, evil)
+    files = report.report_for_file(frame, evil, None, tmp_path / "x.html", with_path=False)
     raw = files.html.read_text(encoding="utf-8")
     assert evil not in raw
     p = parse(files.html)
     assert "script" not in p.tags
-    assert evil in "".join(p.text)  # shown as text
+    text = " ".join(p.text)
+    assert f"Patient: {evil}" in " ".join(text.split())
+    assert f"Breed: {evil}" in " ".join(text.split())
+    assert f"Assessed specimen: {evil}" in " ".join(text.split())
+    assert text.count(evil) >= 4  # title, patient, breed, specimen (header and list)
 
 
 def test_several_patients_need_a_choice(tmp_path):
-    a1, a2 = fake_assessment("A", 2), fake_assessment("B", 2)
-    both = FakeAssessment(pd.concat([a1.table, a2.table]), pd.concat([a1.history, a2.history]),
-                          a1.attrs)
+    both = pd.concat([case_frame("dog_haemolysed_specimen"), case_frame("dog_new_analyser_and_units")],
+                     ignore_index=True)
+    a = assess(both)
     with pytest.raises(BayesbaseError, match="pass patient"):
-        report.build_report(both, fake_pack(), tmp_path / "x.html")
-    f = report.build_report(both, fake_pack(), tmp_path / "b.html", patient="B")
-    assert "patient B" in f.html.read_text(encoding="utf-8")
+        report.build_report(a, None, tmp_path / "x.html")
+    pid = CASES["dog_new_analyser_and_units"][1]["patient"]
+    f = report.build_report(a, None, tmp_path / "b.html", patient=pid)
+    assert f"patient {pid}" in f.html.read_text(encoding="utf-8")
+    with pytest.raises(BayesbaseError, match="not in the assessment"):
+        report.build_report(a, None, tmp_path / "c.html", patient="nobody")
+
+
+# --------------------------------------------------------------------------- P(change) marks
+def test_table_marks_are_one_hue_stars_by_band(tmp_path):
+    """The table's P(change) mark is the figures' star: hollow below the uncertain band,
+    half-filled in it, filled above it, in the one-hue ramp (no sky-blue/vermillion pair)."""
+    lo, hi = UNCERTAIN_BAND
+    seen = set()
+    for name in ("dog_haemolysed_specimen", "dog_liver_enzymes_after_anticonvulsant"):
+        a = case_assessment(name)
+        files = report.build_report(a, None, tmp_path / f"{name}.html", dpi=40)
+        p = parse(files.html)
+        for cells, marks in zip(p.rows[1:], p.row_marks[1:]):
+            prob = _float(cells[5])
+            shape = "hollow" if prob < lo else ("half" if prob <= hi else "filled")
+            assert len(marks) == 1 and marks[0]["label"] == f"{shape} star", (cells[0], marks)
+            fills = {f for f in marks[0]["fills"] if f != "none"}
+            assert fills <= set(figures.CHANGE_RAMP.values())
+            assert len(fills) == (2 if shape == "half" else 1)
+            seen.add(shape)
+        raw = files.html.read_text(encoding="utf-8").upper()
+        assert "#56B4E9" not in raw  # the former sky blue of "no change"
+    assert seen == {"hollow", "half", "filled"}
 
 
 # --------------------------------------------------------------------------- end to end on cases
-CASES = Path(__file__).resolve().parents[1] / "case_library"
-
-
 @pytest.mark.parametrize("case", ["dog_stable_wellness", "dog_unwell_visit_and_censored"])
 def test_case_report_end_to_end(case, tmp_path):
     """A case from the case library through data -> priors -> assess -> report."""
-    import tomllib
-
-    from bayesbase.assessment import assess
-    from bayesbase.data import load_results
     from bayesbase.priors import load_pack
 
-    meta = tomllib.loads((CASES / case / "case.toml").read_text(encoding="utf-8"))
+    d, meta = CASES[case]
     pack = load_pack(meta["species"])
-    csv = CASES / case / "results.csv"
+    csv = d / "results.csv"
     files = report.report_for_file(csv, meta["patient"], pack, tmp_path / "r.html",
                                    pdf=tmp_path / "r.pdf", at=meta.get("at"))
     a = assess(load_results(csv), pack=pack, at=meta.get("at"), patient=meta["patient"])
     _check_rows(a.table, files.html)
-    text = " ".join(" ".join(parse(files.html).text).split())
+    text = html_text(files.html)
     for c in CAUTIONS:
         assert text.count(c) >= 2
     # the header names every earlier specimen with its role
@@ -465,10 +476,6 @@ def test_case_report_end_to_end(case, tmp_path):
     if (hist["role"] == "unwell").any():
         assert "left out (unwell)" in text
     assert pack.sha256 in text
-    import pypdf
-
-    reader = pypdf.PdfReader(str(files.pdf))
-    assert len(reader.pages) > 0
-    ptext = " ".join(" ".join(pg.extract_text() or "" for pg in reader.pages).split())
+    ptext = pdf_text(files.pdf)
     for lab in a.table["label"]:
         assert lab in ptext

@@ -3,9 +3,9 @@
 Figures are built with :class:`matplotlib.figure.Figure` directly, never through ``pyplot``, so
 nothing global (the backend, the current figure, rcParams) changes when a report is drawn.
 
-Visual language (described to the reader by :data:`LEGEND_TEXT`; colours from the Okabe-Ito
-colour-blind-safe palette, Okabe M & Ito K, "Color Universal Design", 2008, common practice in
-scientific figures):
+Visual language (described to the reader by :data:`LEGEND_TEXT`, written in
+:mod:`.wording`; colours from the Okabe-Ito colour-blind-safe palette, Okabe M & Ito K, "Color
+Universal Design", 2008, common practice in scientific figures):
 
 * population reference interval: two thin reddish-purple dashed limit lines with a faint hatch
   between them;
@@ -14,8 +14,12 @@ scientific figures):
   the interval for the assessed specimen is the last step;
 * baseline specimens: filled blue circles; specimens taken while unwell: hollow black diamonds;
   excluded specimens: dark-grey crosses; specimens after the assessed one: small hollow grey rings;
-* the assessed result: a large star with a black edge, filled by P(change): sky blue below the
-  uncertain band, orange inside it, vermillion above it;
+* the assessed result: a large star with a black edge whose fill shows P(change) in ONE hue
+  (Okabe-Ito orange) from light to dark, and by shape: hollow (pale fill) below the uncertain
+  band, half-filled inside it, filled dark above it. Never a blue/red pair: practice software
+  commonly shows low results in blue and high ones in red, and a "no change" mark must not read
+  as a low result. A one-hue ramp stays ordered for colour-blind readers because it varies in
+  lightness, and the shape carries the band without colour at all;
 * censored results (``<x`` / ``>x``): a small chevron pointing the way the true value lies;
 * drift model (when P(drift) >= 0.5): a black dash-dot line with a pale-yellow band for its credible
   slope range, drawn through the geometric mean of the specimens used.
@@ -24,24 +28,33 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from matplotlib.colors import to_hex, to_rgb
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 import matplotlib.dates as mdates
 
-from ..constants import UNCERTAIN_BAND
+from ..units import display_unit
+from . import wording as w
+from .panel import DRIFT_DRAW_P, change_band
 
-#: The drift line is drawn when the drift model's P(drift) is at least this (a line for a
-#: stable analyte would suggest a drift the model does not support; modelling choice).
-DRIFT_DRAW_P = 0.5
+#: marker size (points) of the assessed star: sqrt of the former scatter areas 140 and 170
+STAR_SIZE_COMPACT, STAR_SIZE = 11.8, 13.0
 
 __all__ = [
     "PALETTE",
+    "CHANGE_RAMP",
+    "CHANGE_SHAPE",
     "LEGEND_TEXT",
+    "ChangeMark",
+    "change_mark",
     "star_colour",
+    "star_svg",
+    "tint",
     "analyte_panel",
     "small_multiples",
     "legend_figure",
@@ -58,29 +71,13 @@ PALETTE = {
     "unwell": "#000000",  # black
     "excluded": "#5A5A5A",  # dark grey
     "later": "#9A9A9A",  # mid grey
-    "low": "#56B4E9",  # sky blue: P(change) below the uncertain band
-    "uncertain": "#E69F00",  # orange: inside the band
-    "probable": "#D55E00",  # vermillion: above the band
+    "change": "#E69F00",  # orange: the one hue of the P(change) marks (see CHANGE_RAMP)
     "trend": "#000000",
     "trend_band": "#F0E442",  # yellow
 }
 
-LEGEND_TEXT = (
-    ("population interval", "two thin reddish-purple dashed lines with a faint hatch between them"),
-    ("personal interval", "bluish-green stepped ribbon: the interval as it stood before each draw "
-     "(from the specimens available then); the last step is the one the assessed result is read "
-     "against"),
-    ("baseline", "filled blue circle"),
-    ("unwell", "hollow black diamond (taken while unwell: not used for the set point)"),
-    ("excluded", "dark-grey cross (left out; the reason is listed in the header)"),
-    ("later", "small hollow grey ring (after the assessed specimen; not used)"),
-    ("assessed", "large star with a black edge, filled by P(change): sky blue below "
-     f"{UNCERTAIN_BAND[0]:.1f}, orange from {UNCERTAIN_BAND[0]:.1f} to {UNCERTAIN_BAND[1]:.1f}, "
-     f"vermillion above {UNCERTAIN_BAND[1]:.1f}"),
-    ("censored", "a chevron beside the point shows the true value lies below (v) or above (^) it"),
-    ("drift", "black dash-dot line with a pale-yellow band (credible range of the slope), drawn "
-     f"when the drift model gives P(drift) \u2265 {DRIFT_DRAW_P}"),
-)
+#: what the marks mean, for the reader (text in :mod:`.wording`)
+LEGEND_TEXT = w.LEGEND_TEXT
 
 _ROLE_STYLE = {
     "baseline": dict(marker="o", s=30, facecolors=PALETTE["baseline"], edgecolors="#003B5C",
@@ -94,16 +91,88 @@ _ROLE_STYLE = {
 }
 
 
-def star_colour(p_change: float) -> str:
-    """Fill colour of the assessed-result star for a posterior probability of change."""
-    if p_change is None or not np.isfinite(p_change):
-        return "#FFFFFF"
-    lo, hi = UNCERTAIN_BAND
-    if p_change < lo:
-        return PALETTE["low"]
-    if p_change <= hi:
-        return PALETTE["uncertain"]
-    return PALETTE["probable"]
+def _mix(colour: str, other: tuple[float, float, float], share: float) -> str:
+    """``colour`` moved ``share`` of the way to ``other`` (RGB 0-1): a tint towards white or a
+    shade towards black keeps the hue."""
+    rgb = to_rgb(colour)
+    return to_hex(tuple(c + share * (o - c) for c, o in zip(rgb, other))).upper()
+
+
+def tint(colour: str, share: float) -> str:
+    """``colour`` moved ``share`` of the way to white (same hue, lighter)."""
+    return _mix(colour, (1.0, 1.0, 1.0), share)
+
+
+#: P(change) bands in one hue, light to dark: pale tint (no change), the Okabe-Ito orange
+#: (uncertain), a dark shade of it (probable change).
+CHANGE_RAMP = {
+    "low": tint(PALETTE["change"], 0.75),
+    "uncertain": PALETTE["change"],
+    "probable": _mix(PALETTE["change"], (0.0, 0.0, 0.0), 0.4),
+}
+#: shape of the mark by band: hollow (pale fill), half-filled, filled
+CHANGE_SHAPE = {"low": "hollow", "uncertain": "half", "probable": "filled"}
+
+
+@dataclass(frozen=True)
+class ChangeMark:
+    """How a P(change) is drawn: its band, shape, and the fill of the left and right halves."""
+
+    band: str | None
+    shape: str
+    left: str
+    right: str
+
+
+def change_mark(p_change) -> ChangeMark:
+    """The mark of a posterior probability of change (missing: a hollow white star)."""
+    band = change_band(None if p_change is None else float(p_change))
+    if band is None:
+        return ChangeMark(None, "hollow", "#FFFFFF", "#FFFFFF")
+    right = CHANGE_RAMP["low"] if band == "uncertain" else CHANGE_RAMP[band]
+    return ChangeMark(band, CHANGE_SHAPE[band], CHANGE_RAMP[band], right)
+
+
+def star_colour(p_change) -> str:
+    """Main fill colour of the assessed-result star (its left half when half-filled)."""
+    return change_mark(p_change).left
+
+
+def _star_vertices(inner: float = 0.381966) -> list[tuple[float, float]]:
+    """The five-pointed star of matplotlib's '*' marker (outer radius 1, point up) in screen
+    coordinates (y down), from the top point round the left side first: the first six
+    vertices outline the left half."""
+    out = []
+    for i in range(10):
+        a = math.pi / 2 + i * math.pi / 5
+        r = 1.0 if i % 2 == 0 else inner
+        out.append((round(r * math.cos(a), 4), round(-r * math.sin(a), 4)))
+    return out
+
+
+def star_svg(p_change, size_mm: float = 3.6, standalone: bool = False) -> str:
+    """The P(change) mark as a small SVG: the same star, fills and shape as in the figures
+    (numbers and fixed colours only, so it is safe to embed as markup)."""
+    mark = change_mark(p_change)
+    pts = _star_vertices()
+    full = " ".join(f"{x},{y}" for x, y in pts)
+    left = " ".join(f"{x},{y}" for x, y in pts[:6])  # top point round the left to the bottom
+    ns = ' xmlns="http://www.w3.org/2000/svg"' if standalone else ""
+    body = f'<polygon points="{full}" fill="{mark.right}"/>'
+    if mark.left != mark.right:
+        body += f'<polygon points="{left}" fill="{mark.left}"/>'
+    body += (f'<polygon points="{full}" fill="none" stroke="#000000" stroke-width="0.12" '
+             'stroke-linejoin="round"/>')
+    return (f'<svg{ns} class="star" viewBox="-1.15 -1.15 2.3 2.3" width="{size_mm}mm" '
+            f'height="{size_mm}mm" role="img" aria-label="{mark.shape} star">{body}</svg>')
+
+
+def _star_style(p_change, size: float) -> dict:
+    """Line2D keywords of the assessed star (a half star is matplotlib's fillstyle 'left')."""
+    mark = change_mark(p_change)
+    return dict(marker="*", markersize=size, linestyle="none", markeredgecolor="#000000",
+                markeredgewidth=0.8, markerfacecolor=mark.left, markerfacecoloralt=mark.right,
+                fillstyle="left" if mark.left != mark.right else "full")
 
 
 def _finite(x) -> bool:
@@ -111,16 +180,6 @@ def _finite(x) -> bool:
         return x is not None and x is not pd.NA and np.isfinite(float(x))
     except (TypeError, ValueError):
         return False
-
-
-def _get(row, key, default=None):
-    try:
-        value = row[key]
-    except (KeyError, IndexError):
-        return default
-    if value is pd.NA or value is None:
-        return default
-    return value
 
 
 def _analyte_history(history: pd.DataFrame, patient, analyte) -> pd.DataFrame:
@@ -147,12 +206,8 @@ def _path_for(interval_path, patient, analyte) -> pd.DataFrame | None:
     return p if len(p) else None
 
 
-def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
-                compact: bool = False) -> None:
-    patient, analyte = row["patient"], row["analyte"]
-    h = _analyte_history(history, patient, analyte)
-    t_assessed = pd.Timestamp(row["collected_at"])
-    times = list(h["collected_at"]) if len(h) else [t_assessed]
+def _window(times: list, t_assessed: pd.Timestamp):
+    """x range of a panel: every specimen with 6 % room, at least a month."""
     t0, t1 = min(times + [t_assessed]), max(times + [t_assessed])
     span = t1 - t0
     if span < pd.Timedelta(days=30):  # one specimen or a few within days: show a month
@@ -160,10 +215,12 @@ def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
         t0, t1 = mid - pd.Timedelta(days=15), mid + pd.Timedelta(days=15)
         span = t1 - t0
     pad = span * 0.06
-    xlo, xhi = t0 - pad, t1 + pad
+    return t0 - pad, t1 + pad, span
 
-    # population interval: dashed limits, faint hatch
-    plo, phi = _get(row, "pop_lower"), _get(row, "pop_upper")
+
+def _draw_population(ax, row, xlo, xhi) -> tuple:
+    """Population interval: dashed limits with a faint hatch between them."""
+    plo, phi = row["pop_lower"], row["pop_upper"]
     if _finite(plo) and _finite(phi):
         ax.fill_between([xlo, xhi], [plo, plo], [phi, phi], facecolor="none",
                         edgecolor=PALETTE["population"], hatch="////", linewidth=0, alpha=0.22,
@@ -171,93 +228,114 @@ def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
         for v in (plo, phi):
             ax.axhline(v, color=PALETTE["population"], linestyle=(0, (4, 3)), linewidth=0.9,
                        zorder=2)
+    return plo, phi
 
-    # personal interval: stepped ribbon
-    path = _path_for(interval_path, patient, analyte)
+
+def _interval_steps(interval_path, row, t_assessed) -> list[tuple]:
+    """(time, lower, upper) of the personal interval at each earlier specimen and now."""
+    path = _path_for(interval_path, row["patient"], row["analyte"])
     steps = []
     if path is not None:
         steps = [(pd.Timestamp(t), lo, hi) for t, lo, hi in
                  zip(path["collected_at"], path["pi_lower"], path["pi_upper"])
                  if pd.Timestamp(t) < t_assessed]
-    if _finite(_get(row, "pi_lower")) and _finite(_get(row, "pi_upper")):
+    if _finite(row["pi_lower"]) and _finite(row["pi_upper"]):
         steps.append((t_assessed, float(row["pi_lower"]), float(row["pi_upper"])))
     steps.sort(key=lambda s: s[0])
-    if steps:
-        spec_times = sorted(set(times))
-        xs, los, his = [], [], []
-        for i, (t, lo, hi) in enumerate(steps):
-            earlier = [u for u in spec_times if u < t]
-            start = earlier[-1] if earlier else t - span * 0.04
-            if xs and start < xs[-1]:
-                start = xs[-1]
-            # each step runs from the previous draw to this one; the last reaches a little past
-            # the assessed result so that the star sits inside its own band
-            end = t + span * 0.02 if i == len(steps) - 1 else t
-            xs += [start, end]
-            los += [lo, lo]
-            his += [hi, hi]
-        ax.fill_between(xs, los, his, facecolor=PALETTE["personal"], alpha=0.26,
-                        edgecolor="none", zorder=2)
-        for ys in (los, his):
-            ax.plot(xs, ys, color=PALETTE["personal"], linewidth=1.0, zorder=3)
+    return steps
 
-    # drift line and band
-    tr = trend
-    p_drift = _get(row, "trend_p_drift")
-    drift_shown = not _finite(p_drift) or float(p_drift) >= DRIFT_DRAW_P
-    if tr is None and drift_shown and _finite(_get(row, "trend_pct_per_year")):
-        tr = {"pct_per_year": float(row["trend_pct_per_year"]),
-              "pct_lower": _get(row, "trend_pct_lower"), "pct_upper": _get(row, "trend_pct_upper")}
+
+def _draw_personal(ax, steps, times, span) -> None:
+    """Personal interval: a stepped ribbon, each step from the previous draw to this one; the
+    last reaches a little past the assessed result so that the star sits inside its own band."""
+    if not steps:
+        return
+    spec_times = sorted(set(times))
+    xs, los, his = [], [], []
+    for i, (t, lo, hi) in enumerate(steps):
+        earlier = [u for u in spec_times if u < t]
+        start = earlier[-1] if earlier else t - span * 0.04
+        if xs and start < xs[-1]:
+            start = xs[-1]
+        end = t + span * 0.02 if i == len(steps) - 1 else t
+        xs += [start, end]
+        los += [lo, lo]
+        his += [hi, hi]
+    ax.fill_between(xs, los, his, facecolor=PALETTE["personal"], alpha=0.26,
+                    edgecolor="none", zorder=2)
+    for ys in (los, his):
+        ax.plot(xs, ys, color=PALETTE["personal"], linewidth=1.0, zorder=3)
+
+
+def _trend_of(row, trend: dict | None) -> dict | None:
+    """The drift to draw: ``trend`` when given, else the row's trend columns when the drift
+    model gives P(drift) >= DRIFT_DRAW_P (an assessment made without trend has no columns)."""
+    if trend is not None:
+        return trend
+    p_drift = row.get("trend_p_drift")
+    shown = not _finite(p_drift) or float(p_drift) >= DRIFT_DRAW_P
+    if shown and _finite(row.get("trend_pct_per_year")):
+        return {"pct_per_year": float(row["trend_pct_per_year"]),
+                "pct_lower": row["trend_pct_lower"], "pct_upper": row["trend_pct_upper"]}
+    return None
+
+
+def _draw_trend(ax, tr: dict | None, h: pd.DataFrame, xlo, xhi) -> None:
+    """Drift line through the geometric mean of the specimens used, with its credible band."""
     used = h[h["role"].isin(["baseline", "assessed"])] if len(h) else h
-    if tr and len(used) >= 2:
-        ct = pd.to_datetime(used["collected_at"])
-        anchor_t = ct.min() + (ct - ct.min()).mean()  # resolution-safe mean time
-        anchor = float(np.exp(np.log(used["value"]).mean()))
-        tt = pd.date_range(xlo, xhi, periods=40)
-        yrs = (tt - anchor_t) / pd.Timedelta(days=365.25)
-        yrs = np.asarray(yrs, dtype=float)
+    if not tr or len(used) < 2:
+        return
+    ct = pd.to_datetime(used["collected_at"])
+    anchor_t = ct.min() + (ct - ct.min()).mean()  # resolution-safe mean time
+    anchor = float(np.exp(np.log(used["value"]).mean()))
+    tt = pd.date_range(xlo, xhi, periods=40)
+    yrs = np.asarray((tt - anchor_t) / pd.Timedelta(days=365.25), dtype=float)
 
-        def line(pct):
-            return anchor * (1.0 + float(pct) / 100.0) ** yrs
+    def line(pct):
+        return anchor * (1.0 + float(pct) / 100.0) ** yrs
 
-        if _finite(tr.get("pct_lower")) and _finite(tr.get("pct_upper")):
-            a, b = line(tr["pct_lower"]), line(tr["pct_upper"])
-            ax.fill_between(tt, np.minimum(a, b), np.maximum(a, b), facecolor=PALETTE["trend_band"],
-                            alpha=0.45, edgecolor="none", zorder=1.5)
-        ax.plot(tt, line(tr["pct_per_year"]), color=PALETTE["trend"], linestyle="-.",
-                linewidth=1.0, zorder=3.5)
+    if _finite(tr.get("pct_lower")) and _finite(tr.get("pct_upper")):
+        a, b = line(tr["pct_lower"]), line(tr["pct_upper"])
+        ax.fill_between(tt, np.minimum(a, b), np.maximum(a, b), facecolor=PALETTE["trend_band"],
+                        alpha=0.45, edgecolor="none", zorder=1.5)
+    ax.plot(tt, line(tr["pct_per_year"]), color=PALETTE["trend"], linestyle="-.",
+            linewidth=1.0, zorder=3.5)
 
-    # specimens by role
+
+def _draw_specimens(ax, h: pd.DataFrame, row, t_assessed, compact: bool) -> float | None:
+    """Specimens by role, the assessed star and the censored chevrons; returns the assessed
+    value (None when missing)."""
     for role, style in _ROLE_STYLE.items():
         sub = h[h["role"] == role] if len(h) else h
         if len(sub):
             ax.scatter(sub["collected_at"], sub["value"], **style)
-    a = h[h["role"] == "assessed"] if len(h) else h
-    value = float(row["value"]) if _finite(_get(row, "value")) else None
+    value = float(row["value"]) if _finite(row["value"]) else None
     if value is not None:
-        ax.scatter([t_assessed], [value], marker="*", s=170 if not compact else 140,
-                   facecolors=star_colour(_get(row, "p_change")), edgecolors="#000000",
-                   linewidths=0.8, zorder=7)
-    # censored chevrons
+        ax.plot([t_assessed], [value], zorder=7,
+                **_star_style(row["p_change"], STAR_SIZE_COMPACT if compact else STAR_SIZE))
     if len(h):
         for _, r in h[h["censor"].isin(["left", "right"])].iterrows():
             ax.annotate("v" if r["censor"] == "left" else "^", (r["collected_at"], r["value"]),
                         xytext=(6, -2), textcoords="offset points", fontsize=7, zorder=8)
-    elif value is not None and _get(row, "censor") in ("left", "right"):
+    elif value is not None and row["censor"] in ("left", "right"):
         ax.annotate("v" if row["censor"] == "left" else "^", (t_assessed, value),
                     xytext=(6, -2), textcoords="offset points", fontsize=7)
-    del a
+    return value
 
-    ax.set_xlim(xlo, xhi)
-    # y range: everything drawn, with room
+
+def _set_ylim(ax, h: pd.DataFrame, values, steps) -> None:
+    """y range: everything drawn, with room."""
     ys = [v for v in list(h["value"]) if _finite(v)] if len(h) else []
-    ys += [v for v in (plo, phi, value) if _finite(v)]
+    ys += [v for v in values if _finite(v)]
     for _, lo, hi in steps:
         ys += [lo, hi]
     if ys:
         lo, hi = min(ys), max(ys)
         r = (hi - lo) or abs(hi) * 0.1 or 1.0
         ax.set_ylim(max(lo - 0.12 * r, 0.0) if lo >= 0 else lo - 0.12 * r, hi + 0.12 * r)
+
+
+def _style_axes(ax, row, compact: bool) -> None:
     # maxticks 4 makes AutoDateLocator warn for spans near 18 months (checked 1 day to 11 years)
     locator = mdates.AutoDateLocator(minticks=2, maxticks=5 if compact else 7)
     ax.xaxis.set_major_locator(locator)
@@ -267,15 +345,28 @@ def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
         ax.spines[side].set_visible(False)
     ax.spines["left"].set_linewidth(0.6)
     ax.spines["bottom"].set_linewidth(0.6)
-
-    label = str(_get(row, "label", analyte))
-    unit = str(_get(row, "display_unit", _get(row, "unit", "")))
-    p = _get(row, "p_change")
-    ptxt = f"P(change) {float(p):.2f}" if _finite(p) else "P(change) n/a"
-    ax.set_title(f"{label}  [{unit}]", fontsize=8.5 if compact else 10, loc="left", pad=3,
-                 fontweight="bold")
+    ptxt = w.panel_p_text(row["p_change"] if _finite(row["p_change"]) else None)
+    ax.set_title(f"{row['label']}  [{display_unit(str(row['analyte']))}]",
+                 fontsize=8.5 if compact else 10, loc="left", pad=3, fontweight="bold")
     ax.text(1.0, 1.01, ptxt, transform=ax.transAxes, ha="right", va="bottom",
             fontsize=7.2 if compact else 8, color="#333333")
+
+
+def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
+                compact: bool = False) -> None:
+    """One analyte of one patient over time, on ``ax``."""
+    h = _analyte_history(history, row["patient"], row["analyte"])
+    t_assessed = pd.Timestamp(row["collected_at"])
+    times = list(h["collected_at"]) if len(h) else [t_assessed]
+    xlo, xhi, span = _window(times, t_assessed)
+    plo, phi = _draw_population(ax, row, xlo, xhi)
+    steps = _interval_steps(interval_path, row, t_assessed)
+    _draw_personal(ax, steps, times, span)
+    _draw_trend(ax, _trend_of(row, trend), h, xlo, xhi)
+    value = _draw_specimens(ax, h, row, t_assessed, compact)
+    ax.set_xlim(xlo, xhi)
+    _set_ylim(ax, h, (plo, phi, value), steps)
+    _style_axes(ax, row, compact)
 
 
 def _new_figure(width, height, dpi=110) -> Figure:
@@ -312,29 +403,24 @@ def analyte_panel(history: pd.DataFrame, table_row, interval_path: pd.DataFrame 
 
 def legend_handles() -> list:
     """Legend entries for the visual language (shared by the figures and the report)."""
+    lab = w.LEGEND_LABELS
     return [
         Line2D([], [], color=PALETTE["population"], linestyle=(0, (4, 3)), linewidth=0.9,
-               label="population interval"),
+               label=lab["population"]),
         Patch(facecolor=PALETTE["personal"], alpha=0.35, edgecolor=PALETTE["personal"],
-              label="personal interval (stepped)"),
+              label=lab["personal"]),
         Line2D([], [], marker="o", linestyle="none", markerfacecolor=PALETTE["baseline"],
-               markeredgecolor="#003B5C", label="baseline"),
+               markeredgecolor="#003B5C", label=lab["baseline"]),
         Line2D([], [], marker="D", linestyle="none", markerfacecolor="none",
-               markeredgecolor=PALETTE["unwell"], label="unwell"),
+               markeredgecolor=PALETTE["unwell"], label=lab["unwell"]),
         Line2D([], [], marker="X", linestyle="none", markersize=7,
-               markerfacecolor=PALETTE["excluded"], markeredgecolor="none", label="excluded"),
+               markerfacecolor=PALETTE["excluded"], markeredgecolor="none", label=lab["excluded"]),
         Line2D([], [], marker="o", linestyle="none", markerfacecolor="none", markersize=4.5,
-               markeredgecolor=PALETTE["later"], label="later, not used"),
-        Line2D([], [], marker="*", linestyle="none", markersize=11, markerfacecolor=PALETTE["low"],
-               markeredgecolor="#000", label=f"assessed, P(change) < {UNCERTAIN_BAND[0]:g}"),
-        Line2D([], [], marker="*", linestyle="none", markersize=11,
-               markerfacecolor=PALETTE["uncertain"], markeredgecolor="#000",
-               label=f"assessed, {UNCERTAIN_BAND[0]:g}-{UNCERTAIN_BAND[1]:g}"),
-        Line2D([], [], marker="*", linestyle="none", markersize=11,
-               markerfacecolor=PALETTE["probable"], markeredgecolor="#000",
-               label=f"assessed, > {UNCERTAIN_BAND[1]:g}"),
+               markeredgecolor=PALETTE["later"], label=lab["later"]),
+        *[Line2D([], [], label=lab[f"star_{band}"], **_star_style(p, 11))
+          for band, p in (("low", 0.0), ("uncertain", 0.5), ("probable", 1.0))],
         Line2D([], [], color=PALETTE["trend"], linestyle="-.", linewidth=1.0,
-               label=f"drift (P(drift) \u2265 {DRIFT_DRAW_P})"),
+               label=lab["drift"]),
     ]
 
 

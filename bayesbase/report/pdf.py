@@ -1,0 +1,244 @@
+"""The PDF report (A4 landscape, fpdf2): layout only, from the same content model as the HTML.
+The cautions open and close the document and run in the footer of every page."""
+from __future__ import annotations
+
+from io import BytesIO
+from pathlib import Path
+
+from matplotlib.colors import to_rgb
+
+from .. import __version__
+from . import figures
+from . import wording as w
+from .figures import tint
+from .content import ReportContent
+
+__all__ = ["render"]
+
+#: column widths (mm) of the results table: the headings of wording.RESULT_HEADINGS with a
+#: narrow column for the P(change) star before P(change)
+_RESULT_WIDTHS = (27, 15, 24, 24, 18, 6, 31, 17, 22, 26, 21, 46)
+_STAR_COLUMN = 5
+_CV_WIDTHS = (40, 30, 30, 30, 60)
+#: fill of the P(change) cell by band: the star's one hue, lightened, darker as a change grows
+#: more probable (no fill for "no change")
+_BAND_TINTS = {band: tuple(round(255 * c) for c in to_rgb(tint(figures.PALETTE["change"], share)))
+               for band, share in (("uncertain", 0.8), ("probable", 0.55))}
+_HEADING_FILL = (232, 244, 240)
+
+
+def _font_paths() -> tuple[Path, Path] | None:
+    import matplotlib
+
+    base = Path(matplotlib.get_data_path()) / "fonts" / "ttf"
+    reg, bold = base / "DejaVuSans.ttf", base / "DejaVuSans-Bold.ttf"
+    return (reg, bold) if reg.exists() and bold.exists() else None
+
+
+def _document(title: str):
+    """An fpdf2 document with the cautions in its footer, and its font family."""
+    from fpdf import FPDF
+
+    class _Doc(FPDF):
+        font_name = "Helvetica"
+
+        def footer(self):
+            self.set_y(-10)
+            self.set_font(self.font_name, size=6.5)
+            self.set_text_color(110, 40, 0)
+            self.cell(0, 4, w.page_footer(self.page_no()), align="C")
+            self.set_text_color(0, 0, 0)
+
+    doc = _Doc(orientation="L", unit="mm", format="A4")
+    fonts = _font_paths()
+    if fonts:
+        doc.add_font("DejaVu", "", str(fonts[0]))
+        doc.add_font("DejaVu", "B", str(fonts[1]))
+        doc.font_name = "DejaVu"
+    doc.set_title(title)
+    doc.set_creator(f"bayesbase {__version__}")
+    doc.set_auto_page_break(True, margin=13)
+    doc.set_margins(10, 10, 10)
+    return doc
+
+
+class _Layout:
+    """Writes the sections of one report on an fpdf2 document."""
+
+    def __init__(self, content: ReportContent):
+        self.c = content
+        self.pdf = _document(content.title)
+        self.ff = self.pdf.font_name
+        self.pdf.add_page()
+        self.W = self.pdf.w - self.pdf.l_margin - self.pdf.r_margin
+
+    # -- text primitives
+    def txt(self, s) -> str:
+        s = str(s).replace(w.SHY, "")
+        if self.ff == "Helvetica":  # core font: Latin-1 only
+            s = s.encode("latin-1", "replace").decode("latin-1")
+        return s
+
+    def para(self, s, size: float = 8.5, style: str = "") -> None:
+        self.pdf.set_font(self.ff, style, size)
+        self.pdf.multi_cell(self.W, size * 0.48, self.txt(s), new_x="LMARGIN", new_y="NEXT",
+                            align="L")
+
+    def h2(self, s: str, need: float = 30) -> None:
+        """A section heading, on a new page when less than ``need`` mm are left under it."""
+        pdf = self.pdf
+        if pdf.get_y() > pdf.h - need:
+            pdf.add_page()
+        pdf.ln(1.5)
+        pdf.set_font(self.ff, "B", 11)
+        pdf.set_text_color(0, 100, 70)
+        pdf.cell(self.W, 6, self.txt(s), new_x="LMARGIN", new_y="NEXT")
+        pdf.set_draw_color(0, 158, 115)
+        pdf.line(pdf.l_margin, pdf.get_y(), pdf.l_margin + self.W, pdf.get_y())
+        pdf.set_text_color(0, 0, 0)
+        pdf.ln(1)
+
+    def cautions_box(self) -> None:
+        pdf = self.pdf
+        if pdf.get_y() > pdf.h - pdf.b_margin - 14:  # keep the box on one page
+            pdf.add_page()
+        pdf.set_draw_color(213, 94, 0)
+        pdf.set_fill_color(255, 247, 240)
+        pdf.set_font(self.ff, "B", 8.5)
+        y0 = pdf.get_y()
+        pdf.multi_cell(self.W, 4.4, self.txt(w.cautions_line()), border=1, fill=True,
+                       new_x="LMARGIN", new_y="NEXT", align="L", padding=1.2)
+        pdf.set_y(max(pdf.get_y(), y0) + 1.5)
+
+    # -- sections
+    def header(self) -> None:
+        self.cautions_box()
+        self.pdf.set_font(self.ff, "B", 14)
+        self.pdf.multi_cell(self.W, 7, self.txt(self.c.title), new_x="LMARGIN", new_y="NEXT")
+        fields = self.c.header
+        self.para(" \u00b7 ".join(f"{k}: {v}" for k, v in fields[:-1]), 9)
+        self.para(f"{fields[-1][0]}: {fields[-1][1]}", 9, "B")
+        for s in self.c.specimens:
+            bits = [" ".join(x for x in (p.word, p.analytes, p.reasons) if x) for p in s.parts]
+            self.para(f"{s.date}  {s.specimen}: " + " \u00b7 ".join(bits), 7.8)
+
+    def summary(self) -> None:
+        summ = self.c.summary
+        self.h2(w.SECTION_SUMMARY)
+        self.para(summ.intro, 9)
+        for ch in summ.changes:
+            self.para(f"   \u2022 {ch.line.text}", 9, "B")
+        self.para(summ.outside_line, 9)
+        for d in summ.drift:
+            self.para(d, 9)
+
+    def results(self) -> None:
+        from fpdf.fonts import FontFace
+
+        self.h2(w.SECTION_RESULTS)
+        if self.c.common_line:
+            self.para(self.c.common_line, 7.5)
+        pdf = self.pdf
+        pdf.set_font(self.ff, "", 7)
+        pdf.set_fill_color(255, 255, 255)
+        heading = FontFace(emphasis="BOLD", fill_color=_HEADING_FILL)
+        with pdf.table(col_widths=_RESULT_WIDTHS, width=self.W, line_height=3.3,
+                       text_align="LEFT", headings_style=heading,
+                       borders_layout="HORIZONTAL_LINES", padding=0.8, repeat_headings=1,
+                       v_align="TOP", cell_fill_mode="NONE") as tab:
+            hr = tab.row()
+            headings = list(self.c.headings)
+            headings.insert(_STAR_COLUMN, "")
+            for h in headings:
+                hr.cell(self.txt(h))
+            for r in self.c.rows:
+                self._result_row(tab.row(), r, FontFace)
+        self.para(self.c.table_key, 7)
+
+    def _result_row(self, tr, r, FontFace) -> None:
+        bold = FontFace(emphasis="BOLD")
+        tint = _BAND_TINTS.get(r.band)
+        tr.cell(self.txt(f"{r.label}\n{r.unit}"), style=bold)
+        tr.cell(self.txt(r.value), style=bold if r.outside_population else None)
+        tr.cell(self.txt(r.population))
+        tr.cell(self.txt(r.personal))
+        tr.cell(self.txt(r.percentile))
+        star = None if r.p_change is None else BytesIO(
+            figures.star_svg(r.p_change, standalone=True).encode("utf-8"))
+        tr.cell("", img=star, img_fill_width=True, padding=(0.6, 0.4, 0.4, 0.8),
+                style=FontFace(fill_color=tint))
+        tr.cell(self.txt(f"{r.p_text}{r.arrow}\n{r.vs_set_point}"),
+                style=FontFace(emphasis="BOLD", fill_color=tint))
+        tr.cell(self.txt(r.delta_mean))
+        tr.cell(self.txt(r.classical.text.strip()), style=bold if r.classical.beyond else None)
+        tr.cell(self.txt(r.lognormal.text.strip()), style=bold if r.lognormal.beyond else None)
+        tr.cell(self.txt(f"{r.ii}\n{r.ii_short}"))
+        tr.cell(self.txt(self.c.own_notes(r)))
+
+    def advice(self) -> None:
+        self.h2(w.SECTION_NEXT)
+        for a in self.c.advice:
+            self.para(a.line.text, 8.5, "B")
+            self.para(a.reasons_text, 7.5)
+        if self.c.no_advice:
+            self.para(self.c.no_advice, 8.5)
+
+    def figures(self, ncol: int = 4, gap: float = 3) -> None:
+        pdf, figs = self.pdf, self.c.figures
+        cw = (self.W - gap * (ncol - 1)) / ncol
+        ch = cw * figs.ratio
+        # keep the heading with the legend strip, its key and the first row of figures
+        self.h2(w.SECTION_FIGURES, need=self.W * 0.8 * figs.legend_ratio + 25 + ch)
+        pdf.image(BytesIO(figs.legend_png), w=self.W * 0.8, x=pdf.l_margin + self.W * 0.1)
+        self.para(" \u00b7 ".join(f"{k}: {v}" for k, v in figs.legend), 6.8)
+        y = pdf.get_y() + 1
+        for i, panel in enumerate(figs.panels):
+            col = i % ncol
+            if col == 0 and i:
+                y += ch + gap
+            if y + ch > pdf.h - 13:
+                pdf.add_page()
+                y = pdf.t_margin
+            pdf.image(BytesIO(panel.png), x=pdf.l_margin + col * (cw + gap), y=y, w=cw, h=ch)
+        pdf.set_y(y + ch + gap)
+
+    def method(self) -> None:
+        from fpdf.fonts import FontFace
+
+        self.h2(w.SECTION_METHOD)
+        self.para(self.c.method, 7.6)
+        self.pdf.ln(1)
+        for k, v in self.c.provenance:
+            self.para(f"{k}: {v}", 7.6)
+        self.pdf.ln(1)
+        self.pdf.set_font(self.ff, "", 7)
+        heading = FontFace(emphasis="BOLD", fill_color=_HEADING_FILL)
+        with self.pdf.table(col_widths=_CV_WIDTHS, width=sum(_CV_WIDTHS), cell_fill_mode="NONE",
+                            line_height=3.2, text_align="LEFT", headings_style=heading,
+                            borders_layout="HORIZONTAL_LINES", padding=0.6, align="LEFT") as tab:
+            hr = tab.row()
+            for h in w.CV_HEADINGS:
+                hr.cell(h)
+            for cv in self.c.cv_rows:
+                tr = tab.row()
+                tr.cell(self.txt(cv.label))
+                for cell in cv.cells:
+                    tr.cell(self.txt(f"{cell.text} {cell.ref}"))
+        if self.c.references:
+            self.pdf.ln(1)
+            for i, ref in enumerate(self.c.references, 1):
+                self.para(f"[{i}] {ref}", 6.6)
+
+
+def render(content: ReportContent, path) -> None:
+    """Write the report as a PDF at ``path``."""
+    lay = _Layout(content)
+    lay.header()
+    lay.summary()
+    lay.results()
+    lay.advice()
+    lay.figures()
+    lay.method()
+    lay.pdf.ln(2)
+    lay.cautions_box()
+    lay.pdf.output(str(path))
