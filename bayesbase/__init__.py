@@ -26,9 +26,12 @@ def __getattr__(name):  # lazy exports keep `bayesbase --help` fast
     if name == "assess":
         from .assessment import assess
         return assess
-    if name in ("load_results", "validate"):
-        from . import data
-        return getattr(data, name)
+    if name == "load_results":  # the older name of bayesbase.io.read_results
+        from .io import read_results
+        return read_results
+    if name == "validate":  # the package; its validate() is bayesbase.validate.validate
+        from . import validate
+        return validate
     if name == "load_pack":
         from .priors import load_pack
         return load_pack

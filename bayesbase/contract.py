@@ -1,7 +1,7 @@
 """The data contract every unit shares, declared once (standard library only).
 
 - :data:`CANONICAL_COLUMNS` / :data:`CANONICAL_DTYPES`: the canonical results frame
-  (DEVELOPERS.md, "Canonical results frame"), as :func:`bayesbase.data.validate` builds it;
+  (DEVELOPERS.md, "Canonical results frame"), as :func:`bayesbase.validate.validate` builds it;
 - :data:`HIL_INDICES`: the sample-quality (haemolysis, lipaemia, icterus) index columns;
 - the roles an assessment gives every row of a patient's history (:data:`ROLES`);
 - :func:`is_canonical`: the one test of "this frame is already canonical, do not validate again".

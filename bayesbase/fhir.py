@@ -1,6 +1,7 @@
 """FHIR R4 import and export of laboratory results (standard library ``json`` only).
 
-Layer 4: imports ``bayesbase.constants``, ``errors``, ``units`` and (for validation) ``data``.
+Layer 4: imports ``bayesbase.constants``, ``errors``, ``units``, ``privacy`` (pseudonyms on
+export) and (for validation) ``data``; never ``bayesbase.store``.
 
 Reading (:func:`read_bundle`)
 -----------------------------
@@ -1057,14 +1058,14 @@ def write_bundle(canonical_frame, path, pseudonymise: bool = True, *, salt: byte
     """Write a canonical frame as a FHIR R4 Bundle (type collection) in JSON.
 
     With ``pseudonymise`` patient and specimen ids are replaced by ``P-``/``S-`` HMAC pseudonyms
-    (see :mod:`bayesbase.store`); ``salt`` makes them stable across exports (the store passes
+    (see :mod:`bayesbase.privacy`); ``salt`` makes them stable across exports (the store passes
     its own); without one a fresh random salt is used, so two exports cannot be linked.
     """
     frame = canonical_frame
     if pseudonymise:
         import secrets
 
-        from .store import pseudonymise_frame
+        from .privacy import pseudonymise_frame
         frame = pseudonymise_frame(frame, salt if salt is not None else secrets.token_bytes(32))
     bundle = bundle_dict(frame, utc_offset=utc_offset)
     path = Path(path)

@@ -11,7 +11,17 @@ Names and units are matched leniently:
   ``"Total Protein"``, ``"total_protein"`` and ``"TP"`` all resolve to ``total_protein``;
 * unit spellings are case-insensitive; ``µ``/``μ``/``mc`` mean micro (``u``); spaces are ignored;
   ``mEq/L`` is ``meq/L``; ``x10^9/L``, ``10^9/L``, ``10E9/L`` and ``10*9/L`` are the same; ``K/uL``
-  is ``10*3/uL``; ``M/uL`` is ``10*6/uL``; ``IU/L`` is ``[IU]/L``.
+  is ``10*3/uL``; ``M/uL`` is ``10*6/uL``; ``IU/L`` is ``[IU]/L``; ``/mm3``, ``cells/uL`` and
+  ``cells/mm3`` are ``/uL`` (1 mm3 = 1 uL); ``giga/L`` and ``Gpt/L`` are ``10*9/L``, ``tera/L`` and
+  ``Tpt/L`` are ``10*12/L``.
+
+Cell counts in giga or tera per litre: ``G/L`` (capital G, the giga-per-litre convention of many
+European laboratories, "1 G/L = 1 x 10^9/L", labtests.co.in WBC unit converter) and ``T/L`` (SI
+prefix tera = 10^12, common practice). Because unit spellings are otherwise case-insensitive and
+an all-capitals export writes grams per litre as ``G/L``, :func:`normalise_unit` alone reads
+``G/L`` as ``g/L``; :func:`conversion_factor` reads ``G/L``/``T/L`` as a count wherever the analyte
+is a cell count (its accepted units are counts), and as grams per litre elsewhere. A count
+reported in lower-case ``g/L`` is refused with a hint to write ``G/L``.
 
 The reported *name* can matter for the factor: urea reported as urea nitrogen (``BUN``) in mg/dL
 converts with 0.357, urea reported as urea in mg/dL with 0.1665. Pass ``reported_name`` to
@@ -27,7 +37,7 @@ import difflib
 import re
 import tomllib
 from functools import lru_cache
-from pathlib import Path
+from importlib import resources
 
 from .errors import BayesbaseError
 
@@ -88,9 +98,15 @@ KNOWN_UNITS = (
     "umol/L", "mmol/L", "nmol/L", "pmol/L",
     "mg/dL", "mg/L", "g/dL", "g/L", "ug/dL", "ug/L", "ng/dL", "ng/mL",
     "U/L", "[IU]/L", "ukat/L", "nkat/L", "meq/L",
-    "10*9/L", "10*3/uL", "/nL", "10*12/L", "10*6/uL", "/pL",
+    "10*9/L", "10*3/uL", "/nL", "10*12/L", "10*6/uL", "/pL", "/uL",
     "L/L", "%",
 )
+
+#: Units of a number of cells per volume (an analyte accepting one of them is a cell count).
+COUNT_UNITS = frozenset({"10*9/L", "10*3/uL", "/nL", "10*12/L", "10*6/uL", "/pL", "/uL"})
+
+# "G/L", "G/l", "Gpt/L" (giga) and "T/L", "Tpt/L" (tera): case-sensitive, capital prefix letter.
+_COUNT_PREFIX = re.compile(r"^(?:(?P<g>G)|(?P<t>T))(?:pt)?/[lL]$")
 
 _SUPERSCRIPTS = str.maketrans("⁰¹²³⁴⁵⁶⁷⁸⁹", "0123456789")
 _POWER = re.compile(r"^[x×*]?10(?:\^|\*|\*\*|e)?(\d+)/")
@@ -117,6 +133,13 @@ _UNIT_SYNONYMS = {
     "mill/ul": "10*6/uL",
     "1/nl": "/nL",
     "1/pl": "/pL",
+    "1/ul": "/uL",
+    "cells/ul": "/uL",
+    "cell/ul": "/uL",
+    "giga/l": "10*9/L",
+    "gpt/l": "10*9/L",
+    "tera/l": "10*12/L",
+    "tpt/l": "10*12/L",
     "g/100ml": "g/dL",
     "mg/100ml": "mg/dL",
     "ug/100ml": "ug/dL",
@@ -156,16 +179,9 @@ def _name_key(name: str) -> str:
     return re.sub(r"[\s_\-]+", " ", str(name).strip().lower()).strip()
 
 
-def _registry_path() -> Path:
-    try:
-        from importlib.resources import files
-
-        path = Path(str(files("bayesbase.models").joinpath("analytes.toml")))
-        if path.is_file():
-            return path
-    except ModuleNotFoundError:  # pragma: no cover - package data not installed
-        pass
-    return Path(__file__).resolve().parent.parent / "models" / "analytes.toml"
+def _registry_path():
+    """The registry file, read as package data of ``bayesbase.models`` (``models/analytes.toml``)."""
+    return resources.files("bayesbase.models").joinpath("analytes.toml")
 
 
 def _check_conversions(where: str, table: object, problems: list[str]) -> dict[str, dict]:
@@ -234,8 +250,7 @@ def _check_range(where: str, entry: object, problems: list[str]) -> dict | None:
 @lru_cache(maxsize=1)
 def _registry() -> dict:
     path = _registry_path()
-    with open(path, "rb") as fh:
-        raw = tomllib.load(fh)
+    raw = tomllib.loads(path.read_bytes().decode("utf-8"))
     problems: list[str] = []
     analytes: dict[str, dict] = {}
     names: dict[str, str] = {}  # name key -> analyte id
@@ -375,22 +390,38 @@ def accepted_units(analyte: str, reported_name: str | None = None) -> list[str]:
     return list(_table(analyte, reported_name)[1])
 
 
+def _count_prefix_unit(text: str) -> str | None:
+    """``10*9/L`` for ``G/L``/``Gpt/L``, ``10*12/L`` for ``T/L``/``Tpt/L`` (capital letter), else None."""
+    m = _COUNT_PREFIX.match(re.sub(r"\s+", "", str(text)))
+    if m is None:
+        return None
+    return "10*9/L" if m.group("g") else "10*12/L"
+
+
 def _entry(analyte: str, unit: str, reported_name: str | None) -> dict:
     spec, table, group = _table(analyte, reported_name)
     accepted = ", ".join(table)
     shown = spec["label"] if group is None else f"{spec['label']} reported as {reported_name or analyte}"
-    try:
-        canon = normalise_unit(unit)
-    except UnitError as exc:
-        close = difflib.get_close_matches(_squash(unit), [_squash(u) for u in table], n=1, cutoff=0.5)
-        hint = f"did you mean '{normalise_unit(close[0])}'? " if close else ""
-        raise UnitError(str(unit), f"unknown unit '{unit}' for {shown}",
-                        f"{hint}accepted units: {accepted}".strip()) from exc
+    is_count = bool(COUNT_UNITS.intersection(table))
+    canon = _count_prefix_unit(unit) if is_count else None
+    if canon is None:
+        try:
+            canon = normalise_unit(unit)
+        except UnitError as exc:
+            close = difflib.get_close_matches(_squash(unit), [_squash(u) for u in table], n=1, cutoff=0.5)
+            hint = f"did you mean '{normalise_unit(close[0])}'? " if close else ""
+            raise UnitError(str(unit), f"unknown unit '{unit}' for {shown}",
+                            f"{hint}accepted units: {accepted}".strip()) from exc
     if canon not in table:
+        hint = f"accepted units: {accepted}"
+        if is_count and canon == "g/L":
+            # grams per litre cannot be a count; the writer most likely meant giga per litre
+            hint += ("; 'g/L' is grams per litre: a count in giga per litre is written 'G/L' "
+                     "(capital G) or '10^9/L'")
+            raise UnitError(str(unit), f"unit '{unit}' is not accepted for {shown}", hint)
         # A real unit, impossible for this analyte: perhaps the analyte name is the mistake.
         others = [aid for aid, a in _registry()["analytes"].items()
                   if canon in a["conversions"] and aid != spec["id"]]
-        hint = f"accepted units: {accepted}"
         if others:
             more = ", ..." if len(others) > 5 else ""
             hint += (f"; did you mean another analyte? '{canon}' is a unit of "

@@ -18,8 +18,8 @@ PKG = Path(__file__).resolve().parents[1] / "bayesbase"
 #: layer of every unit (DEVELOPERS.md, "Module map")
 LAYER = {
     "constants": 0, "errors": 0, "contract": 0,
-    "units": 1, "classical": 1, "evidence": 1,
-    "data": 2, "priors": 2,
+    "units": 1, "classical": 1, "evidence": 1, "privacy": 1, "testing": 1,
+    "io": 2, "validate": 2, "priors": 2,
     "model": 3, "mcmc": 3,
     "assessment": 4, "store": 4, "fhir": 4,
     "research": 5, "report": 5, "study": 5, "interval": 5, "calibrate": 5,
@@ -215,7 +215,7 @@ def test_help_does_not_import_heavy_modules():
 def test_core_numerics_do_not_import_pymc_at_import_time():
     code = (
         "import sys\n"
-        "import bayesbase.model.engine, bayesbase.assessment, bayesbase.data, bayesbase.priors\n"
+        "import bayesbase.model.engine, bayesbase.assessment, bayesbase.io, bayesbase.priors\n"
         "print(','.join(m for m in ('pymc', 'pytensor', 'arviz', 'matplotlib') if m in sys.modules))\n"
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)

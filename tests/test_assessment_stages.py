@@ -21,7 +21,9 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from bayesbase import classical, contract, data
+from bayesbase import classical, contract
+from bayesbase.io import read_results
+from bayesbase.validate import validate
 from bayesbase.assessment import Assessment, assess
 from bayesbase.assessment import cases as cases_mod
 from bayesbase.assessment import comparisons, engine_step, flags, frame, packs, result, roles
@@ -65,7 +67,7 @@ def raw() -> pd.DataFrame:
 
 @pytest.fixture(scope="module")
 def canon(raw) -> pd.DataFrame:
-    return data.validate(raw, source="scenario.csv", now=NOW)
+    return validate(raw, source="scenario.csv", now=NOW)
 
 
 def _stages(canon, **kw):
@@ -103,8 +105,8 @@ def _row(hist, specimen, analyte):
 def test_contract_columns_are_the_readers_and_the_stores(canon):
     from bayesbase import store
 
-    # data.py and store.py still declare their own copy (to be replaced by the contract)
-    assert contract.CANONICAL_COLUMNS == data.CANONICAL_COLUMNS == store.CANONICAL_COLUMNS
+    # store.py still declares its own copy (to be replaced by the contract)
+    assert contract.CANONICAL_COLUMNS == store.CANONICAL_COLUMNS
     assert tuple(canon.columns) == contract.CANONICAL_COLUMNS
     assert {c: str(t) for c, t in canon.dtypes.items()} == contract.CANONICAL_DTYPES
     assert set(contract.ROLES) >= {"assessed", "baseline", "unwell", "excluded", "later"}
@@ -311,8 +313,9 @@ def test_each_flag_alone(canon, st):
     assert flags.assumed_healthy(b)[cre] == "1 baseline(s) assumed healthy (state blank)"
     assert flags.assumed_healthy(b)[glu] == ""
     hae = _flag("haemolysis_over_threshold")(b)
-    assert hae[pot] == ("haemolysis index 150 above 100: expected interference up; the result is compromised "
-                        "and even a value inside the interval may be unreliable")
+    # the dog pack's potassium: haemolysis threshold 100, interference up (sourced in models/dog.toml)
+    assert hae[pot] == flags.hil_words("haemolysis", 150, 100, "up")
+    assert "falsely high" in hae[pot] and "clean, promptly separated specimen" in hae[pot]
     assert hae[glu] == ""  # 150 under the glucose threshold (500)
     assert flags.quality(b)[pot] == "haemolysis" and flags.quality(b)[glu] == "ok"
     assert flags.not_fasted(b)[glu] == "assessed specimen not fasted (feeding-sensitive analyte)"
@@ -320,7 +323,8 @@ def test_each_flag_alone(canon, st):
     assert flags.method_changed(b)[cre] == ("not directly comparable: method changed (analyser-A -> analyser-B) "
                                             "and no between-method bias is given")
     assert flags.mixed_units(b)[p2] == "reported in different units (mg/dL, umol/L); converted to umol/L"
-    assert flags.young_animal(b)[cre].startswith("young animal: ")
+    assert flags.young_animal(b)[cre].startswith("young animal (")
+    assert flags.young_animal(b)[cre].endswith(f"age rule under 1.5 years): {b.prior[cre].age_dependent}")
     assert flags.young_animal(b)[p2] == ""  # no birth date
     assert flags.breed_centre(b)[cre] == "breed-specific centre used (greyhound)"
     assert flags.breed_centre(b)[glu] == ""  # no greyhound centre for glucose
@@ -337,7 +341,7 @@ def test_censored_flags(raw):
     r = raw.copy()
     r.loc[(r["specimen"] == "B1") & (r["analyte"] == "creatinine"), "value"] = "<95"
     r.loc[(r["specimen"] == "B2") & (r["analyte"] == "creatinine"), "value"] = "<1.1"
-    b = _stages(data.validate(r, now=NOW), patient="P2")["batch"]
+    b = _stages(validate(r, now=NOW), patient="P2")["batch"]
     assert flags.censored_assessed(b).tolist() == ["assessed value is censored (<1.1)"]
     assert flags.censored_baseline(b).tolist() == [
         "censored baseline value used at its limit (exact engine; use --engine mcmc to model it)"]
@@ -351,10 +355,9 @@ def test_flags_are_listed_in_order(st):
         "assumed_healthy", "censored_baseline", "censored_assessed", "haemolysis_over_threshold",
         "lipaemia_over_threshold", "icterus_over_threshold"]
     assert flags.case_flags(b)[pot] == [
-        "haemolysis index 150 above 100: expected interference up; the result is compromised and even a "
-        "value inside the interval may be unreliable",
+        flags.hil_words("haemolysis", 150, 100, "up"),
         "not directly comparable: method changed (analyser-A -> analyser-B) and no between-method bias is given",
-        f"young animal: {b.prior[pot].age_dependent}",
+        flags.young_animal(b)[pot],
     ]
 
 
@@ -433,7 +436,7 @@ def test_trend_eligibility_follows_the_rule_on_every_case():
     """Independent count over each case-library history: usable specimens (baseline + assessed)."""
     for d in case_dirs():
         case = load_case(d)
-        a = assess(data.load_results(d / "results.csv"), patient=case["patient"], at=case.get("at"))
+        a = assess(read_results(d / "results.csv"), patient=case["patient"], at=case.get("at"))
         h = a.history[a.history["role"].isin(["baseline", "assessed"])]
         for r in a.table.itertuples():
             used = h[h["analyte"] == r.analyte].drop_duplicates("specimen")["collected_at"]
@@ -488,7 +491,7 @@ def test_two_patients_sharing_specimen_ids_are_assessed_apart(at):
     """Two dogs whose specimens are both called S1, S2, ... (specimen ids are per patient):
     assessed together, each gets what it gets alone."""
     names = ["dog_stable_wellness", "dog_alp_personal_change"]
-    frames = [_renumber(data.load_results(CASE_DIR / n / "results.csv")) for n in names]
+    frames = [_renumber(read_results(CASE_DIR / n / "results.csv")) for n in names]
     both = pd.concat(frames, ignore_index=True)
     assert contract.is_canonical(both)
     assert set(frames[0]["specimen"]) & set(frames[1]["specimen"]) >= {"S1", "S2"}

@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import math
+import re
 
 import pytest
 
 from bayesbase import classical
 from bayesbase.assessment import assess
-from bayesbase.data import load_results
+from bayesbase.io import read_results as load_results
 from bayesbase.priors import load_pack
 
 from conftest import case_dirs, load_case
@@ -125,3 +126,43 @@ def test_every_case_folder_is_packaged():
         packages = set(tomllib.load(fh)["tool"]["setuptools"]["packages"])
     for d, _ in CASES:
         assert f"bayesbase.case_library.{d.name}" in packages, f"add bayesbase.case_library.{d.name} to pyproject.toml"
+
+
+# ------------------------------------------------------------------------ recheck advice
+#: advice to recheck with a time window, e.g. "repeat ALP in ... (9-15 days"
+RECHECK_ADVICE = re.compile(r"\b(repeat|recheck|re-check|retest|confirm)\w*\b[^.]*?\d+\s*-\s*\d+\s*"
+                            r"(h|hours|days|weeks|months)\b", re.I)
+
+
+def _window_text(hmin: float, hmax: float) -> str:
+    """A retest window as the case stories write it: hours up to 4 days, else whole days."""
+    if hmax <= 96:
+        return f"{hmin:g}-{hmax:g} h"
+    return f"{hmin / 24:g}-{hmax / 24:g} days"
+
+
+@pytest.mark.parametrize("case", [c for _, c in CASES], ids=[c["id"] for _, c in CASES])
+def test_recheck_advice_agrees_with_the_pack(case):
+    """A story that advises a recheck gives the pack's retest window for the analyte's group and
+    the same source as the pack (the packs derive the windows from the analytes' kinetics)."""
+    text = " ".join(case["conclusion"].split())
+    rechecks = case.get("recheck", [])
+    if RECHECK_ADVICE.search(text):
+        assert rechecks, f"{case['id']}: the conclusion advises a recheck; add a [[recheck]] table"
+    pack = load_pack(case["species"])
+    for rc in rechecks:
+        prior = pack.get(rc["analyte"])
+        group = pack.retest_groups[prior.group]
+        assert _window_text(group.hours_min, group.hours_max) == rc["window"], (case["id"], prior.group)
+        assert rc["window"] in text and rc["source_contains"] in text, case["id"]
+        for key in ("hours_min", "hours_max"):
+            assert rc["source_contains"] in pack.sources[f"retest_groups.{prior.group}.{key}"]
+
+
+def test_the_drift_showpiece_is_not_creatinine():
+    """The library's slow-drift case (a trend expectation with every value inside the population
+    interval and no consecutive step beyond the RCV) is on an analyte other than creatinine."""
+    drift = [(c["id"], e["analyte"]) for _, c in CASES for e in c.get("expect", [])
+             if "trend_p_increase_min" in e and e.get("all_inside_population") and e.get("no_consecutive_rcv")]
+    assert drift and all(a != "creatinine" for _, a in drift), drift
+    assert ("cat_total_t4_slow_rise", "total_t4") in drift

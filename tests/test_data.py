@@ -1,4 +1,4 @@
-"""Tests of the tidy results contract (bayesbase.data).
+"""Tests of the tidy results contract (bayesbase.io reading, bayesbase.validate).
 
 All results below are invented for these tests (no real patients). Expected converted values
 come from the published conversion factors named beside each check (the same sources the
@@ -11,8 +11,10 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from bayesbase import data
+from bayesbase import io as bio
+from bayesbase.contract import CANONICAL_COLUMNS
 from bayesbase.errors import ValidationError
+from bayesbase.validate import validate
 
 NOW = "2024-06-01T00:00:00"
 HEADER = "patient,species,specimen,collected_at,analyte,value,unit"
@@ -27,9 +29,9 @@ def write(tmp_path, text, name="results.csv", encoding="utf-8"):
 def problems_of(path_or_frame, **kw):
     with pytest.raises(ValidationError) as exc:
         if isinstance(path_or_frame, pd.DataFrame):
-            data.validate(path_or_frame, now=NOW, **kw)
+            validate(path_or_frame, now=NOW, **kw)
         else:
-            data.load_results(path_or_frame, now=NOW)
+            bio.read_results(path_or_frame, now=NOW)
     return exc.value.problems
 
 
@@ -119,7 +121,7 @@ def test_date_in_the_future(tmp_path):
 def test_future_uses_utc_offset(tmp_path):
     # 2024-06-01T10:00+14:00 is 2024-05-31T20:00 UTC: not in the future at NOW
     path = write(tmp_path, good_csv(["Rex,dog,S3,2024-06-01T10:00+14:00,creatinine,100,umol/L"]))
-    frame = data.load_results(path, now=NOW)
+    frame = bio.read_results(path, now=NOW)
     assert frame["collected_at"].max() == pd.Timestamp("2024-05-31T20:00")
 
 
@@ -151,7 +153,7 @@ def test_identical_duplicates_dropped_and_counted(tmp_path):
     # 1.1312 mg/dL x 88.4 (UCSF factor) = 100.0 umol/L: the same result in another unit
     path = write(tmp_path, good_csv(["Rex,dog,S1,2024-03-05,creatinine,100,umol/L",
                                      "Rex,dog,S1,2024-03-05,creatinine,1.131221719,mg/dL"]))
-    frame = data.load_results(path, now=NOW)
+    frame = bio.read_results(path, now=NOW)
     assert len(frame) == 3
     assert frame.attrs["n_duplicates_dropped"] == 2
     assert any("duplicate" in note for note in frame.attrs["notes"])
@@ -220,7 +222,7 @@ def test_misspelt_column_is_refused_unrelated_column_ignored(tmp_path):
     assert p.hint == "did you mean 'specimen'?"
     ok = write(tmp_path, good_csv(header=HEADER + ",owner").replace("umol/L\n", "umol/L,x\n"),
                name="ok.csv")
-    frame = data.load_results(ok, now=NOW)
+    frame = bio.read_results(ok, now=NOW)
     assert "owner" not in frame.columns
     assert any("'owner'" in n and "ignored" in n for n in frame.attrs["notes"])
 
@@ -232,7 +234,7 @@ def test_semicolon_file_with_decimal_comma_and_synonyms(tmp_path):
     text = ("Patient ID;Species;Sample ID;Date;Test;Result;Units;Analyser\n"
             "Rex;Canine;S1;05/03/2024;CREA;1,2;mg/dL;Chem A\n"
             "Rex;Canine;S1;05/03/2024;ALKP;40;IU/L;Chem A\n")
-    frame = data.load_results(write(tmp_path, text), now=NOW)
+    frame = bio.read_results(write(tmp_path, text), now=NOW)
     assert list(frame["analyte"]) == ["alp", "creatinine"]
     assert list(frame["species"]) == ["dog", "dog"]
     # creatinine 1.2 mg/dL x 88.4 = 106.08 umol/L (UCSF lab manual factor)
@@ -245,7 +247,7 @@ def test_semicolon_file_with_decimal_comma_and_synonyms(tmp_path):
 @pytest.mark.parametrize("delim", ["\t", "|"])
 def test_tab_and_pipe_files(tmp_path, delim):
     text = good_csv().replace(",", delim)
-    frame = data.load_results(write(tmp_path, text, name="r.txt"), now=NOW)
+    frame = bio.read_results(write(tmp_path, text, name="r.txt"), now=NOW)
     assert len(frame) == 3
 
 
@@ -253,7 +255,7 @@ def test_latin1_file_with_micro_sign(tmp_path):
     text = good_csv(["Tom,cat,S9,2024-05-05,creatinine,150,µmol/L"])
     path = write(tmp_path, text, encoding="latin-1")
     assert "µ".encode("latin-1") in path.read_bytes()  # really Latin-1 (0xB5), not UTF-8
-    frame = data.load_results(path, now=NOW)
+    frame = bio.read_results(path, now=NOW)
     row = frame[frame.specimen == "S9"].iloc[0]
     assert row["reported_unit"] == "µmol/L"
     assert row["unit"] == "umol/L" and row["value"] == 150.0
@@ -262,7 +264,7 @@ def test_latin1_file_with_micro_sign(tmp_path):
 def test_utf8_bom_file(tmp_path):
     path = write(tmp_path, good_csv(), encoding="utf-8-sig")
     assert path.read_bytes().startswith(b"\xef\xbb\xbf")
-    frame = data.load_results(path, now=NOW)
+    frame = bio.read_results(path, now=NOW)
     assert list(frame["patient"].unique()) == ["Rex"]  # first column name not spoilt by the BOM
 
 
@@ -271,7 +273,7 @@ def test_utf8_bom_file(tmp_path):
                                                (">= 2000", 2000.0, "right"), ("10", 10.0, "")])
 def test_censored_values(tmp_path, text, value, censor):
     path = write(tmp_path, good_csv([f"Rex,dog,S3,2024-05-05,alt,{text},U/L"]))
-    row = data.load_results(path, now=NOW).query("specimen == 'S3'").iloc[0]
+    row = bio.read_results(path, now=NOW).query("specimen == 'S3'").iloc[0]
     assert row["value"] == value and row["censor"] == censor and row["reported_value"] == text
 
 
@@ -280,7 +282,7 @@ def test_conventional_units_converted(tmp_path):
                                      "Rex,dog,S3,2024-05-05,BUN,20,mg/dL",
                                      "Rex,dog,S4,2024-05-06,urea,20,mg/dL",
                                      "Rex,dog,S3,2024-05-05,PCV,45,%"]))
-    frame = data.load_results(path, now=NOW).set_index(["specimen", "analyte", "reported_value"])
+    frame = bio.read_results(path, now=NOW).set_index(["specimen", "analyte", "reported_value"])
     # creatinine 1.2 mg/dL x 88.4 = 106.08 umol/L (UCSF lab manual, per the project's units table)
     assert frame.loc[("S3", "creatinine", "1.2"), "value"] == pytest.approx(106.08)
     assert frame.loc[("S3", "creatinine", "1.2"), "unit"] == "umol/L"
@@ -303,7 +305,7 @@ def test_xlsx_read(tmp_path):
     ws.append([1001, "cat", "S2", "05/03/2024", "Creatinine", 1.2, "mg/dL", "no"])
     path = tmp_path / "results.xlsx"
     wb.save(path)
-    frame = data.load_results(path, now=NOW).set_index("specimen")
+    frame = bio.read_results(path, now=NOW).set_index("specimen")
     assert frame.loc["S1", "collected_at"] == pd.Timestamp("2024-03-05 09:30")
     assert frame.loc["S1", "value"] == 40.0 and bool(frame.loc["S1", "fasted"]) is True
     assert frame.loc["S2", "patient"] == "1001"  # a numeric id cell stays an id
@@ -318,7 +320,7 @@ def test_validate_does_not_mutate_input():
         "value": ["1.2", "<10"], "unit": ["mg/dL", "U/L"],
     })
     before = raw.copy(deep=True)
-    frame = data.validate(raw, now=NOW)
+    frame = validate(raw, now=NOW)
     pd.testing.assert_frame_equal(raw, before)
     assert list(frame["specimen"]) == ["S1", "S2"]  # sorted by collection time
     assert list(frame["source_row"]) == [3, 2]
@@ -328,8 +330,8 @@ def test_validate_does_not_mutate_input():
 
 
 def test_canonical_dtypes_and_order(tmp_path):
-    frame = data.load_results(write(tmp_path, good_csv()), now=NOW)
-    assert tuple(frame.columns) == data.CANONICAL_COLUMNS
+    frame = bio.read_results(write(tmp_path, good_csv()), now=NOW)
+    assert tuple(frame.columns) == CANONICAL_COLUMNS
     dtypes = {c: str(t) for c, t in frame.dtypes.items()}
     assert dtypes["patient"] == dtypes["unit"] == dtypes["state"] == "string"
     assert dtypes["collected_at"] == dtypes["birth_date"] == "datetime64[ns]"
@@ -346,7 +348,7 @@ def test_optional_columns_parsed(tmp_path):
     header = HEADER + ",breed,sex,birth_date,state,fasted,hemolysis,lipemia,icterus,replicate"
     rows = ["Rex,dog,S1,2024-03-05,alt,40,U/L, Border  Collie ,FS,2019-06-01,sick,y,12,0,1,2",
             "Rex,dog,S1,2024-03-05,alt,42,U/L,border collie,FS,2019-06-01,sick,y,12,0,1,1"]
-    frame = data.load_results(write(tmp_path, "\n".join([header, *rows]) + "\n"), now=NOW)
+    frame = bio.read_results(write(tmp_path, "\n".join([header, *rows]) + "\n"), now=NOW)
     first = frame.iloc[0]
     assert first["breed"] == "border collie" and first["sex"] == "female_neutered"
     assert first["state"] == "unwell" and bool(first["fasted"]) is True
@@ -358,10 +360,10 @@ def test_optional_columns_parsed(tmp_path):
 def test_round_trip_through_tidy_csv(tmp_path):
     path = write(tmp_path, good_csv(["Rex,dog,S3,2024-05-05T10:15,BUN,20,mg/dL",
                                      "Rex,dog,S3,2024-05-05T10:15,alt,<10,IU/L"]))
-    frame = data.load_results(path, now=NOW)
-    out = data.to_tidy_csv(frame, tmp_path / "tidy.csv")
-    again = data.load_results(out, now=NOW)
-    cols = [c for c in data.CANONICAL_COLUMNS if c not in ("source_file", "source_row")]
+    frame = bio.read_results(path, now=NOW)
+    out = bio.to_tidy_csv(frame, tmp_path / "tidy.csv")
+    again = bio.read_results(out, now=NOW)
+    cols = [c for c in CANONICAL_COLUMNS if c not in ("source_file", "source_row")]
     pd.testing.assert_frame_equal(again[cols], frame[cols])
     assert set(again["source_file"]) == {"tidy.csv"}
 
@@ -380,5 +382,5 @@ def test_blank_lines_keep_spreadsheet_rows(tmp_path):
 
 def test_file_not_found(tmp_path):
     with pytest.raises(ValidationError) as exc:
-        data.load_results(tmp_path / "nope.csv")
+        bio.read_results(tmp_path / "nope.csv")
     assert "file not found" in str(exc.value)

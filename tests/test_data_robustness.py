@@ -29,8 +29,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from bayesbase import data, units
+from bayesbase import io as bio
+from bayesbase import units
+from bayesbase.contract import CANONICAL_COLUMNS
 from bayesbase.errors import ValidationError
+from bayesbase.validate import validate
 
 NOW = "2024-06-01T00:00:00"
 HEADER = "patient,species,specimen,collected_at,analyte,value,unit"
@@ -55,7 +58,7 @@ def load(path):
     """load_results with every warning turned into an error (no warning may reach a user)."""
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        return data.load_results(path, now=NOW)
+        return bio.read_results(path, now=NOW)
 
 
 def problems_of(path):
@@ -397,7 +400,7 @@ def test_duplicates_are_keyed_by_patient_and_specimen(tmp_path):
 
 def test_assess_keys_specimens_by_patient(tmp_path):
     """Two animals numbering their draws S1, S2, S3 get the same answers as each alone."""
-    from bayesbase.assess import assess
+    from bayesbase.assessment import assess
 
     def rows(pid, vals):
         return [f"{pid},dog,S{i + 1},2024-0{i + 1}-10,creatinine,{v},umol/L"
@@ -425,7 +428,7 @@ VALID_BYTES = good_csv(["Tom,cat,T1,2024-05-05,creatinine,1.5,mg/dL",
 
 
 def _check_frame(frame: pd.DataFrame) -> None:
-    assert tuple(frame.columns) == data.CANONICAL_COLUMNS
+    assert tuple(frame.columns) == CANONICAL_COLUMNS
     v = frame["value"].to_numpy(dtype=float)
     assert np.isfinite(v).all() and (v > 0).all()
     for col in ("patient", "specimen"):
@@ -441,7 +444,7 @@ def _read_bytes(blob: bytes, suffix: str = ".csv"):
         with warnings.catch_warnings():
             warnings.simplefilter("error")
             try:
-                frame = data.load_results(path, now=NOW)
+                frame = bio.read_results(path, now=NOW)
             except ValidationError as exc:
                 assert exc.problems and all(p.file == path.name for p in exc.problems)
                 for p in exc.problems:
@@ -529,7 +532,7 @@ def canonical_frames(draw):
     raw["species"] = raw.groupby("patient")["species"].transform("first")
     raw["breed"] = raw.groupby("patient")["breed"].transform("first")
     raw["collected_at"] = raw.groupby(["patient", "specimen"])["collected_at"].transform("first")
-    return data.validate(raw.reset_index(drop=True), source="gen", now=NOW)
+    return validate(raw.reset_index(drop=True), source="gen", now=NOW)
 
 
 def _write_canonical(frame: pd.DataFrame, delimiter: str, decimal: str, encoding: str) -> bytes:
@@ -550,20 +553,20 @@ def _write_canonical(frame: pd.DataFrame, delimiter: str, decimal: str, encoding
 
     buf = io.StringIO()
     writer = csv.writer(buf, delimiter=delimiter, lineterminator="\n")
-    writer.writerow(data.CANONICAL_COLUMNS)
-    cols = [frame[c].tolist() for c in data.CANONICAL_COLUMNS]
+    writer.writerow(CANONICAL_COLUMNS)
+    cols = [frame[c].tolist() for c in CANONICAL_COLUMNS]
     for row in zip(*cols):
-        writer.writerow([cell(c, v) for c, v in zip(data.CANONICAL_COLUMNS, row)])
+        writer.writerow([cell(c, v) for c, v in zip(CANONICAL_COLUMNS, row)])
     return buf.getvalue().encode(encoding)
 
 
 def _assert_same(again: pd.DataFrame, frame: pd.DataFrame, skip=("source_file", "source_row")):
-    cols = [c for c in data.CANONICAL_COLUMNS if c not in skip]
+    cols = [c for c in CANONICAL_COLUMNS if c not in skip]
     pd.testing.assert_frame_equal(again[cols].reset_index(drop=True),
                                   frame[cols].reset_index(drop=True))
 
 
-_FIXED = data.validate(pd.DataFrame({
+_FIXED = validate(pd.DataFrame({
     "patient": ["Rex", "Rex", "Zoé", "Zoé"], "species": ["dog", "dog", "cat", "cat"],
     "breed": ["border collie", "border collie", "", ""], "specimen": ["S1", "S1", "S1", "S2"],
     "collected_at": ["2024-03-05T09:30:00", "2024-03-05T09:30:00", "2024-03-06", "2024-04-06"],
@@ -603,6 +606,6 @@ def test_valid_frame_round_trips_through_csv(frame, delimiter, decimal, encoding
 @given(canonical_frames())
 def test_to_tidy_csv_round_trips(frame):
     with tempfile.TemporaryDirectory() as d:
-        path = data.to_tidy_csv(frame, Path(d) / "tidy.csv")
+        path = bio.to_tidy_csv(frame, Path(d) / "tidy.csv")
         again = load(path)
     _assert_same(again, frame)

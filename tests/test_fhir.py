@@ -1,4 +1,4 @@
-"""FHIR R4 import/export (bayesbase.fhir).
+"""FHIR R4 import/export (bayesbase.io.fhir_read, bayesbase.io.fhir_write).
 
 External references: the HL7 FHIR R4 specification (Bundle, Patient with the patient-animal
 extension, Observation.valueQuantity with comparator, Specimen.collection.fastingStatus with HL7
@@ -17,9 +17,11 @@ import pandas as pd
 import pandas.testing as pdt
 import pytest
 
-from bayesbase import fhir
+from bayesbase.io import load_bundle, write_bundle
+from bayesbase.contract import CANONICAL_COLUMNS
 from bayesbase.errors import ValidationError
-from bayesbase.store import CANONICAL_COLUMNS, Store, synthetic_canonical
+from bayesbase.store import Store
+from bayesbase.testing import synthetic_canonical
 
 ANIMAL = "http://hl7.org/fhir/StructureDefinition/patient-animal"
 COMPARED = [c for c in CANONICAL_COLUMNS
@@ -76,13 +78,13 @@ def _panel():
 
 def _problems(bundle_or_text):
     with pytest.raises(ValidationError) as err:
-        fhir.load_bundle(bundle_or_text, source="in.json")
+        load_bundle(bundle_or_text, source="in.json")
     return err.value.problems
 
 
 # --------------------------------------------------------------------------------- reading
 def test_read_panel_maps_codes_units_and_censoring():
-    frame = fhir.load_bundle(_panel(), source="panel.json")
+    frame = load_bundle(_panel(), source="panel.json")
     by = {a: frame[frame["analyte"] == a].iloc[0] for a in frame["analyte"]}
     assert set(by) == {"creatinine", "urea", "alt", "glucose"}  # entered-in-error skipped
     # creatinine 1.2 mg/dL x 88.4 = 106.08 umol/L (published factor, see module docstring)
@@ -111,7 +113,7 @@ def test_read_panel_maps_codes_units_and_censoring():
 ])
 def test_species_codes(system, code, species):
     b = _bundle(_patient(species=(system, code)), _obs("o1", loinc="1742-6", value=30, code="U/L"))
-    assert fhir.load_bundle(b)["species"].tolist() == [species]
+    assert load_bundle(b)["species"].tolist() == [species]
 
 
 def test_species_as_text_and_offsets_to_utc():
@@ -119,7 +121,7 @@ def test_species_as_text_and_offsets_to_utc():
     ext = b["entry"][0]["resource"]["extension"][0]["extension"][0]
     ext["valueCodeableConcept"] = {"text": "Felis catus"}
     b["entry"][1]["resource"]["effectiveDateTime"] = "2024-03-05T10:30:00+01:00"
-    frame = fhir.load_bundle(b)
+    frame = load_bundle(b)
     assert set(frame["species"]) == {"cat"}
     # ISO 8601: 10:30+01:00 is 09:30 UTC
     cre = frame[frame["analyte"] == "creatinine"].iloc[0]
@@ -203,7 +205,7 @@ def test_write_read_round_trip(tmp_path):
     frame.loc[0, ["censor", "reported_value"]] = ["left", "<" + frame.loc[0, "reported_value"]]
     frame.loc[1, ["censor", "reported_value"]] = ["right", ">" + frame.loc[1, "reported_value"]]
     frame.loc[frame["specimen"] == frame.loc[5, "specimen"], "state"] = "unwell"
-    path = fhir.write_bundle(frame, tmp_path / "b.json", pseudonymise=False)
+    path = write_bundle(frame, tmp_path / "b.json", pseudonymise=False)
     bundle = json.loads(path.read_text())
     assert bundle["resourceType"] == "Bundle" and bundle["type"] == "collection"
     kinds = pd.Series([e["resource"]["resourceType"] for e in bundle["entry"]]).value_counts()
@@ -215,7 +217,7 @@ def test_write_read_round_trip(tmp_path):
     codes = {o["code"]["coding"][0]["code"] for o in obs if "coding" in o["code"]}
     assert {"1742-6", "1920-8", "6768-6", "2324-2", "1751-7", "2885-2"} <= codes
     assert sorted(o["valueQuantity"].get("comparator", "") for o in obs)[-2:] == ["<", ">"]
-    back = fhir.load_bundle(path)
+    back = load_bundle(path)
     pdt.assert_frame_equal(back[COMPARED], frame[COMPARED])
 
 
@@ -225,7 +227,7 @@ def test_replicates_survive_the_round_trip(tmp_path):
                                  reported_value="91.5")
     frame = pd.concat([frame, dup]).sort_values(
         ["patient", "collected_at", "specimen", "analyte", "replicate"]).reset_index(drop=True)
-    back = fhir.load_bundle(fhir.write_bundle(frame, tmp_path / "r.json", pseudonymise=False))
+    back = load_bundle(write_bundle(frame, tmp_path / "r.json", pseudonymise=False))
     pdt.assert_frame_equal(back[COMPARED], frame[COMPARED])
 
 
@@ -245,14 +247,14 @@ def test_store_export_then_import_into_empty_store(tmp_path):
 
 def test_pseudonymised_bundle_has_no_original_ids(tmp_path):
     frame = synthetic_canonical(2, 2, 3)
-    text = fhir.write_bundle(frame, tmp_path / "p.json").read_text()
+    text = write_bundle(frame, tmp_path / "p.json").read_text()
     assert "DEMO-" not in text
-    back = fhir.load_bundle(tmp_path / "p.json")
+    back = load_bundle(tmp_path / "p.json")
     assert back["patient"].str.fullmatch(r"P-[0-9a-f]{10}").all()
     assert back["patient"].nunique() == 2
     np.testing.assert_allclose(np.sort(back["value"]), np.sort(frame["value"]), rtol=0)
     # same salt, same pseudonyms; no salt, unlinkable exports
     salt = b"\x01" * 32
-    one = fhir.write_bundle(frame, tmp_path / "s1.json", salt=salt).read_text()
-    two = fhir.write_bundle(frame, tmp_path / "s2.json", salt=salt).read_text()
+    one = write_bundle(frame, tmp_path / "s1.json", salt=salt).read_text()
+    two = write_bundle(frame, tmp_path / "s2.json", salt=salt).read_text()
     assert one == two and text != one

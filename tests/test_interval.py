@@ -302,7 +302,6 @@ def test_nothing_half_written_on_failure(tmp_path, monkeypatch):
     assert not [p.name for p in out.iterdir() if p.name.startswith(".")]
 
 
-@pytest.mark.xfail(strict=True, reason="needs pack-fragment support in priors")
 def test_pack_fragment_is_accepted_by_the_pack_schema(tmp_path):
     from bayesbase.priors import check_file
 

@@ -22,7 +22,7 @@ from matplotlib.path import Path as MplPath
 
 from bayesbase.assessment import assess
 from bayesbase.constants import UNCERTAIN_BAND
-from bayesbase.data import load_results
+from bayesbase.io import read_results as load_results
 from bayesbase.report import figures as plots
 from bayesbase.report import personal_interval_path
 
@@ -292,7 +292,7 @@ def test_pyplot_never_imported():
     code = (
         "import sys\n"
         "from bayesbase.assessment import assess\n"
-        "from bayesbase.data import load_results\n"
+        "from bayesbase.io import read_results as load_results\n"
         "from bayesbase.report import figures as plots\n"
         f"a = assess(load_results({str(d / 'results.csv')!r}))\n"
         "plots.figure_png(plots.analyte_panel(a.history, a.table.iloc[0]), dpi=30)\n"

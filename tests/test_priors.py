@@ -499,14 +499,14 @@ def test_case_library_is_complete_and_consistent_with_packs():
     assert {"dog", "cat"} <= species
 
 
-def test_slow_creatinine_climb_never_exceeds_classical_rcv():
+def test_slow_total_t4_rise_never_exceeds_classical_rcv():
     # Classical RCV = sqrt(2) * z * sqrt(CVA^2 + CVI^2), z = 1.96 (two-sided 95 %; Fraser & Harris
-    # 1989) from the dog pack's creatinine CVI and CVA; every consecutive ratio must stay below it
+    # 1989) from the cat pack's total T4 CVI and CVA; every consecutive ratio must stay below it
     # while the whole series rises by more than 40 %.
-    case = next(c for c in _cases() if c.name == "dog_creatinine_slow_climb")
-    a = priors.load_pack("dog").get("creatinine")
+    case = next(c for c in _cases() if c.name == "cat_total_t4_slow_rise")
+    a = priors.load_pack("cat").get("total_t4")
     rcv = math.sqrt(2) * stats.norm.ppf(0.975) * math.hypot(a.cva, a.cvi)
-    values = [r["canon"] for r in sorted(_case_rows(case), key=lambda r: r["collected_at"]) if r["aid"] == "creatinine"]
+    values = [r["canon"] for r in sorted(_case_rows(case), key=lambda r: r["collected_at"]) if r["aid"] == "total_t4"]
     assert len(values) >= 5
     steps = [b / x - 1 for x, b in zip(values, values[1:])]
     assert max(abs(s) for s in steps) < rcv

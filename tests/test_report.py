@@ -21,7 +21,7 @@ import pytest
 from bayesbase import report, units
 from bayesbase.assessment import assess
 from bayesbase.constants import CAUTIONS, PANEL_FDR, PROBABLE_CHANGE, UNCERTAIN_BAND
-from bayesbase.data import load_results
+from bayesbase.io import read_results as load_results
 from bayesbase.errors import BayesbaseError
 from bayesbase.report import figures, wording
 from bayesbase.report.content import DRIFT_SENTENCE_P

@@ -4,7 +4,7 @@ safety and concurrency.
 External references used by the checks: SQLite's documented pragmas (journal_mode, foreign_keys,
 busy_timeout, integrity_check); HMAC-SHA256 (RFC 2104 / FIPS 180-4, via Python's hmac and
 hashlib); pandas.testing for frame equality; the XDG Base Directory specification for the
-default location. Demo data are invented (bayesbase.store.synthetic_canonical).
+default location. Demo data are invented (bayesbase.testing.synthetic_canonical).
 """
 from __future__ import annotations
 
@@ -24,9 +24,10 @@ import pandas as pd
 import pandas.testing as pdt
 import pytest
 
-from bayesbase import data, store as st
+from bayesbase import io as bio, store as st
 from bayesbase.errors import StoreError, ValidationError
-from bayesbase.store import ImportConflict, Store, synthetic_canonical
+from bayesbase.store import ImportConflict, Store
+from bayesbase.testing import synthetic_canonical
 
 NOW = "2030-01-01"  # reference time for "not in the future" checks of the invented data
 
@@ -60,14 +61,14 @@ def _variant(frame, variant):
     for c in ("haemolysis", "lipaemia", "icterus"):
         out[c] = np.nan
     out["state"] = pd.array([""] * n, dtype=frame["state"].dtype)
-    return st._coerce_canonical(out)
+    return st.coerce_canonical(out)
 
 
 def _results_file(frame, path, variant):
     """A tidy results file of the frame: every canonical column ("full"), or only the required
     columns with values and units as reported ("bare": a file without any optional column)."""
     if variant == "full":
-        return data.to_tidy_csv(frame, path)
+        return bio.to_tidy_csv(frame, path)
     out = pd.DataFrame({c: frame[c].astype(str) for c in REQUIRED[:5]})
     out["collected_at"] = frame["collected_at"].dt.strftime("%Y-%m-%dT%H:%M:%S")
     out["value"] = frame["reported_value"].astype(str)
@@ -158,15 +159,15 @@ def test_csv_round_trip_same_canonical_values(tmp_path, variant):
     frame = synthetic_canonical(2, 4, 6)
     frame.loc[3, ["reported_value", "censor"]] = ["<" + frame.loc[3, "reported_value"], "left"]
     src = _results_file(frame, tmp_path / "in.csv", variant)
-    original = data.load_results(src, now=NOW)
+    original = bio.read_results(src, now=NOW)
     with Store(tmp_path / "s.sqlite") as s:
         summary = s.import_file(src)
         assert summary.rows_added == len(original)
         s.export_csv(None, tmp_path / "out.csv", pseudonymise=False)
         s.export_csv("DEMO-0000", tmp_path / "one.csv", pseudonymise=False)
-    back = data.load_results(tmp_path / "out.csv", now=NOW)
+    back = bio.read_results(tmp_path / "out.csv", now=NOW)
     pdt.assert_frame_equal(_without_source(back), _without_source(original))
-    one = data.load_results(tmp_path / "one.csv", now=NOW)
+    one = bio.read_results(tmp_path / "one.csv", now=NOW)
     assert set(one["patient"]) == {"DEMO-0000"}
     assert len(one) == int((original["patient"] == "DEMO-0000").sum())
 
@@ -184,7 +185,7 @@ def test_same_file_twice_adds_nothing(tmp_path, variant):
 def test_one_bad_row_in_ten_thousand_stores_nothing(tmp_path):
     frame = synthetic_canonical(10, 40, 25)  # 10,000 rows
     assert len(frame) == 10_000
-    path = data.to_tidy_csv(frame, tmp_path / "big.csv")
+    path = bio.to_tidy_csv(frame, tmp_path / "big.csv")
     lines = path.read_text().splitlines()
     bad_line = 6_543  # 0-based line index in the file = spreadsheet row 6,544
     parts = lines[bad_line].split(",")
@@ -329,7 +330,7 @@ def test_history_and_wide_table(tmp_path):
 @VARIANTS
 def test_owner_column_is_kept_apart_and_forget_removes_everything(tmp_path, variant):
     frame = _variant(synthetic_canonical(2, 3, 2), variant)
-    raw = data.read_table(data.to_tidy_csv(frame, tmp_path / "tmp.csv"))
+    raw = bio.read_table(bio.to_tidy_csv(frame, tmp_path / "tmp.csv"))
     raw["owner"] = np.where(raw["patient"] == "DEMO-0000", "Invented Owner Alpha",
                             "Invented Owner Beta")
     raw.to_csv(tmp_path / "with_owner.csv", index=False)
@@ -379,7 +380,7 @@ def test_pseudonymised_exports_hide_ids(tmp_path):
         assert "DEMO-0" not in t  # no patient id, specimen id or file name carrying one
         assert expected in t
     assert text == (tmp_path / "p2.csv").read_text()  # stable within a store
-    exported = data.load_results(tmp_path / "p.csv", now=NOW)
+    exported = bio.read_results(tmp_path / "p.csv", now=NOW)
     assert all(re.fullmatch(r"P-[0-9a-f]{10}", p) for p in exported["patient"])
     assert all(re.fullmatch(r"S-[0-9a-f]{10}", p) for p in exported["specimen"])
     np.testing.assert_array_equal(np.sort(exported["value"].to_numpy()),
@@ -475,7 +476,7 @@ _CHILD = textwrap.dedent("""
 def test_sigkill_mid_import_leaves_none_of_the_file(tmp_path):
     n_pat = -(-KILL_ROWS // (240 * 25))
     frame = synthetic_canonical(n_pat, 240, 25).iloc[:KILL_ROWS]
-    src = data.to_tidy_csv(frame, tmp_path / "million.csv")
+    src = bio.to_tidy_csv(frame, tmp_path / "million.csv")
     db = tmp_path / "s.sqlite"
     with Store(db) as s:  # something committed before: it must survive
         s.import_frame(synthetic_canonical(1, 1, 2).assign(patient="KEEP"), "keep.csv")
@@ -500,7 +501,7 @@ def test_sigkill_mid_import_leaves_none_of_the_file(tmp_path):
 
 def test_xlsx_import_keeps_owner_apart(tmp_path):
     frame = synthetic_canonical(1, 2, 3)
-    raw = data.read_table(data.to_tidy_csv(frame, tmp_path / "t.csv"))
+    raw = bio.read_table(bio.to_tidy_csv(frame, tmp_path / "t.csv"))
     raw.insert(1, "Owner", "Invented Owner Gamma")
     raw.to_excel(tmp_path / "r.xlsx", index=False)  # openpyxl writer
     with Store(tmp_path / "s.sqlite") as s:

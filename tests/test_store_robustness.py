@@ -30,9 +30,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from bayesbase import data, store as st
+from bayesbase import io as bio, store as st
 from bayesbase.errors import StoreError, ValidationError
-from bayesbase.store import ImportConflict, Store, synthetic_canonical
+from bayesbase.store import ImportConflict, Store
+from bayesbase.testing import synthetic_canonical
 
 REQUIRED = "patient,species,specimen,collected_at,analyte,value,unit"
 SENTINELS = ("NaT", "nan", "NaN", "None", "<NA>")  # texts pandas/Python print for a missing value
@@ -125,8 +126,8 @@ def test_optional_attribute_absent_present_changed(tmp_path, attr):
                      f"REX-1,dog,S1,2024-01-10,creatinine,88,umol/L,{v1}")
     with_v2 = _write(tmp_path / "v2.csv", head,
                      f"REX-1,dog,S1,2024-01-10,creatinine,88,umol/L,{v2}")
-    expect_v1 = data.load_results(with_v1)[attr].iloc[0]
-    expect_v2 = data.load_results(with_v2)[attr].iloc[0]
+    expect_v1 = bio.read_results(with_v1)[attr].iloc[0]
+    expect_v2 = bio.read_results(with_v2)[attr].iloc[0]
     missing = "" if attr == "state" else None  # state is NOT NULL, '' = assumed healthy
 
     with Store(db) as s:
@@ -164,17 +165,17 @@ def test_optional_attribute_absent_present_changed(tmp_path, attr):
 def test_files_without_any_optional_column_round_trip(tmp_path):
     # the store's main paths with a file that has none of the optional columns
     frame = synthetic_canonical(3, 4, 3)
-    full = data.to_tidy_csv(frame, tmp_path / "full.csv")
+    full = bio.to_tidy_csv(frame, tmp_path / "full.csv")
     text = pd.read_csv(full, dtype=str, keep_default_na=False)
     bare = tmp_path / "bare.csv"
     text[REQUIRED.split(",")].to_csv(bare, index=False)
     db = tmp_path / "s.sqlite"
-    original = data.load_results(bare)
+    original = bio.read_results(bare)
     with Store(db) as s:
         assert s.import_file(bare).rows_added == len(frame)
         assert s.import_file(bare).nothing_new
         s.export_csv(None, tmp_path / "out.csv", pseudonymise=False)
-        back = data.load_results(tmp_path / "out.csv")
+        back = bio.read_results(tmp_path / "out.csv")
         cols = [c for c in st.CANONICAL_COLUMNS if c not in ("source_file", "source_row")]
         pd.testing.assert_frame_equal(back[cols], original[cols])
         pats = s.patients()
@@ -189,8 +190,8 @@ def test_migration_rewrites_missing_value_texts(tmp_path, monkeypatch):
     # a store written by an earlier version (schema 1) holding the texts of missing values
     db = tmp_path / "old.sqlite"
     a1, a2 = _bare_pair(tmp_path)
-    monkeypatch.setattr(st, "MIGRATIONS", st.MIGRATIONS[:1])
-    monkeypatch.setattr(st, "SCHEMA_VERSION", 1)
+    monkeypatch.setattr(st.schema, "MIGRATIONS", st.MIGRATIONS[:1])
+    monkeypatch.setattr(st.schema, "SCHEMA_VERSION", 1)
     with Store(db) as s:
         s.import_file(a1)
         c = s.connection
@@ -268,7 +269,7 @@ def _context():
     if "forkserver" not in multiprocessing.get_all_start_methods():  # e.g. Windows
         return multiprocessing.get_context("spawn")
     ctx = multiprocessing.get_context("forkserver")
-    ctx.set_forkserver_preload(["pandas", "bayesbase.data", "bayesbase.store", __name__])
+    ctx.set_forkserver_preload(["pandas", "bayesbase.io", "bayesbase.store", __name__])
     return ctx
 
 
@@ -291,7 +292,7 @@ def test_twenty_concurrent_first_imports_into_a_new_store(tmp_path):
         f = _write(tmp_path / f"clinic{i:02d}.csv", REQUIRED,
                    f"P{i:02d},dog,S1,2024-01-10,creatinine,{80 + i},umol/L",
                    f"P{i:02d},dog,S2,2024-03-10,creatinine,{81 + i},umol/L")
-        frames.append((data.load_results(f), f.name))
+        frames.append((bio.read_results(f), f.name))
     db = tmp_path / "new" / "store.sqlite"
     assert not db.exists()
     ctx = _context()
@@ -328,10 +329,10 @@ def test_simultaneous_creation_of_many_new_stores(tmp_path):
 
 def test_two_cli_importers_on_a_new_store_both_land(tmp_path):
     # issue 11, item 3 and issue 21, item 2: two `bayesbase import` processes, different files
-    a = data.to_tidy_csv(synthetic_canonical(4, 12, 10), tmp_path / "a.csv")
+    a = bio.to_tidy_csv(synthetic_canonical(4, 12, 10), tmp_path / "a.csv")
     b_frame = synthetic_canonical(4, 12, 10)
     b_frame["patient"] = ("OTHER-" + b_frame["patient"].astype(str)).astype("string")
-    b = data.to_tidy_csv(b_frame, tmp_path / "b.csv")
+    b = bio.to_tidy_csv(b_frame, tmp_path / "b.csv")
     db = tmp_path / "fresh.sqlite"
     cmd = [sys.executable, "-m", "bayesbase.cli", "import"]
     procs = [subprocess.Popen([*cmd, str(f), "--db", str(db)], stdout=subprocess.PIPE,
@@ -474,7 +475,7 @@ def test_export_neutralises_formula_cells(tmp_path, identified):
         out = s.export_csv(None, tmp_path / "e.csv", pseudonymise=not identified)
         stored = s.results()  # what the store holds is unchanged
     pd.testing.assert_frame_equal(stored.drop(columns="source_row"),
-                                  st._coerce_canonical(frame).drop(columns="source_row"))
+                                  st.coerce_canonical(frame).drop(columns="source_row"))
     rows = _parse(out)
     assert len(rows) == len(frame)
     for row, (_, orig) in zip(rows, stored.iterrows()):
@@ -580,8 +581,8 @@ def test_forget_leaves_no_byte_in_database_files_or_exports(tmp_path):
     # distinctive values (invented): many digits, so no accidental match elsewhere
     frame["value"] = np.round(frame["value"] * np.exp(rng.normal(0, 0.01, len(frame))), 7)
     frame["reported_value"] = pd.array([repr(v) for v in frame["value"]], dtype="string")
-    src = data.to_tidy_csv(frame, tmp_path / "visit_FGT-ID-5521.csv")
-    raw = data.read_table(src)
+    src = bio.to_tidy_csv(frame, tmp_path / "visit_FGT-ID-5521.csv")
+    raw = bio.read_table(src)
     raw["owner"] = np.where(raw["patient"] == "FGT-ID-5521", "Invented Owner Zeta",
                             "Invented Owner Eta")
     raw.to_csv(src, index=False)

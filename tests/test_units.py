@@ -4,11 +4,13 @@ Each conversion factor is checked twice against outside facts:
 
 1. against the factor published by the source named beside it (the conversion tables cited in
    ``models/analytes.toml``: UCSF lab manual, CSMU SI conversion table, IASRI course tables,
-   elephantcare.org conversion page, labtests.co.in, riyazsheena.blogspot.com);
+   elephantcare.org conversion page, labtests.co.in, riyazsheena.blogspot.com; for haemoglobin
+   in mmol/L medicalalgorithms.com and a canine clinic handbook cited by Wikipedia; for counts
+   per microlitre pathologystudent.com, droracle.ai and Wikipedia's worked example);
 2. against a recomputation from first principles done here: SI prefixes, the molar mass or
-   atomic weight (values named with their source below), the valence of the ion, and the
-   definitions 1 U = 1 umol/min and 1 kat = 1 mol/s. Tolerance 0.5 % (published factors are
-   rounded to 3-4 significant digits).
+   atomic weight (values named with their source below; haemoglobin per haem), the valence of
+   the ion, and the definitions 1 U = 1 umol/min and 1 kat = 1 mol/s. Tolerance 0.5 %
+   (published factors are rounded to 3-4 significant digits).
 """
 from __future__ import annotations
 
@@ -57,6 +59,9 @@ PUBLISHED: dict[tuple[str, str, str | None], tuple[float, str]] = {
     ("cortisol", "ug/dL", None): (27.59, CSMU),
     ("haematocrit", "%", None): (0.01, "definition of percent (common practice)"),
     ("haemoglobin", "g/dL", None): (10.0, "volume scaling g/dL -> g/L (from memory)"),
+    # g/dL x 0.6206 = mmol/L (per haem): medicalalgorithms.com haemoglobin unit conversion page,
+    # "0.6206 (Jordan; Kratz)"; so 1 mmol/L = 10 / 0.6206 g/L
+    ("haemoglobin", "mmol/L", None): (10 / 0.6206, "medicalalgorithms.com ('0.6206 (Jordan; Kratz)')"),
 }
 for _enz in ("alt", "ast", "alp", "ggt", "ck", "lipase"):
     PUBLISHED[(_enz, "[IU]/L", None)] = (1.0, ENZ_IDENT)
@@ -67,6 +72,15 @@ for _cells in ("wbc", "neutrophils", "platelets"):
     PUBLISHED[(_cells, "/nL", None)] = (1.0, "1 nL = 1e-9 L (definition)")
 PUBLISHED[("rbc", "10*6/uL", None)] = (1.0, RIYAZ)
 PUBLISHED[("rbc", "/pL", None)] = (1.0, "1 pL = 1e-12 L (definition)")
+# counts per microlitre: 1 x 10^9/L = 1000 cells/uL (labtests.co.in WBC unit converter);
+# 4.0-11.0 x 10^9/L = 4,000-11,000/mm3 (pathologystudent.com ?p=8423); platelets
+# 400 x 10^3/uL = 400,000/uL = 400 x 10^9/L and neutrophils 1.5 x 10^3/uL = 1,500/uL
+# (droracle.ai article 741092); RBC 5E+12 cells/L = 5E+6 cells/uL (Wikipedia, Mean corpuscular
+# hemoglobin, worked example)
+PUBLISHED[("wbc", "/uL", None)] = (4.0 / 4000, "pathologystudent.com (4.0 x10^9/L = 4,000/mm3)")
+PUBLISHED[("neutrophils", "/uL", None)] = (1.5 / 1500, "droracle.ai (1.5 x 10^3/uL = 1,500/uL)")
+PUBLISHED[("platelets", "/uL", None)] = (400 / 400_000, "droracle.ai (400 x 10^9/L = 400,000/uL)")
+PUBLISHED[("rbc", "/uL", None)] = (5e12 / 1e12 / 5e6, "Wikipedia MCH worked example (5E+12/L = 5E+6/uL)")
 
 # --------------------------------------------------------------------------- first principles
 # Molar masses / atomic weights (g/mol), from memory unless stated (the same values the project's
@@ -85,6 +99,9 @@ MOLAR_MASS = {
     "magnesium": 24.305,
     "total_t4": 776.87,  # labtests.co.in
     "cortisol": 362.46,
+    # haemoglobin per haem (monomer): 64 458 / 4, the tetramer's relative molecular mass from the
+    # ICSH 1995 haemoglobinometry standard (J Clin Pathol 1996;49:271; number from memory)
+    "haemoglobin": 64458 / 4,
 }
 VALENCE = {"calcium": 2, "magnesium": 2, "sodium": 1, "potassium": 1, "chloride": 1, "bicarbonate": 1}
 
@@ -123,6 +140,8 @@ def _first_principles(analyte: str, unit: str, group: str | None) -> float:
         size, kind = size / MOLAR_MASS[mm_key], "amount"
     if kind == "eq" and target_kind == "amount":
         size, kind = size / VALENCE[analyte], "amount"
+    if kind == "amount" and target_kind == "mass":  # e.g. haemoglobin mmol/L -> g/L
+        size, kind = size * MOLAR_MASS[mm_key], "mass"
     assert kind == target_kind, (analyte, unit)
     return size / target
 
@@ -247,7 +266,12 @@ def test_registry_contents():
         ("10E9/L", "10*9/L"), ("x 10^9 / L", "10*9/L"), ("×10⁹/L", "10*9/L"), ("K/uL", "10*3/uL"),
         ("10^3/µL", "10*3/uL"), ("M/uL", "10*6/uL"), ("x10^12/L", "10*12/L"), ("IU/L", "[IU]/L"),
         ("U/L", "U/L"), ("u/l", "U/L"), ("µkat/L", "ukat/L"), ("%", "%"), ("l/l", "L/L"),
-        ("mcg/dL", "ug/dL"), ("/nL", "/nL"),
+        ("mcg/dL", "ug/dL"), ("/nL", "/nL"), ("/uL", "/uL"), ("/µL", "/uL"), ("/mm3", "/uL"),
+        ("cells/uL", "/uL"), ("cells/mm³", "/uL"), ("Gpt/L", "10*9/L"), ("giga/L", "10*9/L"),
+        ("Tpt/L", "10*12/L"), ("tera/l", "10*12/L"),
+        # "G/L" alone is ambiguous with an all-capitals g/L: normalise_unit keeps grams;
+        # conversion_factor decides by analyte (test_giga_per_litre_for_counts)
+        ("G/L", "g/L"),
     ],
 )
 def test_normalise_unit(text, expected):
@@ -315,3 +339,73 @@ def test_conversion_source_names_the_source():
 def test_unknown_analyte_in_conversion():
     with pytest.raises(units.UnknownAnalyteError):
         units.conversion_factor("creatinin", "mg/dL")
+
+
+# ------------------------------------------------------------------ counts and haemoglobin (issue 20)
+@pytest.mark.parametrize("analyte", ["wbc", "neutrophils", "platelets"])
+@pytest.mark.parametrize("spelling", ["G/L", "G/l", " G / L ", "Gpt/L", "giga/L"])
+def test_giga_per_litre_for_counts(analyte, spelling):
+    # "1 G/L = 1 x 10^9/L" and "Gpt/L" listed as the same unit (labtests.co.in WBC unit converter)
+    assert units.conversion_factor(analyte, spelling) == 1.0
+    assert units.conversion_source(analyte, spelling) == units.conversion_source(analyte, "10*9/L")
+
+
+def test_tera_per_litre_for_red_cells():
+    # T = tera = 10^12 (SI prefix; common practice): 1 T/L = 1 x 10^12/L
+    assert units.conversion_factor("RBC", "T/L") == 1.0
+    assert units.conversion_factor("RBC", "Tpt/L") == 1.0
+
+
+def test_capital_g_per_litre_is_still_grams_for_proteins():
+    # an all-capitals export writes grams per litre as "G/L" (as it writes "MG/DL")
+    assert units.conversion_factor("albumin", "G/L") == 1.0
+    assert units.conversion_factor("haemoglobin", "G/L") == 1.0
+    assert units.conversion_factor("total protein", "G/DL") == 10.0
+
+
+@pytest.mark.parametrize("unit", ["g/L", "g/l"])
+def test_grams_per_litre_for_a_count_hints_at_giga(unit):
+    with pytest.raises(units.UnitError) as exc:
+        units.conversion_factor("WBC", unit)
+    assert exc.value.message == f"unit '{unit}' is not accepted for WBC"
+    assert "'G/L' (capital G)" in exc.value.hint
+    assert "albumin" not in exc.value.hint  # no longer sent towards a protein
+
+
+def test_giga_is_not_a_red_cell_unit():
+    with pytest.raises(units.UnitError) as exc:
+        units.conversion_factor("RBC", "G/L")
+    assert "accepted units: 10*12/L" in exc.value.hint
+
+
+@pytest.mark.parametrize(
+    "analyte,reported,expected,source",
+    [
+        # 4,000-11,000/mm3 = 4.0-11.0 x 10^9/L (pathologystudent.com ?p=8423)
+        ("WBC", 11_000, 11.0, "pathologystudent.com"),
+        # 400,000/uL = 400 x 10^9/L (droracle.ai article 741092)
+        ("PLT", 400_000, 400.0, "droracle.ai"),
+        # 1,500/uL = 1.5 x 10^3/uL = 1.5 x 10^9/L (droracle.ai article 741092)
+        ("neutrophils", 1_500, 1.5, "droracle.ai"),
+        # 5E+6 cells/uL = 5E+12 cells/L (Wikipedia, Mean corpuscular hemoglobin, worked example)
+        ("RBC", 5e6, 5.0, "Wikipedia MCH worked example"),
+    ],
+)
+def test_counts_per_microlitre_worked_examples(analyte, reported, expected, source):
+    for spelling in ("/uL", "cells/µL", "/mm3"):
+        assert reported * units.conversion_factor(analyte, spelling) == pytest.approx(expected, rel=1e-12), source
+
+
+def test_haemoglobin_mmol_per_litre():
+    f = units.conversion_factor("Hb", "mmol/L")
+    # published: g/dL x 0.6206 = mmol/L (medicalalgorithms.com, "0.6206 (Jordan; Kratz)")
+    assert 15.0 * 0.6206 * f == pytest.approx(150.0, rel=2e-4)  # 15 g/dL = 9.31 mmol/L = 150 g/L
+    # published: 1 pg haemoglobin = 0.06207 fmol (Praktikum der Hundeklinik, 10th ed. 2006, p. 102,
+    # as cited on Wikipedia's Mean corpuscular hemoglobin page), i.e. 16 111 g/mol
+    assert f == pytest.approx(1 / 0.06207, rel=3e-4)
+    # from the molar mass per haem: 64 458 / 4 g/mol (ICSH 1995 standard, from memory) / 1000
+    assert f == pytest.approx(64458 / 4 / 1000, rel=1e-9)
+    # not the tetramer convention (g/dL x 0.155, same page), four times smaller in mmol/L
+    assert not math.isclose(10 / f, 0.155, rel_tol=0.05)
+    info = units.analyte_info("haemoglobin")
+    assert info["molar_mass"] == pytest.approx(64458 / 4) and "ICSH" in info["molar_mass_source"]

@@ -12,10 +12,37 @@ from ..contract import HIL_INDICES
 from .cases import CaseBatch
 from .roles import is_feeding_sensitive
 
-__all__ = ["CASE_FLAGS", "hil_over", "quality", "case_flags", "not_converged_flag"]
+__all__ = ["CASE_FLAGS", "hil_over", "quality", "case_flags", "not_converged_flag", "hil_words",
+           "YOUNG_YEARS", "CVA_RULE"]
 
-#: age (years) under which an age-dependent analyte is flagged for a young animal (common practice)
+#: age (years) under which a pack's age rule (``age_dependent``: how the analyte differs in growing
+#: animals) is flagged. bayesbase modelling choice: age-related changes are most evident during the
+#: first year of life (Harper EJ et al. J Am Vet Med Assoc 2003;223(10):1436-1442, abstract), plus
+#: half a year for large breeds that mature later (recalled).
 YOUNG_YEARS = 1.5
+
+#: the desirable analytical imprecision, CVA <= 0.5 CVI, of the hierarchy of analytical quality
+#: goals based on biological variation (Fraser CG, Petersen PH. Desirable standards for laboratory
+#: tests if they are to fulfill medical needs. Clin Chem 1993;39(7):1447-1453; attribution as in the
+#: documentation of the R package valytics, function ate_from_bv; bibliographic details recalled)
+CVA_RULE = "CVA above half the CVI (desirable imprecision CVA <= 0.5 CVI; Fraser & Petersen, Clin Chem 1993)"
+
+#: what each sample-quality index measures (the pack's HIL scale: serum index in mg/dL)
+_INDEX_MEANS = {
+    "haemolysis": "free haemoglobin from red cells broken in the tube",
+    "lipaemia": "turbidity from lipids, typically after a meal",
+    "icterus": "bilirubin colour in the serum",
+}
+#: what to do about it
+_INDEX_REMEDY = {
+    "haemolysis": "measure again on a clean, promptly separated specimen before acting on it",
+    "lipaemia": "measure again on a specimen taken after a fast before acting on it",
+    "icterus": "ask the laboratory whether a method less affected by bilirubin is available",
+}
+_BIAS = {
+    "up": "this result is expected to read falsely high",
+    "down": "this result is expected to read falsely low",
+}
 
 
 def _words(mask, make: Callable[[int], str]) -> np.ndarray:
@@ -51,13 +78,19 @@ def hil_over(b: CaseBatch, idx: str) -> tuple[np.ndarray, np.ndarray, np.ndarray
     return np.isfinite(v) & np.isfinite(thr) & (v > thr), v, thr
 
 
+def hil_words(idx: str, value: float, threshold: float, direction: str) -> str:
+    """The compromised-sample flag: what the index measures, the expected direction of the bias
+    (the pack's interference direction and its source), and what to do."""
+    bias = _BIAS.get(direction, "the bias depends on the method and may go either way")
+    return (f"{idx} index {value:g} over the pack's limit {threshold:g} ({_INDEX_MEANS[idx]}): "
+            f"{bias}; {_INDEX_REMEDY[idx]}")
+
+
 def _hil_flag(idx: str) -> Callable[[CaseBatch], np.ndarray]:
     def flag(b: CaseBatch) -> np.ndarray:
         over, v, thr = hil_over(b, idx)
-        return _words(over, lambda i: (
-            f"{idx} index {v[i]:g} above {thr[i]:g}: expected interference "
-            f"{b.prior[i].interference.get(idx, 'variable')}; the result is compromised "
-            "and even a value inside the interval may be unreliable"))
+        return _words(over, lambda i: hil_words(idx, v[i], thr[i],
+                                                b.prior[i].interference.get(idx, "variable")))
 
     flag.__name__ = f"{idx}_over_threshold"
     return flag
@@ -93,13 +126,34 @@ def no_baseline(b: CaseBatch) -> np.ndarray:
 
 
 def cva_high(b: CaseBatch) -> np.ndarray:
-    return _words([p.cva_high for p in b.prior], lambda i: "CVA > 0.5 CVI: RCV dominated by analytical imprecision")
+    return _words([p.cva_high for p in b.prior], lambda i: f"{CVA_RULE}: the RCV is dominated by analytical "
+                                                            "imprecision")
 
 
 def young_animal(b: CaseBatch) -> np.ndarray:
+    """The pack's age rule (``age_dependent``: how the analyte differs in growing animals), for an
+    animal younger than :data:`YOUNG_YEARS` at the assessed specimen. Breed and sample notes are
+    other flags (:func:`breed_note`)."""
     age = np.array(b.assessed.col("age_years"), dtype=float)
     dependent = np.array([bool(p.age_dependent) for p in b.prior], dtype=bool)
-    return _words(dependent & (age < YOUNG_YEARS), lambda i: f"young animal: {b.prior[i].age_dependent}")
+    return _words(dependent & (age < YOUNG_YEARS), lambda i: (
+        f"young animal ({age[i]:.1f} years; age rule under {YOUNG_YEARS:g} years): {b.prior[i].age_dependent}"))
+
+
+def _breed_key(breed: str) -> str:
+    return "_".join(str(breed).strip().lower().replace("-", " ").split())
+
+
+def breed_note(b: CaseBatch) -> np.ndarray:
+    """The pack's note for the animal's breed (``breed_notes``: breed -> text), whatever its age.
+
+    ``breed_notes`` is a pack field the schema does not carry yet (requested from the pack
+    schema's owner); until it does, packs hold such notes in the analyte's ``note`` and this flag
+    stays silent."""
+    notes = [getattr(p, "breed_notes", None) or {} for p in b.prior]
+    keys = [_breed_key(br) if br else "" for br in b.breed]
+    return _words([bool(k) and k in n for k, n in zip(keys, notes)],
+                  lambda i: f"breed note ({b.breed[i]}): {notes[i][keys[i]]}")
 
 
 def breed_centre(b: CaseBatch) -> np.ndarray:
@@ -110,7 +164,7 @@ def breed_centre(b: CaseBatch) -> np.ndarray:
 #: every flag of a case, in the order a case lists them
 CASE_FLAGS: tuple[Callable[[CaseBatch], np.ndarray], ...] = (
     assumed_healthy, censored_baseline, censored_assessed, *(_hil_flag(i) for i in HIL_INDICES),
-    not_fasted, method_changed, mixed_units, no_baseline, cva_high, young_animal, breed_centre,
+    not_fasted, method_changed, mixed_units, no_baseline, cva_high, young_animal, breed_note, breed_centre,
 )
 
 

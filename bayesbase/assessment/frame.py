@@ -20,15 +20,16 @@ SORT_COLUMNS = ["patient", "collected_at", "specimen", "analyte", "replicate"]
 
 def canonical_frame(results, now=None) -> pd.DataFrame:
     """A results file (read and validated), a canonical frame (copied) or a raw frame (validated)."""
-    from .. import data as _data
+    from ..io import read_results
+    from ..validate import validate
 
     if isinstance(results, (str, Path)):
-        return _data.load_results(results, now=now)
+        return read_results(results, now=now)
     if not isinstance(results, pd.DataFrame):
         raise BayesbaseError("results must be a file path or a pandas DataFrame")
     if is_canonical(results):
         return results.copy()
-    return _data.validate(results, now=now)
+    return validate(results, now=now)
 
 
 def select_patients(frame: pd.DataFrame, wanted: set[str] | None) -> pd.DataFrame:

@@ -4,15 +4,49 @@ from __future__ import annotations
 
 import json
 import math
+import os
+import shutil
+import tempfile
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from ..constants import CI_BOUNDS, DEFAULT_CI_PROB, DIM_ANALYTE, DIM_CI, DIM_PATIENT
+from ..constants import CAUTIONS, CI_BOUNDS, DEFAULT_CI_PROB, DIM_ANALYTE, DIM_CI, DIM_PATIENT
 
-__all__ = ["Assessment", "json_number", "to_record", "to_dataset"]
+__all__ = ["Assessment", "json_number", "to_record", "to_dataset", "CSV_CAUTION", "csv_with_caution",
+           "prepend_csv_caution"]
+
+#: The first line of every CSV that bayesbase writes with results (assess, compare, export): a
+#: comment line that carries the cautions. Readers that take such files back (pandas
+#: ``read_csv(comment="#")``, or any reader that skips leading lines starting with ``#``) skip it.
+CSV_CAUTION = "# bayesbase: " + " ".join(CAUTIONS)
+
+
+def csv_with_caution(text: str) -> str:
+    """CSV text with :data:`CSV_CAUTION` as its first line."""
+    return CSV_CAUTION + "\n" + text
+
+
+def prepend_csv_caution(path) -> None:
+    """Put :data:`CSV_CAUTION` in front of a CSV file already written (once: a file that already
+    starts with it is left as it is). The new file replaces the old one whole (written beside it,
+    then renamed), so nothing is left half-written."""
+    p = Path(path)
+    text = p.read_text(encoding="utf-8")
+    if text.startswith(CSV_CAUTION):
+        return
+    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=p.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(csv_with_caution(text))
+        shutil.copymode(p, tmp)  # keep the written file's permissions
+        os.replace(tmp, p)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
 
 HARRIS_ORIENTATION = "Harris: CVI/CVG (low < 0.6 means the population interval is insensitive)"
 
@@ -127,6 +161,7 @@ def to_record(r: dict, attrs: dict) -> dict:
                                    "orientation": HARRIS_ORIENTATION},
         "n_for_setpoint": _num(r["n_for_setpoint"]), "flags": list(r["flags"]), "engine": r["engine"],
         "converged": bool(r["converged"]), "pack": attrs.get("pack_id"), "pack_sha256": attrs.get("pack_sha256"),
+        "cautions": list(CAUTIONS),
     }
     if "trend_p_drift" in r:
         rec["trend"] = _trend_record(r)

@@ -76,7 +76,7 @@ def bench_cli_panel(n_analytes: int = 25) -> dict:
 def bench_report(n_analytes: int = 25) -> dict:
     """Wall time of one 25-analyte report (HTML + PDF) with the exact engine, in process."""
     from .. import report
-    from ..data import load_results
+    from ..io import read_results as load_results
 
     with tempfile.TemporaryDirectory() as d:
         csv = _panel_csv(Path(d) / "panel.csv", n_analytes)
@@ -86,40 +86,16 @@ def bench_report(n_analytes: int = 25) -> dict:
         return {"report_html_pdf_s": round(time.perf_counter() - t, 3), "analytes": n_analytes}
 
 
-def bench_assess_store(n_patients: int = 10_000, n_specimens: int = 3, n_analytes: int = 20) -> dict:
-    """Assess every patient of an invented store (exact engine): import, read back, assess."""
-    from ..assessment import assess
-    from ..store import Store, synthetic_canonical
-
-    from ..priors import load_pack
-
-    frame = synthetic_canonical(n_patients, n_specimens, 40)
-    frame = frame[frame["analyte"].isin(set(load_pack("dog").analytes))]
-    keep = list(dict.fromkeys(frame["analyte"]))[:n_analytes]
-    frame = frame[frame["analyte"].isin(keep)].reset_index(drop=True)
-    with tempfile.TemporaryDirectory() as d:
-        with Store(Path(d) / "bench.sqlite") as st:
-            st.import_frame(frame, source="bench")
-            t = time.perf_counter()
-            res = st.results()
-            t_read = time.perf_counter() - t
-        t = time.perf_counter()
-        a = assess(res)
-        t_assess = time.perf_counter() - t
-    return {"patients": n_patients, "cases": len(a.table), "read_s": round(t_read, 2),
-            "assess_s": round(t_assess, 2), "cases_per_s": round(len(a.table) / t_assess)}
-
-
 #: every benchmark: (name, module under bayesbase, function, keyword arguments when --quick)
 PLAN = (
     ("exact_engine", "bench.core", "bench_exact", {"n_cases": 100_000}),
     ("cli_panel", "bench.core", "bench_cli_panel", {}),
     ("report", "bench.core", "bench_report", {}),
-    ("validate", "data", "bench_validate", {"n_rows": 100_000}),
+    ("validate", "bench.validate", "bench_validate", {"n_rows": 100_000}),
     ("trend", "bench.model", "bench_trend", {"n_series": 20_000}),
-    ("store_import", "store", "bench_import", {"n_rows": 100_000}),
-    ("store_history", "store", "bench_history", {}),
-    ("assess_store", "bench.core", "bench_assess_store", {"n_patients": 1_000}),
+    ("store_import", "bench.store", "bench_import", {"n_rows": 100_000}),
+    ("store_history", "bench.store", "bench_history", {}),
+    ("assess_store", "bench.store", "bench_assess_store", {"n_patients": 1_000}),
     ("compare", "bench.research", "bench_compare", {"animals": 100_000}),
     ("mcmc_panel", "bench.mcmc", "bench_mcmc_panel", {"draws": 200}),
     ("interval", "bench.interval", "bench_interval", {"n_animals": 130, "n_boot": 300}),

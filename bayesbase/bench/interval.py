@@ -12,7 +12,7 @@ def _frame(n_animals: int, n_analytes: int, seed: int):
     """Invented reference sample (demo data for the benchmark only): log-normal values, 3 breeds."""
     import pandas as pd
 
-    from ..data import validate
+    from ..validate import validate
 
     rng = np.random.default_rng(seed)
     analytes = ["creatinine", "urea", "glucose", "alt", "alp", "albumin", "total_protein", "potassium",

@@ -36,14 +36,9 @@ def load_frame(args):
             return st.results(args.patient) if getattr(args, "patient", None) else st.results()
     if not args.file:
         raise SystemExit(err("give a results FILE or --db PATH"))
-    path = Path(args.file)
-    if path.suffix.lower() == ".json":
-        from .. import data, fhir
+    from ..io import read_results
 
-        return data.validate(fhir.read_bundle(path), source=path.name)
-    from ..data import load_results
-
-    return load_results(path)
+    return read_results(Path(args.file))
 
 
 def run_assess(args, frame, patient=None):

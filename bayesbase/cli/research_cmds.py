@@ -24,6 +24,8 @@ def add_parsers(sub) -> None:
 
 
 def cmd_compare(args) -> int:
+    from ..assessment.result import prepend_csv_caution
+    from ..constants import CAUTIONS
     from ..research import compare as research
 
     def progress(done, total):
@@ -37,8 +39,12 @@ def cmd_compare(args) -> int:
     )
     print(file=sys.stderr)
     paths = research.write_outputs(comp, args.out)
+    for p in paths:  # every CSV of results starts with the cautions (README, "Cautions in every output")
+        if str(p).endswith(".csv"):
+            prepend_csv_caution(p)
     print(comp.summary_text)
     print("wrote " + ", ".join(str(p) for p in paths))
+    print(" ".join(CAUTIONS))
     return 0
 
 

@@ -39,9 +39,9 @@ def add_parsers(sub) -> None:
 
 
 def cmd_check(args) -> int:
-    from ..data import load_results
+    from ..io import read_results
 
-    frame = load_results(args.file)
+    frame = read_results(args.file)
     import pandas as pd
 
     with pd.option_context("display.width", 200, "display.max_columns", 30):
@@ -89,9 +89,11 @@ def cmd_assess(args) -> int:
     if args.format == "json":
         text = a.to_json()
     elif args.format == "csv":
+        from ..assessment.result import csv_with_caution
+
         t = a.table.copy()
         t["flags"] = t["flags"].map(lambda f: "; ".join(f))
-        text = t.to_csv(index=False)
+        text = csv_with_caution(t.to_csv(index=False))
     else:
         text = _table_text(a)
     if args.out:
@@ -120,6 +122,7 @@ def cmd_report(args) -> int:
                                    coverage=args.coverage, prior_change=args.prior_change,
                                    keep_compromised=args.keep_compromised, seed=args.seed)
     print(f"wrote {files.html}" + (f" and {files.pdf}" if files.pdf else ""))
+    print(" ".join(CAUTIONS))
     return 0
 
 
@@ -129,7 +132,7 @@ def cmd_demo(args) -> int:
 
     from .. import report
     from ..assessment import assess
-    from ..data import load_results
+    from ..io import read_results as load_results
 
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)

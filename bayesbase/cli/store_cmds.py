@@ -9,6 +9,9 @@ def add_parsers(sub) -> None:
     p.add_argument("files", nargs="+")
     p.add_argument("--db")
     p.add_argument("--replace", action="store_true", help="overwrite conflicting stored values (recorded)")
+    p.add_argument("--dry-run", action="store_true",
+                   help="show the rows each file would add, find already stored, replace or "
+                        "conflict with, and write nothing")
     p.set_defaults(run=cmd_import)
 
     p = sub.add_parser("patients", help="list the patients in the store")
@@ -39,6 +42,8 @@ def add_parsers(sub) -> None:
 
 
 def cmd_import(args) -> int:
+    if args.dry_run:
+        return _dry_run(args)
     total = 0
     with open_store(args) as st:
         for f in args.files:
@@ -50,6 +55,35 @@ def cmd_import(args) -> int:
                 print(f"{f}: {s.rows_added} rows added, {s.rows_skipped} already stored, "
                       f"{s.rows_replaced} replaced")
     return 0
+
+
+def _dry_run(args) -> int:
+    import contextlib
+    import tempfile
+    from pathlib import Path
+
+    from ..store import Store, default_db_path
+
+    db = Path(args.db or default_db_path()).expanduser()
+    with contextlib.ExitStack() as stack:
+        if not db.exists():  # compared with an empty store, made aside: nothing is created
+            db = Path(stack.enter_context(tempfile.TemporaryDirectory())) / "empty.sqlite"
+        st = stack.enter_context(Store(db))
+        for f in args.files:  # each file is compared with the store as it is now
+            print(_dry_run_text(f, st.import_file(f, replace=args.replace, dry_run=True),
+                                args.replace))
+    return 0
+
+
+def _dry_run_text(f, s, replace: bool) -> str:
+    lines = [f"{f} (dry run, nothing written): {s.rows_added} rows to add, {s.rows_skipped} "
+             f"already stored, {s.rows_replaced} to replace, {len(s.conflicts)} conflicts"]
+    lines += [f"  {c}" for c in s.conflicts[:50]]
+    if len(s.conflicts) > 50:
+        lines.append(f"  ... and {len(s.conflicts) - 50} more")
+    if s.conflicts and not replace:
+        lines.append("  without --replace this import would be refused and store nothing")
+    return "\n".join(lines)
 
 
 def cmd_patients(args) -> int:
@@ -75,6 +109,10 @@ def cmd_export(args) -> int:
             st.export_csv(args.patient, args.out, pseudonymise=not args.identified)
         else:
             st.export_fhir(args.patient, args.out, pseudonymise=not args.identified)
+    if args.format == "csv":  # the CSV starts with the cautions line (README, "Cautions in every output")
+        from ..assessment.result import prepend_csv_caution
+
+        prepend_csv_caution(args.out)
     print(f"wrote {args.out}" + ("" if args.identified else " (pseudonymised)"))
     return 0
 

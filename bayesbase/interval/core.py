@@ -2,7 +2,7 @@
 
 Pipeline (one analyte at a time, the steps recorded in each row's ``reason``):
 
-1. **Input** - the tidy results contract (:func:`bayesbase.data.load_results`); rows of one
+1. **Input** - the tidy results contract (:func:`bayesbase.io.read_results`); rows of one
    species; ``unwell`` specimens and censored results (``<x``/``>x``) are left out; analytical
    replicates of a specimen are combined by their geometric mean; one specimen per animal: when
    an animal has several, the first (earliest) is kept. Every such step is stated in ``notes``.
@@ -43,7 +43,9 @@ import pandas as pd
 
 from .. import __version__
 from ..constants import CAUTIONS
-from ..data import CANONICAL_COLUMNS, SPECIES_ALIASES, load_results, validate
+from ..contract import CANONICAL_COLUMNS
+from ..io import read_results as load_results
+from ..validate import SPECIES_ALIASES, validate
 from ..errors import AnalyteNotInPack, BayesbaseError, PackError
 from ..priors import load_pack
 from ..units import resolve_analyte
@@ -558,7 +560,7 @@ def estimate(frame_or_path, *, analytes=None, species=None, partition=None, meth
 
     Parameters
     ----------
-    frame_or_path : a results file (CSV/TSV/XLSX, read with :func:`bayesbase.data.load_results`)
+    frame_or_path : a results file (CSV/TSV/XLSX, read with :func:`bayesbase.io.read_results`)
         or a canonical results frame.
     analytes : iterable of analyte names (aliases accepted); default every analyte in the input.
     species : species to use (required when the input holds several).

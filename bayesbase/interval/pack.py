@@ -19,9 +19,9 @@ Layout (the same header as the fragment ``bayesbase study`` writes, so that the 
     [analytes.<id>.breed_centers]
     <breed_key> = { value, source, provenance = "estimated", note }
 
-The pack loader of this version accepts neither the provenance "estimated" nor a partial pack
-(``extends``); the change it needs is described in the project report (tests/test_interval.py
-holds the strict xfail that will pass once the loader lands it).
+``bayesbase.priors.load_pack`` layers the fragment over the pack named in ``extends``
+(``bayesbase.priors.layers``); ``bayesbase priors merge`` writes it and other fragments into one
+full pack.
 """
 from __future__ import annotations
 

@@ -144,7 +144,8 @@ def report_for_file(results_path_or_frame, patient: str, pack, out_html, pdf=Non
     ribbon.
     """
     from ..assessment import assess
-    from ..data import load_results, validate
+    from ..io import read_results as load_results
+    from ..validate import validate
     from ..priors import load_pack
 
     if isinstance(pack, str):

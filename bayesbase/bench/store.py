@@ -1,0 +1,89 @@
+"""Benchmarks of the results store (``bayesbase bench``): bulk import, one patient's history,
+and assessing every patient of a store. Invented data (:mod:`bayesbase.testing`); nothing here
+asserts a time."""
+from __future__ import annotations
+
+import tempfile
+import time
+from pathlib import Path
+
+from ..io import to_tidy_csv
+from ..store import Store
+from ..testing import synthetic_canonical
+
+
+def bench_import(n_rows: int = 1_000_000, workdir=None, *, via_file: bool = True) -> dict:
+    """Time a bulk import of ``n_rows`` invented results into an empty store (one transaction,
+    executemany): from a canonical frame (store only), a re-import of the same rows (all
+    skipped), and, with ``via_file``, from a tidy CSV file into another empty store (reading +
+    validation + store). Returns timings in seconds."""
+    n_a = 25
+    n_spec = 240
+    n_pat = max(1, -(-n_rows // (n_a * n_spec)))
+    t0 = time.perf_counter()
+    frame = synthetic_canonical(n_pat, n_spec, n_a).iloc[:n_rows]
+    t_gen = time.perf_counter() - t0
+    out = {"n_rows": int(len(frame)), "generate_s": t_gen}
+    with tempfile.TemporaryDirectory(dir=workdir) as d:
+        db = Path(d) / "bench.sqlite"
+        with Store(db) as store:
+            t0 = time.perf_counter()
+            s1 = store.import_frame(frame, "bench", "0" * 64)
+            out["import_frame_s"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            s2 = store.import_frame(frame, "bench", "0" * 64)
+            out["reimport_frame_s"] = time.perf_counter() - t0
+        out.update(rows_added=s1.rows_added, reimport_skipped=s2.rows_skipped,
+                   db_bytes=db.stat().st_size)
+        if via_file:
+            csv = to_tidy_csv(frame, Path(d) / "bench.csv")
+            with Store(Path(d) / "bench2.sqlite") as store:
+                t0 = time.perf_counter()
+                s3 = store.import_file(csv)
+                out["import_file_s"] = time.perf_counter() - t0
+            out["file_rows_added"] = s3.rows_added
+    return out
+
+
+def bench_history(n_specimens: int = 240, n_analytes: int = 25, repeats: int = 20,
+                  workdir=None) -> dict:
+    """Time :meth:`Store.history` for one patient with ``n_specimens`` monthly panels of
+    ``n_analytes`` analytes (20 years = 240 specimens), among 50 other invented patients."""
+    frame = synthetic_canonical(51, n_specimens, n_analytes)
+    target = str(frame["patient"].iloc[0])
+    with tempfile.TemporaryDirectory(dir=workdir) as d:
+        with Store(Path(d) / "bench.sqlite") as store:
+            store.import_frame(frame, "bench", "0" * 64)
+            times = []
+            for _ in range(repeats):
+                t0 = time.perf_counter()
+                h = store.history(target)
+                times.append(time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            store.history_table(target)
+            t_table = time.perf_counter() - t0
+    times.sort()
+    return {"rows": int(len(h)), "history_median_s": times[len(times) // 2],
+            "history_max_s": times[-1], "history_table_s": t_table}
+
+
+def bench_assess_store(n_patients: int = 10_000, n_specimens: int = 3, n_analytes: int = 20) -> dict:
+    """Assess every patient of an invented store (exact engine): import, read back, assess."""
+    from ..assessment import assess
+    from ..priors import load_pack
+
+    frame = synthetic_canonical(n_patients, n_specimens, 40)
+    frame = frame[frame["analyte"].isin(set(load_pack("dog").analytes))]
+    keep = list(dict.fromkeys(frame["analyte"]))[:n_analytes]
+    frame = frame[frame["analyte"].isin(keep)].reset_index(drop=True)
+    with tempfile.TemporaryDirectory() as d:
+        with Store(Path(d) / "bench.sqlite") as st:
+            st.import_frame(frame, source="bench")
+            t = time.perf_counter()
+            res = st.results()
+            t_read = time.perf_counter() - t
+        t = time.perf_counter()
+        a = assess(res)
+        t_assess = time.perf_counter() - t
+    return {"patients": n_patients, "cases": len(a.table), "read_s": round(t_read, 2),
+            "assess_s": round(t_assess, 2), "cases_per_s": round(len(a.table) / t_assess)}

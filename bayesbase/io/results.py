@@ -1,0 +1,28 @@
+"""``read_results(path)``: the one way a results file becomes the canonical frame, used by the
+command line, ``assess`` and the store alike."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+
+from ..validate import validate
+from .tables import read_table
+
+__all__ = ["FHIR_SUFFIXES", "read_results"]
+
+#: File suffixes read as a FHIR R4 Bundle in JSON (anything else is a table).
+FHIR_SUFFIXES = (".json",)
+
+
+def read_results(path: str | Path, now=None) -> pd.DataFrame:
+    """Read and validate a results file: CSV/TSV/TXT/XLSX (:func:`read_table` then
+    :func:`bayesbase.validate.validate`) or a FHIR R4 Bundle in JSON (``.json``: the FHIR
+    reader, every problem located at its resource path). Problems name the file (no
+    directory); ``now`` is the reference time for "in the future" (default: now, UTC)."""
+    path = Path(path)
+    if path.suffix.lower() in FHIR_SUFFIXES:
+        from .fhir_read import load_bundle
+
+        return load_bundle(path, source=path.name, now=now)
+    return validate(read_table(path), source=path.name, now=now)

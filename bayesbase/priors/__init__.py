@@ -1,0 +1,56 @@
+"""Prior packs (layer 2): strict schema, loading, hashing, fragments and lab override CSVs.
+
+A pack (``models/<name>.toml``) holds, per analyte, the population centre and interval, the
+between-animal CV (CVG), the within-animal CV (CVI) with the SD of ln(CVI), a default analytical
+CV (CVA), sample-quality directions and thresholds, and its retest group. Every number is a
+*cited number*: an inline table ``{ value, source, provenance[, locator, note] }`` with provenance
+one of :data:`PROVENANCES` (``from memory`` with a rationale in ``note``; ``estimated`` and
+``calibrated`` with the SHA-256 of the file or store they come from in ``source``). The schema
+is strict: unknown keys (with a did-you-mean hint), missing keys, wrong types and out-of-range
+values are all collected and raised together in a :class:`PackError`, each naming the file and
+the key path. A pack whose CVs disagree with its own population interval loads, with
+``pack.warnings``.
+
+Modules: :mod:`.schema` (key specs and rules), :mod:`.pack` (loaded packs, loading, hashing,
+checking, merging), :mod:`.layers` (built-in packs and files; fragments with ``[pack] extends``
+layered over a base), :mod:`.overrides` (the lab override CSV), :mod:`.text` (views for people),
+:mod:`.toml_out` (the TOML writer of ``priors merge``).
+"""
+from __future__ import annotations
+
+from .layers import available_packs
+from .overrides import OVERRIDE_COLUMNS
+from .pack import AnalytePrior, Check, Pack, RetestGroup, check, check_file, load_pack, merge
+from .schema import (COMBINE_RTOL, DESIGNS, DIRECTIONS, HASHED_PROVENANCES, HIL, INTERVAL_CV_TOLERANCE,
+                     LAB_PROVENANCE, MIN_LOG_SD_FROM_MEMORY, PROVENANCES, CitedNumber, CviStudy,
+                     breed_key, consistency_warnings, interval_consistency)
+from .text import describe, describe_text
+
+__all__ = [
+    "PROVENANCES",
+    "HASHED_PROVENANCES",
+    "LAB_PROVENANCE",
+    "DIRECTIONS",
+    "HIL",
+    "DESIGNS",
+    "COMBINE_RTOL",
+    "MIN_LOG_SD_FROM_MEMORY",
+    "INTERVAL_CV_TOLERANCE",
+    "OVERRIDE_COLUMNS",
+    "CitedNumber",
+    "CviStudy",
+    "RetestGroup",
+    "AnalytePrior",
+    "Pack",
+    "Check",
+    "available_packs",
+    "load_pack",
+    "check",
+    "check_file",
+    "merge",
+    "describe",
+    "describe_text",
+    "consistency_warnings",
+    "interval_consistency",
+    "breed_key",
+]

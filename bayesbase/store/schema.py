@@ -1,0 +1,140 @@
+"""Database schema of the results store: forward migrations and the runner that applies them.
+
+Never edit a released step of :data:`MIGRATIONS`; append a new one. The version reached is kept
+in the ``schema_version`` table (one row per applied version).
+"""
+from __future__ import annotations
+
+from ..errors import StoreError
+from .frames import now_utc
+
+__all__ = ["MIGRATIONS", "SCHEMA_VERSION", "MISSING_TEXTS", "migrate", "stored_version"]
+
+#: Texts that pandas / Python print for a missing value; never stored (schema version 2
+#: rewrites them to NULL in stores written by earlier versions).
+MISSING_TEXTS = ("NaT", "nan", "NaN", "None", "<NA>")
+_MISSING_TEXTS_SQL = ", ".join(f"'{t}'" for t in MISSING_TEXTS)
+
+MIGRATIONS: list[list[str]] = [
+    [  # version 1
+        """CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL)""",
+        """INSERT INTO meta (key, value) VALUES ('pseudonym_salt', lower(hex(randomblob(32))))""",
+        """CREATE TABLE patients (
+            pk INTEGER PRIMARY KEY,
+            id TEXT NOT NULL UNIQUE,
+            species TEXT NOT NULL,
+            breed TEXT,
+            sex TEXT,
+            birth_date TEXT)""",
+        """CREATE TABLE owners (
+            patient INTEGER PRIMARY KEY REFERENCES patients(pk) ON DELETE CASCADE,
+            owner TEXT NOT NULL)""",
+        """CREATE TABLE specimens (
+            pk INTEGER PRIMARY KEY,
+            patient INTEGER NOT NULL REFERENCES patients(pk) ON DELETE CASCADE,
+            id TEXT NOT NULL,
+            collected_at TEXT NOT NULL,
+            state TEXT NOT NULL DEFAULT '',
+            fasted INTEGER,
+            haemolysis REAL,
+            lipaemia REAL,
+            icterus REAL,
+            laboratory TEXT,
+            UNIQUE (patient, id))""",
+        """CREATE INDEX specimens_patient_time ON specimens (patient, collected_at)""",
+        """CREATE TABLE import_log (
+            id INTEGER PRIMARY KEY,
+            file TEXT NOT NULL,
+            sha256 TEXT NOT NULL,
+            imported_at TEXT NOT NULL,
+            rows_added INTEGER NOT NULL DEFAULT 0,
+            rows_skipped INTEGER NOT NULL DEFAULT 0,
+            rows_replaced INTEGER NOT NULL DEFAULT 0)""",
+        """CREATE TABLE import_patients (
+            import INTEGER NOT NULL REFERENCES import_log(id) ON DELETE CASCADE,
+            patient INTEGER NOT NULL REFERENCES patients(pk) ON DELETE CASCADE,
+            PRIMARY KEY (import, patient)) WITHOUT ROWID""",
+        """CREATE TABLE results (
+            pk INTEGER PRIMARY KEY,
+            specimen INTEGER NOT NULL REFERENCES specimens(pk) ON DELETE CASCADE,
+            analyte TEXT NOT NULL,
+            reported_value TEXT NOT NULL,
+            reported_unit TEXT NOT NULL,
+            value REAL NOT NULL,
+            unit TEXT NOT NULL,
+            censor TEXT NOT NULL DEFAULT '' CHECK (censor IN ('', 'left', 'right')),
+            replicate INTEGER NOT NULL DEFAULT 1,
+            method TEXT,
+            import INTEGER REFERENCES import_log(id),
+            source_row INTEGER,
+            source_file TEXT,
+            UNIQUE (specimen, analyte, replicate))""",
+        """CREATE TABLE replaced (
+            id INTEGER PRIMARY KEY,
+            import INTEGER NOT NULL REFERENCES import_log(id),
+            patient INTEGER REFERENCES patients(pk) ON DELETE CASCADE,
+            entity TEXT NOT NULL,
+            specimen TEXT,
+            analyte TEXT,
+            replicate INTEGER,
+            field TEXT NOT NULL,
+            old_value TEXT,
+            new_value TEXT)""",
+        """CREATE INDEX replaced_patient ON replaced (patient)""",
+    ],
+    [  # version 2: a missing value is SQL NULL. Earlier versions could store the text pandas
+        # or Python print for a missing value ('NaT' for a missing birth date, ...), which then
+        # never compared equal to itself; rewrite those texts (and '' in optional text fields).
+        *(f"UPDATE {table} SET {col} = NULL WHERE {col} IN ({_MISSING_TEXTS_SQL}, '')"
+          for table, col in (("patients", "breed"), ("patients", "sex"),
+                             ("patients", "birth_date"), ("specimens", "laboratory"),
+                             ("results", "method"), ("results", "source_file"))),
+        *(f"UPDATE specimens SET {col} = NULL WHERE {col} IN ({_MISSING_TEXTS_SQL})"
+          for col in ("fasted", "haemolysis", "lipaemia", "icterus")),
+        f"UPDATE specimens SET state = '' WHERE state IN ({_MISSING_TEXTS_SQL})",
+        f"UPDATE replaced SET old_value = NULL WHERE old_value IN ({_MISSING_TEXTS_SQL})",
+        f"UPDATE replaced SET new_value = NULL WHERE new_value IN ({_MISSING_TEXTS_SQL})",
+    ],
+]
+SCHEMA_VERSION = len(MIGRATIONS)
+
+
+def stored_version(conn) -> int:
+    """The schema version a database has reached (0 for a new, empty file)."""
+    if conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' "
+                    "AND name = 'schema_version'").fetchone() is None:
+        return 0
+    return int(conn.execute("SELECT coalesce(max(version), 0) FROM schema_version").fetchone()[0])
+
+
+def _refuse_newer(path, current: int) -> None:
+    if current > SCHEMA_VERSION:
+        raise StoreError(f"{path}: database schema version {current} is newer than this "
+                         f"bayesbase understands ({SCHEMA_VERSION}); upgrade bayesbase")
+
+
+def migrate(conn, path) -> None:
+    """Bring the schema to :data:`SCHEMA_VERSION`. An up-to-date store is only read (a reader
+    takes no write lock); otherwise creation and every migration run in one ``BEGIN IMMEDIATE``
+    transaction, so concurrent first opens create the store once. ``path`` names the file in
+    messages."""
+    current = stored_version(conn)
+    _refuse_newer(path, current)
+    if current == SCHEMA_VERSION:
+        return
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        conn.execute("CREATE TABLE IF NOT EXISTS schema_version ("
+                     "version INTEGER PRIMARY KEY, applied_at TEXT NOT NULL)")
+        current = stored_version(conn)  # another process may have migrated meanwhile
+        _refuse_newer(path, current)
+        for version in range(current + 1, SCHEMA_VERSION + 1):
+            for step in MIGRATIONS[version - 1]:
+                conn.execute(step)
+            conn.execute("INSERT INTO schema_version (version, applied_at) VALUES (?, ?)",
+                         (version, now_utc()))
+        conn.execute("COMMIT")
+    except BaseException:
+        if conn.in_transaction:
+            conn.execute("ROLLBACK")
+        raise
