@@ -5,7 +5,7 @@ specimen id ``S-`` + 10 hex digits of HMAC-SHA256(salt, "specimen:" + patient + 
 With the same salt the same id always gives the same pseudonym; without the salt a pseudonym
 cannot be reversed. The results store keeps one random salt per store (``meta`` table,
 :mod:`bayesbase.store`); a FHIR export without a salt uses a fresh random one
-(:func:`bayesbase.fhir.write_bundle`), so two such exports cannot be linked.
+(:func:`bayesbase.io.write_bundle`), so two such exports cannot be linked.
 """
 from __future__ import annotations
 

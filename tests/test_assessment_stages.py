@@ -406,10 +406,14 @@ def test_classical_comparisons_match_the_published_formulas(st):
     v = math.sqrt(128 * 132)
     assert cols["change_vs_last_pct"][i] == pytest.approx(100 * (v / 105 - 1), rel=1e-12)
     assert cols["change_vs_mean_pct"][i] == pytest.approx(100 * (v / math.sqrt(100 * 105) - 1), rel=1e-12)
-    # Coskun 2021 model 2: exp(mean ln x -/+ z sigma_T sqrt(1 + 1/n))
+    # Coskun 2021 model 2 (published, arithmetic): HSP = 102.5, HSP (1 -/+ z sqrt(1 + 1/n) CVT)
+    k = z * math.sqrt(1 + 1 / 2) * math.hypot(p.cva, p.cvi)
+    assert cols["model2_lower"][i] == pytest.approx(102.5 * (1 - k), rel=1e-12)
+    assert cols["model2_upper"][i] == pytest.approx(102.5 * (1 + k), rel=1e-12)
+    # its log form: exp(mean ln x -/+ z sigma_T sqrt(1 + 1/n))
     m, h = np.mean(np.log([100.0, 105.0])), z * sig * math.sqrt(1 + 1 / 2)
-    assert cols["model2_lower"][i] == pytest.approx(math.exp(m - h), rel=1e-12)
-    assert cols["model2_upper"][i] == pytest.approx(math.exp(m + h), rel=1e-12)
+    assert cols["model2_log_lower"][i] == pytest.approx(math.exp(m - h), rel=1e-12)
+    assert cols["model2_log_upper"][i] == pytest.approx(math.exp(m + h), rel=1e-12)
     assert cols["ii"][i] == pytest.approx(p.cvi / p.cvg, rel=1e-12)  # Harris 1974
     assert cols["rcv_exceeded_last"].dtype == "boolean"
 

@@ -177,8 +177,6 @@ def test_export_csv_starts_with_the_caution_line(exported):
     assert len(pd.read_csv(exported, skiprows=1)) > 0
 
 
-@pytest.mark.xfail(strict=True, reason="needs the results reader (bayesbase.io read_table) to skip leading "
-                                       "'#' comment lines")
 def test_exported_csv_reads_back_with_our_reader(exported):
     from bayesbase.io import read_results
 

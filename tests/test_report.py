@@ -218,8 +218,8 @@ def test_retest_advice_uses_pack_groups():
     pack = a.packs["dog"]
     adv = {x.group: x for x in report.retest_advice(a.table, pack)}
     liver = adv["liver"]
-    assert liver.when == "1\u20132 weeks"                    # 168-336 h in the dog pack
-    assert (pack.retest_groups["liver"].hours_min, pack.retest_groups["liver"].hours_max) == (168, 336)
+    assert liver.when == "9\u201315 days"                   # 216-360 h in the dog pack
+    assert (pack.retest_groups["liver"].hours_min, pack.retest_groups["liver"].hours_max) == (216, 360)
     assert liver.source == pack.sources["retest_groups.liver.hours_min"]
     assert "AST" in liver.analytes                            # p = 0.63: uncertain
     assert "ALT" in liver.analytes                            # haemolysed sample
@@ -227,12 +227,12 @@ def test_retest_advice_uses_pack_groups():
     assert adv["electrolytes"].analytes == ("Potassium",)     # haemolysed sample
     assert adv["electrolytes"].when == "24\u201372 h"
     assert "renal" not in adv                                 # creatinine: clear answer, clean sample
-    # a haematology answer in the uncertain band gets the haematology window (24-48 h)
+    # a haematology answer in the uncertain band gets the haematology window (48-72 h)
     t = case_assessment("dog_stable_wellness").table.copy()
     assert not report.retest_advice(t, pack)                  # nothing uncertain, nothing compromised
     t.loc[t["analyte"] == "wbc", "p_change"] = 0.5
     adv = {x.group: x for x in report.retest_advice(t, pack)}
-    assert list(adv) == ["haematology"] and adv["haematology"].when == "24\u201348 h"
+    assert list(adv) == ["haematology"] and adv["haematology"].when == "48\u201372 h"
     assert adv["haematology"].reasons == (("WBC", "P(change) 0.50 is uncertain"),)
 
 

@@ -27,7 +27,7 @@ import pytest
 from scipy import stats
 
 from bayesbase.research import compare as research
-from bayesbase.classical import model2_interval, rcv_classical
+from bayesbase.classical import model2_interval_log, rcv_classical
 from bayesbase.constants import CAUTIONS
 from bayesbase.model.engine import exact_assess
 from bayesbase.priors import load_pack
@@ -248,7 +248,7 @@ def test_vectorised_model2_decisions_match_the_kernel(pack):
         stat, dec = research._score(spec, y[:, :n], y[:, 3] + 0.3, cuts, 0.95, 0.5, 1)
         ref = []
         for i in range(y.shape[0]):
-            lo, hi = model2_interval(np.exp(y[i, :n]), spec.cva, spec.cvi)
+            lo, hi = model2_interval_log(np.exp(y[i, :n]), spec.cva, spec.cvi)
             x = math.exp(y[i, 3] + 0.3)
             ref.append(x < lo or x > hi)
         assert np.array_equal(dec["model2"], np.array(ref))

@@ -463,8 +463,10 @@ def _hostile_store(db):
 
 
 def _parse(path):
+    """Rows of an exported CSV; the leading '# ...' caution line (README) is not a row."""
     with open(path, newline="", encoding="utf-8") as fh:
-        return list(csv.DictReader(fh))
+        lines = [ln for ln in fh if not ln.startswith("#")]
+    return list(csv.DictReader(lines))
 
 
 @pytest.mark.parametrize("identified", [False, True])

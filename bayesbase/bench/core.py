@@ -99,6 +99,7 @@ PLAN = (
     ("compare", "bench.research", "bench_compare", {"animals": 100_000}),
     ("mcmc_panel", "bench.mcmc", "bench_mcmc_panel", {"draws": 200}),
     ("interval", "bench.interval", "bench_interval", {"n_animals": 130, "n_boot": 300}),
+    ("study", "bench.study", "bench_study", {"n_analytes": 5}),
 )
 
 

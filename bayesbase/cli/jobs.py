@@ -1,10 +1,11 @@
 """Commands of the research and laboratory jobs, each defined in its own package with
-``add_parser(sub)`` and ``run(args)``: ``interval`` (population reference interval)."""
+``add_parser(sub)`` and ``run(args)``: ``interval`` (population reference interval), ``study`` (biological-variation study)."""
 from __future__ import annotations
 
 #: (command, module defining add_parser and run); the modules import nothing heavy at load
 JOBS = (
     ("interval", "bayesbase.interval.cli"),
+    ("study", "bayesbase.study.cli"),
 )
 
 

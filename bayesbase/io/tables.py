@@ -29,7 +29,9 @@ from ..validate.text import cell_text, visible
 __all__ = ["read_table"]
 
 #: Lines that hold nothing but spaces, tabs and delimiters count as blank.
-_BLANK_LINES = re.compile(r"(?:[ \t,;|]*(?:\r\n|\r|\n))*")
+#: blank lines and comment lines ('# ...', e.g. the caution line bayesbase writes at the top of
+#: its own CSV outputs) above the header
+_LEADING_LINES = re.compile(r"(?:(?:[ \t,;|]*|#[^\r\n]*)(?:\r\n|\r|\n))*")
 _LINE_BREAK = re.compile(r"\r\n|\r|\n")
 
 
@@ -141,7 +143,7 @@ def _read_text(path: Path, name: str) -> tuple[pd.DataFrame, int, str, str, list
     text, encoding, note = decode(path.read_bytes(), visible(name))
     notes = [note] if note else []
     skipped = 0
-    lead = _BLANK_LINES.match(text).group(0)
+    lead = _LEADING_LINES.match(text).group(0)
     if lead:
         skipped = len(_LINE_BREAK.findall(lead))
         text = text[len(lead):]

@@ -84,7 +84,7 @@ from .. import __version__
 from ..classical import (
     index_of_individuality,
     ii_category,
-    model2_interval,
+    model2_interval_log,
     rcv_classical,
     rcv_lognormal,
     z_two_sided,
@@ -355,7 +355,7 @@ def _cuts(spec: AnalyteSpec, n: int, coverage: float, threshold: float) -> dict[
         up, _down = rcv_lognormal(spec.cva, spec.cvi, level=coverage)
         # model-2 half-width on the log scale; it does not depend on the baseline values, so it
         # is read off the published kernel applied to n unit baselines
-        h = math.log(model2_interval(np.ones(n), spec.cva, spec.cvi, coverage)[1])
+        h = math.log(model2_interval_log(np.ones(n), spec.cva, spec.cvi, coverage)[1])
         cuts.update(rcv_last=rcv, rcv_mean=rcv, rcv_lognormal=float(np.log1p(up)), model2=h)
     else:
         cuts.update({k: np.nan for k in NEEDS_BASELINE})

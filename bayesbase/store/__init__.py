@@ -1,8 +1,8 @@
 """Patient results store: an embedded SQLite database (standard library ``sqlite3``).
 
 Layer 4: imports ``bayesbase.contract``, ``errors``, ``units``, ``privacy`` and ``data``, and
-``bayesbase.fhir`` (its sibling in the same layer) for one reader (:func:`bayesbase.fhir.
-load_bundle`) and one writer (:func:`bayesbase.fhir.write_bundle`); fhir never imports the store.
+``bayesbase.io`` (its sibling in the same layer) for one reader (:func:`bayesbase.io.
+load_bundle`) and one writer (:func:`bayesbase.io.write_bundle`); fhir never imports the store.
 
 Parts
 -----

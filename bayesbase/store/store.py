@@ -84,7 +84,7 @@ class Store:
     def import_file(self, path, replace: bool = False, *, dry_run: bool = False) -> ImportSummary:
         """Import a results file: tidy CSV / XLSX (through :func:`bayesbase.data.read_table`
         and :func:`bayesbase.data.validate`) or a FHIR R4 Bundle in JSON (``.json``, through
-        :func:`bayesbase.fhir.load_bundle`). An ``owner`` column goes to the ``owners`` table
+        :func:`bayesbase.io.load_bundle`). An ``owner`` column goes to the ``owners`` table
         only. With ``dry_run`` nothing is written (see :meth:`import_frame`)."""
         path = Path(path)
         source = path.name  # as bayesbase.data names files in messages; no directory kept
