@@ -47,7 +47,7 @@ Reported components (posterior median and 95 % equal-tailed interval, CVs as fra
 log-scale SD with CV = sqrt(exp(sigma^2) - 1)): ``cva``, ``cvi`` (the median animal),
 ``cvi_spread_log_sd``, ``cvi_new_animal`` (posterior predictive of a new animal's CVI: the
 log-normal mixture over the draws, with quantiles found exactly, no extra Monte Carlo noise) and
-``cvg``. Convergence uses the thresholds of :mod:`bayesbase.mcmc` and the same never-silent rule:
+``cvg``. Convergence uses the thresholds of :mod:`bayesbase.mcmc.engine` and the same never-silent rule:
 a fit that fails a check is returned with ``diagnostics["converged"] = False`` and the caller
 marks every output of it.
 
@@ -428,7 +428,7 @@ def fit_bayes(
     design = prepare_design(data)
     # same thresholds as the assessment engine (this import also loads PyMC and ArviZ, with
     # ArviZ's import-time notice handled there)
-    from ..mcmc import ESS_MIN, RHAT_MAX
+    from ..mcmc.engine import ESS_MIN, RHAT_MAX
 
     if cores is None:
         cores = max(1, min(chains, os.cpu_count() or 1))
