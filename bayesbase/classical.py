@@ -59,6 +59,7 @@ __all__ = [
     "prob_significant_change",
     "pair_factor",
     "model2_interval",
+    "model2_intervals",
     "model2_interval_log",
     "cva_too_high",
     "chance_any_outside",
@@ -191,22 +192,35 @@ def model2_interval(baselines, cva, cvi, coverage=0.95, form="arithmetic"):
     ``n_mean=n``. ``baselines`` are values on the original scale (1-D). Returns (lower, upper);
     NaN without baselines.
     """
+    lo, hi = model2_intervals(np.asarray(baselines, float)[None, :], cva, cvi, coverage, form)
+    return float(lo[0]), float(hi[0])
+
+
+def model2_intervals(baselines, cva, cvi, coverage=0.95, form="arithmetic"):
+    """:func:`model2_interval` of many cases at once: ``baselines`` (C, J) on the original scale,
+    NaN where a case has fewer than J results; ``cva``, ``cvi`` scalars or (C,). Returns (lower,
+    upper) arrays of shape (C,), NaN for a case without a finite baseline."""
     if form not in ("arithmetic", "log"):
         raise ValueError(f"form must be 'arithmetic' or 'log', not {form!r}")
     x = np.asarray(baselines, float)
-    x = x[np.isfinite(x)]
-    n = x.size
-    if n == 0:
-        return float("nan"), float("nan")
+    ok = np.isfinite(x)
+    n = ok.sum(axis=1)
+    has = n > 0
+    nn = np.where(has, n, 1)
     z = z_two_sided(coverage)
-    if form == "log":
-        st = np.sqrt(np.log1p(cva**2) + np.log1p(cvi**2))
-        m = np.mean(np.log(x))
-        h = z * st * np.sqrt(1.0 + 1.0 / n)
-        return float(np.exp(m - h)), float(np.exp(m + h))
-    hsp = float(np.mean(x))
-    k = float(rcv_classical(cva, cvi, z=z, n_mean=n))
-    return max(hsp * (1.0 - k), 0.0), hsp * (1.0 + k)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if form == "log":
+            st = np.sqrt(np.log1p(np.asarray(cva, float) ** 2) + np.log1p(np.asarray(cvi, float) ** 2))
+            m = np.where(ok, np.log(np.where(ok, x, 1.0)), 0.0).sum(axis=1) / nn
+            h = z * st * np.sqrt(1.0 + 1.0 / nn)
+            lo, hi = np.exp(m - h), np.exp(m + h)
+        else:
+            hsp = np.where(ok, x, 0.0).sum(axis=1) / nn
+            k = rcv_classical(cva, cvi, z=z, n_mean=nn)
+            lo, hi = np.maximum(hsp * (1.0 - k), 0.0), hsp * (1.0 + k)
+    lo = np.where(has, lo, np.nan)
+    hi = np.where(has, hi, np.nan)
+    return lo, hi
 
 
 def model2_interval_log(baselines, cva, cvi, coverage=0.95):

@@ -276,3 +276,36 @@ def test_exact_rule_false_alarm_rate_by_simulation(n):
     assert beyond.mean() == pytest.approx(0.05, abs=0.005)
     p = classical.prob_significant_change(d_arith, cva, cvi, n_mean=n)
     assert np.array_equal(p > 0.95, beyond)
+
+
+@pytest.mark.parametrize("form", ["arithmetic", "log"])
+def test_model2_intervals_of_many_cases_equal_the_formula_case_by_case(form):
+    """The batched model-2 (NaN-padded rows) against the published closed form written out here:
+    arithmetic HSP (1 -/+ Z sqrt(1 + 1/n) CVT) [Coskun 2021], log exp(mean ln x -/+ Z sigma_T
+    sqrt(1 + 1/n)); Z from scipy.stats.norm."""
+    from scipy import stats
+
+    from bayesbase.classical import model2_intervals
+
+    rng = np.random.default_rng(7)
+    c, j = 200, 5
+    n = rng.integers(0, j + 1, c)
+    x = rng.lognormal(4.0, 0.2, (c, j))
+    x[np.arange(j)[None, :] >= n[:, None]] = np.nan
+    cva, cvi = rng.uniform(0.01, 0.1, c), rng.uniform(0.03, 0.4, c)
+    lo, hi = model2_intervals(x, cva, cvi, coverage=0.95, form=form)
+    z = stats.norm.ppf(0.975)
+    for i in range(c):
+        if n[i] == 0:
+            assert np.isnan(lo[i]) and np.isnan(hi[i])
+            continue
+        v = x[i, : n[i]]
+        f = np.sqrt(1 + 1 / n[i])
+        if form == "arithmetic":
+            k = z * f * np.hypot(cva[i], cvi[i])
+            want = (max(v.mean() * (1 - k), 0.0), v.mean() * (1 + k))
+        else:
+            s = np.sqrt(np.log1p(cva[i] ** 2) + np.log1p(cvi[i] ** 2))
+            m = np.log(v).mean()
+            want = (np.exp(m - z * f * s), np.exp(m + z * f * s))
+        assert (lo[i], hi[i]) == pytest.approx(want, rel=1e-12)

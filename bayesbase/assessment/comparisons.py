@@ -37,11 +37,10 @@ def model2_intervals(b: CaseBatch, coverage: float, form: str = "arithmetic") ->
     """Model-2 interval of every case (:func:`bayesbase.classical.model2_interval` over the
     baseline specimens, ``form`` "arithmetic" - published - or "log"; NaN without a baseline)."""
     cva, cvi, _ = classical_cvs(b)
-    lo, hi = np.full(len(b), np.nan), np.full(len(b), np.nan)
-    for i in np.flatnonzero(b.baselines.n > 0):
-        values = np.exp(b.baselines.y[i, : b.baselines.n[i]])
-        lo[i], hi[i] = classical.model2_interval(values, cva[i], cvi[i], coverage=coverage, form=form)
-    return lo, hi
+    y = b.baselines.y
+    j = np.arange(y.shape[1])[None, :]
+    values = np.where(j < b.baselines.n[:, None], np.exp(y), np.nan)  # the n baselines of each case
+    return classical.model2_intervals(values, cva, cvi, coverage=coverage, form=form)
 
 
 def _tri(mask, has_baseline) -> pd.arrays.BooleanArray:
