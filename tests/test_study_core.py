@@ -393,3 +393,181 @@ def test_bench_study_returns_timings():
     res = bench_study(n_animals=6, n_specimens=4, n_replicates=2, n_analytes=3)
     assert res["results"] == 6 * 4 * 2 * 3
     assert res["estimate_anova_s"] >= 0 and res["design"] == "6x4x2"
+
+
+# --------------------------------------------------------------------------- stages of estimate(), one by one
+
+from bayesbase.io import read_results, read_results_hashed  # noqa: E402
+from bayesbase.study import core as C  # noqa: E402
+
+
+def _tiny_study() -> pd.DataFrame:
+    """3 animals x 3 specimens x 2 replicates of one analyte, balanced, in the canonical row order;
+    a fourth animal's censored result and specimen taken while unwell last (invented numbers)."""
+    rng = np.random.default_rng(11)
+    rows = []
+    for a in range(3):
+        for s in range(3):
+            for r in (1, 2):
+                rows.append(dict(patient=f"T{a}", species="dog", specimen=f"T{a}-{s}",
+                                 collected_at=f"2025-03-0{s + 1} 0{a + 7}:00", analyte="creatinine",
+                                 value=f"{90 * math.exp(0.2 * a + 0.05 * rng.standard_normal()):.2f}",
+                                 unit="umol/L", replicate=r, state="healthy"))
+    rows.append(dict(rows[0], patient="T9", specimen="T9-0", value="<40", collected_at="2025-03-05 07:00"))
+    rows.append(dict(rows[0], patient="T9", specimen="T9-1", value="300", state="unwell",
+                     collected_at="2025-03-06 07:00"))
+    return pd.DataFrame(rows)
+
+
+def test_stage_check_options():
+    C._check_options("both", 0.05, 0.9)  # accepted
+    for args, msg in [(("mcmc", 0.05, 0.95), "method must be one of"), (("anova", 0.0, 0.95), "alpha"),
+                      (("anova", 0.05, 1.0), "ci_prob")]:
+        with pytest.raises(StudyError, match=msg):
+            C._check_options(*args)
+
+
+def test_read_results_hashed_is_read_results_plus_the_file_digest():
+    """The SHA-256 is hashlib's digest of the file's bytes (Python standard library)."""
+    frame, sha = read_results_hashed(CASE)
+    assert sha == hashlib.sha256(CASE.read_bytes()).hexdigest()
+    pd.testing.assert_frame_equal(frame, read_results(CASE))
+
+
+def test_stage_read_aligns_arrays_and_days():
+    st = C._read(_tiny_study(), species="canine", analytes=["creatinine"])
+    assert st.species == "dog" and st.analytes == ["creatinine"] and len(st.frame) == 20
+    raw = _tiny_study()
+    assert list(st.patient) == list(raw["patient"]) and list(st.specimen) == list(raw["specimen"])
+    t = pd.to_datetime(raw["collected_at"])
+    np.testing.assert_allclose(st.days, ((t - t.min()) / pd.Timedelta(days=1)).to_numpy())
+    assert list(st.patient[:2]) == ["T0", "T0"] and st.censor[18] == "left" and st.state[19] == "unwell"
+    st_file = C._read(CASE, None, ["urea"])
+    assert st_file.sha == hashlib.sha256(CASE.read_bytes()).hexdigest() and st_file.source == CASE.name
+    assert set(st_file.analyte) == {"urea"}
+
+
+def test_stage_input_exclusions_and_codes():
+    st = C._read(_tiny_study(), None, None)
+    out = C._Collect()
+    an = C._exclude_inputs(st, "creatinine", out)
+    assert [r["reason"].split(";")[0] for r in out.removed_rows] == ["censored value (left)",
+                                                                     "specimen taken while unwell"]
+    assert all(r["step"] == 0 and r["action"] == "removed" for r in out.removed_rows)
+    assert an.use.size == 18 and an.keep.all() and an.unit == "umol/L"
+    np.testing.assert_allclose(an.y, np.log(st.value[:18]))
+    assert len(set(an.a_codes)) == 3 and len(set(an.s_codes)) == 9
+    assert list(an.spec_names[an.s_codes[:4]]) == ["T0-0", "T0-0", "T0-1", "T0-1"]
+    assert an.counts == dict(n_animals=3, n_specimens=9, n_results=18, n_removed=2)
+
+
+def test_stage_screen_and_series_match_the_whole_estimate(result):
+    st = C._read(CASE, None, ["creatinine"])
+    out = C._Collect(notes={"creatinine": []})
+    an = C._exclude_inputs(st, "creatinine", out)
+    C._screen_analyte(an, st.days, C.DEFAULT_ALPHA, True, out)
+    whole_removed = result.removed[result.removed["analyte"] == "creatinine"].reset_index(drop=True)
+    pd.testing.assert_frame_equal(pd.DataFrame(out.removed_rows, columns=list(REMOVED_COLUMNS)), whole_removed)
+    assert len(out.step_rows) == (result.steps["analyte"] == "creatinine").sum()
+    est = result.estimates.set_index("analyte").loc["creatinine"]
+    assert an.counts["n_removed"] == est["n_removed"] and an.counts["n_results"] == est["n_results"]
+    part = C._series_part(st, an)
+    assert int((~part["kept"]).sum()) == est["n_removed"]
+    np.testing.assert_allclose(part["ln_value"], np.log(part["value"]))
+
+
+def test_stage_screen_warnings_words():
+    sc = types.SimpleNamespace(
+        records=[dict(step=3, animal=1, action="removed", reason="Reed; gap 2.1 x range")],
+        tests=[dict(step=4, test="Cochran C", p_value=0.001, flagged=True, detail=""),
+               dict(step=6, test="mean slope", p_value=0.02, flagged=True, detail="+1 %/week"),
+               dict(step=5, test="Shapiro-Wilk", p_value=0.01, flagged=True, detail="")])
+    w = C._screen_warnings("alt", sc, np.array(["A", "B"], dtype=object))
+    assert len(w) == 3
+    assert "animal B" in w[0] and "gap 2.1 x range" in w[0]
+    assert "Cochran C p = 0.001" in w[1] and "drift together (+1 %/week, p = 0.02)" in w[2]
+
+
+def test_stage_classical_against_the_balanced_moment_formulas():
+    """Balanced nested ANOVA by hand (method of moments, e.g. Searle, Casella & McCulloch 1992,
+    Variance Components, ch. 3): s2_A = MS_E, s2_I = (MS_S - MS_E)/n_r, s2_G = (MS_A - MS_S)/(n_s n_r);
+    CV = sqrt(exp(s2) - 1) on the log scale."""
+    st = C._read(_tiny_study(), None, None)
+    out = C._Collect(notes={"creatinine": []})
+    an = C._exclude_inputs(st, "creatinine", out)
+    C._classical(an, "tiny", 0.95, True, False, out)
+    y = an.y.reshape(3, 3, 2)  # animal x specimen x replicate, in file order
+    ms_e = ((y - y.mean(2, keepdims=True)) ** 2).sum() / (3 * 3 * 1)
+    ms_s = 2 * ((y.mean(2) - y.mean((1, 2))[:, None]) ** 2).sum() / (3 * 2)
+    ms_a = 6 * ((y.mean((1, 2)) - y.mean()) ** 2).sum() / 2
+    var = dict(cva=ms_e, cvi=max((ms_s - ms_e) / 2, 0.0), cvg=(ms_a - ms_s) / 6)
+    t = pd.DataFrame(out.table_rows).set_index("component")
+    for c, v in var.items():
+        assert t.at[c, "estimate"] == pytest.approx(math.sqrt(math.expm1(v)), rel=1e-9)
+        assert t.at[c, "lower"] <= t.at[c, "estimate"] <= t.at[c, "upper"]
+    assert out.est_rows[0]["method"] == "anova" and "anova" in out.used_fits["creatinine"]
+
+
+def test_stage_classical_on_the_case_matches_the_whole_estimate(result):
+    st = C._read(CASE, None, None)
+    out = C._Collect()
+    for aid in st.analytes:
+        out.notes[aid] = []
+        an = C._exclude_inputs(st, aid, out)
+        C._screen_analyte(an, st.days, C.DEFAULT_ALPHA, True, out)
+        C._classical(an, st.source, C.DEFAULT_CI_PROB, True, False, out)
+    pd.testing.assert_frame_equal(C._tables(out)["table"], result.table)
+    pd.testing.assert_frame_equal(C._tables(out)["estimates"], result.estimates)
+
+
+@pytest.mark.parametrize("converged", [True, False])
+def test_stage_bayesian_is_never_silent(monkeypatch, converged):
+    calls = _fake_module(monkeypatch, converged=converged)
+    st = C._read(_tiny_study(), None, None)
+    out = C._Collect(notes={"creatinine": []})
+    an = C._exclude_inputs(st, "creatinine", out)
+    C._bayesian(an, st.replicate, C._bayes_module(), 9, dict(robust=False, draws=10, tune=10, chains=1), out)
+    assert calls[0]["seed"] == 9 and calls[0]["n"] == 18
+    methods = {r["method"] for r in out.table_rows}
+    assert methods == ({"bayes"} if converged else {C.UNCONVERGED})
+    assert ("bayes" in out.used_fits.get("creatinine", {})) is converged
+    assert any("did not converge" in w and "R-hat 1.200" in w for w in out.warnings) is not converged
+
+
+def test_stage_bayesian_failure_is_a_note_and_a_warning(monkeypatch):
+    mod = types.ModuleType("bayesbase.study.bayes")
+
+    def fit_bayes(data, **kw):
+        raise BayesbaseError("too few animals")
+
+    mod.fit_bayes = fit_bayes
+    st = C._read(_tiny_study(), None, None)
+    out = C._Collect(notes={"creatinine": []})
+    an = C._exclude_inputs(st, "creatinine", out)
+    C._bayesian(an, st.replicate, mod, 0, {}, out)
+    assert out.bayes_fits == {"creatinine": None} and not out.table_rows
+    assert out.warnings == ["creatinine: no Bayesian estimate (too few animals)"]
+    assert out.notes["creatinine"] == ["Bayesian estimate not possible: too few animals"]
+
+
+def test_stage_desirable_cva_warning():
+    """Desirable CVA <= 0.5 CVI (common practice); the converged Bayesian fit is preferred."""
+    fit = lambda cva, cvi: dict(comps={"cva": (cva, 0, 0), "cvi": (cvi, 0, 0)})  # noqa: E731
+    assert C._desirable_warning("alt", {}) is None
+    assert C._desirable_warning("alt", {"anova": fit(0.02, 0.06)}) is None
+    w = C._desirable_warning("alt", {"anova": fit(0.04, 0.06)})
+    assert "CVA 4.0 %" in w and "0.5 x CVI = 3.0 %" in w
+    assert C._desirable_warning("alt", {"anova": fit(0.04, 0.06), "bayes": fit(0.02, 0.06)}) is None
+
+
+def test_stage_tables_and_attrs():
+    frames = C._tables(C._Collect())
+    assert list(frames["estimates"].columns) == list(ESTIMATE_COLUMNS)
+    assert list(frames["removed"].columns) == list(REMOVED_COLUMNS)
+    assert frames["table"].empty and frames["series"].empty
+    st = C._read(_tiny_study(), None, None)
+    engines = {m: C._attrs(st, m, 1, 0.05, 0.95, True, False, False, 10, 10, 1)["engine"]
+               for m in ("anova", "bayes", "both")}
+    assert engines["both"] == engines["anova"] + " | " + engines["bayes"]
+    a = C._attrs(st, "anova", 1, 0.05, 0.95, True, False, False, 10, 10, 1)
+    assert a["source_sha256"] == st.sha and re.fullmatch(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ", a["created"])

@@ -44,7 +44,7 @@ import pandas as pd
 from .. import __version__
 from ..constants import CAUTIONS
 from ..contract import CANONICAL_COLUMNS
-from ..io import read_results as load_results
+from ..io import read_results_hashed
 from ..validate import SPECIES_ALIASES, validate
 from ..errors import AnalyteNotInPack, BayesbaseError, PackError
 from ..priors import load_pack
@@ -197,9 +197,8 @@ def _load(frame_or_path) -> tuple[pd.DataFrame, str, str]:
     path = Path(frame_or_path)
     if not path.is_file():
         raise IntervalError(f"{path}: file not found")
-    raw = path.read_bytes()
-    frame = load_results(path)
-    return frame, path.name, hashlib.sha256(raw).hexdigest()
+    frame, sha = read_results_hashed(path)
+    return frame, path.name, sha
 
 
 def _age_group(birth, collected) -> np.ndarray:

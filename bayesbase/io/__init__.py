@@ -5,6 +5,7 @@ Public API
 ----------
 ``read_results(path, now)``     the canonical results frame of a table or FHIR JSON file (the
                                 one dispatcher the command line, ``assess`` and the store use)
+``read_results_hashed(path)``   ``read_results`` plus the SHA-256 of the file's bytes (provenance)
 ``read_table(path)``            raw table of strings, column names normalised
 ``to_tidy_csv(frame, path)``    write a canonical frame as CSV (reads back with ``read_results``)
 ``read_bundle(obj)``            raw frame of a FHIR R4 Bundle (path, JSON text or dict)
@@ -20,9 +21,9 @@ from __future__ import annotations
 
 from .fhir_read import load_bundle, read_bundle
 from .fhir_write import bundle_dict, write_bundle
-from .results import read_results
+from .results import read_results, read_results_hashed
 from .tables import read_table
 from .tidy_csv import to_tidy_csv
 
-__all__ = ["read_results", "read_table", "to_tidy_csv", "read_bundle", "load_bundle",
+__all__ = ["read_results", "read_results_hashed", "read_table", "to_tidy_csv", "read_bundle", "load_bundle",
            "write_bundle", "bundle_dict"]

@@ -2,6 +2,7 @@
 command line, ``assess`` and the store alike."""
 from __future__ import annotations
 
+import hashlib
 from pathlib import Path
 
 import pandas as pd
@@ -9,7 +10,7 @@ import pandas as pd
 from ..validate import validate
 from .tables import read_table
 
-__all__ = ["FHIR_SUFFIXES", "read_results"]
+__all__ = ["FHIR_SUFFIXES", "read_results", "read_results_hashed"]
 
 #: File suffixes read as a FHIR R4 Bundle in JSON (anything else is a table).
 FHIR_SUFFIXES = (".json",)
@@ -26,3 +27,11 @@ def read_results(path: str | Path, now=None) -> pd.DataFrame:
 
         return load_bundle(path, source=path.name, now=now)
     return validate(read_table(path), source=path.name, now=now)
+
+
+def read_results_hashed(path: str | Path, now=None) -> tuple[pd.DataFrame, str]:
+    """:func:`read_results` plus the SHA-256 (hex) of the file's bytes, the provenance stamp of a
+    result built from the file. The caller checks that the file exists (with its own error)."""
+    path = Path(path)
+    digest = hashlib.sha256(path.read_bytes()).hexdigest()
+    return read_results(path, now=now), digest

@@ -35,7 +35,7 @@ import xarray as xr
 
 from .. import __version__, classical
 from ..constants import CI_BOUNDS, DEFAULT_CI_PROB, DIM_ANALYTE, DIM_CI
-from ..io import read_results as load_results
+from ..io import read_results_hashed
 from ..validate import validate
 from ..errors import BayesbaseError
 from ..units import label as analyte_label
@@ -103,14 +103,14 @@ def _sha256_frame(frame: pd.DataFrame) -> str:
 
 
 def _load(data) -> tuple[pd.DataFrame, str, str]:
-    """(canonical frame, source name, sha256). A path is read with load_results and hashed by its
-    bytes; a frame is validated when it is not canonical yet and hashed by its CSV text."""
+    """(canonical frame, source name, sha256). A path is read with :func:`~bayesbase.io.read_results_hashed`
+    (hashed by its bytes); a frame is validated when it is not canonical yet and hashed by its CSV text."""
     if isinstance(data, (str, Path)):
         path = Path(data)
         if not path.is_file():
             raise StudyError(f"{data}: study file not found")
-        frame = load_results(path)
-        return frame, path.name, hashlib.sha256(path.read_bytes()).hexdigest()
+        frame, sha = read_results_hashed(path)
+        return frame, path.name, sha
     if not isinstance(data, pd.DataFrame):
         raise TypeError("estimate expects a results file path or a pandas DataFrame")
     frame = data
@@ -219,6 +219,275 @@ def _bayes_module():
         raise StudyError(f"the Bayesian study model (bayesbase.study.bayes) is not available: {exc}") from None
 
 
+# --------------------------------------------------------------------------- stages
+
+@dataclass
+class _Study:
+    """The chosen results of a study (stage 2), as arrays aligned with ``frame``'s rows."""
+
+    frame: pd.DataFrame
+    source: str
+    sha: str
+    species: str
+    analytes: list[str]
+    days: np.ndarray
+    censor: np.ndarray
+    state: np.ndarray
+    patient: np.ndarray
+    specimen: np.ndarray
+    value: np.ndarray
+    analyte: np.ndarray
+    replicate: np.ndarray
+    src_row: np.ndarray
+
+
+@dataclass
+class _Analyte:
+    """One analyte's results after the input exclusions: ``idx`` its rows of the study, ``use`` the
+    rows kept as input, ``y`` their natural logs, animal and specimen codes (per ``use``) and
+    ``keep`` (per ``use``) what survived the outlier steps."""
+
+    aid: str
+    unit: str
+    idx: np.ndarray
+    use: np.ndarray
+    y: np.ndarray
+    a_codes: np.ndarray
+    s_codes: np.ndarray
+    a_labels: np.ndarray
+    spec_names: np.ndarray
+    keep: np.ndarray
+
+    @property
+    def counts(self) -> dict:
+        ka, ks = self.a_codes[self.keep], self.s_codes[self.keep]
+        return dict(n_animals=int(np.unique(ka).size), n_specimens=int(np.unique(ks).size),
+                    n_results=int(self.keep.sum()), n_removed=int(self.idx.size - self.keep.sum()))
+
+
+@dataclass
+class _Collect:
+    """Everything the per-analyte stages add, in the order they add it."""
+
+    table_rows: list[dict] = field(default_factory=list)
+    est_rows: list[dict] = field(default_factory=list)
+    removed_rows: list[dict] = field(default_factory=list)
+    step_rows: list[dict] = field(default_factory=list)
+    slope_rows: list[dict] = field(default_factory=list)
+    series_parts: list[pd.DataFrame] = field(default_factory=list)
+    notes: dict[str, list[str]] = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+    bayes_fits: dict[str, object] = field(default_factory=dict)
+    used_fits: dict[str, dict] = field(default_factory=dict)
+
+
+def _check_options(method: str, alpha: float, ci_prob: float) -> None:
+    """Stage 1: the options, before any file is read."""
+    if method not in METHODS:
+        raise StudyError(f"method must be one of {', '.join(METHODS)}, got '{method}'")
+    if not 0 < alpha < 1 or not 0 < ci_prob < 1:
+        raise StudyError("alpha and ci_prob must lie between 0 and 1")
+
+
+def _read(data, species, analytes) -> _Study:
+    """Stage 2: read (path or frame, with its source name and SHA-256), choose species and analytes."""
+    frame, source, sha = _load(data)
+    frame, species, analyte_ids = _select(frame, source, species, analytes)
+    frame = frame.reset_index(drop=True)
+    days = (frame["collected_at"] - frame["collected_at"].min()).dt.total_seconds().to_numpy() / 86400.0
+    text = {c: frame[c].astype(str).to_numpy(dtype=object) for c in ("censor", "state", "patient", "specimen",
+                                                                       "analyte")}
+    src_row = frame["source_row"].to_numpy() if "source_row" in frame.columns else np.full(len(frame), -1)
+    return _Study(frame=frame, source=source, sha=sha, species=species, analytes=analyte_ids, days=days,
+                  value=frame["value"].to_numpy(float), replicate=frame["replicate"].to_numpy(dtype=np.int64),
+                  src_row=src_row, **text)
+
+
+def _exclude_inputs(st: _Study, aid: str, out: _Collect) -> _Analyte:
+    """Stage 3a: leave out censored values and specimens taken while unwell (each listed as removed
+    at step 0); code the rest by animal and specimen. ``keep`` starts all True."""
+    idx = np.flatnonzero(st.analyte == aid)
+    reason = np.where(st.censor[idx] != "", "censored value (" + st.censor[idx] + ")", "")
+    reason = np.where((reason == "") & (st.state[idx] == "unwell"), "specimen taken while unwell", reason)
+    for j in np.flatnonzero(reason != ""):
+        r = idx[j]
+        out.removed_rows.append(dict(analyte=aid, step=0, test="input", level="result", animal=st.patient[r],
+                                     specimen=st.specimen[r], n_results=1, statistic=math.nan,
+                                     critical_value=math.nan, alpha=math.nan, action="removed",
+                                     reason=f"{reason[j]}; source row {st.src_row[r]}"))
+    use = idx[reason == ""]
+    a_codes, a_labels = pd.factorize(st.patient[use], sort=False)
+    sp_codes, sp_labels = pd.factorize(st.specimen[use], sort=False)
+    _, s_first, s_codes = np.unique(a_codes.astype(np.int64) * (len(sp_labels) + 1) + sp_codes,
+                                    return_index=True, return_inverse=True)
+    return _Analyte(aid=aid, unit=str(st.frame["unit"].iat[idx[0]]), idx=idx, use=use, y=np.log(st.value[use]),
+                    a_codes=a_codes, s_codes=s_codes.ravel(), a_labels=np.asarray(a_labels, dtype=object),
+                    spec_names=np.asarray(sp_labels, dtype=object)[sp_codes[s_first]],
+                    keep=np.ones(use.size, bool))
+
+
+def _screen_warnings(aid: str, sc, a_labels) -> list[str]:
+    """What the reader must not miss from the outlier screen: Reed's criterion on an animal,
+    heterogeneous within-animal variances, a common drift."""
+    warnings = [f"{aid}: Reed's criterion {rec['action']} animal {a_labels[rec['animal']]} "
+                f"({rec['reason'].split('; ', 1)[-1]}; --no-outlier-removal keeps it)"
+                for rec in sc.records if rec["step"] == 3]
+    for t in sc.tests:
+        if t["flagged"] and t["step"] == 4:
+            warnings.append(f"{aid}: {t['test']} p = {t['p_value']:.3g}: within-animal variances "
+                            "differ between animals; the classical CVI is an average and its interval, "
+                            "which ignores the differences, is too narrow (the Bayesian model "
+                            "estimates the spread)")
+        elif t["flagged"] and t["step"] == 6 and "mean slope" in t["test"]:
+            warnings.append(f"{aid}: the animals drift together ({t['detail']}, p = {t['p_value']:.3g}): "
+                            "the study may not be in a steady state")
+    return warnings
+
+
+def _screen_analyte(an: _Analyte, days: np.ndarray, alpha: float, remove: bool, out: _Collect) -> None:
+    """Stage 3b: the outlier, homogeneity, normality and steady-state steps of :func:`.outliers.screen`
+    on one analyte; sets ``an.keep`` and lists every record, test and slope."""
+    if not an.use.size:
+        return
+    sc = screen(an.a_codes, an.s_codes, an.y, days[an.use], alpha=alpha, remove=remove)
+    an.keep = sc.keep
+    out.notes[an.aid].extend(sc.notes)
+    for rec in sc.records:
+        out.removed_rows.append(dict(rec, analyte=an.aid, animal=an.a_labels[rec["animal"]],
+                                     specimen=an.spec_names[rec["specimen"]] if rec["specimen"] >= 0 else ""))
+    out.step_rows += [dict(t, analyte=an.aid) for t in sc.tests]
+    out.warnings += _screen_warnings(an.aid, sc, an.a_labels)
+    out.slope_rows += [dict(s, analyte=an.aid, animal=an.a_labels[s["animal"]]) for s in sc.slopes]
+
+
+def _series_part(st: _Study, an: _Analyte) -> pd.DataFrame:
+    """The analyte's results for plots: every row with ``days``, ``ln_value`` and ``kept``."""
+    idx = an.idx
+    return pd.DataFrame({
+        "analyte": an.aid, "animal": st.patient[idx], "specimen": st.specimen[idx],
+        "replicate": st.replicate[idx], "collected_at": st.frame["collected_at"].to_numpy()[idx],
+        "days": st.days[idx], "value": st.value[idx], "ln_value": np.log(st.value[idx]),
+        "kept": np.isin(idx, an.use[an.keep]),
+    })
+
+
+def _add_rows(out: _Collect, an: _Analyte, method: str, comps: dict, converged, note: str) -> None:
+    out.table_rows += _method_rows(an.aid, an.unit, method, comps, converged, note)
+    out.est_rows.append(_estimate_row(an.aid, an.unit, method, an.counts, comps))
+
+
+def _classical(an: _Analyte, label: str, ci_prob: float, run_anova: bool, cv_anova: bool, out: _Collect) -> None:
+    """Stage 4: nested ANOVA (rows when ``run_anova``) and CV-ANOVA (when ``cv_anova``) on the
+    results kept; a design that cannot be estimated is a note and a warning, not an error."""
+    aid, k = an.aid, an.keep
+    ka, ks, ky = an.a_codes[k], an.s_codes[k], an.y[k]
+    afit = None
+    try:
+        afit = _anova.nested_anova(ka, ks, ky, ci_prob=ci_prob, label=f"{label}: {aid}")
+    except StudyError as exc:
+        out.notes[aid].append(f"Classical estimate not possible: {exc}")
+        out.warnings.append(f"{aid}: no classical estimate ({exc})")
+    if run_anova:
+        comps = _anova_comps(afit) if afit is not None else {}
+        note = ""
+        if afit is not None and afit.truncated:
+            note = "negative moment estimate set to 0: " + ", ".join(afit.truncated)
+            out.warnings.append(f"{aid}: ANOVA {note}")
+        _add_rows(out, an, "anova", comps, pd.NA, note)
+        if afit is not None:
+            out.used_fits.setdefault(aid, {})["anova"] = dict(comps=comps, counts=an.counts, fit=afit)
+    if cv_anova and afit is not None:
+        try:
+            z = _anova.cv_anova_transform(ka, np.exp(ky))
+            cfit = _anova.nested_anova(ka, ks, z, ci_prob=ci_prob, label=f"{label}: {aid} (CV-ANOVA)")
+            # CV-ANOVA: the components are CV^2 directly (Roraas 2016); CVG is not defined
+            comps = {c: (math.sqrt(cfit.var[c]), math.sqrt(cfit.lower[c]), math.sqrt(cfit.upper[c]))
+                     for c in ("cva", "cvi")}
+            _add_rows(out, an, "cv-anova", comps, pd.NA, "CVG not defined by CV-ANOVA")
+        except StudyError as exc:
+            out.notes[aid].append(f"CV-ANOVA not possible: {exc}")
+
+
+def _convergence_note(diag: dict) -> str:
+    return (f"did not converge: max R-hat {diag.get('max_r_hat', math.nan):.3f}, min bulk ESS "
+            f"{diag.get('min_ess_bulk', math.nan):.0f}, min tail ESS {diag.get('min_ess_tail', math.nan):.0f}, "
+            f"{diag.get('divergences', 0)} divergence(s)")
+
+
+def _bayesian(an: _Analyte, replicate: np.ndarray, bayes_mod, seed: int, fit_kw: dict, out: _Collect) -> None:
+    """Stage 5: the Bayesian model on the results kept. Never silent: a fit that fails is a note and
+    a warning; a fit that does not converge gets rows marked ``UNCONVERGED`` (``converged`` False),
+    a warning, and is not used for the pack fragment."""
+    aid, k = an.aid, an.keep
+    bdata = pd.DataFrame({"animal": an.a_labels[an.a_codes[k]].astype(str),
+                          "specimen": an.spec_names[an.s_codes[k]].astype(str),
+                          "replicate": replicate[an.use][k], "y": an.y[k]})
+    try:
+        bfit = bayes_mod.fit_bayes(bdata, seed=seed, **fit_kw)
+    except BayesbaseError as exc:
+        bfit = None
+        out.notes[aid].append(f"Bayesian estimate not possible: {exc}")
+        out.warnings.append(f"{aid}: no Bayesian estimate ({exc})")
+    out.bayes_fits[aid] = bfit
+    if bfit is None:
+        return
+    bt = _bayes_table(bfit)
+    comps = {c: (float(bt.at[c, "estimate"]), float(bt.at[c, "lower"]), float(bt.at[c, "upper"]))
+             for c in COMPONENTS if c in bt.index}
+    conv = bool(dict(bfit.diagnostics).get("converged", False))
+    note = "" if conv else _convergence_note(dict(bfit.diagnostics))
+    if not conv:
+        out.warnings.append(f"{aid}: Bayesian fit {note}; its rows are marked '{UNCONVERGED}' and it is "
+                            "not used for the pack fragment (rerun with more draws/tune or check the data)")
+    _add_rows(out, an, "bayes" if conv else UNCONVERGED, comps, conv, note)
+    if conv:
+        out.used_fits.setdefault(aid, {})["bayes"] = dict(comps=comps, counts=an.counts, fit=bfit)
+
+
+def _desirable_warning(aid: str, fits: dict) -> str | None:
+    """Stage 5b: desirable analytical performance, CVA <= 0.5 CVI (common practice), checked on the
+    Bayesian fit when it converged, else the ANOVA."""
+    best = fits.get("bayes") or fits.get("anova")
+    if best is None:
+        return None
+    cva_, cvi_ = best["comps"]["cva"][0], best["comps"]["cvi"][0]
+    if np.isfinite(cva_) and np.isfinite(cvi_) and cva_ > DESIRABLE_CVA_FRACTION * cvi_:
+        return (f"{aid}: CVA {100 * cva_:.1f} % exceeds the desirable 0.5 x CVI = "
+                f"{50 * cvi_:.1f} %: analytical imprecision dominates serial comparisons")
+    return None
+
+
+def _tables(out: _Collect) -> dict[str, pd.DataFrame]:
+    """Stage 6: the tidy frames of :class:`StudyResult` from the collected rows."""
+    estimates = pd.DataFrame(out.est_rows, columns=list(ESTIMATE_COLUMNS))
+    estimates["n_for_setpoint"] = estimates["n_for_setpoint"].astype("Int64")
+    return dict(
+        table=pd.DataFrame(out.table_rows, columns=["analyte", "unit", "method", "component", "estimate",
+                                                     "lower", "upper", "scale", "converged", "note"]),
+        estimates=estimates,
+        removed=pd.DataFrame(out.removed_rows, columns=list(REMOVED_COLUMNS)),
+        steps=pd.DataFrame(out.step_rows, columns=["analyte", "step", "test", "statistic", "p_value", "df",
+                                                   "flagged", "detail"]),
+        slopes=pd.DataFrame(out.slope_rows, columns=["analyte", "animal", "n_specimens", "slope_per_day",
+                                                     "pct_per_week", "p_value", "flagged"]),
+        series=pd.concat(out.series_parts, ignore_index=True) if out.series_parts else pd.DataFrame(),
+    )
+
+
+def _attrs(st: _Study, method: str, seed, alpha, ci_prob, outlier_removal, cv_anova, robust, draws, tune,
+           chains) -> dict:
+    """Stage 7: provenance of the result (source and its SHA-256, options, engine, version, time)."""
+    run_anova, run_bayes = method in ("anova", "both"), method in ("bayes", "both")
+    return dict(
+        source_file=st.source, source_sha256=st.sha, species=st.species, method=method, seed=int(seed),
+        alpha=float(alpha), ci_prob=float(ci_prob), outlier_removal=bool(outlier_removal), cv_anova=bool(cv_anova),
+        robust=bool(robust), draws=int(draws), tune=int(tune), chains=int(chains), version=__version__,
+        engine=("nested ANOVA (method of moments) + MLS intervals" if run_anova else "")
+        + (" | " if run_anova and run_bayes else "") + ("Bayesian hierarchical model (PyMC)" if run_bayes else ""),
+        created=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+    )
+
+
 # --------------------------------------------------------------------------- main
 
 def estimate(data, *, analytes=None, species=None, method: str = "anova", seed: int = 0,
@@ -233,192 +502,29 @@ def estimate(data, *, analytes=None, species=None, method: str = "anova", seed: 
     (outliers are still tested and listed as kept). The Bayesian fit of analyte number k uses
     seed ``seed + k``. Raises :class:`StudyError` for an unusable file or design.
     """
-    if method not in METHODS:
-        raise StudyError(f"method must be one of {', '.join(METHODS)}, got '{method}'")
-    if not 0 < alpha < 1 or not 0 < ci_prob < 1:
-        raise StudyError("alpha and ci_prob must lie between 0 and 1")
-    frame, source, sha = _load(data)
-    frame, species, analyte_ids = _select(frame, source, species, analytes)
-    frame = frame.reset_index(drop=True)
-    t0 = frame["collected_at"].min()
-    days_all = (frame["collected_at"] - t0).dt.total_seconds().to_numpy() / 86400.0
-    censor = frame["censor"].astype(str).to_numpy(dtype=object)
-    state = frame["state"].astype(str).to_numpy(dtype=object)
-    patient = frame["patient"].astype(str).to_numpy(dtype=object)
-    specimen = frame["specimen"].astype(str).to_numpy(dtype=object)
-    value = frame["value"].to_numpy(float)
-    analyte_col = frame["analyte"].astype(str).to_numpy(dtype=object)
-    replicate = frame["replicate"].to_numpy(dtype=np.int64)
-    src_row = frame["source_row"].to_numpy() if "source_row" in frame.columns else np.full(len(frame), -1)
-
-    run_anova = method in ("anova", "both")
-    run_bayes = method in ("bayes", "both")
+    _check_options(method, alpha, ci_prob)
+    st = _read(data, species, analytes)
+    run_anova, run_bayes = method in ("anova", "both"), method in ("bayes", "both")
     bayes_mod = _bayes_module() if run_bayes else None
-
-    table_rows: list[dict] = []
-    est_rows: list[dict] = []
-    removed_rows: list[dict] = []
-    step_rows: list[dict] = []
-    slope_rows: list[dict] = []
-    series_parts: list[pd.DataFrame] = []
-    notes: dict[str, list[str]] = {}
-    warnings: list[str] = []
-    bayes_fits: dict[str, object] = {}
-    used_fits: dict[str, dict] = {}
-
-    for k, aid in enumerate(analyte_ids):
-        idx = np.flatnonzero(analyte_col == aid)
-        unit = str(frame["unit"].iat[idx[0]])
-        an_notes: list[str] = []
-        notes[aid] = an_notes
-        # ---- input exclusions
-        excl_reason = np.where(censor[idx] != "", "censored value (" + censor[idx] + ")", "")
-        excl_reason = np.where((excl_reason == "") & (state[idx] == "unwell"), "specimen taken while unwell",
-                               excl_reason)
-        for j in np.flatnonzero(excl_reason != ""):
-            r = idx[j]
-            removed_rows.append(dict(analyte=aid, step=0, test="input", level="result", animal=patient[r],
-                                     specimen=specimen[r], n_results=1, statistic=math.nan,
-                                     critical_value=math.nan, alpha=math.nan, action="removed",
-                                     reason=f"{excl_reason[j]}; source row {src_row[r]}"))
-        use = idx[excl_reason == ""]
-        y = np.log(value[use])
-        a_codes, a_labels = pd.factorize(patient[use], sort=False)
-        sp_codes, sp_labels = pd.factorize(specimen[use], sort=False)
-        _, s_first, s_codes = np.unique(a_codes.astype(np.int64) * (len(sp_labels) + 1) + sp_codes,
-                                        return_index=True, return_inverse=True)
-        s_codes = s_codes.ravel()
-        spec_names = np.asarray(sp_labels, dtype=object)[sp_codes[s_first]]  # name of specimen code c
-        a_labels = np.asarray(a_labels, dtype=object)
-        keep = np.ones(use.size, bool)
-        sc = None
-        if use.size:
-            sc = screen(a_codes, s_codes, y, days_all[use], alpha=alpha, remove=outlier_removal)
-            keep = sc.keep
-            an_notes.extend(sc.notes)
-            for rec in sc.records:
-                removed_rows.append(dict(rec, analyte=aid, animal=a_labels[rec["animal"]],
-                                         specimen=spec_names[rec["specimen"]] if rec["specimen"] >= 0 else ""))
-                if rec["step"] == 3:
-                    warnings.append(f"{aid}: Reed's criterion {rec['action']} animal {a_labels[rec['animal']]} "
-                                    f"({rec['reason'].split('; ', 1)[-1]}; --no-outlier-removal keeps it)")
-            for t in sc.tests:
-                step_rows.append(dict(t, analyte=aid))
-                if t["flagged"]:
-                    if t["step"] == 4:
-                        warnings.append(f"{aid}: {t['test']} p = {t['p_value']:.3g}: within-animal variances "
-                                        "differ between animals; the classical CVI is an average and its interval, "
-                                        "which ignores the differences, is too narrow (the Bayesian model "
-                                        "estimates the spread)")
-                    elif t["step"] == 6 and "mean slope" in t["test"]:
-                        warnings.append(f"{aid}: the animals drift together ({t['detail']}, p = {t['p_value']:.3g}): "
-                                        "the study may not be in a steady state")
-            for s in sc.slopes:
-                slope_rows.append(dict(s, analyte=aid, animal=a_labels[s["animal"]]))
-        n_removed = int(idx.size - keep.sum())
-        series_parts.append(pd.DataFrame({
-            "analyte": aid, "animal": patient[idx], "specimen": specimen[idx],
-            "replicate": replicate[idx], "collected_at": frame["collected_at"].to_numpy()[idx],
-            "days": days_all[idx], "value": value[idx], "ln_value": np.log(value[idx]),
-            "kept": np.isin(idx, use[keep]),
-        }))
-        ky = y[keep]
-        ka, ks = a_codes[keep], s_codes[keep]
-        counts = dict(n_animals=int(np.unique(ka).size), n_specimens=int(np.unique(ks).size),
-                      n_results=int(ky.size), n_removed=n_removed)
-
-        # ---- classical
-        afit = None
+    out = _Collect()
+    for k, aid in enumerate(st.analytes):
+        out.notes[aid] = []
+        an = _exclude_inputs(st, aid, out)
+        _screen_analyte(an, st.days, alpha, outlier_removal, out)
+        out.series_parts.append(_series_part(st, an))
         if run_anova or cv_anova:
-            try:
-                afit = _anova.nested_anova(ka, ks, ky, ci_prob=ci_prob, label=f"{source}: {aid}")
-            except StudyError as exc:
-                an_notes.append(f"Classical estimate not possible: {exc}")
-                warnings.append(f"{aid}: no classical estimate ({exc})")
-        if run_anova:
-            comps = _anova_comps(afit) if afit is not None else {}
-            note = ""
-            if afit is not None and afit.truncated:
-                note = "negative moment estimate set to 0: " + ", ".join(afit.truncated)
-                warnings.append(f"{aid}: ANOVA {note}")
-            table_rows += _method_rows(aid, unit, "anova", comps, pd.NA, note)
-            est_rows.append(_estimate_row(aid, unit, "anova", counts, comps))
-            if afit is not None:
-                used_fits.setdefault(aid, {})["anova"] = dict(comps=comps, counts=counts, fit=afit)
-        if cv_anova and afit is not None:
-            try:
-                z = _anova.cv_anova_transform(ka, np.exp(ky))
-                cfit = _anova.nested_anova(ka, ks, z, ci_prob=ci_prob, label=f"{source}: {aid} (CV-ANOVA)")
-                # CV-ANOVA: the components are CV^2 directly (Roraas 2016); CVG is not defined
-                comps = {c: (math.sqrt(cfit.var[c]), math.sqrt(cfit.lower[c]), math.sqrt(cfit.upper[c]))
-                         for c in ("cva", "cvi")}
-                table_rows += _method_rows(aid, unit, "cv-anova", comps, pd.NA, "CVG not defined by CV-ANOVA")
-                est_rows.append(_estimate_row(aid, unit, "cv-anova", counts, comps))
-            except StudyError as exc:
-                an_notes.append(f"CV-ANOVA not possible: {exc}")
-
-        # ---- Bayesian
+            _classical(an, st.source, ci_prob, run_anova, cv_anova, out)
         if run_bayes:
-            bdata = pd.DataFrame({"animal": a_labels[ka].astype(str), "specimen": spec_names[ks].astype(str),
-                                  "replicate": replicate[use][keep],
-                                  "y": ky})
-            try:
-                bfit = bayes_mod.fit_bayes(bdata, robust=robust, draws=draws, tune=tune, chains=chains,
-                                           seed=seed + k)
-            except BayesbaseError as exc:
-                bfit = None
-                an_notes.append(f"Bayesian estimate not possible: {exc}")
-                warnings.append(f"{aid}: no Bayesian estimate ({exc})")
-            bayes_fits[aid] = bfit
-            if bfit is not None:
-                bt = _bayes_table(bfit)
-                comps = {c: (float(bt.at[c, "estimate"]), float(bt.at[c, "lower"]), float(bt.at[c, "upper"]))
-                         for c in COMPONENTS if c in bt.index}
-                diag = dict(bfit.diagnostics)
-                conv = bool(diag.get("converged", False))
-                mlabel = "bayes" if conv else UNCONVERGED
-                note = "" if conv else (
-                    f"did not converge: max R-hat {diag.get('max_r_hat', math.nan):.3f}, min bulk ESS "
-                    f"{diag.get('min_ess_bulk', math.nan):.0f}, min tail ESS {diag.get('min_ess_tail', math.nan):.0f}, "
-                    f"{diag.get('divergences', 0)} divergence(s)")
-                if not conv:
-                    warnings.append(f"{aid}: Bayesian fit {note}; its rows are marked '{UNCONVERGED}' and it is "
-                                    "not used for the pack fragment (rerun with more draws/tune or check the data)")
-                table_rows += _method_rows(aid, unit, mlabel, comps, conv, note)
-                est_rows.append(_estimate_row(aid, unit, mlabel, counts, comps))
-                if conv:
-                    used_fits.setdefault(aid, {})["bayes"] = dict(comps=comps, counts=counts, fit=bfit)
-
-        # ---- desirable analytical performance (common practice: CVA <= 0.5 CVI)
-        fits = used_fits.get(aid, {})
-        best = fits.get("bayes") or fits.get("anova")
-        if best is not None:
-            cva_, cvi_ = best["comps"]["cva"][0], best["comps"]["cvi"][0]
-            if np.isfinite(cva_) and np.isfinite(cvi_) and cva_ > DESIRABLE_CVA_FRACTION * cvi_:
-                warnings.append(f"{aid}: CVA {100 * cva_:.1f} % exceeds the desirable 0.5 x CVI = "
-                                f"{50 * cvi_:.1f} %: analytical imprecision dominates serial comparisons")
-
-    removed = pd.DataFrame(removed_rows, columns=list(REMOVED_COLUMNS))
-    table = pd.DataFrame(table_rows, columns=["analyte", "unit", "method", "component", "estimate", "lower", "upper",
-                                              "scale", "converged", "note"])
-    estimates = pd.DataFrame(est_rows, columns=list(ESTIMATE_COLUMNS))
-    estimates["n_for_setpoint"] = estimates["n_for_setpoint"].astype("Int64")
-    steps = pd.DataFrame(step_rows, columns=["analyte", "step", "test", "statistic", "p_value", "df", "flagged", "detail"])
-    slopes = pd.DataFrame(slope_rows, columns=["analyte", "animal", "n_specimens", "slope_per_day", "pct_per_week",
-                                               "p_value", "flagged"])
-    series = pd.concat(series_parts, ignore_index=True) if series_parts else pd.DataFrame()
-    attrs = dict(
-        source_file=source, source_sha256=sha, species=species, method=method, seed=int(seed), alpha=float(alpha),
-        ci_prob=float(ci_prob), outlier_removal=bool(outlier_removal), cv_anova=bool(cv_anova),
-        robust=bool(robust), draws=int(draws), tune=int(tune), chains=int(chains), version=__version__,
-        engine=("nested ANOVA (method of moments) + MLS intervals" if run_anova else "")
-        + (" | " if run_anova and run_bayes else "") + ("Bayesian hierarchical model (PyMC)" if run_bayes else ""),
-        created=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
-    )
-    dataset = _dataset(table, estimates, analyte_ids, attrs)
-    return StudyResult(table=table, estimates=estimates, dataset=dataset, removed=removed, steps=steps,
-                       slopes=slopes, series=series, notes=notes, warnings=warnings, bayes=bayes_fits,
-                       attrs=dict(attrs, fits=used_fits))
+            _bayesian(an, st.replicate, bayes_mod, seed + k,
+                      dict(robust=robust, draws=draws, tune=tune, chains=chains), out)
+        warning = _desirable_warning(aid, out.used_fits.get(aid, {}))
+        if warning:
+            out.warnings.append(warning)
+    frames = _tables(out)
+    attrs = _attrs(st, method, seed, alpha, ci_prob, outlier_removal, cv_anova, robust, draws, tune, chains)
+    dataset = _dataset(frames["table"], frames["estimates"], st.analytes, attrs)
+    return StudyResult(dataset=dataset, notes=out.notes, warnings=out.warnings, bayes=out.bayes_fits,
+                       attrs=dict(attrs, fits=out.used_fits), **frames)
 
 
 def _var_name(method: str) -> str:
