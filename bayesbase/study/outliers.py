@@ -28,6 +28,11 @@ point of F(n - 1, (n - 1)(k - 1)), k groups of n values (Cochran WG, Ann Eugen 1
 F form as stated in the Wikipedia article "Cochran's C test"). It is checked against published
 tables in tests/test_study_outliers.py. With unequal group sizes the modal n is
 used and the test is approximate (said in the step text).
+
+:func:`screen` runs the steps in that order on a :class:`ScreenState`; each step is its own
+function (``cochran_replicates_step``, ``cochran_within_animal_step`` - both through
+``cochran_iterate`` - ``reed_step``, ``homogeneity_step``, ``normality_step``,
+``steady_state_step``).
 """
 from __future__ import annotations
 
@@ -41,7 +46,9 @@ from scipy import special, stats
 from .common import DEFAULT_ALPHA
 
 __all__ = ["cochran_critical", "cochran_c", "reed_criterion", "reed_false_alarm", "animal_slopes", "bartlett_test",
-           "levene_median_test", "Screening", "screen"]
+           "levene_median_test", "Screening", "ScreenState", "cochran_iterate", "cochran_replicates_step",
+           "cochran_within_animal_step", "reed_step", "animal_groups", "homogeneity_step", "normality_step",
+           "steady_state_step", "screen"]
 
 
 def cochran_critical(k, n, alpha: float = DEFAULT_ALPHA):
@@ -195,6 +202,223 @@ def _spec_stats(spec, y, active):
     return n, mean, var
 
 
+@dataclass
+class ScreenState:
+    """One analyte being screened: integer codes of animal and specimen per result, ln values,
+    the mask of results still in (``active``) and the :class:`Screening` being filled. Build it
+    with :meth:`start`; each step function reads and updates it."""
+
+    animal: np.ndarray
+    spec: np.ndarray
+    y: np.ndarray
+    spec_animal: np.ndarray
+    active: np.ndarray
+    out: Screening
+    alpha: float
+    action: str
+
+    @classmethod
+    def start(cls, animal, specimen, y, alpha: float = DEFAULT_ALPHA, remove: bool = True) -> "ScreenState":
+        animal = np.asarray(animal, np.int64)
+        spec = np.asarray(specimen, np.int64)
+        y = np.asarray(y, float)
+        spec_animal = np.full(int(spec.max()) + 1, -1, np.int64)
+        spec_animal[spec] = animal
+        return cls(animal, spec, y, spec_animal, np.ones(y.size, bool), Screening(keep=np.ones(y.size, bool)),
+                   alpha, "removed" if remove else "kept (outlier removal off)")
+
+    def spec_stats(self):
+        """(count, mean, variance) of the active replicates of each specimen."""
+        return _spec_stats(self.spec, self.y, self.active)
+
+    def animal_stats(self):
+        """(number of specimens, mean, variance) of each animal's active specimen means."""
+        n, mean, _ = self.spec_stats()
+        has = n > 0
+        sa = self.spec_animal[has]
+        n_anim = int(self.animal.max()) + 1
+        m_cnt = np.bincount(sa, minlength=n_anim).astype(float)
+        m_sum = np.bincount(sa, mean[has], minlength=n_anim)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            a_mean = m_sum / m_cnt
+            dev2 = np.bincount(sa, (mean[has] - a_mean[sa]) ** 2, minlength=n_anim)
+            a_var = dev2 / (m_cnt - 1.0)
+        return m_cnt, a_mean, a_var
+
+    def set_aside(self, rows, *, step, test, level, animal, specimen, statistic, critical_value, alpha, reason):
+        """List one outlier (its active results among ``rows``) and take those results out."""
+        rows = self.active & rows
+        self.out.records.append(dict(step=step, test=test, level=level, animal=animal, specimen=specimen,
+                                     n_results=int(rows.sum()), statistic=statistic,
+                                     critical_value=critical_value, alpha=alpha, action=self.action,
+                                     reason=reason))
+        self.active &= ~rows
+
+    def add_test(self, step, test, statistic, p_value, df, flagged, detail) -> None:
+        self.out.tests.append(dict(step=step, test=test, statistic=statistic, p_value=p_value, df=df,
+                                   flagged=flagged, detail=detail))
+
+
+def cochran_iterate(st: ScreenState, *, step: int, what: str, level: str, n_ref: int, over: str,
+                    group_variances) -> None:
+    """Cochran's C repeated until nothing more is found (steps 1 and 2).
+
+    ``group_variances()`` returns (mask of the groups tested, variance of every group) of the
+    active results; groups are specimens (``level="specimen"``) or animals; ``n_ref`` values per
+    group enter the critical value; ``over`` words the groups in the reason ("animals")."""
+    codes = st.spec if level == "specimen" else st.animal
+    while True:
+        tested, var = group_variances()
+        grp = np.flatnonzero(tested)
+        if grp.size < 3:
+            return
+        c, j = cochran_c(var[grp])
+        if j < 0:
+            return
+        crit = float(cochran_critical(grp.size, n_ref, st.alpha))
+        if not c > crit:
+            st.add_test(step, f"Cochran's C, {what}", c, np.nan, f"k={grp.size}, n={n_ref}", False,
+                        f"largest C {c:.3f} <= critical {crit:.3f}")
+            return
+        g = int(grp[j])
+        noun = what.split()[0]
+        st.set_aside(codes == g, step=step, test=f"Cochran's C on {what}", level=level,
+                     animal=int(st.spec_animal[g]) if level == "specimen" else g,
+                     specimen=g if level == "specimen" else -1, statistic=c, critical_value=crit, alpha=st.alpha,
+                     reason=f"{noun} variance {var[g]:.3g} (ln scale) is {c:.1%} of the sum over {grp.size} {over}")
+
+
+def cochran_replicates_step(st: ScreenState) -> None:
+    """Step 1: Cochran's C on the replicate variances of the specimens with the modal number of
+    replicates; an outlying specimen's replicates are set aside."""
+    n, _, _ = st.spec_stats()
+    rep_groups = n >= 2
+    if not rep_groups.any():
+        st.out.notes.append("Step 1 (Cochran, replicates): no specimen has replicates; analytical "
+                            "outliers cannot be tested.")
+        return
+    n_mode = _mode(n[rep_groups])
+    if np.any(rep_groups & (n != n_mode)):
+        st.out.notes.append(f"Step 1 (Cochran, replicates): {int(np.sum(rep_groups & (n != n_mode)))} "
+                            f"specimen(s) with a replicate count other than {n_mode} are not tested.")
+
+    def replicate_variances():
+        n, _, var = st.spec_stats()
+        return n == n_mode, var
+
+    cochran_iterate(st, step=1, what="replicate variances", level="specimen", n_ref=n_mode,
+                    over=f"specimens of {n_mode} replicates", group_variances=replicate_variances)
+
+
+def cochran_within_animal_step(st: ScreenState) -> None:
+    """Step 2: Cochran's C on the within-animal variances (of the specimen means) of the animals
+    with 2 or more specimens; the modal number of specimens enters the critical value."""
+    m_cnt, _, _ = st.animal_stats()
+    eligible = m_cnt >= 2
+    if eligible.sum() < 3:
+        st.out.notes.append("Step 2 (Cochran, within-animal): fewer than 3 animals with 2 or more specimens; "
+                            "not tested.")
+        return
+    s_mode = _mode(m_cnt[eligible])
+    if np.any(eligible & (m_cnt != s_mode)):
+        st.out.notes.append(f"Step 2 (Cochran, within-animal): animals have unequal numbers of specimens; "
+                            f"the critical value uses the most common number ({s_mode}), so the test is approximate.")
+
+    def within_animal_variances():
+        m_cnt, _, a_var = st.animal_stats()
+        return m_cnt >= 2, a_var
+
+    cochran_iterate(st, step=2, what="within-animal variances", level="animal", n_ref=s_mode, over="animals",
+                    group_variances=within_animal_variances)
+
+
+def reed_step(st: ScreenState, min_animals: int = 5) -> None:
+    """Step 3: Reed's criterion on the animal means, repeated until nothing more is found."""
+    while True:
+        m_cnt, a_mean, _ = st.animal_stats()
+        grp = np.flatnonzero(m_cnt >= 1)
+        if grp.size < min_animals:
+            st.out.notes.append(f"Step 3 (Reed): fewer than {min_animals} animals; not tested "
+                                "(with very few means one end gap always exceeds a third of the range).")
+            return
+        j, gap, rng = reed_criterion(a_mean[grp])
+        if j < 0:
+            st.add_test(3, "Reed's criterion, animal means", gap / rng if rng > 0 else 0.0, np.nan,
+                        f"animals={grp.size}", False,
+                        f"largest end gap {gap:.3g} <= range/3 {rng / 3:.3g} (ln scale)")
+            return
+        ai = int(grp[j])
+        st.set_aside(st.animal == ai, step=3, test="Reed's criterion on animal means", level="animal", animal=ai,
+                     specimen=-1, statistic=gap / rng, critical_value=1.0 / 3.0, alpha=np.nan,
+                     reason=f"gap {gap:.3g} to the next animal mean exceeds a third of the range "
+                            f"{rng:.3g} (ln scale); with {grp.size} animals the criterion flags a "
+                            f"normally distributed extreme mean in {reed_false_alarm(int(grp.size)):.0%} "
+                            "of studies (simulated): check that the animal is truly aberrant")
+
+
+def animal_groups(st: ScreenState) -> list[np.ndarray]:
+    """The active specimen means of each animal with 2 or more specimens, in animal-code order."""
+    n, mean, _ = st.spec_stats()
+    has = n > 0
+    groups = [mean[has & (st.spec_animal == ai)] for ai in np.unique(st.spec_animal[has])]
+    return [g for g in groups if g.size >= 2]
+
+
+def homogeneity_step(st: ScreenState, groups: list[np.ndarray]) -> None:
+    """Step 4 (no removal): Bartlett's and Levene's (median) tests of the within-animal variances."""
+    if not (len(groups) >= 2 and all(np.ptp(g) > 0 for g in groups)):
+        st.out.notes.append("Step 4 (homogeneity): not tested (needs 2 or more animals with 2 or more "
+                            "specimens that differ).")
+        return
+    alpha = st.alpha
+    bt, bp = bartlett_test(groups)
+    st.add_test(4, "Bartlett's test, within-animal variances", bt, bp, f"{len(groups) - 1}", bool(bp < alpha),
+                "heterogeneous" if bp < alpha else "no evidence of heterogeneity")
+    lw, lp = levene_median_test(groups)
+    st.add_test(4, "Levene's test (median), within-animal variances", lw, lp,
+                f"{len(groups) - 1}, {sum(g.size for g in groups) - len(groups)}", bool(lp < alpha),
+                "heterogeneous" if lp < alpha else "no evidence of heterogeneity")
+
+
+def normality_step(st: ScreenState, groups: list[np.ndarray]) -> None:
+    """Step 5 (no removal): Shapiro-Wilk of the animal means and of the within-animal deviations."""
+    a_means = np.array([g.mean() for g in groups]) if groups else np.array([])
+    dev = np.concatenate([g - g.mean() for g in groups]) if groups else np.array([])
+    for x, what in ((a_means, "animal means"), (dev, "within-animal deviations")):
+        if x.size >= 3 and np.ptp(x) > 0:
+            sw = stats.shapiro(x)
+            st.add_test(5, f"Shapiro-Wilk, {what}", float(sw.statistic), float(sw.pvalue), f"n={x.size}",
+                        bool(sw.pvalue < st.alpha),
+                        "not normal on the ln scale" if sw.pvalue < st.alpha else "compatible with normal")
+
+
+def steady_state_step(st: ScreenState, t_days) -> None:
+    """Step 6 (no removal): each animal's slope of its specimen means (ln) on time, and a
+    one-sample t test of the slopes (the statistic of scipy.stats.ttest_1samp)."""
+    alpha = st.alpha
+    n, mean, _ = st.spec_stats()
+    has = n > 0
+    w = st.active.astype(float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        spec_t = np.bincount(st.spec, w * np.asarray(t_days, float), minlength=n.size) / n
+    slopes = animal_slopes(st.spec_animal[has], spec_t[has], mean[has], alpha)
+    st.out.slopes = slopes
+    if not slopes:
+        st.out.notes.append("Step 6 (steady state): no animal has 3 or more specimens at different times.")
+        return
+    n_flag = sum(r["flagged"] for r in slopes)
+    st.add_test(6, "Steady state, per-animal slope of ln value on time", float(n_flag), np.nan,
+                f"animals={len(slopes)}", n_flag > 0,
+                f"{n_flag} of {len(slopes)} animal(s) with a slope different from 0 "
+                f"(p < {alpha:g}); about {alpha * len(slopes):.1f} expected by chance")
+    sl = np.array([r["slope_per_day"] for r in slopes])
+    if len(slopes) >= 3 and np.ptp(sl) > 0:
+        tstat = float(sl.mean() / (sl.std(ddof=1) / math.sqrt(sl.size)))
+        tp = float(2.0 * stats.t.sf(abs(tstat), sl.size - 1))
+        st.add_test(6, "Steady state, mean slope across animals (t test)", tstat, tp, f"{sl.size - 1}",
+                    bool(tp < alpha), f"mean {100 * np.expm1(7 * sl.mean()):+.2f} % per week")
+
+
 def screen(animal, specimen, y, t_days=None, *, alpha: float = DEFAULT_ALPHA, remove: bool = True,
            min_animals_reed: int = 5) -> Screening:
     """Run the steps of the module docstring on one analyte.
@@ -205,182 +429,15 @@ def screen(animal, specimen, y, t_days=None, *, alpha: float = DEFAULT_ALPHA, re
     outliers had been set aside (so the list shows what would have been removed), but ``keep``
     stays all True and the records say "kept".
     """
-    animal = np.asarray(animal, np.int64)
-    spec = np.asarray(specimen, np.int64)
-    y = np.asarray(y, float)
-    n_spec = int(spec.max()) + 1
-    spec_animal = np.full(n_spec, -1, np.int64)
-    spec_animal[spec] = animal
-    active = np.ones(y.size, bool)
-    out = Screening(keep=np.ones(y.size, bool))
-    action = "removed" if remove else "kept (outlier removal off)"
-
-    # ---- step 1: Cochran's C on replicate variances
-    n, _, var = _spec_stats(spec, y, active)
-    rep_groups = n >= 2
-    if not rep_groups.any():
-        out.notes.append("Step 1 (Cochran, replicates): no specimen has replicates; analytical "
-                         "outliers cannot be tested.")
-    else:
-        n_mode = _mode(n[rep_groups])
-        if np.any(rep_groups & (n != n_mode)):
-            out.notes.append(f"Step 1 (Cochran, replicates): {int(np.sum(rep_groups & (n != n_mode)))} "
-                             f"specimen(s) with a replicate count other than {n_mode} are not tested.")
-        while True:
-            n, _, var = _spec_stats(spec, y, active)
-            grp = np.flatnonzero(n == n_mode)
-            if grp.size < 3:
-                break
-            c, j = cochran_c(var[grp])
-            if j < 0:
-                break
-            crit = float(cochran_critical(grp.size, n_mode, alpha))
-            if not c > crit:
-                out.tests.append(dict(step=1, test="Cochran's C, replicate variances", statistic=c,
-                                      p_value=np.nan, df=f"k={grp.size}, n={n_mode}", flagged=False,
-                                      detail=f"largest C {c:.3f} <= critical {crit:.3f}"))
-                break
-            sj = int(grp[j])
-            rows = active & (spec == sj)
-            out.records.append(dict(step=1, test="Cochran's C on replicate variances", level="specimen",
-                                    animal=int(spec_animal[sj]), specimen=sj, n_results=int(rows.sum()),
-                                    statistic=c, critical_value=crit, alpha=alpha, action=action,
-                                    reason=f"replicate variance {var[sj]:.3g} (ln scale) is {c:.1%} of the "
-                                           f"sum over {grp.size} specimens of {n_mode} replicates"))
-            active &= ~rows
-
-    # ---- step 2: Cochran's C on within-animal variances (of specimen means)
-    def animal_stats():
-        n, mean, _ = _spec_stats(spec, y, active)
-        has = n > 0
-        n_anim = int(animal.max()) + 1
-        m_cnt = np.bincount(spec_animal[has], minlength=n_anim).astype(float)
-        m_sum = np.bincount(spec_animal[has], mean[has], minlength=n_anim)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            a_mean = m_sum / m_cnt
-            dev2 = np.bincount(spec_animal[has], (mean[has] - a_mean[spec_animal[has]]) ** 2, minlength=n_anim)
-            a_var = dev2 / (m_cnt - 1.0)
-        return m_cnt, a_mean, a_var, mean, has
-
-    m_cnt, _, _, _, _ = animal_stats()
-    eligible = m_cnt >= 2
-    if eligible.sum() >= 3:
-        s_mode = _mode(m_cnt[eligible])
-        if np.any(eligible & (m_cnt != s_mode)):
-            out.notes.append(f"Step 2 (Cochran, within-animal): animals have unequal numbers of specimens; "
-                             f"the critical value uses the most common number ({s_mode}), so the test is approximate.")
-        while True:
-            m_cnt, _, a_var, _, _ = animal_stats()
-            grp = np.flatnonzero(m_cnt >= 2)
-            if grp.size < 3:
-                break
-            c, j = cochran_c(a_var[grp])
-            if j < 0:
-                break
-            crit = float(cochran_critical(grp.size, s_mode, alpha))
-            if not c > crit:
-                out.tests.append(dict(step=2, test="Cochran's C, within-animal variances", statistic=c,
-                                      p_value=np.nan, df=f"k={grp.size}, n={s_mode}", flagged=False,
-                                      detail=f"largest C {c:.3f} <= critical {crit:.3f}"))
-                break
-            ai = int(grp[j])
-            rows = active & (animal == ai)
-            out.records.append(dict(step=2, test="Cochran's C on within-animal variances", level="animal",
-                                    animal=ai, specimen=-1, n_results=int(rows.sum()), statistic=c,
-                                    critical_value=crit, alpha=alpha, action=action,
-                                    reason=f"within-animal variance {a_var[ai]:.3g} (ln scale) is {c:.1%} of the "
-                                           f"sum over {grp.size} animals"))
-            active &= ~rows
-    else:
-        out.notes.append("Step 2 (Cochran, within-animal): fewer than 3 animals with 2 or more specimens; not tested.")
-
-    # ---- step 3: Reed's criterion on animal means
-    while True:
-        m_cnt, a_mean, _, _, _ = animal_stats()
-        grp = np.flatnonzero(m_cnt >= 1)
-        if grp.size < min_animals_reed:
-            out.notes.append(f"Step 3 (Reed): fewer than {min_animals_reed} animals; not tested "
-                             "(with very few means one end gap always exceeds a third of the range).")
-            break
-        j, gap, rng = reed_criterion(a_mean[grp])
-        if j < 0:
-            out.tests.append(dict(step=3, test="Reed's criterion, animal means", statistic=gap / rng if rng > 0 else 0.0,
-                                  p_value=np.nan, df=f"animals={grp.size}", flagged=False,
-                                  detail=f"largest end gap {gap:.3g} <= range/3 {rng / 3:.3g} (ln scale)"))
-            break
-        ai = int(grp[j])
-        rows = active & (animal == ai)
-        out.records.append(dict(step=3, test="Reed's criterion on animal means", level="animal", animal=ai,
-                                specimen=-1, n_results=int(rows.sum()), statistic=gap / rng,
-                                critical_value=1.0 / 3.0, alpha=np.nan, action=action,
-                                reason=f"gap {gap:.3g} to the next animal mean exceeds a third of the range "
-                                       f"{rng:.3g} (ln scale); with {grp.size} animals the criterion flags a "
-                                       f"normally distributed extreme mean in {reed_false_alarm(int(grp.size)):.0%} "
-                                       "of studies (simulated): check that the animal is truly aberrant"))
-        active &= ~rows
-
-    # ---- step 4: homogeneity of within-animal variances (no removal)
-    n, mean, _ = _spec_stats(spec, y, active)
-    has = n > 0
-    groups = [mean[has & (spec_animal == ai)] for ai in np.unique(spec_animal[has])]
-    groups = [g for g in groups if g.size >= 2]
-    if len(groups) >= 2 and all(np.ptp(g) > 0 for g in groups):
-        bt, bp = bartlett_test(groups)
-        out.tests.append(dict(step=4, test="Bartlett's test, within-animal variances", statistic=bt,
-                              p_value=bp, df=f"{len(groups) - 1}", flagged=bool(bp < alpha),
-                              detail="heterogeneous" if bp < alpha else "no evidence of heterogeneity"))
-        lw, lp = levene_median_test(groups)
-        out.tests.append(dict(step=4, test="Levene's test (median), within-animal variances",
-                              statistic=lw, p_value=lp,
-                              df=f"{len(groups) - 1}, {sum(g.size for g in groups) - len(groups)}",
-                              flagged=bool(lp < alpha),
-                              detail="heterogeneous" if lp < alpha else "no evidence of heterogeneity"))
-    else:
-        out.notes.append("Step 4 (homogeneity): not tested (needs 2 or more animals with 2 or more "
-                         "specimens that differ).")
-
-    # ---- step 5: normality (no removal)
-    a_means = np.array([g.mean() for g in groups]) if groups else np.array([])
-    if a_means.size >= 3 and np.ptp(a_means) > 0:
-        sw = stats.shapiro(a_means)
-        out.tests.append(dict(step=5, test="Shapiro-Wilk, animal means", statistic=float(sw.statistic),
-                              p_value=float(sw.pvalue), df=f"n={a_means.size}", flagged=bool(sw.pvalue < alpha),
-                              detail="not normal on the ln scale" if sw.pvalue < alpha else "compatible with normal"))
-    dev = np.concatenate([g - g.mean() for g in groups]) if groups else np.array([])
-    if dev.size >= 3 and np.ptp(dev) > 0:
-        sw = stats.shapiro(dev)
-        out.tests.append(dict(step=5, test="Shapiro-Wilk, within-animal deviations", statistic=float(sw.statistic),
-                              p_value=float(sw.pvalue), df=f"n={dev.size}", flagged=bool(sw.pvalue < alpha),
-                              detail="not normal on the ln scale" if sw.pvalue < alpha else "compatible with normal"))
-
-    # ---- step 6: steady state (no removal)
+    st = ScreenState.start(animal, specimen, y, alpha, remove)
+    cochran_replicates_step(st)
+    cochran_within_animal_step(st)
+    reed_step(st, min_animals_reed)
+    groups = animal_groups(st)
+    homogeneity_step(st, groups)
+    normality_step(st, groups)
     if t_days is not None:
-        t = np.asarray(t_days, float)
-        w = active.astype(float)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            st = np.bincount(spec, w * t, minlength=n_spec) / n
-        slopes = animal_slopes(spec_animal[has], st[has], mean[has], alpha)
-        out.slopes = slopes
-        if slopes:
-            n_flag = sum(r["flagged"] for r in slopes)
-            out.tests.append(dict(step=6, test="Steady state, per-animal slope of ln value on time",
-                                  statistic=float(n_flag), p_value=np.nan, df=f"animals={len(slopes)}",
-                                  flagged=n_flag > 0,
-                                  detail=f"{n_flag} of {len(slopes)} animal(s) with a slope different from 0 "
-                                         f"(p < {alpha:g}); about {alpha * len(slopes):.1f} expected by chance"))
-            if len(slopes) >= 3:
-                sl = np.array([r["slope_per_day"] for r in slopes])
-                if np.ptp(sl) > 0:
-                    # one-sample t test of the slopes (the statistic of scipy.stats.ttest_1samp)
-                    tstat = float(sl.mean() / (sl.std(ddof=1) / math.sqrt(sl.size)))
-                    tp = float(2.0 * stats.t.sf(abs(tstat), sl.size - 1))
-                    out.tests.append(dict(step=6, test="Steady state, mean slope across animals (t test)",
-                                          statistic=tstat, p_value=tp,
-                                          df=f"{sl.size - 1}", flagged=bool(tp < alpha),
-                                          detail=f"mean {100 * np.expm1(7 * sl.mean()):+.2f} % per week"))
-        else:
-            out.notes.append("Step 6 (steady state): no animal has 3 or more specimens at different times.")
-
+        steady_state_step(st, t_days)
     if remove:
-        out.keep = active.copy()
-    return out
+        st.out.keep = st.active.copy()
+    return st.out

@@ -298,8 +298,8 @@ def _steps_words(result: StudyResult, aid: str) -> list[str]:
     return out
 
 
-def study_html(result: StudyResult, figures: bool = True) -> str:
-    """Self-contained HTML report of a study (figures as base64 PNG, cautions at top and bottom)."""
+def _html_head(result: StudyResult) -> list[str]:
+    """Page head, title, cautions, provenance line and the warnings to read first."""
     a = result.attrs
     out = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
            f"<title>Biological-variation study: {_e(a['source_file'])}</title>",
@@ -312,25 +312,37 @@ def study_html(result: StudyResult, figures: bool = True) -> str:
     if result.warnings:
         out.append("<div class='warn'><b>Read these first</b><ul>"
                    + "".join(f"<li>{_e(w)}</li>" for w in result.warnings) + "</ul></div>")
-    # estimates
-    out.append("<h2>Estimates (95 % intervals)</h2>")
-    hdr = ["analyte", "method", "animals", "specimens", "results", "removed", "CVA %", "CVI %", "CVI spread (SD ln)",
-           "CVG %", "II (CVI/CVG)", "RCV %", "n for set point", "desirable CVA %"]
-    out.append("<table><tr>" + "".join(f"<th class='l'>{_e(h)}</th>" if i < 2 else f"<th>{_e(h)}</th>"
-                                       for i, h in enumerate(hdr)) + "</tr>")
-    for r in result.estimates.itertuples(index=False):
-        def ci(p, lo, up):
-            return f"{_fmt(p)} ({_fmt(lo)}-{_fmt(up)})" if np.isfinite(p) else ""
-        mcls = " class='l mark'" if r.method == UNCONVERGED else " class='l'"
-        des = DESIRABLE_CVA_FRACTION * r.cvi_pct if np.isfinite(r.cvi_pct) else math.nan
-        met = "" if not (np.isfinite(des) and np.isfinite(r.cva_pct)) else (" met" if r.cva_pct <= des else " NOT met")
-        out.append(
-            f"<tr><td class='l'>{_e(analyte_title(r.analyte))}</td><td{mcls}>{_e(r.method)}</td>"
+    return out
+
+
+_ESTIMATE_HEADER = ["analyte", "method", "animals", "specimens", "results", "removed", "CVA %", "CVI %",
+                    "CVI spread (SD ln)", "CVG %", "II (CVI/CVG)", "RCV %", "n for set point", "desirable CVA %"]
+
+
+def _ci_cell(p, lo, up) -> str:
+    return f"{_fmt(p)} ({_fmt(lo)}-{_fmt(up)})" if np.isfinite(p) else ""
+
+
+def _estimate_row(r) -> str:
+    """One row of the estimates table (``r`` a row of ``result.estimates``)."""
+    mcls = " class='l mark'" if r.method == UNCONVERGED else " class='l'"
+    des = DESIRABLE_CVA_FRACTION * r.cvi_pct if np.isfinite(r.cvi_pct) else math.nan
+    met = "" if not (np.isfinite(des) and np.isfinite(r.cva_pct)) else (" met" if r.cva_pct <= des else " NOT met")
+    return (f"<tr><td class='l'>{_e(analyte_title(r.analyte))}</td><td{mcls}>{_e(r.method)}</td>"
             f"<td>{r.n_animals}</td><td>{r.n_specimens}</td><td>{r.n_results}</td><td>{r.n_removed}</td>"
-            f"<td>{ci(r.cva_pct, r.cva_lower, r.cva_upper)}</td><td>{ci(r.cvi_pct, r.cvi_lower, r.cvi_upper)}</td>"
-            f"<td>{_fmt(r.cvi_spread_log_sd, 3)}</td><td>{ci(r.cvg_pct, r.cvg_lower, r.cvg_upper)}</td>"
+            f"<td>{_ci_cell(r.cva_pct, r.cva_lower, r.cva_upper)}</td>"
+            f"<td>{_ci_cell(r.cvi_pct, r.cvi_lower, r.cvi_upper)}</td>"
+            f"<td>{_fmt(r.cvi_spread_log_sd, 3)}</td><td>{_ci_cell(r.cvg_pct, r.cvg_lower, r.cvg_upper)}</td>"
             f"<td>{_fmt(r.ii, 2)} <small>{_e(_ii_words(r.ii))}</small></td><td>{_fmt(r.rcv_pct)}</td>"
             f"<td>{_e(_fmt(r.n_for_setpoint))}</td><td>{_fmt(des)}{_e(met)}</td></tr>")
+
+
+def _html_estimates(result: StudyResult) -> list[str]:
+    """Estimates table, predictive CVI of a new animal and the formulas behind the columns."""
+    out = ["<h2>Estimates (95 % intervals)</h2>",
+           "<table><tr>" + "".join(f"<th class='l'>{_e(h)}</th>" if i < 2 else f"<th>{_e(h)}</th>"
+                                   for i, h in enumerate(_ESTIMATE_HEADER)) + "</tr>"]
+    out += [_estimate_row(r) for r in result.estimates.itertuples(index=False)]
     out.append("</table>")
     newa = result.table[(result.table["component"] == "cvi_new_animal") & result.table["estimate"].notna()]
     if len(newa):
@@ -341,22 +353,29 @@ def study_html(result: StudyResult, figures: bool = True) -> str:
                "(Harris orientation; &lt; 0.6 low, &gt; 1.4 high, Fraser &amp; Harris 1989). RCV = sqrt(2) x 1.96 x "
                "sqrt(CVA<sup>2</sup> + CVI<sup>2</sup>) (Fraser 2012). n for set point: results for the set point "
                "within +/-10 % (Fraser &amp; Harris 1989). Desirable CVA &lt;= 0.5 CVI (common practice).</small></p>")
-    # steps
-    out.append("<h2>Steps, in the order applied</h2>")
+    return out
+
+
+def _html_steps(result: StudyResult) -> list[str]:
+    """The outlier and check steps of each analyte, in the order applied."""
+    out = ["<h2>Steps, in the order applied</h2>"]
     for aid in result.notes:
         out.append(f"<h3>{_e(analyte_title(aid))}</h3><ol>"
                    + "".join(f"<li>{_e(s)}</li>" for s in _steps_words(result, aid)) + "</ol>")
-    # removed
-    out.append("<h2>Removed or flagged results</h2>")
+    return out
+
+
+_REMOVED_COLS = ["analyte", "step", "test", "level", "animal", "specimen", "n_results", "statistic",
+                 "critical_value", "action", "reason"]
+
+
+def _html_removed(result: StudyResult) -> list[str]:
+    """Table of removed or flagged results and the animals flagged by the steady-state check."""
+    out = ["<h2>Removed or flagged results</h2>"]
     if len(result.removed):
-        cols = ["analyte", "step", "test", "level", "animal", "specimen", "n_results", "statistic",
-                "critical_value", "action", "reason"]
-        out.append("<table><tr>" + "".join(f"<th class='l'>{_e(c)}</th>" for c in cols) + "</tr>")
-        for r in result.removed[cols].itertuples(index=False):
-            cells = []
-            for c, v in zip(cols, r):
-                txt = _fmt(v, 3) if isinstance(v, float) else _e(v)
-                cells.append(f"<td class='l'>{txt}</td>")
+        out.append("<table><tr>" + "".join(f"<th class='l'>{_e(c)}</th>" for c in _REMOVED_COLS) + "</tr>")
+        for r in result.removed[_REMOVED_COLS].itertuples(index=False):
+            cells = [f"<td class='l'>{_fmt(v, 3) if isinstance(v, float) else _e(v)}</td>" for v in r]
             out.append("<tr>" + "".join(cells) + "</tr>")
         out.append("</table>")
     else:
@@ -367,38 +386,54 @@ def study_html(result: StudyResult, figures: bool = True) -> str:
             out.append("<p>Animals with a slope different from 0 (steady-state check, flagged, kept): "
                        + "; ".join(f"{_e(r.analyte)} {_e(r.animal)} {r.pct_per_week:+.2f} %/week (p {r.p_value:.3g})"
                                    for r in fl.itertuples(index=False)) + ".</p>")
-    # figures
-    if figures:
-        out.append("<h2>Figures</h2>")
-        for aid in result.notes:
-            if not len(result.series) or not (result.series["analyte"] == aid).any():
-                continue
-            fig = analyte_figure(result, aid)
-            out.append(f"<h3>{_e(analyte_title(aid))}</h3><img alt='{_e(aid)}: series and variance components' "
-                       f"src='data:image/png;base64,{_png(fig)}'>")
-    # methods
-    out.append("<h2>Methods and sources</h2><ul>"
-               "<li>Outlier steps in the published order (Fraser CG, Harris EK. Crit Rev Clin Lab Sci 1989;27:409; "
-               "Roraas T et al. Clin Chem 2012;58:1306): Cochran's C on replicate variances, Cochran's C on "
-               "within-animal variances, Reed's criterion on animal means (Reed AH et al. Clin Chem 1971;17:275). "
-               "Cochran's critical value 1/(1 + (k-1)/F), F the upper alpha/k point of F(n-1, (n-1)(k-1)).</li>"
-               "<li>Homogeneity: Bartlett's and Levene's (median) tests; normality: Shapiro-Wilk; steady state: "
-               "least-squares slope of each animal's ln values on time and a t test of the slopes.</li>"
-               "<li>Nested random-effects ANOVA on ln values (method of moments, unbalanced coefficients); "
-               "intervals: chi-square for CVA, modified large-sample (Burdick RK, Graybill FA. Confidence Intervals "
-               "on Variance Components. Dekker 1992) for CVI and CVG, Satterthwaite degrees of freedom for the "
-               "unbalanced animal level.</li>"
-               "<li>CV-ANOVA (optional): Roraas T et al. Clin Chem 2016;62:725.</li>"
-               "<li>Bayesian model (optional): animal-specific CVI log-normal across animals (Roraas T et al. Clin "
-               "Chem 2019, doi 10.1373/clinchem.2018.300145).</li></ul>")
+    return out
+
+
+def _html_figures(result: StudyResult) -> list[str]:
+    """One embedded PNG figure per analyte with a series."""
+    out = ["<h2>Figures</h2>"]
+    for aid in result.notes:
+        if not len(result.series) or not (result.series["analyte"] == aid).any():
+            continue
+        fig = analyte_figure(result, aid)
+        out.append(f"<h3>{_e(analyte_title(aid))}</h3><img alt='{_e(aid)}: series and variance components' "
+                   f"src='data:image/png;base64,{_png(fig)}'>")
+    return out
+
+
+def _html_methods(result: StudyResult) -> list[str]:
+    """Methods with their sources, and the priors of the Bayesian model when it was fitted."""
+    out = ["<h2>Methods and sources</h2><ul>"
+           "<li>Outlier steps in the published order (Fraser CG, Harris EK. Crit Rev Clin Lab Sci 1989;27:409; "
+           "Roraas T et al. Clin Chem 2012;58:1306): Cochran's C on replicate variances, Cochran's C on "
+           "within-animal variances, Reed's criterion on animal means (Reed AH et al. Clin Chem 1971;17:275). "
+           "Cochran's critical value 1/(1 + (k-1)/F), F the upper alpha/k point of F(n-1, (n-1)(k-1)).</li>"
+           "<li>Homogeneity: Bartlett's and Levene's (median) tests; normality: Shapiro-Wilk; steady state: "
+           "least-squares slope of each animal's ln values on time and a t test of the slopes.</li>"
+           "<li>Nested random-effects ANOVA on ln values (method of moments, unbalanced coefficients); "
+           "intervals: chi-square for CVA, modified large-sample (Burdick RK, Graybill FA. Confidence Intervals "
+           "on Variance Components. Dekker 1992) for CVI and CVG, Satterthwaite degrees of freedom for the "
+           "unbalanced animal level.</li>"
+           "<li>CV-ANOVA (optional): Roraas T et al. Clin Chem 2016;62:725.</li>"
+           "<li>Bayesian model (optional): animal-specific CVI log-normal across animals (Roraas T et al. Clin "
+           "Chem 2019, doi 10.1373/clinchem.2018.300145).</li></ul>"]
     pri = {aid: getattr(f, "priors", None) or {} for aid, f in result.bayes.items() if f is not None}
     if pri:
         out.append("<h3>Priors of the Bayesian model (weakly informative, stated per analyte)</h3>")
         for aid, p in pri.items():
             out.append(f"<p><b>{_e(analyte_title(aid))}</b></p><ul>"
                        + "".join(f"<li>{_e(k)}: {_e(v)}</li>" for k, v in p.items()) + "</ul>")
-    out.append(_cautions())
-    out.append("</body></html>")
+    return out
+
+
+def study_html(result: StudyResult, figures: bool = True) -> str:
+    """Self-contained HTML report of a study (figures as base64 PNG, cautions at top and bottom):
+    head and provenance, estimates, steps, removed results, figures, methods, cautions again."""
+    out = _html_head(result) + _html_estimates(result) + _html_steps(result) + _html_removed(result)
+    if figures:
+        out += _html_figures(result)
+    out += _html_methods(result)
+    out += [_cautions(), "</body></html>"]
     return "\n".join(out)
 
 
