@@ -35,14 +35,6 @@ HEAVY = {"pymc", "pytensor", "arviz", "nutpie"}
 #: functions allowed past MAX_FUNCTION_LINES, each with the reason (empty when none is needed)
 MAX_FUNCTION_LINES = 100
 LONG_FUNCTION_EXCEPTIONS: dict[str, str] = {
-    "mcmc.trend.trend_mcmc": "one PyMC graph of the drift model with its summaries; kept whole so "
-                             "it reads against the exact kernel it verifies (to split next)",
-    "mcmc.engine._summaries": "one pass over the posterior computing every summary key of the "
-                              "exact engine side by side (to split next)",
-    "study.core.estimate": "the biological-variation study job as landed (outlier steps, ANOVA, "
-                           "Bayesian fit per analyte); to split into stages next",
-    "study.outliers.screen": "the published order of outlier steps in one place; to split next",
-    "study.output.study_html": "one page of the study report; to move to a template next",
 }
 
 

@@ -233,3 +233,139 @@ def test_optional_nutpie_sampler_agrees_with_exact_engine():
     for key in KEYS:
         floor = 0.02 if key == "log_bf10" else 0.004
         assert np.all(np.abs(r.summary[key] - ex[key]) <= 4.0 * r.mc_se[key] + floor), key
+
+
+# ------------------------------------------------- fast: summary stages on hand-made draws
+# Hand-made "posterior" draws (seeded numpy, two chains of 60 draws) fed to each summary stage
+# alone; every reference is written here with numpy / scipy.stats / ArviZ, not the engine.
+def _hand_draws(c, s=120, seed=314):
+    rng = np.random.default_rng(seed)
+    theta = 4.0 + 0.05 * rng.standard_normal((c, s))
+    cvi = 0.10 * np.exp(0.2 * rng.standard_normal((c, s)))
+    return theta, cvi
+
+
+def _hand_cases(new_y, new_censor, delta):
+    c = len(new_y)
+    return CaseArrays.from_lists(
+        [[4.0, 4.1]] * c, prior_mean=4.0, sg=0.2, cvi=0.1, cvi_log_sd=0.2, sa=0.03,
+        new_y=new_y, new_censor=new_censor, prior_change=0.1, delta=delta, tau=0.25,
+        new_r=2.0, new_extra_var=0.001,
+    )
+
+
+def test_setpoint_stage_matches_numpy_and_arviz():
+    """Posterior mean and quantiles of theta by numpy; MCSE of the mean = sd / sqrt(bulk ESS)
+    with ArviZ's bulk ESS of the same chain-major draws."""
+    import arviz as az
+
+    cases = _hand_cases([4.2, 4.3], [0, 0], np.log(1.2))
+    theta, cvi = _hand_draws(2)
+    q_se = (np.array([0.01, 0.02]), np.array([0.03, 0.04]))
+    out, se = mcmc._setpoint_summaries(cases, theta, cvi, 2, 0.9, q_se)
+    assert np.array_equal(out["n_baseline"], [2.0, 2.0])
+    assert np.allclose(out["theta_mean"], np.mean(theta, axis=1), rtol=0, atol=1e-14)
+    assert np.allclose(out["theta_lower"], np.quantile(theta, 0.05, axis=1), rtol=0, atol=1e-14)
+    assert np.allclose(out["theta_upper"], np.quantile(theta, 0.95, axis=1), rtol=0, atol=1e-14)
+    assert np.allclose(out["cvi_post_mean"], np.mean(cvi, axis=1), rtol=0, atol=1e-14)
+    assert se["theta_lower"] is q_se[0] and se["theta_upper"] is q_se[1]
+    for i in range(2):
+        ess = az.ess(theta[i].reshape(2, 60), method="bulk")
+        ref = np.std(theta[i], ddof=1) / np.sqrt(ess)
+        assert abs(se["theta_mean"][i] - ref) < 1e-12 * ref
+
+
+def test_interval_stage_is_the_mixture_quantile():
+    """The predictive interval bounds are the 2.5 % / 97.5 % points of the normal mixture
+    (1/S) sum_s N(theta_s, V0_s): its CDF there (scipy.stats.norm) equals the level; V0_s =
+    ln(1 + CVI_s^2) + sA^2 / r* + e* (log-scale CV conversion, see module docstring)."""
+    cases = _hand_cases([4.2, 4.3], [0, 0], np.log(1.2))
+    theta, cvi = _hand_draws(2)
+    v0 = mcmc._h0_variance(cases, cvi)
+    assert np.allclose(v0, np.log1p(cvi**2) + 0.03**2 / 2.0 + 0.001, rtol=1e-12, atol=0)
+    out, se = mcmc._interval_summaries(theta, v0, 2, 0.95)
+    for key, q in (("pi_lower", 0.025), ("pi_upper", 0.975)):
+        cdf = stats.norm.cdf((out[key][:, None] - theta) / np.sqrt(v0)).mean(axis=1)
+        assert np.allclose(cdf, q, rtol=0, atol=1e-9), (key, cdf)
+        assert np.all(np.isfinite(se[key]) & (se[key] > 0))
+
+
+def test_change_stage_matches_scipy_mixture_densities():
+    """log BF10 = log mean_s N(y*; theta_s, V0_s + tau^2) - log mean_s N(y*; theta_s, V0_s)
+    (scipy.stats.norm.pdf); a left-censored y* "<L" uses norm.cdf instead; P(change) =
+    pi BF / (pi BF + 1 - pi); percentile = mean_s Phi((y* - theta_s) / sqrt(V0_s)); a missing
+    y* gives NaN."""
+    cases = _hand_cases([4.2, 3.9, np.nan], [0, -1, 0], np.log(1.2))
+    theta, cvi = _hand_draws(3)
+    v0 = mcmc._h0_variance(cases, cvi)
+    pr = mcmc._predictive(cases, theta, v0, theta.mean(1))
+    out, se, a1, p_change, infl_pc = mcmc._change_summaries(cases, pr, 2)
+    v1 = v0 + 0.25**2
+    h0 = stats.norm.pdf(4.2, theta[0], np.sqrt(v0[0])).mean()
+    h1 = stats.norm.pdf(4.2, theta[0], np.sqrt(v1[0])).mean()
+    c0 = stats.norm.cdf(3.9, theta[1], np.sqrt(v0[1])).mean()
+    c1 = stats.norm.cdf(3.9, theta[1], np.sqrt(v1[1])).mean()
+    ref = np.log([h1 / h0, c1 / c0])
+    assert np.allclose(out["log_bf10"][:2], ref, rtol=0, atol=1e-12)
+    bf = np.exp(ref)
+    assert np.allclose(out["p_change"][:2], 0.1 * bf / (0.1 * bf + 0.9), rtol=0, atol=1e-12)
+    pct = stats.norm.cdf((np.array([4.2, 3.9])[:, None] - theta[:2]) / np.sqrt(v0[:2]))
+    assert np.allclose(out["percentile"][:2], pct.mean(1), rtol=0, atol=1e-12)
+    for key in ("log_bf10", "bf10", "p_change", "percentile"):
+        assert np.isnan(out[key][2]) and np.isnan(se[key][2]), key
+        assert np.all(np.isfinite(se[key][:2]) & (se[key][:2] > 0)), key
+    w1 = stats.norm.pdf(4.2, theta[0], np.sqrt(v1[0]))
+    assert np.allclose(a1[0], w1 / w1.mean(), rtol=1e-10, atol=0)
+
+
+def test_direction_stage_matches_scipy_normal_references():
+    """Uncensored y*: P(D > 0 | y*) = sum_s w_s Phi(m_s / sd_s) / sum_s w_s with w_s =
+    N(y*; theta_s, V1_s) and D | y*, theta_s ~ N(tau^2 (y* - theta_s) / V1_s, tau^2 V0_s / V1_s)
+    (normal conditioning, scipy.stats.norm). Left-censored "<L": (-D, y*) | theta_s is
+    bivariate normal (Var -D = tau^2, Cov = -tau^2, Var y* = V1_s), so P(D > 0 | y* < L) =
+    sum_s P(-D < 0, y* < L | theta_s) / sum_s P(y* < L | theta_s) by
+    scipy.stats.multivariate_normal.cdf. P(|D| > delta) likewise; p_exceed_delta =
+    P(change) P(|D| > delta | H1); NaN where delta is missing."""
+    cases = _hand_cases([4.2, 3.9, 4.25], [0, -1, 0], [np.log(1.2), np.log(1.1), np.nan])
+    theta, cvi = _hand_draws(3, s=20)
+    v0 = mcmc._h0_variance(cases, cvi)
+    pr = mcmc._predictive(cases, theta, v0, theta.mean(1))
+    _, _, a1, p_change, infl_pc = mcmc._change_summaries(cases, pr, 2)
+    out, se = mcmc._direction_summaries(cases, theta, pr, a1, p_change, infl_pc, 2)
+    t2 = 0.25**2
+    v1 = v0 + t2
+    # case 0, uncensored
+    w = stats.norm.pdf(4.2, theta[0], np.sqrt(v1[0]))
+    m = t2 * (4.2 - theta[0]) / v1[0]
+    sd = np.sqrt(t2 * v0[0] / v1[0])
+    dl = np.log(1.2)
+    ref_inc = np.sum(w * stats.norm.sf(0, m, sd)) / w.sum()
+    ref_tail = np.sum(w * (stats.norm.sf(dl, m, sd) + stats.norm.cdf(-dl, m, sd))) / w.sum()
+    assert abs(out["p_increase"][0] - ref_inc) < 1e-12
+    assert abs(out["p_exceed_delta"][0] - p_change[0] * ref_tail) < 1e-12
+    # case 1, left-censored at L = 3.9
+    L, dl = 3.9, np.log(1.1)
+    joint_inc, joint_tail, marg = 0.0, 0.0, 0.0
+    for th, vv in zip(theta[1], v1[1]):
+        mvn = stats.multivariate_normal(mean=[0.0, th], cov=[[t2, -t2], [-t2, vv]])
+        joint_inc += mvn.cdf([0.0, L])
+        joint_tail += mvn.cdf([-dl, L]) + (stats.norm.cdf(L, th, np.sqrt(vv))
+                                           - mvn.cdf([dl, L]))
+        marg += stats.norm.cdf(L, th, np.sqrt(vv))
+    assert abs(out["p_increase"][1] - joint_inc / marg) < 1e-5
+    assert abs(out["p_exceed_delta"][1] - p_change[1] * joint_tail / marg) < 1e-5
+    # case 2: no delta
+    assert np.isnan(out["p_exceed_delta"][2]) and np.isnan(se["p_exceed_delta"][2])
+    assert np.isfinite(out["p_increase"][2]) and np.all(se["p_increase"] > 0)
+
+
+def test_summaries_compose_the_stages():
+    """_summaries returns every summary key, each equal to the stage that computes it."""
+    cases = _hand_cases([4.2, 3.9], [0, 1], np.log(1.2))
+    theta, cvi = _hand_draws(2)
+    q_se = (np.zeros(2), np.zeros(2))
+    out, se = mcmc._summaries(cases, theta, cvi, 2, 0.95, 0.9, q_se)
+    assert tuple(out) == mcmc._SUMMARY_KEYS == tuple(se)
+    ref, _ = mcmc._interval_summaries(theta, mcmc._h0_variance(cases, cvi), 2, 0.95)
+    assert np.array_equal(out["pi_lower"], ref["pi_lower"])
+    assert np.array_equal(out["theta_mean"], theta.mean(1))

@@ -330,3 +330,142 @@ def test_exact_agrees_with_mcmc():
     assert fin[0]
     tol = 4 * m["years_to_limit_mcse"][fin] + 0.02 * e["years_to_limit"][fin]
     assert np.all(np.abs(m["years_to_limit"][fin] - e["years_to_limit"][fin]) < tol)
+
+
+# ------------------------------------------- fast: MCMC drift stages on hand-made posteriors
+# Each deterministic stage of bayesbase.mcmc.trend alone, fed inputs and a hand-made
+# (chain, draw) posterior built here; references written with numpy / scipy / ArviZ.
+def _hand_posterior(beta_mean=0.08, seed=2718, chains=2, draws=150):
+    import xarray as xr
+
+    rng = np.random.default_rng(seed)
+    shape = (chains, draws)
+    return xr.Dataset({
+        "theta0": (("chain", "draw"), np.log(80.0) + 0.03 * rng.standard_normal(shape)),
+        "z": (("chain", "draw"), rng.standard_normal(shape)),
+        "beta": (("chain", "draw"), beta_mean + 0.03 * rng.standard_normal(shape)),
+    })
+
+
+def _az_mcse(x, **kw):
+    import arviz as az
+
+    return float(az.mcse(az.convert_to_dataset({"x": x}), **kw)["x"])
+
+
+def test_mcmc_input_stage_prepares_and_checks():
+    """Series data: used specimens only, times centred on their mean, ev = sA^2 / r + e,
+    t_last - t_ref; limits and prior_drift broadcast per series; bad values raise."""
+    from bayesbase.mcmc.trend import _prepare_inputs, _series_data
+
+    t = np.array([[0.0, 1.0, 2.5, np.nan], [0.0, 0.5, 1.0, 3.0]])
+    y = np.log(np.array([[60.0, 64.0, 70.0, np.nan], [80.0, 79.0, 81.0, 83.0]]))
+    r = np.array([[1.0, 2.0, 1.0, 0.0], [1.0, 1.0, 0.0, 3.0]])  # r = 0: not used
+    e = np.full((2, 4), 0.0004)
+    c = CREAT
+    p, pi, lu, ll = _prepare_inputs(t, y, r, e, c["prior_mean"], c["sg"], c["cvi"],
+                                    c["cvi_log_sd"], c["sa"], c["slope_sd"], 0.2, np.log(159.0),
+                                    None, 0.95)
+    assert np.array_equal(pi, [0.2, 0.2]) and np.allclose(lu, np.log(159.0))
+    assert np.all(np.isnan(ll))
+    d = _series_data(p, 1)
+    used = np.array([0.0, 0.5, 3.0])
+    assert np.allclose(d["tc"], used - used.mean(), rtol=0, atol=1e-15)
+    assert np.allclose(d["y"], np.log([80.0, 79.0, 83.0]), rtol=0, atol=1e-15)
+    assert np.allclose(d["ev"], c["sa"] ** 2 / np.array([1.0, 1.0, 3.0]) + 0.0004, rtol=1e-14)
+    assert abs(d["dt_last"] - (3.0 - used.mean())) < 1e-15
+    assert abs(d["log_cvi"] - np.log(0.10)) < 1e-15 and d["sb"] == c["slope_sd"]
+    args = (t, y, r, e, 4.0, 0.2, 0.1, 0.2, 0.03, 0.1)
+    with pytest.raises(ValueError, match="ci_prob"):
+        _prepare_inputs(*args, 0.1, None, None, 1.0)
+    with pytest.raises(ValueError, match="prior_drift"):
+        _prepare_inputs(*args, 1.0, None, None, 0.95)
+
+
+def test_mcmc_drift_stage_matches_bayes_rule_and_normal_conditioning():
+    """Savage-Dickey BF10 from the per-draw density of beta at 0, referenced by Bayes' rule:
+    p(beta=0 | theta0, y) = N(y; theta0, V) N(0; 0, sB) / N(y; theta0, V + sB^2 tc tc')
+    (scipy.stats.multivariate_normal); P(beta > 0) from the normal conditional of beta given
+    y (covariance form, numpy); slope quantiles as numpy inverted-CDF quantiles; the averaged
+    %/year bounds as the generalised inverse of the mixture (1 - P(drift)) delta_0 +
+    P(drift) F_pct; MCSEs by ArviZ."""
+    from bayesbase.mcmc.trend import _drift_summaries
+
+    post = _hand_posterior()
+    tc = np.array([-1.5, -0.5, 0.5, 1.5])
+    data = dict(y=np.log([70.0, 78.0, 83.0, 92.0]), tc=tc, ev=np.full(4, 0.001), sb=0.1,
+                cvi=0.10, cvi_log_sd=0.2)
+    out = _drift_summaries(post, data, 0.3, 0.9)
+    th = post["theta0"].values.ravel()
+    beta = post["beta"].values.ravel()
+    cv = 0.10 * np.exp(0.2 * post["z"].values.ravel())
+    dens, pinc = [], []
+    for t0, c in zip(th, cv):
+        v = np.diag(np.log1p(c * c) + data["ev"])
+        big = v + 0.01 * np.outer(tc, tc)
+        dens.append(stats.multivariate_normal(np.full(4, t0), v).pdf(data["y"])
+                    * stats.norm.pdf(0.0, 0.0, 0.1)
+                    / stats.multivariate_normal(np.full(4, t0), big).pdf(data["y"]))
+        k = 0.01 * tc @ np.linalg.inv(big)
+        pinc.append(stats.norm.sf(0.0, k @ (data["y"] - t0), np.sqrt(0.01 - 0.01 * k @ tc)))
+    dens = np.array(dens)
+    log_bf = np.log(stats.norm.pdf(0.0, 0.0, 0.1)) - np.log(dens.mean())
+    assert abs(out["log_bf10"] - log_bf) < 1e-9
+    p_drift = 0.3 * np.exp(log_bf) / (0.3 * np.exp(log_bf) + 0.7)
+    assert abs(out["p_drift"] - p_drift) < 1e-12 and abs(out["bf10"] - np.exp(log_bf)) < 1e-9
+    assert abs(out["p_increase"] - np.mean(pinc)) < 1e-9
+    mcse_d = _az_mcse(dens.reshape(2, 150))
+    assert abs(out["log_bf10_mcse"] - mcse_d / dens.mean()) < 1e-6 * out["log_bf10_mcse"]
+    assert abs(out["slope_mean_mcse"] - _az_mcse(beta.reshape(2, 150))) < 1e-12
+    assert out["slope_mean"] == pytest.approx(np.mean(beta), abs=1e-15)
+    assert out["slope_sd"] == pytest.approx(np.std(beta, ddof=1), rel=1e-12)
+    for key, q in (("slope_lower", 0.05), ("slope_upper", 0.95)):
+        assert out[key] == np.quantile(beta, q, method="inverted_cdf")
+    pct = 100.0 * np.expm1(beta)
+    assert out["pct_per_year_upper"] == np.quantile(pct, 0.95, method="inverted_cdf")
+    cand = np.sort(np.append(pct, 0.0))
+    cdf = p_drift * np.mean(pct[None, :] <= cand[:, None], axis=1) + (1 - p_drift) * (cand >= 0)
+    for key, q in (("pct_per_year_avg_lower", 0.05), ("pct_per_year_avg_upper", 0.95)):
+        assert out[key] == pytest.approx(cand[np.argmax(cdf >= q)], abs=1e-12), key
+    assert out["pct_per_year_avg_mean"] == pytest.approx(p_drift * pct.mean(), rel=1e-12)
+
+
+def test_mcmc_limit_stage_matches_crossing_times_per_draw():
+    """Crossing time per draw written out here: 0 if theta_last is beyond ln L, (ln L -
+    theta_last) / beta if moving toward it, +inf otherwise or past the horizon; quantiles as
+    numpy inverted-CDF quantiles; median MCSE by ArviZ (quantile method)."""
+    from bayesbase.mcmc.trend import _limit_summaries
+
+    dt = 1.5
+    for beta_mean, limit, side in ((0.08, np.log(120.0), "upper"),
+                                   (-0.08, np.log(60.0), "lower")):
+        post = _hand_posterior(beta_mean)
+        th = post["theta0"].values.ravel()
+        beta = post["beta"].values.ravel()
+        lu, ll = (limit, np.nan) if side == "upper" else (np.nan, limit)
+        out = _limit_summaries(post, dt, lu, ll, 0.95, 10.0)
+        last = th + beta * dt
+        t = []
+        for tl, b in zip(last, beta):
+            gap = (limit - tl) if side == "upper" else (tl - limit)
+            rate = b if side == "upper" else -b
+            t.append(0.0 if gap <= 0 else (gap / rate if rate > 0 else np.inf))
+        t = np.array(t)
+        t[t > 10.0] = np.inf
+        assert out["limit_side"] == side
+        assert out["theta_last_mean"] == pytest.approx(last.mean(), abs=1e-14)
+        for key, q in (("years_to_limit", 0.5), ("years_to_limit_lower", 0.025),
+                       ("years_to_limit_upper", 0.975)):
+            assert out[key] == pytest.approx(np.quantile(t, q, method="inverted_cdf"),
+                                             rel=1e-12), key
+        assert 0 < out["years_to_limit"] < 10.0
+        ref_se = _az_mcse(np.minimum(t, 20.0).reshape(2, 150), method="quantile", prob=0.5)
+        assert out["years_to_limit_mcse"] == pytest.approx(ref_se, rel=1e-12)
+        assert out["p_beyond_limit"] == np.mean(t == 0.0)
+    # slope pointing away from the only limit given: +inf years; no limit at all: nothing
+    post = _hand_posterior(0.08)
+    away = _limit_summaries(post, dt, np.nan, np.log(60.0), 0.95, 10.0)
+    assert away["limit_side"] == "" and np.isinf(away["years_to_limit"])
+    assert "p_beyond_limit" not in away
+    none = _limit_summaries(post, dt, np.nan, np.nan, 0.95, 10.0)
+    assert none["limit_side"] == "" and set(none) == {"theta_last_mean", "limit_side"}

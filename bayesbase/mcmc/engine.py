@@ -288,14 +288,31 @@ def _d_prob_censored(theta, v0, tau, limit, side, a, b):
     return np.einsum("csg,cg,g->cs", cdf, dens, w) * half[:, None]
 
 
-def _summaries(cases: CaseArrays, theta: np.ndarray, cvi: np.ndarray, n_chain: int,
-               coverage: float, ci_prob: float, theta_q_mcse):
-    """Summaries and MCSEs from per-case draws theta, cvi of shape (C, S)."""
-    c, s = theta.shape
-    out: dict[str, np.ndarray] = {}
-    se: dict[str, np.ndarray] = {}
-    out["n_baseline"] = cases.mask.sum(-1).astype(float)
-    se["n_baseline"] = np.zeros(c)
+@dataclass
+class _Predictive:
+    """Per-draw (C, S) quantities of the assessed result y* shared by the summary stages:
+    ``l0`` / ``l1``: log predictive density (or, censored, log probability) under H0 / H1;
+    ``resid`` = y* - theta_s (theta_mean stands in where y* is missing); ``v0`` / ``v1``: the
+    predictive variances under H0 / H1; ``tau2``: tau^2 as (C, 1); ``has_y``, ``left``,
+    ``right``: (C,) masks of a present, left-censored and right-censored y*."""
+
+    has_y: np.ndarray
+    resid: np.ndarray
+    v0: np.ndarray
+    v1: np.ndarray
+    tau2: np.ndarray
+    l0: np.ndarray
+    l1: np.ndarray
+    left: np.ndarray
+    right: np.ndarray
+
+
+def _setpoint_summaries(cases: CaseArrays, theta: np.ndarray, cvi: np.ndarray, n_chain: int,
+                        ci_prob: float, theta_q_mcse):
+    """n_baseline, posterior mean and central ``ci_prob`` interval of theta, posterior mean
+    CVI, with their MCSEs (``theta_q_mcse``: ArviZ quantile MCSEs of the two bounds)."""
+    out = {"n_baseline": cases.mask.sum(-1).astype(float)}
+    se = {"n_baseline": np.zeros(theta.shape[0])}
     out["theta_mean"] = theta.mean(-1)
     se["theta_mean"] = _mcse(theta - out["theta_mean"][:, None], n_chain)
     a = 0.5 * (1.0 - ci_prob)
@@ -304,90 +321,144 @@ def _summaries(cases: CaseArrays, theta: np.ndarray, cvi: np.ndarray, n_chain: i
     se["theta_lower"], se["theta_upper"] = theta_q_mcse
     out["cvi_post_mean"] = cvi.mean(-1)
     se["cvi_post_mean"] = _mcse(cvi - out["cvi_post_mean"][:, None], n_chain)
+    return out, se
 
+
+def _h0_variance(cases: CaseArrays, cvi: np.ndarray) -> np.ndarray:
+    """V0 per draw (C, S): sI^2 + sA^2 / r* + e* for the assessed result."""
     si2 = np.log1p(cvi * cvi)
-    v0 = si2 + (cases.sa**2 / np.maximum(cases.new_r, 1.0) + cases.new_extra_var)[:, None]
+    return si2 + (cases.sa**2 / np.maximum(cases.new_r, 1.0) + cases.new_extra_var)[:, None]
+
+
+def _interval_summaries(theta: np.ndarray, v0: np.ndarray, n_chain: int, coverage: float):
+    """Central ``coverage`` interval of the normal-mixture predictive under H0 (exact mixture
+    quantiles) with delta-method MCSEs."""
+    c, s = theta.shape
     sd0 = np.sqrt(v0)
     w = np.full((c, s), 1.0 / s)
     b = 0.5 * (1.0 - coverage)
+    out: dict[str, np.ndarray] = {}
+    se: dict[str, np.ndarray] = {}
     for key, q in (("pi_lower", b), ("pi_upper", 1.0 - b)):
         x = mixture_quantile(np.full(c, q), w, theta, sd0)
         z = (x[:, None] - theta) / sd0
         dens = np.mean(np.exp(-0.5 * z * z) / (sd0 * np.sqrt(2 * np.pi)), axis=-1)
         out[key] = x
         se[key] = _mcse((special.ndtr(z) - q) / dens[:, None], n_chain)
+    return out, se
 
+
+def _predictive(cases: CaseArrays, theta: np.ndarray, v0: np.ndarray,
+                theta_mean: np.ndarray) -> _Predictive:
+    """Per-draw predictive log density (uncensored) or log probability (censored) of y*."""
     y = cases.new_y
     has_y = np.isfinite(y)
-    yy = np.where(has_y, y, out["theta_mean"])
-    tau = cases.tau
-    tau2 = (tau**2)[:, None]
+    yy = np.where(has_y, y, theta_mean)
+    tau2 = (cases.tau**2)[:, None]
     v1 = v0 + tau2
     resid = yy[:, None] - theta
     cen = np.where(has_y, cases.new_censor, 0.0)
-    # per-draw predictive log density (uncensored) or log probability (censored) under H0, H1
     l0 = -0.5 * (_LOG_2PI + np.log(v0) + resid**2 / v0)
     l1 = -0.5 * (_LOG_2PI + np.log(v1) + resid**2 / v1)
     left = cen < 0
     right = cen > 0
     if np.any(left | right):
         sgn = np.where(left, 1.0, -1.0)[:, None]  # left: P(y < L) = Phi(resid / sd)
-        lc0 = special.log_ndtr(sgn * resid / sd0)
+        lc0 = special.log_ndtr(sgn * resid / np.sqrt(v0))
         lc1 = special.log_ndtr(sgn * resid / np.sqrt(v1))
         cmask = (left | right)[:, None]
         l0 = np.where(cmask, lc0, l0)
         l1 = np.where(cmask, lc1, l1)
-    lp0 = _logmeanexp(l0)
-    lp1 = _logmeanexp(l1)
+    return _Predictive(has_y=has_y, resid=resid, v0=v0, v1=v1, tau2=tau2, l0=l0, l1=l1,
+                       left=left, right=right)
+
+
+def _change_summaries(cases: CaseArrays, pr: _Predictive, n_chain: int):
+    """log BF10, BF10, P(change) and percentile with delta-method MCSEs. Also returns the
+    per-draw H1 weights a1 (influence of log mean_s a_s is a_s / mean(a) - 1), P(change) and
+    its influence values, which the direction stage reuses."""
+    has_y = pr.has_y
+    lp0 = _logmeanexp(pr.l0)
+    lp1 = _logmeanexp(pr.l1)
     log_bf = lp1 - lp0
-    a0 = np.exp(l0 - lp0[:, None])  # influence of log mean_s(a_s): a_s / mean(a) - 1
-    a1 = np.exp(l1 - lp1[:, None])
+    a0 = np.exp(pr.l0 - lp0[:, None])
+    a1 = np.exp(pr.l1 - lp1[:, None])
     infl_lbf = a1 - a0
     pi = cases.prior_change
     with np.errstate(divide="ignore"):
         logit = np.log(pi) - np.log1p(-pi) + log_bf
     p_change = special.expit(logit)
     infl_pc = (p_change * (1 - p_change))[:, None] * infl_lbf
-    out["log_bf10"] = np.where(has_y, log_bf, np.nan)
-    se["log_bf10"] = np.where(has_y, _mcse(infl_lbf, n_chain), np.nan)
+    out = {"log_bf10": np.where(has_y, log_bf, np.nan)}
+    se = {"log_bf10": np.where(has_y, _mcse(infl_lbf, n_chain), np.nan)}
     out["bf10"] = np.exp(out["log_bf10"])
     se["bf10"] = out["bf10"] * se["log_bf10"]
     out["p_change"] = np.where(has_y, p_change, np.nan)
     se["p_change"] = np.where(has_y, _mcse(infl_pc, n_chain), np.nan)
-    cdf = special.ndtr(resid / sd0)
+    cdf = special.ndtr(pr.resid / np.sqrt(pr.v0))
     out["percentile"] = np.where(has_y, cdf.mean(-1), np.nan)
     se["percentile"] = np.where(has_y, _mcse(cdf - cdf.mean(-1)[:, None], n_chain), np.nan)
+    return out, se, a1, p_change, infl_pc
 
-    # D | y*, theta_s, H1 ~ N(tau^2 / V1 * resid, tau^2 V0 / V1); weight a1_s (H1 predictive)
-    d_mean = tau2 / v1 * resid
-    d_sd = np.sqrt(tau2 * v0 / v1)
+
+def _direction_draws(cases: CaseArrays, theta: np.ndarray, pr: _Predictive):
+    """Per draw: P(D > 0 | y*, theta_s, H1) and P(|D| > delta | y*, theta_s, H1), (C, S).
+    D | y*, theta_s, H1 ~ N(tau^2 / V1 * resid, tau^2 V0 / V1); a censored y* uses
+    P(D in set, y* censored | theta) / P(y* censored | theta)."""
+    d_mean = pr.tau2 / pr.v1 * pr.resid
+    d_sd = np.sqrt(pr.tau2 * pr.v0 / pr.v1)
     pinc_s = special.ndtr(d_mean / d_sd)
     delta = cases.delta[:, None]
     with np.errstate(invalid="ignore"):
         tail_s = special.ndtr((d_mean - delta) / d_sd) + special.ndtr((-delta - d_mean) / d_sd)
-    if np.any(left | right):
-        # censored assessed result: P(D in set, y* censored | theta) / P(y* censored | theta)
-        for side, m in ((-1, left), (1, right)):
-            if not np.any(m):
-                continue
-            th, vv, tt, lim = theta[m], v0[m], tau[m], y[m]
-            pc = np.exp(l1[m])
-            inf = np.full(th.shape[0], np.inf)
-            pinc_s[m] = _d_prob_censored(th, vv, tt, lim, side, 0.0 * tt, inf) / pc
-            dl = cases.delta[m]
-            dl0 = np.where(np.isfinite(dl), dl, 0.0)
-            up = _d_prob_censored(th, vv, tt, lim, side, dl0, inf)
-            dn = _d_prob_censored(th, vv, tt, lim, side, -inf, -dl0)
-            tail_s[m] = np.where(np.isfinite(dl)[:, None], (up + dn) / pc, np.nan)
+    for side, m in ((-1, pr.left), (1, pr.right)):
+        if not np.any(m):
+            continue
+        th, vv, tt, lim = theta[m], pr.v0[m], cases.tau[m], cases.new_y[m]
+        pc = np.exp(pr.l1[m])
+        inf = np.full(th.shape[0], np.inf)
+        pinc_s[m] = _d_prob_censored(th, vv, tt, lim, side, 0.0 * tt, inf) / pc
+        dl = cases.delta[m]
+        dl0 = np.where(np.isfinite(dl), dl, 0.0)
+        up = _d_prob_censored(th, vv, tt, lim, side, dl0, inf)
+        dn = _d_prob_censored(th, vv, tt, lim, side, -inf, -dl0)
+        tail_s[m] = np.where(np.isfinite(dl)[:, None], (up + dn) / pc, np.nan)
+    return pinc_s, tail_s
+
+
+def _direction_summaries(cases: CaseArrays, theta: np.ndarray, pr: _Predictive, a1, p_change,
+                         infl_pc, n_chain: int):
+    """P(increase) and P(|D| > delta) = P(change) P(|D| > delta | H1), each draw weighted by
+    its H1 predictive density a1, with delta-method MCSEs."""
+    pinc_s, tail_s = _direction_draws(cases, theta, pr)
+    has_y = pr.has_y
     p_inc = np.mean(a1 * pinc_s, axis=-1)
     p_tail = np.mean(a1 * tail_s, axis=-1)
-    out["p_increase"] = np.where(has_y, p_inc, np.nan)
-    se["p_increase"] = np.where(has_y, _mcse(a1 * (pinc_s - p_inc[:, None]), n_chain), np.nan)
+    out = {"p_increase": np.where(has_y, p_inc, np.nan)}
+    se = {"p_increase": np.where(has_y, _mcse(a1 * (pinc_s - p_inc[:, None]), n_chain), np.nan)}
     has_d = has_y & np.isfinite(cases.delta)
     out["p_exceed_delta"] = np.where(has_d, p_change * p_tail, np.nan)
     infl_tail = a1 * (np.nan_to_num(tail_s) - np.nan_to_num(p_tail)[:, None])
     infl_ped = np.nan_to_num(p_tail)[:, None] * infl_pc + p_change[:, None] * infl_tail
     se["p_exceed_delta"] = np.where(has_d, _mcse(infl_ped, n_chain), np.nan)
+    return out, se
+
+
+def _summaries(cases: CaseArrays, theta: np.ndarray, cvi: np.ndarray, n_chain: int,
+               coverage: float, ci_prob: float, theta_q_mcse):
+    """Summaries and MCSEs from per-case draws theta, cvi of shape (C, S)."""
+    out, se = _setpoint_summaries(cases, theta, cvi, n_chain, ci_prob, theta_q_mcse)
+    v0 = _h0_variance(cases, cvi)
+    o, s = _interval_summaries(theta, v0, n_chain, coverage)
+    out.update(o)
+    se.update(s)
+    pr = _predictive(cases, theta, v0, out["theta_mean"])
+    o, s, a1, p_change, infl_pc = _change_summaries(cases, pr, n_chain)
+    out.update(o)
+    se.update(s)
+    o, s = _direction_summaries(cases, theta, pr, a1, p_change, infl_pc, n_chain)
+    out.update(o)
+    se.update(s)
     return {k: out[k] for k in _SUMMARY_KEYS}, {k: se[k] for k in _SUMMARY_KEYS}
 
 

@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import logging
 import warnings
+from contextlib import contextmanager
 
 import numpy as np
 from scipy import special
@@ -99,19 +100,27 @@ def _quantile(x, q):
     return float(np.quantile(x, q, method="inverted_cdf"))
 
 
-def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slope_sd,
-               prior_drift=DEFAULT_PRIOR_DRIFT, limit_upper=None, limit_lower=None,
-               ci_prob=DEFAULT_CI_PROB, draws=1000, tune=1000, chains=2, seed=0,
-               target_accept=0.9, horizon=TREND_HORIZON_YEARS, model=None):
-    """Drift model by NUTS for C series (same inputs and keys as :func:`bayesbase.trend.trend_exact`)
-    plus diagnostics ``r_hat`` (max over theta0, z, beta), ``ess`` (min bulk ESS), ``divergences``
-    and ``converged`` (bool), and Monte Carlo standard errors ``slope_mean_mcse``,
-    ``log_bf10_mcse`` (delta method on the Savage-Dickey density average) and
-    ``years_to_limit_mcse`` (of the median, ArviZ quantile MCSE). Series that do not meet the trend rule are not sampled (NaN,
-    ``eligible`` False). ``seed`` seeds every fit (series i gets a seed drawn from
-    ``numpy.random.default_rng(seed)``). ``model``: a model from :func:`build_trend_model` to
-    reuse across calls.
-    """
+_DATA_KEYS = ("y", "tc", "ev", "mu", "sg", "log_cvi", "cvi_log_sd", "sb")
+
+
+@contextmanager
+def _quiet_pymc_logs():
+    """PyMC / PyTensor loggers at ERROR for the duration (restored afterwards)."""
+    loggers = [logging.getLogger(n) for n in ("pymc", "pymc.sampling.mcmc", "pytensor")]
+    levels = [lg.level for lg in loggers]
+    for lg in loggers:
+        lg.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        for lg, lv in zip(loggers, levels):
+            lg.setLevel(lv)
+
+
+def _prepare_inputs(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slope_sd,
+                    prior_drift, limit_upper, limit_lower, ci_prob):
+    """Checked inputs: the :func:`bayesbase.trend.prepare_series` dict, and prior_drift and
+    the two limits broadcast to (C,) (a missing limit is NaN)."""
     if not 0 < ci_prob < 1:
         raise ValueError("ci_prob must lie in (0, 1)")
     p = prepare_series(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slope_sd)
@@ -121,116 +130,174 @@ def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slop
         raise ValueError("prior_drift must lie in (0, 1)")
     lu = np.broadcast_to(np.asarray(np.nan if limit_upper is None else limit_upper, float), (c,))
     ll = np.broadcast_to(np.asarray(np.nan if limit_lower is None else limit_lower, float), (c,))
+    return p, pi, lu, ll
+
+
+def _series_data(p: dict, i: int) -> dict:
+    """Series ``i`` of prepared inputs ``p``: the model's ``pm.Data`` values (``_DATA_KEYS``:
+    used specimens only, times centred on t_ref, ev = sA^2 / r + e) plus ``cvi`` and
+    ``dt_last`` = t_last - t_ref."""
+    m = p["mask"][i]
+    return {
+        "y": p["y"][i, m], "tc": p["times"][i, m] - p["t_ref"][i],
+        "ev": p["sa"][i] ** 2 / p["r"][i, m] + p["extra_var"][i, m],
+        "mu": p["prior_mean"][i], "sg": p["sg"][i], "log_cvi": np.log(p["cvi"][i]),
+        "cvi_log_sd": p["cvi_log_sd"][i], "sb": p["slope_sd"][i],
+        "cvi": p["cvi"][i], "dt_last": p["t_last"][i] - p["t_ref"][i],
+    }
+
+
+def _sample_series(model, data, draws, tune, chains, seed, target_accept):
+    """Set one series on ``model`` and sample H1 by NUTS. Returns the posterior of theta0, z,
+    beta (dims chain, draw) and its diagnostics r_hat (max), ess (min bulk), divergences."""
+    pm.set_data({k: data[k] for k in _DATA_KEYS}, model=model,
+                coords={DIM_OBS: np.arange(data["tc"].size)})
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
+        warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
+        warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
+        idata = pm.sample(
+            draws=draws, tune=tune, chains=chains, cores=1, random_seed=seed,
+            target_accept=target_accept, progressbar=False, model=model,
+            compute_convergence_checks=False, return_inferencedata=True,
+        )
+        post = idata.posterior[["theta0", "z", "beta"]]
+        rhat = float(az.rhat(post).to_array().max())
+        ess = float(az.ess(post, method="bulk").to_array().min())
+    div = int(idata.sample_stats["diverging"].sum())
+    return post, dict(r_hat=rhat, ess=ess, divergences=div)
+
+
+def _savage_dickey(post, data) -> dict:
+    """Savage-Dickey log BF10 (Rao-Blackwellised density of beta at 0), its MCSE (delta
+    method), P(beta > 0 | y, H1) and the slope's MCSE, from one series' posterior."""
+    th = post["theta0"].values.ravel()
+    zz = post["z"].values.ravel()
+    beta = post["beta"].values.ravel()
+    tc, yy, ev, sb = data["tc"], data["y"], data["ev"], data["sb"]
+    cvi_d = data["cvi"] * np.exp(data["cvi_log_sd"] * zz)
+    v = np.log1p(cvi_d * cvi_d)[:, None] + ev[None, :]  # (S, J)
+    prec = 1.0 / sb**2 + np.sum(tc * tc / v, -1)
+    mc = np.sum(tc * (yy[None, :] - th[:, None]) / v, -1) / prec
+    dens_draws = np.sqrt(prec / (2 * np.pi)) * np.exp(-0.5 * prec * mc * mc)
+    dens0 = np.mean(dens_draws)
+    shape = post["beta"].shape  # (chain, draw)
+    prior0 = 1.0 / (sb * np.sqrt(2 * np.pi))
+    return {
+        "log_bf10": np.log(prior0) - np.log(dens0),
+        "log_bf10_mcse": _mcse(dens_draws.reshape(shape)) / dens0,
+        "slope_mean_mcse": _mcse(beta.reshape(shape)),
+        "p_increase": np.mean(special.ndtr(mc * np.sqrt(prec))),
+    }
+
+
+def _drift_summaries(post, data, prior_drift: float, ci_prob: float) -> dict:
+    """Drift keys of one series: Bayes factor, P(drift), P(increase), slope and %/year (given
+    drift, and averaged over H0 / H1 with P(drift)), with MCSEs."""
+    a = 0.5 * (1.0 - ci_prob)
+    beta = post["beta"].values.ravel()
+    out = _savage_dickey(post, data)
+    log_bf = out["log_bf10"]
+    p_drift = float(special.expit(np.log(prior_drift) - np.log1p(-prior_drift) + log_bf))
+    out["bf10"] = np.exp(log_bf)
+    out["p_drift"] = p_drift
+    out["slope_mean"] = beta.mean()
+    out["slope_sd"] = beta.std(ddof=1)
+    out["slope_lower"] = _quantile(beta, a)
+    out["slope_upper"] = _quantile(beta, 1 - a)
+    pct = 100.0 * np.expm1(beta)
+    out["pct_per_year_mean"] = pct.mean()
+    out["pct_per_year_lower"] = _quantile(pct, a)
+    out["pct_per_year_upper"] = _quantile(pct, 1 - a)
+    out["pct_per_year_avg_mean"] = p_drift * pct.mean()
+    below = p_drift * np.mean(pct < 0)
+    for key, qv in (("pct_per_year_avg_lower", a), ("pct_per_year_avg_upper", 1 - a)):
+        if qv < below:
+            val = _quantile(pct, qv / p_drift)
+        elif qv > below + 1 - p_drift:
+            val = _quantile(pct, (qv - (1 - p_drift)) / p_drift)
+        else:
+            val = 0.0
+        out[key] = val
+    return out
+
+
+def _limit_summaries(post, dt_last: float, limit_upper: float, limit_lower: float,
+                     ci_prob: float, horizon: float) -> dict:
+    """theta_last_mean and, toward the limit the mean slope points to, the crossing time
+    per draw (0 if already beyond, +inf if receding or beyond ``horizon``): its median with
+    MCSE, central ``ci_prob`` interval, and P(beyond the limit now). Both limits given but
+    neither approached: the years are +inf. No limit: only theta_last_mean and side ""."""
+    a = 0.5 * (1.0 - ci_prob)
+    th = post["theta0"].values.ravel()
+    beta = post["beta"].values.ravel()
+    theta_last = th + beta * dt_last
+    out = {"theta_last_mean": theta_last.mean(), "limit_side": ""}
+    side, lim, sign = "", np.nan, 0.0
+    if np.isfinite(limit_upper) and beta.mean() > 0:
+        side, lim, sign = "upper", limit_upper, 1.0
+    elif np.isfinite(limit_lower) and beta.mean() < 0:
+        side, lim, sign = "lower", limit_lower, -1.0
+    out["limit_side"] = side
+    if side:
+        gap = sign * (lim - theta_last)  # > 0: still inside
+        rate = sign * beta  # > 0: moving toward the limit
+        with np.errstate(divide="ignore"):
+            t_cross = np.where(gap <= 0, 0.0,
+                               np.where(rate > 0, gap / np.where(rate > 0, rate, 1.0), np.inf))
+        t_cross = np.where(t_cross > horizon, np.inf, t_cross)
+        out["years_to_limit"] = _quantile(t_cross, 0.5)
+        if np.isfinite(out["years_to_limit"]):
+            clipped = np.minimum(t_cross, 2.0 * horizon).reshape(post["beta"].shape)
+            out["years_to_limit_mcse"] = _mcse(clipped, prob=0.5)
+        out["years_to_limit_lower"] = _quantile(t_cross, a)
+        out["years_to_limit_upper"] = _quantile(t_cross, 1 - a)
+        out["p_beyond_limit"] = np.mean(gap <= 0)
+    elif np.isfinite(limit_upper) or np.isfinite(limit_lower):
+        for key in ("years_to_limit", "years_to_limit_lower", "years_to_limit_upper"):
+            out[key] = np.inf
+    return out
+
+
+def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slope_sd,
+               prior_drift=DEFAULT_PRIOR_DRIFT, limit_upper=None, limit_lower=None,
+               ci_prob=DEFAULT_CI_PROB, draws=1000, tune=1000, chains=2, seed=0,
+               target_accept=0.9, horizon=TREND_HORIZON_YEARS, model=None):
+    """Drift model by NUTS for C series (same inputs and keys as
+    :func:`bayesbase.trend.trend_exact`) plus diagnostics ``r_hat`` (max over theta0, z, beta),
+    ``ess`` (min bulk ESS), ``divergences`` and ``converged`` (bool), and Monte Carlo standard
+    errors ``slope_mean_mcse``, ``log_bf10_mcse`` (delta method on the Savage-Dickey density
+    average) and ``years_to_limit_mcse`` (of the median, ArviZ quantile MCSE). Series that do
+    not meet the trend rule are not sampled (NaN, ``eligible`` False).
+
+    Stages: :func:`_prepare_inputs`, :func:`build_trend_model` (graph, once), then per series
+    :func:`_series_data`, :func:`_sample_series`, :func:`_drift_summaries` and
+    :func:`_limit_summaries`. ``seed`` seeds every fit (series i gets a seed drawn from
+    ``numpy.random.default_rng(seed)``). ``model``: a model from :func:`build_trend_model` to
+    reuse across calls.
+    """
+    p, pi, lu, ll = _prepare_inputs(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa,
+                                    slope_sd, prior_drift, limit_upper, limit_lower, ci_prob)
+    c = p["y"].shape[0]
     out = {k: np.full(c, np.nan) for k in _KEYS}
     out["limit_side"] = np.full(c, "", dtype=object)
     out["converged"] = np.zeros(c, dtype=bool)
     seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=c)
-    a = 0.5 * (1.0 - ci_prob)
     if model is None and np.any(p["eligible"]):
         model = build_trend_model(int(p["n_used"].max()))
-    loggers = [logging.getLogger(n) for n in ("pymc", "pymc.sampling.mcmc", "pytensor")]
-    levels = [lg.level for lg in loggers]
-    for lg in loggers:
-        lg.setLevel(logging.ERROR)
-    try:
+    with _quiet_pymc_logs():
         for i in np.nonzero(p["eligible"])[0]:
-            m = p["mask"][i]
-            tc = p["times"][i, m] - p["t_ref"][i]
-            yy = p["y"][i, m]
-            ev = p["sa"][i] ** 2 / p["r"][i, m] + p["extra_var"][i, m]
-            sb = p["slope_sd"][i]
-            pm.set_data(
-                {"y": yy, "tc": tc, "ev": ev, "mu": p["prior_mean"][i], "sg": p["sg"][i],
-                 "log_cvi": np.log(p["cvi"][i]), "cvi_log_sd": p["cvi_log_sd"][i], "sb": sb},
-                model=model, coords={DIM_OBS: np.arange(tc.size)},
-            )
-            with warnings.catch_warnings():
-                warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
-                warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
-                warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
-                idata = pm.sample(
-                    draws=draws, tune=tune, chains=chains, cores=1, random_seed=int(seeds[i]),
-                    target_accept=target_accept, progressbar=False, model=model,
-                    compute_convergence_checks=False, return_inferencedata=True,
-                )
-                post = idata.posterior[["theta0", "z", "beta"]]
-                rhat = float(az.rhat(post).to_array().max())
-                ess = float(az.ess(post, method="bulk").to_array().min())
-            div = int(idata.sample_stats["diverging"].sum())
-            th = post["theta0"].values.ravel()
-            zz = post["z"].values.ravel()
-            beta = post["beta"].values.ravel()
-            cvi_d = p["cvi"][i] * np.exp(p["cvi_log_sd"][i] * zz)
-            v = np.log1p(cvi_d * cvi_d)[:, None] + ev[None, :]  # (S, J)
-            prec = 1.0 / sb**2 + np.sum(tc * tc / v, -1)
-            mc = np.sum(tc * (yy[None, :] - th[:, None]) / v, -1) / prec
-            dens_draws = np.sqrt(prec / (2 * np.pi)) * np.exp(-0.5 * prec * mc * mc)
-            dens0 = np.mean(dens_draws)
-            shape = post["beta"].shape  # (chain, draw)
-            with warnings.catch_warnings():
-                warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
-                # Monte Carlo SE of the density average; delta method for its log
-                out["log_bf10_mcse"][i] = _mcse(dens_draws.reshape(shape)) / dens0
-                out["slope_mean_mcse"][i] = _mcse(beta.reshape(shape))
-            prior0 = 1.0 / (sb * np.sqrt(2 * np.pi))
-            log_bf = np.log(prior0) - np.log(dens0)
-            p_drift = float(special.expit(np.log(pi[i]) - np.log1p(-pi[i]) + log_bf))
-            out["log_bf10"][i] = log_bf
-            out["bf10"][i] = np.exp(log_bf)
-            out["p_drift"][i] = p_drift
-            out["p_increase"][i] = np.mean(special.ndtr(mc * np.sqrt(prec)))
-            out["slope_mean"][i] = beta.mean()
-            out["slope_sd"][i] = beta.std(ddof=1)
-            out["slope_lower"][i] = _quantile(beta, a)
-            out["slope_upper"][i] = _quantile(beta, 1 - a)
-            pct = 100.0 * np.expm1(beta)
-            out["pct_per_year_mean"][i] = pct.mean()
-            out["pct_per_year_lower"][i] = _quantile(pct, a)
-            out["pct_per_year_upper"][i] = _quantile(pct, 1 - a)
-            out["pct_per_year_avg_mean"][i] = p_drift * pct.mean()
-            below = p_drift * np.mean(pct < 0)
-            for key, qv in (("pct_per_year_avg_lower", a), ("pct_per_year_avg_upper", 1 - a)):
-                if qv < below:
-                    val = _quantile(pct, qv / p_drift)
-                elif qv > below + 1 - p_drift:
-                    val = _quantile(pct, (qv - (1 - p_drift)) / p_drift)
-                else:
-                    val = 0.0
-                out[key][i] = val
-            theta_last = th + beta * (p["t_last"][i] - p["t_ref"][i])
-            out["theta_last_mean"][i] = theta_last.mean()
-            side, lim, sign = "", np.nan, 0.0
-            if np.isfinite(lu[i]) and beta.mean() > 0:
-                side, lim, sign = "upper", lu[i], 1.0
-            elif np.isfinite(ll[i]) and beta.mean() < 0:
-                side, lim, sign = "lower", ll[i], -1.0
-            out["limit_side"][i] = side
-            if side:
-                gap = sign * (lim - theta_last)  # > 0: still inside
-                rate = sign * beta  # > 0: moving toward the limit
-                with np.errstate(divide="ignore"):
-                    t_cross = np.where(gap <= 0, 0.0, np.where(rate > 0, gap / np.where(rate > 0, rate, 1.0), np.inf))
-                t_cross = np.where(t_cross > horizon, np.inf, t_cross)
-                out["years_to_limit"][i] = _quantile(t_cross, 0.5)
-                if np.isfinite(out["years_to_limit"][i]):
-                    clipped = np.minimum(t_cross, 2.0 * horizon).reshape(shape)
-                    out["years_to_limit_mcse"][i] = _mcse(clipped, prob=0.5)
-                out["years_to_limit_lower"][i] = _quantile(t_cross, a)
-                out["years_to_limit_upper"][i] = _quantile(t_cross, 1 - a)
-                out["p_beyond_limit"][i] = np.mean(gap <= 0)
-            elif np.isfinite(lu[i]) or np.isfinite(ll[i]):
-                for key in ("years_to_limit", "years_to_limit_lower", "years_to_limit_upper"):
-                    out[key][i] = np.inf
-            out["r_hat"][i] = rhat
-            out["ess"][i] = ess
-            out["divergences"][i] = div
-            out["converged"][i] = (rhat < _RHAT_MAX) and (ess >= _ESS_MIN) and div == 0
-    finally:
-        for lg, lv in zip(loggers, levels):
-            lg.setLevel(lv)
+            data = _series_data(p, i)
+            post, diag = _sample_series(model, data, draws, tune, chains, int(seeds[i]),
+                                        target_accept)
+            row = _drift_summaries(post, data, pi[i], ci_prob)
+            row.update(_limit_summaries(post, data["dt_last"], lu[i], ll[i], ci_prob, horizon))
+            row.update(diag)
+            row["converged"] = (diag["r_hat"] < _RHAT_MAX) and (diag["ess"] >= _ESS_MIN) \
+                and diag["divergences"] == 0
+            for k, v in row.items():
+                out[k][i] = v
     out["eligible"] = p["eligible"].copy()
-    out["reason"] = p["reason"]
-    out["n_used"] = p["n_used"]
-    out["span_years"] = p["span_years"]
-    out["t_ref"] = p["t_ref"]
+    for k in ("reason", "n_used", "span_years", "t_ref"):
+        out[k] = p[k]
     return out
