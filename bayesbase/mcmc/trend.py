@@ -47,21 +47,15 @@ from ..constants import (
     DIM_OBS,
     TREND_HORIZON_YEARS,
 )
-from ..model.trend import prepare_series
+from ..model.trend import SUMMARY_KEYS, prepare_series
 
 __all__ = ["trend_mcmc", "build_trend_model"]
 
 _RHAT_MAX = 1.01
 _ESS_MIN = 400.0
 
-_KEYS = (
-    "p_drift", "bf10", "log_bf10", "p_increase",
-    "slope_mean", "slope_sd", "slope_lower", "slope_upper",
-    "pct_per_year_mean", "pct_per_year_lower", "pct_per_year_upper",
-    "pct_per_year_avg_mean", "pct_per_year_avg_lower", "pct_per_year_avg_upper",
-    "years_to_limit", "years_to_limit_lower", "years_to_limit_upper", "p_beyond_limit",
-    "theta_last_mean", "r_hat", "ess", "divergences",
-    "slope_mean_mcse", "log_bf10_mcse", "years_to_limit_mcse",
+_KEYS = SUMMARY_KEYS + (
+    "r_hat", "ess", "divergences", "slope_mean_mcse", "log_bf10_mcse", "years_to_limit_mcse",
 )
 
 

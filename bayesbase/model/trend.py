@@ -82,7 +82,8 @@ DEFAULT_SLOPE_SD = 0.10
 
 _LOG_2PI = np.log(2.0 * np.pi)
 
-_FLOAT_KEYS = (
+#: the drift summary keys every engine returns (the PyMC engine adds its diagnostics)
+SUMMARY_KEYS = (
     "p_drift", "bf10", "log_bf10", "p_increase",
     "slope_mean", "slope_sd", "slope_lower", "slope_upper",
     "pct_per_year_mean", "pct_per_year_lower", "pct_per_year_upper",
@@ -409,7 +410,7 @@ def trend_exact(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slo
     pi = np.broadcast_to(pd_arr, (c,))
     lu = np.broadcast_to(np.asarray(np.nan if limit_upper is None else limit_upper, float), (c,))
     ll = np.broadcast_to(np.asarray(np.nan if limit_lower is None else limit_lower, float), (c,))
-    out = {k: np.full(c, np.nan) for k in _FLOAT_KEYS}
+    out = {k: np.full(c, np.nan) for k in SUMMARY_KEYS}
     out["limit_side"] = np.full(c, "", dtype=object)
     x_nodes, w_nodes = quadrature(nodes)
     idx_all = np.nonzero(p["eligible"])[0]
