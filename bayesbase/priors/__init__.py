@@ -9,7 +9,10 @@ one of :data:`PROVENANCES` (``from memory`` with a rationale in ``note``; ``esti
 is strict: unknown keys (with a did-you-mean hint), missing keys, wrong types and out-of-range
 values are all collected and raised together in a :class:`PackError`, each naming the file and
 the key path. A pack whose CVs disagree with its own population interval loads, with
-``pack.warnings``.
+``pack.warnings``; an analyte's ``interval_gap = { ratio, reason }`` acknowledges such a
+disagreement (listed in ``pack.acknowledged`` instead) for as long as the stated ratio matches.
+``breed_notes.<breed> = { text, source, provenance[, locator, note] }`` holds notes shown for
+animals of a breed (the ``breed note`` flag), apart from the age rule (``age_dependent``).
 
 Modules: :mod:`.schema` (key specs and rules), :mod:`.pack` (loaded packs, loading, hashing,
 checking, merging), :mod:`.layers` (built-in packs and files; fragments with ``[pack] extends``
@@ -21,9 +24,10 @@ from __future__ import annotations
 from .layers import available_packs
 from .overrides import OVERRIDE_COLUMNS
 from .pack import AnalytePrior, Check, Pack, RetestGroup, check, check_file, load_pack, merge
-from .schema import (COMBINE_RTOL, DESIGNS, DIRECTIONS, HASHED_PROVENANCES, HIL, INTERVAL_CV_TOLERANCE,
-                     LAB_PROVENANCE, MIN_LOG_SD_FROM_MEMORY, PROVENANCES, CitedNumber, CviStudy,
-                     breed_key, consistency_warnings, interval_consistency)
+from .schema import (COMBINE_RTOL, DESIGNS, DIRECTIONS, GAP_RATIO_RTOL, HASHED_PROVENANCES, HIL,
+                     INTERVAL_CV_TOLERANCE, LAB_PROVENANCE, MIN_LOG_SD_FROM_MEMORY, PROVENANCES, CitedNote,
+                     CitedNumber, CviStudy, IntervalGap, breed_key, consistency_acknowledged,
+                     consistency_warnings, interval_consistency)
 from .text import describe, describe_text
 
 __all__ = [
@@ -36,9 +40,12 @@ __all__ = [
     "COMBINE_RTOL",
     "MIN_LOG_SD_FROM_MEMORY",
     "INTERVAL_CV_TOLERANCE",
+    "GAP_RATIO_RTOL",
     "OVERRIDE_COLUMNS",
     "CitedNumber",
     "CviStudy",
+    "CitedNote",
+    "IntervalGap",
     "RetestGroup",
     "AnalytePrior",
     "Pack",
@@ -51,6 +58,7 @@ __all__ = [
     "describe",
     "describe_text",
     "consistency_warnings",
+    "consistency_acknowledged",
     "interval_consistency",
     "breed_key",
 ]

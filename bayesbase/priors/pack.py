@@ -5,7 +5,8 @@ hashing and checking files.
 (:mod:`.layers`), of the bytes of every file, base first; with a lab override CSV
 (:mod:`.overrides`), of those bytes followed by the CSV's, and ``pack.id`` then becomes
 ``<pack>+<override file stem>``. ``pack.warnings`` lists the consistency warnings of
-:func:`.schema.consistency_warnings` (the pack still loads).
+:func:`.schema.consistency_warnings` (the pack still loads); ``pack.acknowledged`` the
+disagreements an analyte's ``interval_gap`` acknowledges (:func:`.schema.consistency_acknowledged`).
 """
 from __future__ import annotations
 
@@ -19,7 +20,8 @@ from typing import NamedTuple
 from .. import units as _units
 from ..errors import AnalyteNotInPack, PackError
 from . import layers, overrides
-from .schema import HIL, CitedNumber, Collector, CviStudy, breed_key, consistency_warnings, parse_pack
+from .schema import (HIL, CitedNumber, Collector, CviStudy, IntervalGap, breed_key, consistency_acknowledged,
+                     consistency_warnings, parse_pack)
 
 __all__ = ["AnalytePrior", "RetestGroup", "Pack", "Check", "load_pack", "check", "check_file", "merge"]
 
@@ -67,6 +69,11 @@ class AnalytePrior:
     shift_sd: float | None
     sources: dict[str, str] = field(repr=False)
     cvi_studies: tuple[CviStudy, ...] = field(default=(), repr=False)
+    #: breed key (:func:`.schema.breed_key`) -> note shown for animals of that breed, whatever
+    #: their age (its source is in ``sources["breed_notes.<breed>"]``)
+    breed_notes: dict[str, str] = field(default_factory=dict, repr=False)
+    #: an acknowledged disagreement between the CVs and the population interval, or None
+    interval_gap: IntervalGap | None = field(default=None, repr=False)
 
     # log-scale SDs: sigma = sqrt(ln(1 + CV^2))
     @property
@@ -118,6 +125,7 @@ class Pack:
     cited: dict[str, dict[str, CitedNumber]] = field(repr=False)
     description: str = field(default="", repr=False)
     warnings: tuple[str, ...] = field(default=(), repr=False)
+    acknowledged: tuple[str, ...] = field(default=(), repr=False)
 
     def __contains__(self, analyte: object) -> bool:
         return analyte in self.analytes
@@ -175,7 +183,8 @@ def _build_analyte(aid: str, a: dict, cn: dict[str, CitedNumber], asrc: dict[str
         hil_thresholds={k: v.value for k, v in a.get("_hil", {}).items()},
         feeding_sensitive=bool(a.get("feeding_sensitive", False)), age_dependent=a.get("age_dependent"),
         group=a["group"], slope_sd=cn["slope_sd"].value, shift_sd=opt["shift_sd"], sources=asrc,
-        cvi_studies=a.get("_studies", ()))
+        cvi_studies=a.get("_studies", ()), breed_notes={b: v.text for b, v in a.get("_breed_notes", {}).items()},
+        interval_gap=a.get("_gap"))
 
 
 def build(parts: dict, sha: str) -> Pack:
@@ -192,13 +201,16 @@ def build(parts: dict, sha: str) -> Pack:
         if a.get("interference"):
             asrc["interference"] = a["interference"]["source"]
             asrc["interference.provenance"] = a["interference"]["provenance"]
+        for b, v in a.get("_breed_notes", {}).items():
+            asrc[f"breed_notes.{b}"] = v.source + (f" [{v.locator}]" if v.locator else "")
+            asrc[f"breed_notes.{b}.provenance"] = v.provenance
         cited[aid] = cn
         sources.update({f"analytes.{aid}.{k}": v for k, v in asrc.items()})
         analytes[aid] = _build_analyte(aid, a, cn, asrc)
     return Pack(id=meta["id"], species=meta["species"], title=meta["title"], version=meta["version"],
                 sha256=sha, analytes=analytes, retest_groups=groups, defaults=defaults, sources=sources,
                 cited=cited, description=meta.get("description", ""),
-                warnings=consistency_warnings(analytes))
+                warnings=consistency_warnings(analytes), acknowledged=consistency_acknowledged(analytes))
 
 
 # --------------------------------------------------------------------------- loading
@@ -241,7 +253,8 @@ def _with_overrides(pack: Pack, raw: bytes, path: str | Path) -> Pack:
     if problems:
         raise PackError(problems)
     return replace(merged, id=f"{pack.id}+{opath.stem}", sha256=hashlib.sha256(raw + obytes).hexdigest(),
-                   warnings=consistency_warnings(merged.analytes))
+                   warnings=consistency_warnings(merged.analytes),
+                   acknowledged=consistency_acknowledged(merged.analytes))
 
 
 class Check(NamedTuple):

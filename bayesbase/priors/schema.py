@@ -19,9 +19,9 @@ from .. import units as _units
 
 __all__ = [
     "PROVENANCES", "HASHED_PROVENANCES", "LAB_PROVENANCE", "DIRECTIONS", "HIL", "DESIGNS",
-    "MIN_LOG_SD_FROM_MEMORY", "COMBINE_RTOL", "INTERVAL_CV_TOLERANCE", "CitedNumber", "CviStudy",
-    "Collector", "hint", "parse_pack", "check_pack_meta", "interval_consistency", "consistency_warnings",
-    "breed_key",
+    "MIN_LOG_SD_FROM_MEMORY", "COMBINE_RTOL", "INTERVAL_CV_TOLERANCE", "GAP_RATIO_RTOL", "CitedNumber",
+    "CitedNote", "CviStudy", "IntervalGap", "Collector", "hint", "parse_pack", "check_pack_meta",
+    "interval_consistency", "consistency_warnings", "consistency_acknowledged", "breed_key",
 ]
 
 #: Provenance values a pack file may use. "estimated": from a study or reference sample run by
@@ -43,6 +43,9 @@ COMBINE_RTOL = 0.02
 #: Relative gap between the total log-SD the CVs imply and the one the population interval
 #: implies above which a pack gets a consistency warning.
 INTERVAL_CV_TOLERANCE = 0.25
+#: An analyte's ``interval_gap`` acknowledges the gap only while the ratio it states matches the
+#: ratio the pack's numbers give within this relative tolerance (else the warning comes back).
+GAP_RATIO_RTOL = 0.05
 
 _SHA256 = re.compile(r"(?<![0-9a-fA-F])[0-9a-fA-F]{64}(?![0-9a-fA-F])")
 
@@ -56,6 +59,27 @@ class CitedNumber:
     provenance: str
     note: str | None = None
     locator: str | None = None
+
+
+@dataclass(frozen=True)
+class CitedNote:
+    """A text with its source (a breed note): text, citation, provenance, optional locator and note."""
+
+    text: str
+    source: str
+    provenance: str
+    note: str | None = None
+    locator: str | None = None
+
+
+@dataclass(frozen=True)
+class IntervalGap:
+    """An acknowledged disagreement between an analyte's CVs and its population interval:
+    ``ratio`` is the CV-implied over the interval-implied total log-SD the pack's authors accept,
+    ``reason`` why both numbers are kept."""
+
+    ratio: float
+    reason: str
 
 
 @dataclass(frozen=True)
@@ -117,6 +141,8 @@ _ANALYTE_KEYS = {
     "feeding_sensitive": (_T_BOOL, False, None),
     "age_dependent": (_T_STR, False, None),
     "breed_centers": (_T_TABLE, False, None),
+    "breed_notes": (_T_TABLE, False, None),
+    "interval_gap": (_T_TABLE, False, None),
     "note": (_T_STR, False, None),
     "cvi_studies": (_T_LIST, False, None),
 }
@@ -126,6 +152,10 @@ _CITED_KEYS = ("value", "source", "provenance", "locator", "note")
 _STUDY_KEYS = ("value", "source", "provenance", "locator", "note", "design", "n_animals", "n_specimens",
                "n_replicates", "cva", "ci_lower", "ci_upper", "pooled")
 _INTERFERENCE_KEYS = (*HIL, "source", "provenance", "note")
+#: Keys of one breed note (``breed_notes.<breed>``): the note's text and its source.
+_BREED_NOTE_KEYS = ("text", "source", "provenance", "locator", "note")
+#: Keys of an analyte's ``interval_gap`` (an acknowledged CV / interval disagreement).
+_GAP_KEYS = ("ratio", "reason")
 
 
 # --------------------------------------------------------------------------- problems
@@ -366,6 +396,10 @@ def _check_analytes(c: Collector, analytes: dict, groups: dict) -> dict[str, dic
             got["_hil"] = _check_hil(c, f"{p}.hil_thresholds", got["hil_thresholds"])
         if "breed_centers" in got:
             got["_breeds"] = _check_breeds(c, f"{p}.breed_centers", got["breed_centers"])
+        if "breed_notes" in got:
+            got["_breed_notes"] = _check_breed_notes(c, f"{p}.breed_notes", got["breed_notes"])
+        if "interval_gap" in got:
+            got["_gap"] = _check_gap(c, f"{p}.interval_gap", got["interval_gap"])
         out[aid] = got
     return out
 
@@ -427,6 +461,52 @@ def _check_breeds(c: Collector, q: str, breeds: dict) -> dict[str, CitedNumber]:
         if cn is not None:
             out[b] = cn
     return out
+
+
+def _check_breed_note(c: Collector, q: str, v: Any) -> CitedNote | None:
+    if not isinstance(v, dict):
+        c.add(q, f"expected {{ text = \"...\", source = \"...\", provenance = \"...\" }}, got {type(v).__name__}")
+        return None
+    _unknown_keys(c, q, v, _BREED_NOTE_KEYS)
+    text = v.get("text")
+    ok = isinstance(text, str) and bool(text.strip())
+    if not ok:
+        c.add(f"{q}.text", "missing required key (non-empty string: the note shown for this breed)")
+    ok = _cited_source(c, q, v) and ok
+    ok = _cited_text(c, q, v) and ok
+    if not ok:
+        return None
+    locator = v.get("locator")
+    return CitedNote(text.strip(), v["source"].strip(), v["provenance"], v.get("note"),
+                     locator.strip() if locator else None)
+
+
+def _check_breed_notes(c: Collector, q: str, notes: dict) -> dict[str, CitedNote]:
+    """``breed_notes``: breed key -> { text, source, provenance[, locator, note] }."""
+    out = {}
+    for b, v in notes.items():
+        if b != breed_key(b):
+            c.add(f"{q}.{b}", f"breed keys are lower case with underscores (use '{breed_key(b)}')")
+            continue
+        cn = _check_breed_note(c, f"{q}.{b}", v)
+        if cn is not None:
+            out[b] = cn
+    return out
+
+
+def _check_gap(c: Collector, q: str, gap: dict) -> IntervalGap | None:
+    """``interval_gap = { ratio, reason }``: the CV / interval ratio the pack accepts, and why."""
+    _unknown_keys(c, q, gap, _GAP_KEYS)
+    ratio, reason = gap.get("ratio"), gap.get("reason")
+    ok = True
+    if not (_is_number(ratio) and math.isfinite(ratio) and ratio > 0):
+        c.add(f"{q}.ratio", f"expected a positive number (the ratio sqrt(sG^2 + sI^2 + sA^2) / "
+                            f"(ln(upper/lower)/3.92) being acknowledged), got {ratio!r}")
+        ok = False
+    if not (isinstance(reason, str) and reason.strip()):
+        c.add(f"{q}.reason", "missing required key (non-empty string: why both numbers are kept)")
+        ok = False
+    return IntervalGap(float(ratio), reason.strip()) if ok else None
 
 
 # --------------------------------------------------------------------------- evidence behind CVI
@@ -526,18 +606,47 @@ def interval_consistency(ri_lower: float, ri_upper: float, cvg: float, cvi: floa
     return s_interval, s_cvs, abs(s_cvs / s_interval - 1.0) > tolerance
 
 
-def consistency_warnings(analytes: dict, tolerance: float = INTERVAL_CV_TOLERANCE) -> tuple[str, ...]:
-    """Warnings (``"analytes.<id>: ..."``) for analytes whose CVs and population interval disagree.
+def _gap_state(a, tolerance: float) -> tuple[float, float, bool, IntervalGap | None, bool]:
+    """(s_interval, s_cvs, inconsistent, acknowledgement, acknowledgement still matches)."""
+    s_int, s_cvs, bad = interval_consistency(a.ri_lower, a.ri_upper, a.cvg, a.cvi, a.cva, tolerance)
+    gap = getattr(a, "interval_gap", None)
+    fits = gap is not None and math.isclose(s_cvs / s_int, gap.ratio, rel_tol=GAP_RATIO_RTOL)
+    return s_int, s_cvs, bad, gap, fits
 
-    ``analytes`` maps ids to objects with ``ri_lower, ri_upper, cvg, cvi, cva, unit``.
+
+def _gap_text(a, s_int: float, s_cvs: float, tolerance: float) -> str:
+    return (f"the CVs give a total log-SD sqrt(sG^2 + sI^2 + sA^2) = {s_cvs:.3f}, "
+            f"{s_cvs / s_int:.2f} times the {s_int:.3f} of the population interval "
+            f"{a.ri_lower:.4g}-{a.ri_upper:.4g} {a.unit} as a central 95 % (ln(upper/lower)/3.92); "
+            f"more than {100 * tolerance:g} % apart")
+
+
+def consistency_warnings(analytes: dict, tolerance: float = INTERVAL_CV_TOLERANCE) -> tuple[str, ...]:
+    """Warnings (``"analytes.<id>: ..."``) for analytes whose CVs and population interval disagree
+    and whose ``interval_gap`` does not acknowledge that very disagreement (none, or a stated
+    ratio more than :data:`GAP_RATIO_RTOL` away from the one the numbers give, e.g. after a lab
+    override changed a CV).
+
+    ``analytes`` maps ids to objects with ``ri_lower, ri_upper, cvg, cvi, cva, unit`` and
+    optionally ``interval_gap`` (:class:`IntervalGap`).
     """
     out = []
     for aid, a in analytes.items():
-        s_int, s_cvs, bad = interval_consistency(a.ri_lower, a.ri_upper, a.cvg, a.cvi, a.cva, tolerance)
-        if bad:
-            out.append(f"analytes.{aid}: the CVs give a total log-SD sqrt(sG^2 + sI^2 + sA^2) = {s_cvs:.3f}, "
-                       f"{s_cvs / s_int:.2f} times the {s_int:.3f} of the population interval "
-                       f"{a.ri_lower:.4g}-{a.ri_upper:.4g} {a.unit} as a central 95 % (ln(upper/lower)/3.92); "
-                       f"more than {100 * tolerance:g} % apart")
+        s_int, s_cvs, bad, gap, fits = _gap_state(a, tolerance)
+        if bad and not fits:
+            stale = (f"; its interval_gap acknowledges a ratio of {gap.ratio:g}, which no longer matches"
+                     if gap is not None else "")
+            out.append(f"analytes.{aid}: {_gap_text(a, s_int, s_cvs, tolerance)}{stale}")
     return tuple(out)
 
+
+def consistency_acknowledged(analytes: dict, tolerance: float = INTERVAL_CV_TOLERANCE) -> tuple[str, ...]:
+    """The disagreements a pack acknowledges (``"analytes.<id>: ... kept: <reason>"``): the CVs and
+    the interval are more than ``tolerance`` apart and ``interval_gap`` states that ratio."""
+    out = []
+    for aid, a in analytes.items():
+        s_int, s_cvs, bad, gap, fits = _gap_state(a, tolerance)
+        if bad and fits:
+            out.append(f"analytes.{aid}: {_gap_text(a, s_int, s_cvs, tolerance)}; acknowledged "
+                       f"(interval_gap), both kept: {gap.reason}")
+    return tuple(out)

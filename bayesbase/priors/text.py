@@ -30,6 +30,10 @@ def _describe_rows(pack, aid: str) -> list[dict]:
                          source=_study_source(st), provenance=st.provenance))
     rows.append(dict(analyte=aid, field="ii", value=prior.ii, unit="ratio",
                      source="derived here: CVI / CVG (Harris orientation)", provenance="derived"))
+    for b, text in prior.breed_notes.items():
+        rows.append(dict(analyte=aid, field=f"breed_notes.{b}", value=math.nan, unit="",
+                         source=f"{text}; {prior.sources.get(f'breed_notes.{b}', '')}",
+                         provenance=prior.sources.get(f"breed_notes.{b}.provenance", "")))
     if prior.interference:
         rows.append(dict(analyte=aid, field="interference", value=math.nan, unit="",
                          source=f"{', '.join(f'{k} {v}' for k, v in prior.interference.items())}; "
@@ -90,13 +94,17 @@ def _analyte_block(pack, aid: str, lines: _Lines) -> list[str]:
         f"  CVA {prior.cva:.4g}  II {prior.ii:.2f}  centre {prior.center:.4g}"
         f" ({prior.ri_lower:.4g}-{prior.ri_upper:.4g})", width=lines.width, subsequent_indent="    ")
     prefix = f"analytes.{aid}: "
-    for w in pack.warnings:
-        if w.startswith(prefix):
-            out += textwrap.wrap("WARNING: " + w[len(prefix):], width=lines.width, initial_indent="  ",
-                                 subsequent_indent="    ")
+    for label, items in (("WARNING", pack.warnings), ("CVs vs interval", getattr(pack, "acknowledged", ()))):
+        for w in items:
+            if w.startswith(prefix):
+                out += textwrap.wrap(f"{label}: " + w[len(prefix):], width=lines.width, initial_indent="  ",
+                                     subsequent_indent="    ")
     for fld, cn in pack.cited[aid].items():
         loc = f" [{cn.locator}]" if cn.locator else ""
         out += lines.source(f"{fld} = {cn.value:.4g} ({cn.provenance}):", cn.source + loc)
+    for b, text in prior.breed_notes.items():
+        out += lines.source(f"breed note ({b}, {prior.sources.get(f'breed_notes.{b}.provenance', '')}): {text}:",
+                            prior.sources.get(f"breed_notes.{b}", ""))
     if prior.cvi_studies:
         out += _studies_block(prior, lines)
     return out

@@ -9,6 +9,7 @@ References for the numbers named in the sentences are listed in :mod:`bayesbase.
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -273,10 +274,78 @@ def group_title(group: str) -> str:
     return group.replace("_", " ").capitalize()
 
 
+_AUTHOR = re.compile(r"^((?:(?:de|van|von|der|le|la|du|dos|da)\s+)*[A-Z][\w'\-]+(?:\s+[A-Z][\w'\-]{2,})*)"
+                     r"\s+[A-Z]{1,4}(?=[,.\s]|$)")
+_YEAR = re.compile(r"\b(19|20)\d{2}\b")
+_SHORT_LIMIT = 80
+
+
+def _top_parens(text: str) -> list[str]:
+    """The top-level parenthesised segments of ``text`` (nested parentheses kept inside)."""
+    out, depth, start = [], 0, 0
+    for i, ch in enumerate(text):
+        if ch == "(":
+            if depth == 0:
+                start = i + 1
+            depth += 1
+        elif ch == ")" and depth:
+            depth -= 1
+            if depth == 0:
+                out.append(text[start:i])
+    return out
+
+
+def _citation_parts(seg: str) -> tuple[str, bool, str | None, str] | None:
+    """(first author's surname, more authors?, year, journal or venue) of a citation, or None."""
+    seg = seg.strip()
+    authors = re.split(r"\.\s", seg, maxsplit=1)[0]
+    m = _AUTHOR.match(authors)
+    if m is None:
+        return None
+    several = "et al" in authors or "," in authors
+    parts = [x.strip() for x in re.split(r"\.\s+", seg)[1:] if x.strip()]
+    year_m = _YEAR.search(seg)
+    venue = None
+    for part in parts:
+        y = _YEAR.search(part)
+        if y and not part.lower().startswith(("doi", "http")):
+            venue = part[:y.start()]
+            break
+    if venue is None and len(parts) >= 2:
+        venue = parts[1]
+    elif venue is None and parts:
+        venue = parts[0]
+    venue = re.split(r",|;|\(|https?://", venue or "")[0].strip().rstrip(".")
+    venue = re.sub(r"\b(reviewed|updated|accessed)\s+\w+\s*$", "", venue).strip().rstrip(",")
+    return m.group(1), several, year_m.group(0) if year_m else None, venue
+
+
+def short_citation(source: str | None) -> str | None:
+    """A short form of a source for one sentence: first author, year, journal ("Center 2007, Vet
+    Clin North Am Small Anim Pract"), prefixed "bayesbase modelling choice after" when the source
+    is one. The whole text stays in the pack (``bayesbase priors show``). When no citation can be
+    found in the text, its first words, cut at :data:`_SHORT_LIMIT` characters."""
+    if not source:
+        return None
+    choice = "modelling choice" in source
+    for seg in _top_parens(source):
+        got = _citation_parts(seg)
+        if got is None:
+            continue
+        name, several, year, venue = got
+        cite = name + (" et al." if several else "") + (f" {year}" if year else "") + (f", {venue}" if venue else "")
+        return f"bayesbase modelling choice after {cite}" if choice else cite
+    text = source.strip()
+    return text if len(text) <= _SHORT_LIMIT else text[:_SHORT_LIMIT - 1].rstrip() + "\u2026"
+
+
 def advice_line(title_: str, analytes, when: str, source: str | None) -> Phrase:
+    """The retest sentence of a group; its source in short form (:func:`short_citation`), the whole
+    citation being in the pack (``bayesbase priors show``)."""
     parts = [(title_, "b"), (f" ({', '.join(analytes)}): retest in ", ""), (when, "b")]
-    if source:
-        parts += [(" ", ""), (f"(source: {source})", "small")]
+    short = short_citation(source)
+    if short:
+        parts += [(" ", ""), (f"({short}; full source: bayesbase priors show)", "small")]
     return Phrase(tuple(parts + [(".", "")]))
 
 
