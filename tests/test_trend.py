@@ -469,3 +469,109 @@ def test_mcmc_limit_stage_matches_crossing_times_per_draw():
     assert "p_beyond_limit" not in away
     none = _limit_summaries(post, dt, np.nan, np.nan, 0.95, 10.0)
     assert none["limit_side"] == "" and set(none) == {"theta_last_mean", "limit_side"}
+
+
+# ------------------------------------------------ fast kernels against plain scipy references
+def _brentq_mixture(q, w, m, s):
+    # reference: scipy.optimize.brentq on the mixture CDF built from scipy.stats.norm.cdf
+    from scipy import optimize
+
+    lo, hi = np.min(m - 40 * s), np.max(m + 40 * s)
+    return optimize.brentq(lambda x: np.sum(w * stats.norm.cdf(x, m, s)) - q, lo, hi, xtol=1e-14)
+
+
+def _reference_series(t, y, r, e, mu, sg, cvi, s, sa, sb, pi, lim_up, lim_lo, nodes=16, ci=0.95):
+    """One series the plain way: per node the two marginal likelihoods from
+    scipy.stats.multivariate_normal (covariance X D X' + V), the conjugate bivariate posterior
+    by numpy.linalg, mixture quantiles and crossing times by scipy.optimize.brentq."""
+    from scipy import optimize
+    from scipy.special import expit, logsumexp
+
+    use = np.isfinite(t) & np.isfinite(y) & (r > 0)
+    t, y, r, e = t[use], y[use], r[use], e[use]
+    tc = t - t.mean()
+    X = np.column_stack([np.ones(t.size), tc])
+    x, wn = np.polynomial.hermite_e.hermegauss(nodes)
+    wn = wn / wn.sum()
+    l0, l1, mt, mb, cov = (np.zeros(nodes) for _ in range(5))
+    covs = []
+    for k in range(nodes):
+        v = np.log1p((cvi * np.exp(s * x[k])) ** 2) + sa**2 / r + e
+        D = np.diag([sg**2, sb**2])
+        l0[k] = stats.multivariate_normal(np.full(t.size, mu), sg**2 + np.diag(v)).logpdf(y)
+        l1[k] = stats.multivariate_normal(np.full(t.size, mu), X @ D @ X.T + np.diag(v)).logpdf(y)
+        S = np.linalg.inv(X.T @ (X / v[:, None]) + np.linalg.inv(D))
+        mt[k], mb[k] = S @ (X.T @ (y / v) + np.array([mu / sg**2, 0.0]))
+        covs.append(S)
+    lw1 = np.log(wn) + l1
+    log_bf = logsumexp(lw1) - logsumexp(np.log(wn) + l0)
+    w = np.exp(lw1 - logsumexp(lw1))
+    vb = np.array([c[1, 1] for c in covs])
+    a = 0.5 * (1 - ci)
+    out = dict(log_bf10=log_bf, p_drift=expit(np.log(pi / (1 - pi)) + log_bf), slope_mean=np.sum(w * mb),
+               slope_lower=_brentq_mixture(a, w, mb, np.sqrt(vb)),
+               slope_upper=_brentq_mixture(1 - a, w, mb, np.sqrt(vb)))
+    tl = t.max() - t.mean()
+    m_last = mt + mb * tl
+    v_last = np.array([c[0, 0] + 2 * tl * c[0, 1] + tl * tl * c[1, 1] for c in covs])
+    c_lb = np.array([c[0, 1] + tl * c[1, 1] for c in covs])
+    sign, lim = (1.0, lim_up) if out["slope_mean"] > 0 else (-1.0, lim_lo)
+    if np.isfinite(lim):
+        def beyond(tau):  # P(set point beyond the limit tau years after the last specimen)
+            sd = np.sqrt(v_last + 2 * tau * c_lb + tau * tau * vb)
+            return np.sum(w * stats.norm.cdf((sign * (m_last + mb * tau) - sign * lim) / sd))
+        for key, q in (("years_to_limit", 0.5), ("years_to_limit_lower", a), ("years_to_limit_upper", 1 - a)):
+            if beyond(0.0) >= q:
+                out[key] = 0.0
+            elif beyond(TREND_HORIZON_YEARS) < q:
+                out[key] = np.inf
+            else:
+                out[key] = optimize.brentq(lambda tau: beyond(tau) - q, 0.0, TREND_HORIZON_YEARS, xtol=1e-12)
+    return out
+
+
+@pytest.fixture(params=["compiled", "numpy"])
+def kernel_path(request, monkeypatch):
+    """Run a test with the numba loops (a declared dependency) and with the numpy/scipy path
+    small inputs take."""
+    from bayesbase.model import normal
+
+    if request.param == "compiled":
+        assert normal.prepare(10**9)
+    else:
+        monkeypatch.setattr(normal, "_kernels", lambda size=None: None)
+    return request.param
+
+
+def test_trend_fast_path_equals_plain_reference(kernel_path):
+    """Seeded series with padding, replicates, extra variance, CVI uncertainty from none to
+    large and both limits: the blocked kernel equals the plain per-series computation (scipy's
+    multivariate normal, numpy.linalg, brentq) to 1e-9 on probabilities, 1e-8 on slope limits
+    and 1e-6 years on the time to a limit (the solver's tolerance is 1e-7), in blocks of 7 and
+    in one block."""
+    rng = np.random.default_rng(4242)
+    n, j = 40, 6
+    t = np.sort(rng.uniform(0, 6, (n, j)), axis=1)
+    y = np.log(90) + rng.normal(0, 0.2, (n, 1)) + rng.normal(0, 0.12, (n, 1)) * (t - 3) + rng.normal(0, 0.08, (n, j))
+    y[rng.random((n, j)) < 0.1] = np.nan
+    r = rng.choice([0.0, 1.0, 1.0, 1.0, 2.0], (n, j))
+    e = np.where(rng.random((n, j)) < 0.15, rng.uniform(0, 0.01, (n, j)), 0.0)
+    mu = np.log(90) + rng.normal(0, 0.1, n)
+    sg, cvi, s = rng.uniform(0.1, 0.4, n), rng.uniform(0.03, 0.3, n), rng.choice([0.0, 0.1, 0.4, 0.9], n)
+    sa, sb, pi = rng.uniform(0, 0.05, n), rng.choice([0.03, 0.1, 0.3], n), rng.uniform(0.05, 0.6, n)
+    lu, ll = np.log(rng.uniform(110, 200, n)), np.log(rng.uniform(30, 80, n))
+    for chunk in (7, 20_000):
+        out = trend_exact(t, y, r, e, mu, sg, cvi, s, sa, sb, prior_drift=pi, limit_upper=lu, limit_lower=ll,
+                          nodes=16, chunk=chunk)
+        checked = 0
+        for i in np.nonzero(out["eligible"])[0]:
+            ref = _reference_series(t[i], y[i], r[i], e[i], mu[i], sg[i], cvi[i], s[i], sa[i], sb[i], pi[i],
+                                    lu[i], ll[i])
+            for key, val in ref.items():
+                tol = {"log_bf10": 1e-9 * max(1, abs(val)), "slope_lower": 1e-8, "slope_upper": 1e-8}.get(key, 1e-9)
+                if key.startswith("years"):
+                    tol = 1e-6
+                got = out[key][i]
+                assert (np.isinf(got) and np.isinf(val)) or abs(got - val) <= tol, (key, i, got, val)
+            checked += 1
+        assert checked >= 30

@@ -13,7 +13,11 @@ Model (one animal, one analyte, natural-log scale)::
 Given sI the set point posterior is normal (McIntosh & Urban, Biostatistics 2003;4:27-40, the
 normal-normal empirical-Bayes algebra); the marginal likelihood of the baselines weights the
 quadrature nodes, so every predictive quantity is a finite normal mixture. Mixture quantiles
-are found by safeguarded Newton iterations (bisection fallback).
+are found by safeguarded fourth-order iterations (bisection fallback; :mod:`.normal`).
+
+Cases are scored in blocks of about ``_BLOCK_ELEMS / nodes`` rows so every (case, node) array
+stays in the CPU cache; the usual case (baselines of equal variance) reduces to counts, sums and
+sums of squares, and the per-node CVI terms are computed once per distinct (CVI, uncertainty).
 
 References
 ----------
@@ -31,6 +35,8 @@ import numpy as np
 from scipy import special
 
 from ..constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DEFAULT_QUAD_NODES
+from . import normal
+from .normal import mixture_quantile, ndtr, ndtr_e
 
 __all__ = [
     "CaseArrays",
@@ -168,91 +174,268 @@ def quadrature(n: int = DEFAULT_QUAD_NODES, kind: str = "gh"):
     raise ValueError(f"unknown quadrature kind {kind!r}")
 
 
-def _logsumexp(a, b=None, axis=-1):
-    return special.logsumexp(a, b=b, axis=axis)
+
+#: (case, node) elements per block: about 0.5 MB per float64 array, within a core's L2 cache
+_BLOCK_ELEMS = 65_536
+
+#: the keys of :func:`exact_assess`, in order
+OUTPUT_KEYS = (
+    "n_baseline", "theta_mean", "theta_lower", "theta_upper", "cvi_post_mean", "pi_lower",
+    "pi_upper", "percentile", "log_bf10", "bf10", "p_change", "p_increase", "p_exceed_delta",
+)
 
 
-def mixture_quantile(q, weights, means, sds, tol=1e-9, max_iter=60):
-    """Quantile ``q`` of the normal mixture sum_k weights[..., k] N(means, sds^2), vectorised.
-
-    ``weights`` are normalised along the last axis. Newton from the moment-matched normal,
-    kept inside a bisection bracket so it always converges.
-    """
-    weights = np.asarray(weights, float)
-    means = np.asarray(means, float)
-    sds = np.asarray(sds, float)
-    q = np.broadcast_to(np.asarray(q, float), means.shape[:-1])
-    mu = np.sum(weights * means, axis=-1)
-    var = np.sum(weights * (sds**2 + means**2), axis=-1) - mu**2
-    x = mu + np.sqrt(np.maximum(var, 1e-300)) * special.ndtri(q)
-    lo = np.min(means - 12.0 * sds, axis=-1)
-    hi = np.max(means + 12.0 * sds, axis=-1)
-    inv_sd = 1.0 / sds
-    for _ in range(max_iter):
-        z = (x[..., None] - means) * inv_sd
-        f = np.sum(weights * special.ndtr(z), axis=-1) - q
-        dens = np.sum(weights * np.exp(-0.5 * z * z) * inv_sd, axis=-1) / np.sqrt(2 * np.pi)
-        lo = np.where(f < 0, np.maximum(lo, x), lo)
-        hi = np.where(f > 0, np.minimum(hi, x), hi)
-        step = f / np.maximum(dens, 1e-300)
-        x_new = x - step
-        done = np.abs(step) <= tol
-        # a Newton step leaving the bracket falls back to bisection (never for converged points,
-        # whose bracket may have collapsed onto them by rounding)
-        bad = ~done & ~((x_new > lo) & (x_new < hi))
-        x_new = np.where(bad, 0.5 * (lo + hi), x_new)
-        x = x_new
-        if np.all(done):
-            break
-    return x
+def _logsumexp(a, axis=-1):
+    """log(sum(exp(a))) along the last axis (rows of -inf give -inf)."""
+    mx = np.max(a, axis=axis, keepdims=True)
+    mx[~np.isfinite(mx)] = 0.0
+    with np.errstate(divide="ignore"):
+        return np.log(np.sum(np.exp(a - mx), axis=axis)) + mx[..., 0]
 
 
-def _posterior_given_nodes(cases: CaseArrays, x_nodes, w_nodes):
-    """Per case and node: set-point posterior mean/variance, sI^2, and log weights."""
-    cvi_k = cases.cvi[:, None] * np.exp(cases.cvi_log_sd[:, None] * x_nodes[None, :])  # (C,K)
-    si2 = np.log1p(cvi_k * cvi_k)  # (C,K)
-    sg2 = cases.sg**2
-    mask = cases.mask  # (C,J)
-    r = np.where(mask, cases.base_r, 1.0)
-    # centre at the prior mean for numerical stability
-    yc = np.where(mask, cases.base_y - cases.prior_mean[:, None], 0.0)  # (C,J)
-    ev = (cases.sa[:, None] ** 2) / r + cases.base_extra_var  # (C,J)
-    n_b = mask.sum(-1).astype(float)  # (C,)
-    # Fast path: when every baseline of a case has the same variance (same replicates, no extra
-    # variance: the usual case) the sums over j collapse to counts, sums and sums of squares.
+def _node_cvi(cvi, s, x_nodes):
+    """CVI and sI^2 = ln(1 + CVI^2) at each node, (C, K); computed once per distinct
+    (CVI, uncertainty) pair of the block."""
+    key = cvi + 1j * s
+    uniq, inv = np.unique(key, return_inverse=True)
+    if uniq.size * 4 <= key.size:
+        cvi_k = uniq.real[:, None] * np.exp(uniq.imag[:, None] * x_nodes[None, :])
+        si2 = np.log1p(cvi_k * cvi_k)
+        return cvi_k[inv], si2[inv]
+    cvi_k = cvi[:, None] * np.exp(s[:, None] * x_nodes[None, :])
+    return cvi_k, np.log1p(cvi_k * cvi_k)
+
+
+def _uniform_terms(si2, ev0, yc, n_b, sg2):
+    """Posterior mean (centred), variance and log marginal likelihood (up to a per-case
+    constant) per node when every baseline of a case has the same variance ``ev0``."""
+    k = normal._kernels(si2.size)
+    if k:
+        m_c, pv = np.empty_like(si2), np.empty_like(si2)
+        lg = np.empty((3,) + si2.shape)
+        k.engine_post_k(si2, ev0, n_b, yc.sum(-1), np.einsum("ij,ij->i", yc, yc), sg2, m_c, pv, lg)
+        np.log(lg[:2], out=lg[:2])
+        lml = lg[0] * n_b[:, None]
+        lml += lg[1]
+        lml += lg[2]
+        lml *= -0.5
+        return m_c, pv, lml
+    nb = n_b[:, None]
+    sy = yc.sum(-1)[:, None]
+    syy = np.einsum("ij,ij->i", yc, yc)[:, None]
+    v0 = si2 + ev0[:, None]
+    inv0 = 1.0 / v0
+    prec = inv0 * nb
+    prec += 1.0 / sg2[:, None]
+    pv = 1.0 / prec
+    m_c = inv0 * sy
+    m_c *= pv
+    # log ml = -0.5 (n ln v0 + ln(sG^2 prec) + (syy - m_c sy) / v0), constants dropped
+    lml = np.log(v0)
+    lml *= nb
+    prec *= sg2[:, None]
+    lml += np.log(prec)
+    t = m_c * sy
+    np.subtract(syy, t, out=t)
+    t *= inv0
+    lml += t
+    lml *= -0.5
+    return m_c, pv, lml
+
+
+def _general_terms(si2, ev, yc, mask, sg2):
+    """As :func:`_uniform_terms` for baselines of unequal variance (replicates, extra variance)."""
+    v = si2[:, :, None] + ev[:, None, :]  # (C,K,J)
+    mg = mask[:, None, :]
+    inv_v = np.where(mg, 1.0 / v, 0.0)
+    yg = yc[:, None, :]
+    prec = 1.0 / sg2[:, None] + inv_v.sum(-1)
+    b = (inv_v * yg).sum(-1)
+    sum_logv = np.where(mg, np.log(v), 0.0).sum(-1)
+    m_c = b / prec
+    lml = -0.5 * (sum_logv + np.log(sg2[:, None] * prec) + (inv_v * yg**2).sum(-1) - m_c * b)
+    return m_c, 1.0 / prec, lml
+
+
+def _node_posterior(f, x_nodes, log_w_nodes):
+    """Per case and node of a block: set-point posterior mean and variance, CVI, sI^2, and the
+    normalised posterior log weights and weights of the nodes."""
+    cvi_k, si2 = _node_cvi(f["cvi"], f["cvi_log_sd"], x_nodes)
+    sg2 = f["sg"] ** 2
+    mask = f["base_r"] > 0
+    r = np.where(mask, f["base_r"], 1.0)
+    yc = np.where(mask, f["base_y"] - f["prior_mean"][:, None], 0.0)
+    ev = (f["sa"][:, None] ** 2) / r + f["base_extra_var"]
+    n_b = mask.sum(-1).astype(float)
     ev0 = ev[:, 0]
     uniform = np.all((ev == ev0[:, None]) | ~mask, axis=-1)
-    prec = np.empty_like(si2)
-    b = np.empty_like(si2)
-    sum_logv = np.empty_like(si2)
-    sum_y2v = np.empty_like(si2)
-    if uniform.any():
-        u = uniform
-        v0 = si2[u] + ev0[u, None]  # (Cu,K)
-        inv0 = 1.0 / v0
-        sy = yc[u].sum(-1)[:, None]
-        syy = (yc[u] ** 2).sum(-1)[:, None]
-        nb = n_b[u, None]
-        prec[u] = 1.0 / sg2[u, None] + nb * inv0
-        b[u] = sy * inv0
-        sum_logv[u] = nb * (_LOG_2PI + np.log(v0))
-        sum_y2v[u] = syy * inv0
-    if not uniform.all():
-        g = ~uniform
-        v = si2[g][:, :, None] + ev[g][:, None, :]  # (Cg,K,J)
-        mg = mask[g][:, None, :]
-        inv_v = np.where(mg, 1.0 / v, 0.0)
-        yg = yc[g][:, None, :]
-        prec[g] = 1.0 / sg2[g, None] + inv_v.sum(-1)
-        b[g] = (inv_v * yg).sum(-1)
-        sum_logv[g] = np.where(mg, _LOG_2PI + np.log(v), 0.0).sum(-1)
-        sum_y2v[g] = (inv_v * yg**2).sum(-1)
-    m_c = b / prec
-    pv = 1.0 / prec
-    log_ml = -0.5 * (sum_logv + np.log(sg2[:, None] * prec) + sum_y2v - m_c * m_c * prec)
-    logw = np.log(w_nodes)[None, :] + log_ml
-    logw = logw - _logsumexp(logw, axis=-1)[:, None]
-    return m_c + cases.prior_mean[:, None], pv, si2, logw
+    if uniform.all():
+        m_c, pv, lml = _uniform_terms(si2, ev0, yc, n_b, sg2)
+    else:
+        m_c, pv, lml = (np.empty_like(si2) for _ in range(3))
+        for sel, fn in ((uniform, _uniform_terms), (~uniform, _general_terms)):
+            if sel.any():
+                args = (ev0[sel], yc[sel], n_b[sel]) if fn is _uniform_terms else (
+                    ev[sel], yc[sel], mask[sel])
+                m_c[sel], pv[sel], lml[sel] = fn(si2[sel], *args, sg2[sel])
+    lml += log_w_nodes[None, :]
+    # normalised weights and their logs with one exp pass (the maximum weight of a row is 1
+    # before normalising, so the sum never underflows)
+    lml -= np.max(lml, axis=-1, keepdims=True)
+    w = np.exp(lml)
+    tot = w.sum(-1, keepdims=True)
+    w /= tot
+    lml -= np.log(tot)
+    m_c += f["prior_mean"][:, None]
+    return m_c, pv, cvi_k, si2, lml, w
+
+
+def _prune(prune, w, logw, *arrays):
+    """Drop the nodes whose weight is below ``prune`` in every case of the block."""
+    if not (prune > 0 and w.shape[1] > 1):
+        return (w, logw) + arrays
+    keep = np.max(w, axis=0) > prune
+    if keep.all():
+        return (w, logw) + arrays
+    idx = np.nonzero(keep)[0]  # np.take keeps the arrays C-ordered (the compiled loops want it)
+    w = np.take(w, idx, axis=1)
+    tot = w.sum(-1, keepdims=True)
+    w /= tot
+    logw = np.take(logw, idx, axis=1) - np.log(tot)
+    return (w, logw) + tuple(np.take(a, idx, axis=1) for a in arrays)
+
+
+def _mix_log_density(w, logw, a2, var):
+    """log sum_k w_k N(r_k; 0, var_k) with a2 = r^2 / var (up to -0.5 ln 2 pi), and the
+    component posterior weights; falls back to log-sum-exp for rows that underflow."""
+    e = np.exp(-0.5 * a2)
+    u = e / np.sqrt(var)
+    u *= w
+    tot = u.sum(-1)
+    ok = tot > 1e-250
+    with np.errstate(divide="ignore"):
+        lp = np.log(tot)
+    post = u / np.where(ok, tot, 1.0)[:, None]
+    if not ok.all():
+        bad = ~ok
+        lb = logw[bad] - 0.5 * (np.log(var[bad]) + a2[bad])
+        lp[bad] = _logsumexp(lb)
+        post[bad] = np.exp(lb - lp[bad][:, None])
+    return lp, post, e
+
+
+def _score_sums(w, logw, m, new_var, yy, tau2):
+    """Per case: log predictive densities under H0 and H1 (up to -0.5 ln 2 pi), the percentile,
+    P(D > 0 | y*, H1), and for the tail probability the H1 node weights and the mean and SD of
+    D per node (None when the compiled loops did the sums)."""
+    k = normal._kernels(m.size)
+    if k:
+        n = m.shape[0]
+        t = np.empty((3,) + m.shape)
+        z0, zi = np.empty_like(m), np.empty_like(m)
+        k.score_prep_k(m, new_var, yy, tau2, t, z0, zi)
+        np.exp(t, out=t)
+        res = np.empty((n, 4))
+        k.score_sum_k(w, new_var, tau2, t, z0, zi, res)
+        ok = (res[:, 0] > 1e-250) & (res[:, 1] > 1e-250)
+        if ok.all():
+            with np.errstate(divide="ignore"):
+                lp = np.log(res[:, :2])
+            return lp[:, 0], lp[:, 1], res[:, 2], res[:, 3] / res[:, 1]
+        # an underflowing row (an extreme new value) takes the log-sum-exp path below
+        lp0, lp1, pct, p_inc = _score_sums_numpy(w, logw, m, new_var, yy, tau2)
+        lp = np.log(np.where(ok[:, None], res[:, :2], 1.0))
+        return (np.where(ok, lp[:, 0], lp0), np.where(ok, lp[:, 1], lp1),
+                np.where(ok, res[:, 2], pct), np.where(ok, res[:, 3] / np.where(ok, res[:, 1], 1.0), p_inc))
+    return _score_sums_numpy(w, logw, m, new_var, yy, tau2)
+
+
+def _score_sums_numpy(w, logw, m, new_var, yy, tau2):
+    """:func:`_score_sums` with numpy and scipy only."""
+    tau2 = tau2[:, None]
+    yy = yy[:, None]
+    v1 = new_var + tau2
+    resid = yy - m
+    r2 = resid * resid
+    lp0, _, e0 = _mix_log_density(w, logw, r2 / new_var, new_var)
+    lp1, w1, _ = _mix_log_density(w, logw, r2 / v1, v1)
+    pct = np.einsum("ij,ij->i", w, ndtr_e(resid / np.sqrt(new_var), e0))
+    d_mean = tau2 / v1 * resid
+    d_sd = np.sqrt(tau2 * new_var / v1)
+    p_inc = np.einsum("ij,ij->i", w1, ndtr(d_mean / d_sd))
+    return lp0, lp1, pct, p_inc
+
+
+def _tail(w, logw, m, new_var, yy, tau2, delta):
+    """P(|D| > delta | y*, H1) per case (cases with a finite ``delta``)."""
+    tau2 = tau2[:, None]
+    v1 = new_var + tau2
+    resid = yy[:, None] - m
+    lp1, w1, _ = _mix_log_density(w, logw, resid * resid / v1, v1)
+    d_mean = tau2 / v1 * resid
+    d_sd = np.sqrt(tau2 * new_var / v1)
+    dl = delta[:, None]
+    tail = ndtr((d_mean - dl) / d_sd) + ndtr((-dl - d_mean) / d_sd)
+    return np.einsum("ij,ij->i", w1, tail)
+
+
+def _scores(f, w, logw, m, new_var, theta_mean, out):
+    """Percentile, Bayes factor, P(change), P(increase), P(|D| > delta) of a block."""
+    y = f["new_y"]
+    has_y = np.isfinite(y)
+    yy = np.where(has_y, y, theta_mean)
+    tau2 = f["tau"] ** 2
+    lp0, lp1, pct, p_inc = _score_sums(w, logw, m, new_var, yy, tau2)
+    log_bf = lp1 - lp0
+    pi = f["prior_change"]
+    with np.errstate(divide="ignore"):
+        logit = np.log(pi) - np.log1p(-pi) + log_bf
+    p_change = special.expit(logit)
+    has_delta = np.isfinite(f["delta"]) & has_y
+    p_tail = np.full(y.shape, np.nan)
+    if has_delta.any():
+        d = has_delta
+        p_tail[d] = _tail(w[d], logw[d], m[d], new_var[d], yy[d], tau2[d], f["delta"][d])
+    nan = np.nan
+    out["percentile"] = np.where(has_y, pct, nan)
+    out["log_bf10"] = np.where(has_y, log_bf, nan)
+    out["bf10"] = np.exp(out["log_bf10"])
+    out["p_change"] = np.where(has_y, p_change, nan)
+    out["p_increase"] = np.where(has_y, p_inc, nan)
+    out["p_exceed_delta"] = np.where(has_delta, p_change * p_tail, nan)
+
+
+_FIELDS = ("prior_mean", "sg", "cvi", "cvi_log_sd", "sa", "base_y", "base_r", "base_extra_var",
+           "new_y", "new_r", "new_extra_var", "tau", "delta", "prior_change")
+
+
+def _assess_block(f, x_nodes, log_w_nodes, coverage, ci_prob, intervals, prune):
+    """Every output of :func:`exact_assess` for one block of cases (``f``: sliced fields)."""
+    m, pv, cvi_k, si2, logw, w = _node_posterior(f, x_nodes, log_w_nodes)
+    n = m.shape[0]
+    out: dict[str, np.ndarray] = {}
+    out["n_baseline"] = (f["base_r"] > 0).sum(-1).astype(float)
+    theta_mean = np.einsum("ij,ij->i", w, m)
+    out["theta_mean"] = theta_mean
+    # sqrt(expm1(sI^2)) is the node's CVI itself
+    out["cvi_post_mean"] = np.einsum("ij,ij->i", w, cvi_k)
+    new_var = pv + si2
+    new_var += (f["sa"] ** 2 / np.maximum(f["new_r"], 1.0) + f["new_extra_var"])[:, None]
+    # the scores use every node: an extreme new result can revive a node of negligible weight
+    _scores(f, w, logw, m, new_var, theta_mean, out)
+    a, b = 0.5 * (1.0 - ci_prob), 0.5 * (1.0 - coverage)
+    if intervals:
+        w, _, m, pv, new_var = _prune(prune, w, logw, m, pv, new_var)
+        sd_theta = np.sqrt(pv)
+        sd0 = np.sqrt(new_var)
+        out["theta_lower"] = mixture_quantile(np.full(n, a), w, m, sd_theta)
+        out["theta_upper"] = mixture_quantile(np.full(n, 1 - a), w, m, sd_theta)
+        out["pi_lower"] = mixture_quantile(np.full(n, b), w, m, sd0)
+        out["pi_upper"] = mixture_quantile(np.full(n, 1 - b), w, m, sd0)
+    else:
+        for key in ("theta_lower", "theta_upper", "pi_lower", "pi_upper"):
+            out[key] = np.full(n, np.nan)
+    return out
 
 
 def exact_assess(
@@ -276,81 +459,25 @@ def exact_assess(
     ``intervals=False`` skips the four mixture quantiles (set point and personal interval
     limits, returned as NaN) for bulk scoring: the personal-interval decision is then read from
     ``percentile`` (outside the central interval <=> percentile < (1-coverage)/2 or > (1+coverage)/2).
-    ``prune`` drops quadrature nodes whose posterior weight is below it in every case of the
-    chunk (their total contribution is below ``prune * nodes``).
+    Cases are scored in blocks of at most ``chunk`` rows (fewer when the nodes are many, so the
+    block stays in cache). ``prune``: the four quantiles leave out the quadrature nodes whose
+    posterior weight is below it in every case of the block (their total contribution is below
+    ``prune * nodes``); the scores always use every node.
     """
     if not 0 < coverage < 1 or not 0 < ci_prob < 1:
         raise ValueError("coverage and ci_prob must lie in (0, 1)")
     n = cases.n_cases
-    if n > chunk:
-        parts = [
-            exact_assess(
-                cases.subset(slice(i, i + chunk)), coverage, ci_prob, nodes, kind, chunk,
-                intervals, prune,
-            )
-            for i in range(0, n, chunk)
-        ]
-        return {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
-
     x_nodes, w_nodes = quadrature(nodes, kind)
-    m, pv, si2, logw = _posterior_given_nodes(cases, x_nodes, w_nodes)
-    w = np.exp(logw)
-    if prune > 0 and w.shape[1] > 1:
-        keep = np.max(w, axis=0) > prune
-        m, pv, si2, w = m[:, keep], pv[:, keep], si2[:, keep], w[:, keep]
-        with np.errstate(divide="ignore"):  # weights that underflowed to 0 give -inf, as intended
-            logw = np.log(w)
-        w = w / w.sum(-1, keepdims=True)
-        logw = logw - np.log(np.sum(np.exp(logw), -1, keepdims=True))
-    out: dict[str, np.ndarray] = {}
-    out["n_baseline"] = cases.mask.sum(-1).astype(float)
-    theta_mean = np.sum(w * m, axis=-1)
-    out["theta_mean"] = theta_mean
-    a = 0.5 * (1.0 - ci_prob)
-    sd_theta = np.sqrt(pv)
-    nan = np.full(n, np.nan)
-    out["theta_lower"] = mixture_quantile(np.full(n, a), w, m, sd_theta) if intervals else nan
-    out["theta_upper"] = mixture_quantile(np.full(n, 1 - a), w, m, sd_theta) if intervals else nan
-    out["cvi_post_mean"] = np.sum(w * np.sqrt(np.expm1(si2)), axis=-1)
-
-    new_var = pv + si2 + (cases.sa**2 / np.maximum(cases.new_r, 1.0) + cases.new_extra_var)[:, None]
-    sd0 = np.sqrt(new_var)
-    b = 0.5 * (1.0 - coverage)
-    out["pi_lower"] = mixture_quantile(np.full(n, b), w, m, sd0) if intervals else nan
-    out["pi_upper"] = mixture_quantile(np.full(n, 1 - b), w, m, sd0) if intervals else nan
-
-    y = cases.new_y
-    has_y = np.isfinite(y)
-    yy = np.where(has_y, y, theta_mean)[:, None]
-    tau2 = (cases.tau**2)[:, None]
-    v1 = new_var + tau2
-    resid = yy - m
-    l0 = logw - 0.5 * (_LOG_2PI + np.log(new_var) + resid**2 / new_var)
-    l1 = logw - 0.5 * (_LOG_2PI + np.log(v1) + resid**2 / v1)
-    lp0 = _logsumexp(l0, axis=-1)
-    lp1 = _logsumexp(l1, axis=-1)
-    log_bf = lp1 - lp0
-    pi = cases.prior_change
-    # P(change) = pi BF / (pi BF + 1 - pi), computed on the log scale
     with np.errstate(divide="ignore"):
-        logit = np.log(pi) - np.log1p(-pi) + log_bf
-    p_change = special.expit(logit)
-    out["percentile"] = np.where(has_y, np.sum(w * special.ndtr(resid / sd0), axis=-1), np.nan)
-    # Under H1, D | y*, node k ~ N(tau^2/V1 * resid, tau^2 V0 / V1)
-    w1 = np.exp(l1 - lp1[:, None])
-    d_mean = tau2 / v1 * resid
-    d_sd = np.sqrt(tau2 * new_var / v1)
-    p_inc = np.sum(w1 * special.ndtr(d_mean / d_sd), axis=-1)
-    has_delta = np.isfinite(cases.delta)
-    if has_delta.any():
-        delta = np.where(has_delta, cases.delta, 0.0)[:, None]
-        tail = special.ndtr((d_mean - delta) / d_sd) + special.ndtr((-delta - d_mean) / d_sd)
-        p_tail = np.sum(w1 * tail, axis=-1)
-    else:
-        p_tail = np.full(n, np.nan)
-    out["log_bf10"] = np.where(has_y, log_bf, np.nan)
-    out["bf10"] = np.exp(out["log_bf10"])
-    out["p_change"] = np.where(has_y, p_change, np.nan)
-    out["p_increase"] = np.where(has_y, p_inc, np.nan)
-    out["p_exceed_delta"] = np.where(has_y & has_delta, p_change * p_tail, np.nan)
+        log_w_nodes = np.log(w_nodes)
+    block = max(1, min(int(chunk), _BLOCK_ELEMS // x_nodes.size))
+    normal.prepare(n * x_nodes.size)
+    fields = {k: getattr(cases, k) for k in _FIELDS}
+    out = {k: np.empty(n) for k in OUTPUT_KEYS}
+    for i in range(0, n, block):
+        sl = slice(i, min(i + block, n))
+        res = _assess_block({k: v[sl] for k, v in fields.items()}, x_nodes, log_w_nodes,
+                            coverage, ci_prob, intervals, prune)
+        for k, v in res.items():
+            out[k][sl] = v
     return out

@@ -66,7 +66,9 @@ from ..constants import (
     TREND_MIN_SPAN_YEARS,
     TREND_MIN_SPECIMENS,
 )
-from .engine import cv_to_sigma, mixture_quantile, quadrature
+from .engine import _BLOCK_ELEMS, _logsumexp, _node_cvi, cv_to_sigma, mixture_quantile, quadrature
+from . import normal
+from .normal import ndtr, ndtr_e
 
 __all__ = [
     "DEFAULT_SLOPE_SD",
@@ -176,23 +178,71 @@ def _subset(p, idx):
 
 
 # ---------------------------------------------------------------------------------- kernels
-def _node_fits(p, x_nodes, w_nodes):
-    """Per series and node: log marginal likelihoods under H0 and H1, and the H1 posterior of
-    (theta0, beta) (means and covariance entries), all (C, K)."""
-    cvi_k = p["cvi"][:, None] * np.exp(p["cvi_log_sd"][:, None] * x_nodes[None, :])  # (C,K)
-    si2 = cv_to_sigma(cvi_k) ** 2
+def _specimen_sums(p, si2):
+    """Per series and node: the sums over usable specimens of (1, t, t^2, y, t y, y^2) / v_j
+    (t, y centred; six (C, K) arrays) and of ln v_j, v_j = sI^2 + sA^2 / r_j + e_j. When every
+    specimen of a series has the same variance (the usual case) v_j is one number per node and
+    the sums are the plain sums divided by it."""
     mask = p["mask"]
     rr = np.where(mask, p["r"], 1.0)
     ev = (p["sa"][:, None] ** 2) / rr + p["extra_var"]  # (C,J)
-    v = si2[:, :, None] + ev[:, None, :]  # (C,K,J)
-    inv_v = np.where(mask[:, None, :], 1.0 / v, 0.0)
     tc = np.where(mask, p["times"] - p["t_ref"][:, None], 0.0)
     yc = np.where(mask, p["y"] - p["prior_mean"][:, None], 0.0)
-    # weighted sums over specimens of 1, t, t^2, y, t y, y^2 in one batched product
-    g = np.stack([np.ones_like(tc), tc, tc * tc, yc, tc * yc, yc * yc], axis=-1)  # (C,J,6)
-    sums = np.matmul(inv_v, g)  # (C,K,6)
-    s0, s1, s2, h0, h1, qq = (sums[..., i] for i in range(6))
-    common = (mask.sum(-1) * _LOG_2PI)[:, None] + np.log(np.where(mask[:, None, :], v, 1.0)).sum(-1) + qq
+    g = np.stack([mask.astype(float), tc, tc * tc, yc, tc * yc, yc * yc], axis=-1)  # (C,J,6)
+    ev0 = np.max(np.where(mask, ev, -np.inf), axis=-1)
+    ev0 = np.where(np.isfinite(ev0), ev0, 0.0)
+    uniform = np.all((ev == ev0[:, None]) | ~mask, axis=-1)
+    gs = g.sum(1)  # (C,6)
+    inv_v = 1.0 / (si2 + ev0[:, None])  # (C,K)
+    sums = [gs[:, i : i + 1] * inv_v for i in range(6)]
+    logv = np.log(inv_v)
+    logv *= -gs[:, 0:1]
+    if not uniform.all():
+        o = ~uniform
+        v = si2[o][:, :, None] + ev[o][:, None, :]  # (Co,K,J)
+        mo = mask[o][:, None, :]
+        so = np.matmul(np.where(mo, 1.0 / v, 0.0), g[o])
+        for i in range(6):
+            sums[i][o] = so[..., i]
+        logv[o] = np.log(np.where(mo, v, 1.0)).sum(-1)
+    return sums, logv
+
+
+def _node_fits_compiled(k, p, si2, w_nodes):
+    """:func:`_node_fits` in compiled loops when every series' specimens share one variance
+    (None otherwise)."""
+    mask = p["mask"]
+    ev = (p["sa"][:, None] ** 2) / np.where(mask, p["r"], 1.0) + p["extra_var"]
+    ev0 = np.max(np.where(mask, ev, -np.inf), axis=-1)
+    if not np.all((ev == ev0[:, None]) | ~mask):
+        return None
+    tc = np.where(mask, p["times"] - p["t_ref"][:, None], 0.0)
+    yc = np.where(mask, p["y"] - p["prior_mean"][:, None], 0.0)
+    gs = np.stack([mask.sum(-1).astype(float), tc.sum(-1), (tc * tc).sum(-1), yc.sum(-1),
+                   (tc * yc).sum(-1), (yc * yc).sum(-1)], axis=-1)
+    out = np.empty((7,) + si2.shape)
+    lg = np.empty((3,) + si2.shape)
+    k.trend_fit_k(si2, ev0, gs, p["sg"] ** 2, p["slope_sd"] ** 2, p["prior_mean"], out, lg)
+    np.log(lg, out=lg)
+    common = lg[0] * gs[:, 0:1]  # n ln v; the constant n ln(2 pi) cancels in every use
+    lw = np.log(w_nodes)[None, :]
+    ml0 = lw - 0.5 * (common + lg[1] + out[5])
+    ml1 = lw - 0.5 * (common + lg[2] + out[6])
+    return dict(ml0=ml0, ml1=ml1, m_t=out[0] + p["prior_mean"][:, None], m_b=out[1],
+                v_tt=out[2], v_tb=out[3], v_bb=out[4])
+
+
+def _node_fits(p, x_nodes, w_nodes):
+    """Per series and node: log marginal likelihoods under H0 and H1, and the H1 posterior of
+    (theta0, beta) (means and covariance entries), all (C, K)."""
+    _, si2 = _node_cvi(p["cvi"], p["cvi_log_sd"], x_nodes)  # sI^2 = ln(1 + CVI^2) per node
+    k = normal._kernels(si2.size)
+    if k:
+        fits = _node_fits_compiled(k, p, si2, w_nodes)
+        if fits is not None:
+            return fits
+    (s0, s1, s2, h0, h1, qq), logv = _specimen_sums(p, si2)
+    common = logv + qq  # the constant n ln(2 pi) cancels in every use
     sg2 = (p["sg"] ** 2)[:, None]
     sb2 = (p["slope_sd"] ** 2)[:, None]
     # H0: one coefficient (the set point), as in bayesbase.engine
@@ -202,19 +252,20 @@ def _node_fits(p, x_nodes, w_nodes):
     a00 = p0
     a11 = 1.0 / sb2 + s2
     det = a00 * a11 - s1 * s1
-    quad = (a11 * h0 * h0 - 2.0 * s1 * h0 * h1 + a00 * h1 * h1) / det
+    inv_det = 1.0 / det
+    quad = (a11 * h0 * h0 - 2.0 * s1 * h0 * h1 + a00 * h1 * h1) * inv_det
     ml1 = -0.5 * (common + np.log(sg2 * sb2 * det) - quad)
-    m_t = (a11 * h0 - s1 * h1) / det + p["prior_mean"][:, None]
-    m_b = (a00 * h1 - s1 * h0) / det
-    v_tt = a11 / det
-    v_tb = -s1 / det
-    v_bb = a00 / det
+    m_t = (a11 * h0 - s1 * h1) * inv_det + p["prior_mean"][:, None]
+    m_b = (a00 * h1 - s1 * h0) * inv_det
+    v_tt = a11 * inv_det
+    v_tb = -s1 * inv_det
+    v_bb = a00 * inv_det
     lw = np.log(w_nodes)[None, :]
     return dict(ml0=lw + ml0, ml1=lw + ml1, m_t=m_t, m_b=m_b, v_tt=v_tt, v_tb=v_tb, v_bb=v_bb)
 
 
 def _normalise(logw):
-    return np.exp(logw - special.logsumexp(logw, axis=-1)[:, None])
+    return np.exp(logw - _logsumexp(logw)[:, None])
 
 
 def _line_at(f, tc):
@@ -224,48 +275,122 @@ def _line_at(f, tc):
     return mean, var
 
 
-def _crossing_quantile(q, w, m0, v0, mb, c0b, vb, a, horizon, tol=1e-7, max_iter=80):
-    """Smallest tau in [0, horizon] with F(tau) = sum_k w_k Phi((m0 + mb tau - a) / s_k(tau)) = q,
-    s_k^2 = v0 + 2 tau c0b + tau^2 vb ("set point above a at tau years"). Returns 0 where F(0) >= q,
-    +inf where F(horizon) < q. Safeguarded Newton inside a bisection bracket, iterating only on
-    the rows not yet converged."""
+def _crossing_cdf(tau, w, m0, v0, mb, c0b, vb, a):
+    """F(tau) = sum_k w_k Phi(z_k(tau)) and dF/dtau, z = (m0 + mb tau - a) / s(tau),
+    s^2 = v0 + 2 tau c0b + tau^2 vb; ``tau`` and ``a`` are (N,), the rest (N, K)."""
+    t = tau[:, None]
+    slope = c0b + t * vb
+    s2 = v0 + t * (c0b + slope)
+    s = np.sqrt(np.maximum(s2, 1e-300))
+    num = m0 + mb * t - a[:, None]
+    z = num / s
+    dz = (mb - z * slope / s) / s
+    e = z * z
+    e *= -0.5
+    np.exp(e, out=e)
+    fval = np.einsum("ij,ij->i", w, ndtr_e(z, e))
+    dens = np.einsum("ij,ij->i", w, e * dz) / np.sqrt(2 * np.pi)
+    return fval, dens
+
+
+def _crossing_start(q, w, m0, v0, mb, c0b, vb, a, horizon):
+    """Start for F(tau) = q: the exact root for the one normal with the mixture's mean and
+    covariance of (theta_last, beta), i.e. (M - a + B tau)^2 = z_q^2 (V0 + 2 C tau + VB tau^2)
+    on the side sign(M - a + B tau) = sign(z_q); the middle of [0, horizon] when none fits."""
+    mm = np.einsum("ij,ij->i", w, m0)
+    bb = np.einsum("ij,ij->i", w, mb)
+    dm = m0 - mm[:, None]
+    db = mb - bb[:, None]
+    vv0 = np.einsum("ij,ij->i", w, v0 + dm * dm)
+    cc = np.einsum("ij,ij->i", w, c0b + dm * db)
+    vvb = np.einsum("ij,ij->i", w, vb + db * db)
+    z = float(special.ndtri(q))
+    d = mm - a
+    a2 = bb * bb - z * z * vvb
+    a1 = d * bb - z * z * cc
+    a0 = d * d - z * z * vv0
+    x = np.full(mm.shape, 0.5 * horizon)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        root = np.sqrt(a1 * a1 - a2 * a0)
+        for r in ((-a1 + root) / a2, (-a1 - root) / a2, -a0 / (2.0 * a1)):
+            fits = (r > 0) & (r < horizon) & (np.sign(d + bb * r) == np.sign(z))
+            take = fits & (x == 0.5 * horizon)
+            x[take] = r[take]
+    return x
+
+
+def _crossing_quantiles(qs, w, m0, v0, mb, c0b, vb, a, horizon, tol=1e-7, max_iter=80):
+    """For each q in ``qs``: the smallest tau in [0, horizon] with F(tau) = sum_k w_k
+    Phi((m0 + mb tau - a) / s_k(tau)) = q, s_k^2 = v0 + 2 tau c0b + tau^2 vb ("set point above a
+    at tau years"). 0 where F(0) >= q, +inf where F(horizon) < q. Safeguarded Newton inside a
+    bisection bracket from the one-normal root, iterating only on the rows not yet converged;
+    F(0) and F(horizon) are shared by the quantiles."""
     n = m0.shape[0]
     a = np.broadcast_to(np.asarray(a, float), (n,))
+    args = (w, m0, v0, mb, c0b, vb)
+    f0, _ = _crossing_cdf(np.zeros(n), *args, a)
+    fh, _ = _crossing_cdf(np.full(n, float(horizon)), *args, a)
+    res = []
+    for q in qs:
+        out = np.full(n, np.nan)
+        at0 = f0 >= q
+        beyond = (~at0) & (fh < q)
+        out[at0] = 0.0
+        out[beyond] = np.inf
+        act = np.nonzero(~(at0 | beyond))[0]
+        if act.size:
+            sub = tuple(v[act] for v in args)
+            out[act] = _crossing_newton(q, sub, a[act], horizon, tol, max_iter)
+        res.append(out)
+    return res
 
-    def f_and_d(tau, i):
-        t = tau[:, None]
-        s2 = v0[i] + 2.0 * t * c0b[i] + t * t * vb[i]
-        s = np.sqrt(np.maximum(s2, 1e-300))
-        num = m0[i] + mb[i] * t - a[i][:, None]
-        z = num / s
-        dz = (mb[i] * s - num * (c0b[i] + t * vb[i]) / s) / s2
-        fval = np.sum(w[i] * special.ndtr(z), -1)
-        dens = np.sum(w[i] * np.exp(-0.5 * z * z) * dz, -1) / np.sqrt(2 * np.pi)
-        return fval, dens
 
-    out = np.full(n, np.nan)
-    every = np.arange(n)
-    f0, _ = f_and_d(np.zeros(n), every)
-    fh, _ = f_and_d(np.full(n, float(horizon)), every)
-    at0 = f0 >= q
-    beyond = (~at0) & (fh < q)
-    out[at0] = 0.0
-    out[beyond] = np.inf
-    act = np.nonzero(~(at0 | beyond))[0]
-    if act.size == 0:
-        return out
+def _crossing_compiled(k, q, args, a, horizon, tol, max_iter):
+    """:func:`_crossing_newton` in compiled loops, with Halley steps (fewer iterations; the
+    same bracket and stopping rule)."""
+    n = a.size
     lo = np.zeros(n)
     hi = np.full(n, float(horizon))
-    # start: crossing time of the mixture-mean line, clipped into the bracket
-    mm0 = np.sum(w[act] * m0[act], -1)
-    mmb = np.sum(w[act] * mb[act], -1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        x0 = np.where(mmb > 0, (a[act] - mm0) / mmb, 0.5 * horizon)
-    x = np.full(n, np.nan)
-    x[act] = np.where((x0 > 0) & (x0 < horizon), x0, 0.5 * horizon)
+    x = _crossing_start(q, *args, a, horizon)
+    w, m0, v0, mb, c0b, vb = args
+    qv = np.full(n, float(q))
+    act = np.arange(n)
+    sub, aa, qa = args, a, qv
+    bufs = [np.empty_like(m0) for _ in range(4)]
+    res = np.empty((n, 3))
+    done = np.empty(n, dtype=np.bool_)
+    for _ in range(max_iter):
+        na = act.size
+        z, dz, d2z, e = (b[:na] for b in bufs)
+        k.cross_prep_k(act, x, sub[1], sub[2], sub[3], sub[4], sub[5], aa, z, dz, d2z, e)
+        np.exp(e, out=e)
+        k.cross_eval_k(z, dz, d2z, e, sub[0], qa, res[:na])
+        k.cross_update_k(act, res[:na], tol, x, lo, hi, done[:na])
+        dd = done[:na]
+        if dd.all():
+            break
+        if dd.any():
+            keep = ~dd
+            act = act[keep]
+            sub = tuple(v[keep] for v in sub)
+            aa, qa = aa[keep], qa[keep]
+    return x
+
+
+def _crossing_newton(q, args, a, horizon, tol, max_iter):
+    """Safeguarded Newton for :func:`_crossing_quantiles` on rows with F(0) < q <= F(horizon)."""
+    k = normal._kernels(args[1].size)
+    if k:
+        return _crossing_compiled(k, q, args, a, horizon, tol, max_iter)
+    n = a.size
+    lo = np.zeros(n)
+    hi = np.full(n, float(horizon))
+    x = _crossing_start(q, *args, a, horizon)
+    act = np.arange(n)
+    sub, aa = args, a
     for _ in range(max_iter):
         xa = x[act]
-        fv, dv = f_and_d(xa, act)
+        fv, dv = _crossing_cdf(xa, *sub, aa)
         g = fv - q
         lo[act] = np.where(g < 0, xa, lo[act])
         hi[act] = np.where(g >= 0, xa, hi[act])
@@ -276,36 +401,43 @@ def _crossing_quantile(q, w, m0, v0, mb, c0b, vb, a, horizon, tol=1e-7, max_iter
         x_new = np.where(ok, x_new, 0.5 * (lo[act] + hi[act]))
         done = (ok & (np.abs(step) <= tol)) | (hi[act] - lo[act] <= tol)
         x[act] = x_new
-        act = act[~done]
-        if act.size == 0:
+        if done.all():
             break
-    out[np.isnan(out)] = x[np.isnan(out)]
-    return out
+        if not done.any():
+            continue
+        keep = ~done
+        act = act[keep]
+        sub = tuple(v[keep] for v in sub)
+        aa = aa[keep]
+    return x
 
 
 def _summarise(p, f, prior_drift, ci_prob, limit_upper, limit_lower, horizon, prune=1e-10,
                intervals=True):
     """Posterior summaries for eligible series (all arrays (C,) or (C,K))."""
     c = p["y"].shape[0]
-    lp0 = special.logsumexp(f["ml0"], axis=-1)
-    lp1 = special.logsumexp(f["ml1"], axis=-1)
+    lp0 = _logsumexp(f["ml0"])
+    lp1 = _logsumexp(f["ml1"])
     log_bf = lp1 - lp0
     pi = np.broadcast_to(np.asarray(prior_drift, float), (c,))
     with np.errstate(divide="ignore"):
         p_drift = special.expit(np.log(pi) - np.log1p(-pi) + log_bf)
-    w1 = _normalise(f["ml1"])
+    w1 = np.exp(f["ml1"] - lp1[:, None])
     if prune > 0 and w1.shape[1] > 1:
         # drop nodes negligible for every series of the chunk (total weight < prune * K)
-        keep = np.max(w1, axis=0) > prune
-        f = {k: v[:, keep] for k, v in f.items()}
-        w1 = w1[:, keep] / w1[:, keep].sum(-1, keepdims=True)
+        keep = np.nonzero(np.max(w1, axis=0) > prune)[0]
+        if keep.size < w1.shape[1]:  # np.take keeps the arrays C-ordered for the compiled loops
+            f = {k: np.take(v, keep, axis=1) for k, v in f.items()}
+            w1 = np.take(w1, keep, axis=1)
+            w1 /= w1.sum(-1, keepdims=True)
     mb, vb = f["m_b"], f["v_bb"]
     sb = np.sqrt(vb)
     out = {}
     out["log_bf10"] = log_bf
     out["bf10"] = np.exp(log_bf)
     out["p_drift"] = p_drift
-    out["p_increase"] = np.sum(w1 * special.ndtr(mb / sb), -1)
+    p_pos = ndtr(mb / sb)
+    out["p_increase"] = np.einsum("ij,ij->i", w1, p_pos)
     slope_mean = np.sum(w1 * mb, -1)
     out["slope_mean"] = slope_mean
     out["slope_sd"] = np.sqrt(np.maximum(np.sum(w1 * (vb + mb * mb), -1) - slope_mean**2, 0.0))
@@ -320,7 +452,7 @@ def _summarise(p, f, prior_drift, ci_prob, limit_upper, limit_lower, horizon, pr
     out["pct_per_year_lower"] = 100.0 * np.expm1(lo)
     out["pct_per_year_upper"] = 100.0 * np.expm1(hi)
     # model-averaged: point mass 1 - P(drift) at 0 plus P(drift) x the H1 posterior
-    f1_0 = np.sum(w1 * special.ndtr(-mb / sb), -1)  # P(beta < 0 | H1)
+    f1_0 = np.einsum("ij,ij->i", w1, 1.0 - p_pos)  # P(beta < 0 | H1)
     for key, qv in (("pct_per_year_avg_lower", a), ("pct_per_year_avg_upper", 1.0 - a)):
         below = p_drift * f1_0  # averaged CDF just below 0
         above = below + (1.0 - p_drift)  # averaged CDF at 0
@@ -355,9 +487,11 @@ def _summarise(p, f, prior_drift, ci_prob, limit_upper, limit_lower, horizon, pr
         args = (w1[sel], sign * m_last[sel], v_last[sel], sign * mb[sel], c_lb[sel], vb[sel])
         aa = sign * lim[sel]
         sl = np.sqrt(v_last[sel])
-        p_beyond[sel] = np.sum(w1[sel] * special.ndtr((sign * m_last[sel] - aa[:, None]) / sl), -1)
-        for key, qv in (("mid", 0.5), ("lo", a), ("hi", 1.0 - a)):
-            yrs[key][sel] = _crossing_quantile(qv, *args, aa, horizon)
+        p_beyond[sel] = np.einsum("ij,ij->i", w1[sel], ndtr((sign * m_last[sel] - aa[:, None]) / sl))
+        qs = (("mid", 0.5), ("lo", a), ("hi", 1.0 - a))
+        found = _crossing_quantiles([qv for _, qv in qs], *args, aa, horizon)
+        for (key, _), val in zip(qs, found):
+            yrs[key][sel] = val
     out["years_to_limit"] = yrs["mid"]
     out["years_to_limit_lower"] = yrs["lo"]
     out["years_to_limit_upper"] = yrs["hi"]
@@ -393,8 +527,9 @@ def trend_exact(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slo
     ``eligible`` (bool), ``reason`` (object: why not computed, "" if computed), ``n_used``,
     ``span_years``, ``t_ref`` (mean time of the usable specimens, the input's time origin).
 
-    ``prune``: quadrature nodes whose H1 posterior weight is below it in every series of a
-    chunk are left out of the summaries (the Bayes factor always uses every node).
+    Series are processed in blocks of at most ``chunk`` (fewer when the nodes are many, so a
+    block stays in cache). ``prune``: quadrature nodes whose H1 posterior weight is below it in
+    every series of a block are left out of the summaries (the Bayes factor always uses every node).
     ``intervals=False`` (bulk scoring) skips every quantile: the slope and percentage limits,
     the model-averaged limits and the time to limit are then NaN and ``limit_side`` is "".
     ``seed`` is unused by this exact path (kept so the exact and MCMC calls share a signature).
@@ -414,8 +549,10 @@ def trend_exact(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slo
     out["limit_side"] = np.full(c, "", dtype=object)
     x_nodes, w_nodes = quadrature(nodes)
     idx_all = np.nonzero(p["eligible"])[0]
-    for s in range(0, idx_all.size, chunk):
-        idx = idx_all[s : s + chunk]
+    block = max(1, min(int(chunk), _BLOCK_ELEMS // x_nodes.size))  # (series, node) arrays in cache
+    normal.prepare(idx_all.size * x_nodes.size)
+    for s in range(0, idx_all.size, block):
+        idx = idx_all[s : s + block]
         ps = _subset(p, idx)
         f = _node_fits(ps, x_nodes, w_nodes)
         res = _summarise(ps, f, pi[idx], ci_prob, lu[idx], ll[idx], horizon, prune, intervals)
