@@ -524,3 +524,128 @@ def test_assessment_functions_stay_short():
                 if n > 60:
                     long.append((f"{p.name}:{node.name}", n))
     assert not long, long
+
+
+# ------------------------------------------------- vectorised stages against per-case loops
+def _random_history(seed: int = 11, n_patients: int = 40) -> pd.DataFrame:
+    """Invented demo results with every rule at work: random states, fasting, H/L/I indices,
+    methods, reported units, censored values and replicates (seeded)."""
+    from bayesbase.testing import synthetic_canonical
+
+    rng = np.random.default_rng(seed)
+    from bayesbase.priors import load_pack
+
+    f = synthetic_canonical(n_patients, 5, 25, seed=seed)
+    f = f[f["analyte"].isin(set(load_pack("dog").analytes))].reset_index(drop=True)
+    n = len(f)
+    spec = f["specimen"].to_numpy()
+    per_spec = {s: i for i, s in enumerate(pd.unique(spec))}
+    k = np.array([per_spec[s] for s in spec])
+    f["state"] = pd.array(np.array(["", "healthy", "unwell", ""], dtype=object)[rng.integers(0, 4, len(per_spec))][k],
+                          dtype="string")
+    f["fasted"] = pd.array(np.array([True, False, None], dtype=object)[rng.integers(0, 3, len(per_spec))][k],
+                           dtype="boolean")
+    f["haemolysis"] = np.where(rng.random(len(per_spec)) < 0.3, rng.exponential(150, len(per_spec)), np.nan)[k]
+    f["method"] = pd.array(np.where(rng.random(n) < 0.1, "analyser B", "demo analyser"), dtype="string")
+    f["reported_unit"] = pd.array(np.where(rng.random(n) < 0.05, "other unit", f["unit"].to_numpy(dtype=object)),
+                                  dtype="string")
+    cen = np.where(rng.random(n) < 0.03, "left", "")
+    f["censor"] = pd.array(cen, dtype="string")
+    rep = f[rng.random(n) < 0.05].copy()
+    rep["replicate"] = pd.array(np.full(len(rep), 2), dtype="Int64")
+    f = pd.concat([f, rep], ignore_index=True)
+    return f.sort_values(["patient", "collected_at", "specimen", "analyte", "replicate"]).reset_index(drop=True)
+
+
+@pytest.fixture(scope="module")
+def random_stages():
+    return _stages(_random_history(), at=None)
+
+
+def test_case_rows_match_text_keys(random_stages):
+    """The integer case of every row is the one a "patient\\x1fanalyte" text key names."""
+    hist, rows, targets = random_stages["hist"], random_stages["rows"], random_stages["targets"]
+    key = (hist["patient"].astype(str) + "\x1f" + hist["analyte"].astype(str)).to_numpy(dtype=object)
+    assessed = (hist["specimen"] == hist["patient"].map(targets.specimen)).to_numpy()
+    assert np.array_equal(rows.is_assessed, assessed)
+    cases = list(pd.unique(key[assessed]))
+    index = {k: i for i, k in enumerate(cases)}
+    assert rows.case.tolist() == [index.get(k, -1) for k in key]
+    assert random_stages["batch"].keys.tolist() == cases
+
+
+def test_case_sets_match_a_dict_of_sets():
+    rng = np.random.default_rng(5)
+    names = np.array(["m1", "m2", "", "m3", None], dtype=object)
+    case = rng.integers(0, 30, 400)
+    code = rng.integers(-1, len(names), 400)
+    sets = cases_mod.CaseSets.of_rows(case, code, names)
+    expect: dict = {}
+    for c, k in zip(case, code):
+        v = names[k] if k >= 0 else None
+        if isinstance(v, str) and v:
+            expect.setdefault(int(c), set()).add(v)
+    assert {i: sets.get(i) for i in range(30) if sets.get(i, None) is not None} == expect
+    assessed = rng.integers(-2, len(names), 30)
+    want = [any(v != (names[a] if a >= 0 else object()) for v in expect.get(i, ())) for i, a in enumerate(assessed)]
+    assert sets.differs(assessed).tolist() == want
+    assert sets.texts(3, "zz") == sorted(expect.get(3, set()) | {"zz"})
+
+
+def test_baselines_match_a_groupby_per_specimen(random_stages):
+    """Padded baselines against pandas groupby over (case, specimen), sorted by time."""
+    hist, rows, rl, b = (random_stages[k] for k in ("hist", "rows", "roles", "batch"))
+    base = rl.baseline
+    bl = pd.DataFrame({"case": rows.case[base], "specimen": hist["specimen"].to_numpy(dtype=object)[base],
+                       "y": np.log(hist["value"].to_numpy(dtype=float))[base],
+                       "t": frame.years_of(hist["collected_at"])[base]})
+    agg = (bl.groupby(["case", "specimen"], sort=False).agg(y=("y", "mean"), r=("y", "size"), t=("t", "first"))
+           .reset_index().sort_values(["case", "t"], kind="stable"))
+    for c, g in agg.groupby("case"):
+        n = len(g)
+        assert b.baselines.n[c] == n
+        np.testing.assert_allclose(b.baselines.y[c, :n], g["y"].to_numpy(), rtol=1e-14)
+        assert b.baselines.r[c, :n].tolist() == g["r"].astype(float).tolist()
+        assert b.baselines.specimens[c] == ";".join(g["specimen"])
+        assert np.isnan(b.baselines.y[c, n:]).all()
+    assert set(np.flatnonzero(b.baselines.n == 0)) == set(range(len(b))) - set(agg["case"])
+
+
+def test_flags_and_quality_match_per_case_loops(random_stages):
+    b = random_stages["batch"]
+    columns = [f(b) for f in flags.CASE_FLAGS]
+    assert flags.case_flags(b) == [[w for w in words if w] for words in zip(*columns)]
+    over = [flags.hil_over(b, i)[0] for i in contract.HIL_INDICES]
+    assert flags.quality(b) == [",".join(n for n, o in zip(contract.HIL_INDICES, r) if o) or "ok" for r in zip(*over)]
+    for get in (lambda p: p.cva, lambda p: p.hil_thresholds.get("haemolysis", np.nan), lambda p: p.unit):
+        got = b.prior_attr(get, object)
+        assert got.tolist() == [get(p) for p in b.prior]
+    fasted = b.assessed.col("fasted")
+    assert (flags.not_fasted(b) != "").tolist() == [roles.is_feeding_sensitive(p) and f is False
+                                                    for p, f in zip(b.prior, fasted)]
+    units = [set(b.baselines.units.get(i, ())) | {u} for i, u in enumerate(b.assessed.unit)]
+    assert (flags.mixed_units(b) != "").tolist() == [len(s) > 1 for s in units]
+    assert (flags.method_changed(b) != "").any() and (flags.mixed_units(b) != "").any()
+    assert (flags.censored_assessed(b) != "").tolist() == [bool(c) for c in b.censor]
+
+
+def test_trend_notes_match_a_loop(random_stages):
+    from bayesbase.assessment.frame import YEAR_DAYS
+    from bayesbase.assessment.trend_cols import GROWING_YEARS, trend_notes
+
+    b = random_stages["batch"]
+    rng = np.random.default_rng(2)
+    eligible = rng.random(len(b)) < 0.6
+    ytl = np.where(rng.random(len(b)) < 0.5, 3.0, np.nan)
+    first_t = b.assessed.years - rng.uniform(0, 3, len(b))
+    got = trend_notes(b, eligible, ytl, first_t)
+    birth = b.assessed.col("birth_date")
+    for i, p in enumerate(b.prior):
+        if not eligible[i]:
+            assert got[i].startswith("trend not computed")
+            continue
+        age0 = None if pd.isna(birth[i]) else first_t[i] - pd.Timestamp(birth[i]).value / 1e9 / 86400 / YEAR_DAYS
+        young = bool(p.age_dependent) and (age0 is None or age0 < GROWING_YEARS)
+        assert got[i].startswith("young or unknown age") == young
+        if not young:
+            assert (got[i] != "") == bool(np.isnan(ytl[i]))

@@ -301,3 +301,33 @@ def test_pyplot_never_imported():
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_analyte_histories_equal_one_grouping_per_panel():
+    """The per-report grouping gives each panel the frame its own grouping gives."""
+    a, _, _ = every_role()
+    patient = str(a.table["patient"].iloc[0])
+    all_at_once = plots.analyte_histories(a.history, patient)
+    assert set(all_at_once) == set(a.history["analyte"])
+    for analyte, h in all_at_once.items():
+        pd.testing.assert_frame_equal(h, plots._analyte_history(a.history, patient, analyte), check_exact=True)
+
+
+def test_panel_pixels_do_not_depend_on_the_fixed_title_and_label_positions():
+    """A panel with its title and empty axis labels placed directly draws the same pixels as
+    one where matplotlib places them, including a y axis that shows an offset text."""
+    import matplotlib.ticker as mticker
+
+    a, row, path = every_role()
+    fig = plots.analyte_panel(a.history, row, path)
+    ax = fig.axes[0]
+    assert ax._autotitlepos is False  # offset-free axis: placed directly
+    direct = plots.figure_png(fig, dpi=80)
+    ax._autotitlepos = True  # let matplotlib place the title and the labels itself
+    ax.xaxis._autolabelpos = ax.yaxis._autolabelpos = True
+    assert plots.figure_png(fig, dpi=80) == direct
+    off = plots.analyte_panel(a.history, row, path)
+    ax = off.axes[0]
+    ax.set_ylim(1000.001, 1000.004)  # tick labels with an offset text
+    ax.yaxis.set_major_formatter(mticker.ScalarFormatter())
+    assert plots._y_offset_shown(ax)

@@ -479,3 +479,23 @@ def test_case_report_end_to_end(case, tmp_path):
     ptext = pdf_text(files.pdf)
     for lab in a.table["label"]:
         assert lab in ptext
+
+
+def test_quick_text_widths_equal_fpdf2s_own():
+    """The report's faster text width sums the same glyph widths as fpdf2's own method (exact:
+    integer widths), on seeded random text in both fonts and several sizes."""
+    from bayesbase.report import pdf as pdf_out
+
+    doc = pdf_out._document("widths")
+    fonts = [f for f in doc.fonts.values() if hasattr(f, "cw")]
+    if not fonts:
+        pytest.skip("no TrueType font available: the core font keeps fpdf2's own widths")
+    rng = np.random.default_rng(17)
+    alphabet = "abcdefghijklmnopqrstuvwxyz ABCDEFGHIJ0123456789.,;:%()[]-\u2013\u00b7\u2022\u00b5\u2191\u2193"
+    for font in fonts:
+        assert type(font).__name__.startswith("QuickWidths")
+        own = type(font).__mro__[1].get_text_width
+        for size in (6.5, 7.0, 8.5, 11.0):
+            for _ in range(50):
+                text = "".join(rng.choice(list(alphabet), rng.integers(0, 60)))
+                assert font.get_text_width(text, size, None) == own(font, text, size, None)

@@ -17,8 +17,47 @@ from .options import Options
 from .packs import RowPriors
 from .roles import CaseRows, Roles
 
-__all__ = ["Baselines", "AssessedResults", "MethodChange", "CaseBatch", "aggregate_baselines",
-           "assessed_results", "method_changes", "prior_scalars", "build_cases"]
+__all__ = ["CaseSets", "Baselines", "AssessedResults", "MethodChange", "CaseBatch", "aggregate_baselines",
+           "assessed_results", "method_changes", "prior_scalars", "build_cases", "distinct", "per_object",
+           "row_cases", "codes_of"]
+
+
+class CaseSets:
+    """The distinct non-empty texts (methods, reported units) of the baseline rows of every
+    case, held as sorted (case, code) pairs over one table of ``names``. ``get(i, default)``
+    reads like the dict of sets it replaces."""
+
+    def __init__(self, case: np.ndarray, code: np.ndarray, names: np.ndarray):
+        self.case, self.code, self.names = case, code, names
+
+    @classmethod
+    def of_rows(cls, row_case: np.ndarray, row_code: np.ndarray, names: np.ndarray) -> "CaseSets":
+        """From one (case, code) per row; code -1 and empty names are left out."""
+        names = np.asarray(names, dtype=object)
+        ok = row_code >= 0
+        if len(names):
+            ok &= np.array([isinstance(v, str) and v != "" for v in names], dtype=bool)[np.maximum(row_code, 0)]
+        width = len(names) + 1
+        pairs = np.unique(row_case[ok].astype(np.int64) * width + row_code[ok])
+        return cls(pairs // width, pairs % width, names)
+
+    def get(self, i: int, default=()):
+        lo, hi = np.searchsorted(self.case, [i, i + 1])
+        return {self.names[c] for c in self.code[lo:hi]} if hi > lo else default
+
+    def differs(self, codes: np.ndarray) -> np.ndarray:
+        """Per case: the baseline holds a text other than ``codes[case]`` (a code of ``names``)."""
+        out = np.zeros(len(codes), dtype=bool)
+        other = self.code != codes[self.case]
+        out[self.case[other]] = True
+        return out
+
+    def texts(self, i: int, extra=None) -> list[str]:
+        """The case's texts (with ``extra``), sorted."""
+        seen = set(self.get(i, ()))
+        if extra is not None:
+            seen.add(extra)
+        return sorted(seen)
 
 
 @dataclass(frozen=True)
@@ -33,64 +72,79 @@ class Baselines:
     n: np.ndarray  # baseline specimens per case
     n_assumed: np.ndarray  # of which with a blank state
     specimens: np.ndarray  # "S1;S2" per case
-    methods: dict  # case -> set of methods seen in the baseline
-    units: dict  # case -> set of reported units seen in the baseline
+    methods: CaseSets  # case -> set of methods seen in the baseline (``.get(i, default)``)
+    units: CaseSets  # case -> set of reported units seen in the baseline
 
 
-def _sets(cases: list, values: list) -> dict[int, set]:
-    """case -> set of the non-empty strings among ``values`` (plain loop: faster than groupby)."""
-    out: dict[int, set] = {}
-    for c_, v_ in zip(cases, values):
-        if isinstance(v_, str) and v_:
-            out.setdefault(c_, set()).add(v_)
+def row_cases(rows: CaseRows, case_index: dict) -> np.ndarray:
+    """The case of every row of the history (-1 for a row in no case)."""
+    if rows.case is not None:
+        return rows.case
+    return pd.Series(np.asarray(rows.key, dtype=object)).map(case_index).fillna(-1).to_numpy(dtype=np.int64)
+
+
+def codes_of(hist: pd.DataFrame, column: str) -> tuple[np.ndarray, np.ndarray]:
+    """(code per row, distinct values as an object array) of a column (-1 where missing or absent)."""
+    if column not in hist:
+        return np.full(len(hist), -1, dtype=np.int64), np.array([], dtype=object)
+    codes, uniq = pd.factorize(hist[column])
+    return codes.astype(np.int64), np.asarray(uniq, dtype=object)
+
+
+def _baseline_groups(hist, row_case, roles: Roles, years):
+    """Baseline rows in (case, time, specimen) order, with the start of each specimen's group."""
+    idx = np.flatnonzero(roles.baseline)
+    spec = codes_of(hist, "specimen")[0][idx]
+    order = np.lexsort((spec, years[idx], row_case[idx]))
+    idx, spec, case = idx[order], spec[order], row_case[idx][order]
+    new = np.ones(len(idx), dtype=bool)
+    new[1:] = (case[1:] != case[:-1]) | (spec[1:] != spec[:-1])
+    return idx, case, np.cumsum(new) - 1, np.flatnonzero(new)
+
+
+def _joined_specimens(hist, idx_first: np.ndarray, gcase: np.ndarray, C: int) -> np.ndarray:
+    """"S1;S2" per case from its groups (in order)."""
+    out = np.full(C, "", dtype=object)
+    if not len(gcase):
+        return out
+    names = [str(s) for s in hist["specimen"].iloc[idx_first].tolist()]
+    starts = np.flatnonzero(np.r_[True, gcase[1:] != gcase[:-1]])
+    bounds = starts.tolist() + [len(gcase)]
+    out[gcase[starts]] = [";".join(names[a:b]) for a, b in zip(bounds[:-1], bounds[1:])]
     return out
-
-
-def _baseline_rows(hist, rows: CaseRows, roles: Roles, priors: RowPriors, case_index, years):
-    base = roles.baseline
-    logv = np.log(hist["value"].to_numpy(dtype=float))
-    si_row = priors.column(lambda p: float(p.si), 0.0)
-    extra_row = np.where(roles.kept, si_row**2, 0.0)
-    cen_row = hist["censor"].fillna("").astype(str).to_numpy()
-    cen_num = np.where(cen_row == "left", -1.0, np.where(cen_row == "right", 1.0, 0.0))
-    return pd.DataFrame({
-        "case": rows.key[base].map(case_index).to_numpy(), "specimen": hist["specimen"].to_numpy()[base],
-        "y": logv[base], "e": extra_row[base], "c": cen_num[base], "t": years[base],
-        "assumed": roles.assumed[base],
-    })
 
 
 def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, case_index: dict,
                         years: np.ndarray) -> Baselines:
     """Baseline rows per (case, specimen): mean log, replicates, extra variance, padded."""
     C = len(case_index)
-    bl = _baseline_rows(hist, rows, roles, priors, case_index, years)
-    agg = (bl.groupby(["case", "specimen"], sort=False)
-             .agg(y=("y", "mean"), r=("y", "size"), e=("e", "mean"), c=("c", "first"), t=("t", "first"),
-                  assumed=("assumed", "first"))
-             .reset_index()
-             .sort_values(["case", "t"], kind="stable"))
-    agg["j"] = agg.groupby("case").cumcount()
-    J = int(agg["j"].max()) + 1 if len(agg) else 1
-    ci_, cj_ = agg["case"].to_numpy(dtype=int), agg["j"].to_numpy(dtype=int)
+    row_case = row_cases(rows, case_index)
+    idx, case, g, starts = _baseline_groups(hist, row_case, roles, years)
+    G = len(starts)
+    logv = np.log(hist["value"].to_numpy(dtype=float))
+    extra = np.where(roles.kept, priors.column(lambda p: float(p.si), 0.0) ** 2, 0.0)
+    cen = hist["censor"].fillna("").astype(str).to_numpy()
+    cen_num = np.where(cen == "left", -1.0, np.where(cen == "right", 1.0, 0.0))
+    r = np.bincount(g, minlength=G).astype(float)
+    gcase, first = case[starts], idx[starts]
+    case_start = np.r_[True, gcase[1:] != gcase[:-1]] if G else np.zeros(0, dtype=bool)
+    j = np.arange(G) - np.maximum.accumulate(np.where(case_start, np.arange(G), 0)) if G else np.zeros(0, int)
+    J = int(j.max()) + 1 if G else 1
 
-    def padded(col, fill):
+    def padded(values, fill):
         a = np.full((C, J), fill, dtype=float)
-        a[ci_, cj_] = agg[col].to_numpy(dtype=float)
+        a[gcase, j] = values
         return a
 
-    spec_lists: dict[int, list] = {}
-    for c_, sp_ in zip(agg["case"].tolist(), agg["specimen"].tolist()):
-        spec_lists.setdefault(c_, []).append(str(sp_))
-    base_cases = bl["case"].tolist()
-    base = roles.baseline
-    methods = _sets(base_cases, hist["method"].to_numpy(dtype=object)[base].tolist()) if "method" in hist else {}
+    mcodes, mnames = codes_of(hist, "method")
+    ucodes, unames = codes_of(hist, "reported_unit")
     return Baselines(
-        y=padded("y", np.nan), r=padded("r", 0.0), e=padded("e", 0.0), c=padded("c", 0.0),
-        t=padded("t", np.nan), n=np.bincount(ci_, minlength=C),
-        n_assumed=np.bincount(ci_, weights=agg["assumed"].to_numpy(dtype=float), minlength=C).astype(int),
-        specimens=np.array([";".join(spec_lists.get(i, [])) for i in range(C)], dtype=object),
-        methods=methods, units=_sets(base_cases, hist["reported_unit"].to_numpy(dtype=object)[base].tolist()),
+        y=padded(np.bincount(g, weights=logv[idx], minlength=G) / r, np.nan), r=padded(r, 0.0),
+        e=padded(np.bincount(g, weights=extra[idx], minlength=G) / r, 0.0), c=padded(cen_num[first], 0.0),
+        t=padded(years[first], np.nan), n=np.bincount(gcase, minlength=C),
+        n_assumed=np.bincount(gcase, weights=roles.assumed[first].astype(float), minlength=C).astype(int),
+        specimens=_joined_specimens(hist, first, gcase, C),
+        methods=CaseSets.of_rows(case, mcodes[idx], mnames), units=CaseSets.of_rows(case, ucodes[idx], unames),
     )
 
 
@@ -103,6 +157,7 @@ class AssessedResults:
     n_rep: np.ndarray  # replicates (float)
     unit: list  # reported unit
     years: np.ndarray  # collection time, years since 1970
+    rows: np.ndarray | None = None  # the history row of :attr:`first`, per case
 
     def col(self, name: str) -> list:
         """One column of :attr:`first` as a list (None per case when the column is absent)."""
@@ -110,16 +165,22 @@ class AssessedResults:
 
 
 def assessed_results(hist, rows: CaseRows, case_index: dict, years: np.ndarray) -> AssessedResults:
-    arow = hist[rows.is_assessed].copy()
-    arow["_case"] = rows.key[rows.is_assessed].map(case_index)
-    arow["_logv"] = np.log(arow["value"].astype(float))
-    first = arow.groupby("_case", sort=True).head(1).set_index("_case").sort_index()
-    log_mean = arow.groupby("_case", sort=True)["_logv"].mean().sort_index().to_numpy()
-    n_rep = arow.groupby("_case", sort=True).size().sort_index().to_numpy(dtype=float)
-    unit = arow.groupby("_case", sort=True)["reported_unit"].first().sort_index().to_list()
-    when = np.empty(len(case_index))
-    when[arow["_case"].to_numpy(dtype=int)] = years[rows.is_assessed]
-    return AssessedResults(first=first, log_mean=log_mean, n_rep=n_rep, unit=unit, years=when)
+    ai = np.flatnonzero(rows.is_assessed)
+    acase = row_cases(rows, case_index)[ai]
+    order = np.argsort(acase, kind="stable")
+    ai, acase = ai[order], acase[order]
+    start = np.r_[True, acase[1:] != acase[:-1]] if len(ai) else np.zeros(0, dtype=bool)
+    first_rows = ai[start]
+    first = hist.iloc[first_rows]
+    first.index = pd.RangeIndex(len(first_rows), name="_case")
+    C = len(case_index)
+    n_rep = np.bincount(acase, minlength=C).astype(float)
+    logv = np.log(hist["value"].to_numpy(dtype=float))
+    log_mean = np.bincount(acase, weights=logv[ai], minlength=C) / n_rep
+    when = np.empty(C)
+    when[acase] = years[ai]
+    return AssessedResults(first=first, log_mean=log_mean, n_rep=n_rep, unit=first["reported_unit"].tolist(),
+                           years=when, rows=first_rows)
 
 
 @dataclass(frozen=True)
@@ -136,17 +197,22 @@ class MethodChange:
 
 
 def method_changes(assessed: AssessedResults, baselines: Baselines, analytes: list,
-                   method_bias: dict) -> MethodChange:
+                   method_bias: dict, assessed_codes: np.ndarray | None = None) -> MethodChange:
+    """Cases whose assessed method differs from a method of the baseline (``assessed_codes``:
+    the assessed method as a code of ``baselines.methods.names``, -1 when none; found by name
+    when not given)."""
     C = len(analytes)
-    changed, corrected = np.zeros(C, dtype=bool), np.zeros(C, dtype=bool)
+    after = assessed.col("method")
+    if assessed_codes is None:
+        lookup = {v: k for k, v in enumerate(baselines.methods.names)}
+        assessed_codes = np.array([lookup.get(m, -2) if isinstance(m, str) else -1 for m in after], dtype=np.int64)
+    has_method = np.array([isinstance(m, str) and m != "" for m in after], dtype=bool)
+    changed = has_method & baselines.methods.differs(np.where(has_method, assessed_codes, -1))
+    corrected = np.zeros(C, dtype=bool)
     before, bias = [""] * C, [None] * C
     y_shift, extra = np.zeros(C), np.zeros(C)
-    after = assessed.col("method")
-    for i, a_meth in enumerate(after):
-        bms = set(baselines.methods.get(i, ()))
-        if not (isinstance(a_meth, str) and a_meth and bms and (bms - {a_meth})):
-            continue
-        changed[i], before[i] = True, ", ".join(sorted(bms))
+    for i in np.flatnonzero(changed).tolist():
+        before[i] = ", ".join(sorted(baselines.methods.get(i, ())))
         if analytes[i] in method_bias:
             b, bsd = method_bias[analytes[i]]
             corrected[i], bias[i] = True, (b, bsd)
@@ -155,20 +221,48 @@ def method_changes(assessed: AssessedResults, baselines: Baselines, analytes: li
                         y_shift=y_shift, extra_var=extra)
 
 
-def prior_scalars(priors: list, packs: list, centers: list, opts: Options) -> dict[str, np.ndarray]:
-    """Per-case prior scalars on the log scale (prior mean at the breed's centre when known)."""
+def distinct(objs: list) -> tuple[list, np.ndarray]:
+    """(the distinct objects of a list, by identity, in first-seen order; the index of each
+    element among them)."""
+    seen: dict = {}
+    index = np.fromiter((seen.setdefault(id(o), len(seen)) for o in objs), dtype=np.int64, count=len(objs))
+    firsts = np.unique(index, return_index=True)[1]
+    return [objs[i] for i in firsts.tolist()], index
+
+
+def per_object(objs: list, get, dtype=float, groups=None) -> np.ndarray:
+    """``get(o)`` for every element of ``objs``, computed once per distinct object
+    (``groups``: a precomputed :func:`distinct` of ``objs``)."""
+    uniq, index = groups if groups is not None else distinct(objs)
+    return np.asarray([get(o) for o in uniq], dtype=dtype)[index] if len(uniq) else np.zeros(0, dtype=dtype)
+
+
+def _per_value(values, fn) -> np.ndarray:
+    """``fn(v)`` (a math function of one float) of every value, computed once per distinct value."""
+    values = np.asarray(values, dtype=float)
+    uniq, inv = np.unique(values, return_inverse=True)
+    return np.asarray([fn(float(v)) for v in uniq], dtype=float)[inv] if len(values) else np.zeros(0)
+
+
+def prior_scalars(priors: list, packs: list, centers: list, opts: Options,
+                  prior_groups=None) -> dict[str, np.ndarray]:
+    """Per-case prior scalars on the log scale (prior mean at the breed's centre when known);
+    each computed once per distinct prior and pack (``prior_groups``: :func:`distinct` of
+    ``priors`` when known)."""
     def tau(p):
         t = float(p.shift_sd) if p.shift_sd else math.sqrt(float(p.sg) ** 2 + float(p.si) ** 2)
         return t * float(opts.shift_scale) if opts.shift_scale else t
 
-    pc = [opts.prior_change if opts.prior_change is not None
-          else float(pk.defaults.get("prior_change", DEFAULT_PRIOR_CHANGE)) for pk in packs]
+    g = prior_groups if prior_groups is not None else distinct(priors)
+    pc = per_object(packs, lambda pk: opts.prior_change if opts.prior_change is not None
+                    else float(pk.defaults.get("prior_change", DEFAULT_PRIOR_CHANGE)))
     cols = {
-        "prior_mean": [math.log(c) for c in centers], "sg": [float(p.sg) for p in priors],
-        "cvi": [float(p.cvi) for p in priors], "cvi_log_sd": [float(p.cvi_log_sd) for p in priors],
-        "sa": [float(p.sa) for p in priors], "tau": [tau(p) for p in priors],
-        "delta": [math.log1p(p.mcrc) if p.mcrc else float("nan") for p in priors],
-        "prior_change": pc, "slope_sd": [float(p.slope_sd or 0.1) for p in priors],
+        "prior_mean": _per_value(centers, math.log), "sg": per_object(priors, lambda p: float(p.sg), groups=g),
+        "cvi": per_object(priors, lambda p: float(p.cvi), groups=g),
+        "cvi_log_sd": per_object(priors, lambda p: float(p.cvi_log_sd), groups=g),
+        "sa": per_object(priors, lambda p: float(p.sa), groups=g), "tau": per_object(priors, tau, groups=g),
+        "delta": per_object(priors, lambda p: math.log1p(p.mcrc) if p.mcrc else float("nan"), groups=g),
+        "prior_change": pc, "slope_sd": per_object(priors, lambda p: float(p.slope_sd or 0.1), groups=g),
     }
     return {k: np.asarray(v, dtype=float) for k, v in cols.items()}
 
@@ -191,20 +285,51 @@ class CaseBatch:
     method: MethodChange
     scalars: dict[str, np.ndarray]  # prior scalars plus new_y and new_extra_var
     engine: str
+    prior_groups: tuple | None = None  # :func:`distinct` of ``prior`` (computed when not given)
 
     def __len__(self) -> int:
         return len(self.keys)
 
+    def prior_attr(self, get, dtype=float) -> np.ndarray:
+        """``get(prior)`` of every case, computed once per distinct prior."""
+        if self.prior_groups is None:
+            object.__setattr__(self, "prior_groups", distinct(self.prior))
+        return per_object(self.prior, get, dtype, groups=self.prior_groups)
+
     def case_arrays(self) -> CaseArrays:
         """The engine's input (DEVELOPERS.md, "Exact-engine input")."""
         S, b = self.scalars, self.baselines
-        new_cen = np.array([(-1.0 if c == "left" else (1.0 if c == "right" else 0.0)) for c in self.censor])
+        cen = np.asarray(self.censor, dtype=object)
+        new_cen = np.where(cen == "left", -1.0, np.where(cen == "right", 1.0, 0.0))
         return CaseArrays(
             prior_mean=S["prior_mean"], sg=S["sg"], cvi=S["cvi"], cvi_log_sd=S["cvi_log_sd"], sa=S["sa"],
             base_y=b.y, base_r=b.r, base_extra_var=b.e, base_censor=b.c,
             new_y=S["new_y"], new_r=self.assessed.n_rep, new_extra_var=S["new_extra_var"], new_censor=new_cen,
             tau=S["tau"], delta=S["delta"], prior_change=S["prior_change"],
         )
+
+
+def _case_priors(priors: RowPriors, assessed: AssessedResults, species: list, analyte: list):
+    """(prior per case, :func:`distinct` of them), from the prior codes of the assessed rows."""
+    if assessed.rows is None:
+        prior = [priors.of[(sp, aid)] for sp, aid in zip(species, analyte)]
+        return prior, distinct(prior)
+    codes = np.asarray(priors.codes)[assessed.rows]
+    used, index = np.unique(codes, return_inverse=True)
+    uniq = [priors.priors[c] for c in used.tolist()]
+    return [uniq[i] for i in index.tolist()], (uniq, index.astype(np.int64))
+
+
+def _centers(prior_groups, breed: list) -> list:
+    """Population centre of every case (the breed's when the pack has one), once per distinct
+    (prior, breed)."""
+    uniq, index = prior_groups
+    bcodes, bnames = pd.factorize(np.asarray(breed, dtype=object))
+    pair = index * (len(bnames) + 1) + (bcodes + 1)
+    used, inv = np.unique(pair, return_inverse=True)
+    width = len(bnames) + 1
+    vals = [uniq[int(k) // width].center_for(bnames[k % width - 1] if k % width else None) for k in used.tolist()]
+    return [vals[i] for i in inv.tolist()]
 
 
 def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPriors, packs: dict,
@@ -215,18 +340,19 @@ def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPri
     years = years_of(hist["collected_at"])
     baselines = aggregate_baselines(hist, rows, roles, priors, case_index, years)
     assessed = assessed_results(hist, rows, case_index, years)
-    species, analyte = assessed.col("species"), assessed.col("analyte")
-    prior = [priors.of[(sp, aid)] for sp, aid in zip(species, analyte)]
+    species, analyte, patient = assessed.col("species"), assessed.col("analyte"), assessed.col("patient")
+    prior, groups = _case_priors(priors, assessed, species, analyte)
     pack = [packs[sp] for sp in species]
     breed = [b if isinstance(b, str) and b else None for b in assessed.col("breed")]
-    center = [p.center_for(b) for p, b in zip(prior, breed)]
-    method = method_changes(assessed, baselines, analyte, opts.method_bias)
-    scalars = prior_scalars(prior, pack, center, opts)
+    center = _centers(groups, breed)
+    mcodes = codes_of(hist, "method")[0][assessed.rows] if assessed.rows is not None else None
+    method = method_changes(assessed, baselines, analyte, opts.method_bias, mcodes)
+    scalars = prior_scalars(prior, pack, center, opts, prior_groups=groups)
     scalars["new_y"] = assessed.log_mean - method.y_shift
     scalars["new_extra_var"] = method.extra_var
     return CaseBatch(
-        keys=np.asarray(list(case_index), dtype=object), patient=assessed.col("patient"), species=species,
-        analyte=analyte, breed=breed, prior=prior, pack=pack, center=center,
+        keys=np.asarray([f"{p}\x1f{a}" for p, a in zip(patient, analyte)], dtype=object), patient=patient,
+        species=species, analyte=analyte, breed=breed, prior=prior, pack=pack, center=center,
         censor=[c or "" for c in assessed.col("censor")], baselines=baselines, assessed=assessed,
-        method=method, scalars=scalars, engine=opts.engine,
+        method=method, scalars=scalars, engine=opts.engine, prior_groups=groups,
     )

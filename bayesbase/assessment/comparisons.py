@@ -28,8 +28,8 @@ __all__ = ["classical_cvs", "model2_intervals", "classical_comparisons"]
 
 def classical_cvs(b: CaseBatch) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(CVA, CVI, CVG) fractions per case, from the pack."""
-    cva = np.array([float(p.cva) for p in b.prior])
-    cvg = np.array([float(p.cvg) for p in b.prior])
+    cva = b.prior_attr(lambda p: float(p.cva))
+    cvg = b.prior_attr(lambda p: float(p.cvg))
     return cva, b.scalars["cvi"], cvg
 
 

@@ -54,9 +54,21 @@ def _words(mask, make: Callable[[int], str]) -> np.ndarray:
     return out
 
 
+def _words_by(mask, keys, make: Callable[[object], str]) -> np.ndarray:
+    """``make(key)`` where ``mask`` holds, computed once per distinct key of the flagged cases
+    ("" elsewhere): for flags whose words depend on a few values only."""
+    mask = np.asarray(mask, dtype=bool)
+    out = np.full(len(mask), "", dtype=object)
+    idx = np.flatnonzero(mask)
+    if len(idx):
+        codes, uniq = pd.factorize(np.asarray(keys, dtype=object)[idx], use_na_sentinel=False)
+        out[idx] = np.asarray([make(k) for k in uniq] + [""], dtype=object)[codes]
+    return out
+
+
 def assumed_healthy(b: CaseBatch) -> np.ndarray:
     n = b.baselines.n_assumed
-    return _words(n > 0, lambda i: f"{n[i]} baseline(s) assumed healthy (state blank)")
+    return _words_by(n > 0, n, lambda k: f"{k} baseline(s) assumed healthy (state blank)")
 
 
 def censored_baseline(b: CaseBatch) -> np.ndarray:
@@ -66,15 +78,17 @@ def censored_baseline(b: CaseBatch) -> np.ndarray:
 
 
 def censored_assessed(b: CaseBatch) -> np.ndarray:
-    reported = b.assessed.col("reported_value")
-    return _words([bool(c) for c in b.censor], lambda i: f"assessed value is censored ({reported[i]})")
+    cen = np.asarray(b.censor, dtype=object)
+    mask = (cen != "") & pd.notna(cen)
+    reported = b.assessed.first["reported_value"].to_numpy(dtype=object) if mask.any() else None
+    return _words(mask, lambda i: f"assessed value is censored ({reported[i]})")
 
 
 def hil_over(b: CaseBatch, idx: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(mask, index value, threshold) of the assessed results over the pack's ``idx`` threshold."""
     vals = b.assessed.first[idx] if idx in b.assessed.first.columns else pd.Series(np.nan, index=range(len(b)))
     v = pd.to_numeric(vals, errors="coerce").to_numpy(dtype=float)
-    thr = np.array([p.hil_thresholds.get(idx, np.nan) for p in b.prior], dtype=float)
+    thr = b.prior_attr(lambda p: p.hil_thresholds.get(idx, np.nan))
     return np.isfinite(v) & np.isfinite(thr) & (v > thr), v, thr
 
 
@@ -89,15 +103,19 @@ def hil_words(idx: str, value: float, threshold: float, direction: str) -> str:
 def _hil_flag(idx: str) -> Callable[[CaseBatch], np.ndarray]:
     def flag(b: CaseBatch) -> np.ndarray:
         over, v, thr = hil_over(b, idx)
-        return _words(over, lambda i: hil_words(idx, v[i], thr[i],
-                                                b.prior[i].interference.get(idx, "variable")))
+        if not over.any():
+            return np.full(len(b), "", dtype=object)
+        how = b.prior_attr(lambda p: p.interference.get(idx, "variable"), object)
+        return _words(over, lambda i: hil_words(idx, v[i], thr[i], how[i]))
 
     flag.__name__ = f"{idx}_over_threshold"
     return flag
 
 
 def not_fasted(b: CaseBatch) -> np.ndarray:
-    mask = [is_feeding_sensitive(p) and f is False for p, f in zip(b.prior, b.assessed.col("fasted"))]
+    first = b.assessed.first
+    fasted = first["fasted"] if "fasted" in first.columns else pd.Series(pd.NA, index=first.index)
+    mask = b.prior_attr(is_feeding_sensitive, bool) & fasted.eq(False).fillna(False).to_numpy(dtype=bool)
     return _words(mask, lambda i: "assessed specimen not fasted (feeding-sensitive analyte)")
 
 
@@ -115,29 +133,43 @@ def method_changed(b: CaseBatch) -> np.ndarray:
     return _words(m.changed, words)
 
 
+def _unit_codes(b: CaseBatch) -> np.ndarray:
+    """The assessed reported unit of every case as a code of ``b.baselines.units.names`` (-2
+    when the baseline never saw it)."""
+    lookup = {v: k for k, v in enumerate(b.baselines.units.names)}
+    codes, uniq = pd.factorize(np.asarray(b.assessed.unit, dtype=object), use_na_sentinel=False)
+    return np.asarray([lookup.get(u, -2) for u in uniq] + [-2], dtype=np.int64)[codes]
+
+
 def mixed_units(b: CaseBatch) -> np.ndarray:
-    seen = [set(b.baselines.units.get(i, ())) | {u} for i, u in enumerate(b.assessed.unit)]
-    return _words([len(s) > 1 for s in seen], lambda i: (
-        f"reported in different units ({', '.join(sorted(seen[i]))}); converted to {b.prior[i].unit}"))
+    mixed = b.baselines.units.differs(_unit_codes(b))
+    unit = b.prior_attr(lambda p: p.unit, object)
+    return _words(mixed, lambda i: (
+        f"reported in different units ({', '.join(b.baselines.units.texts(i, b.assessed.unit[i]))}); "
+        f"converted to {unit[i]}"))
 
 
 def no_baseline(b: CaseBatch) -> np.ndarray:
-    return _words(b.baselines.n == 0, lambda i: "no baseline: population prior alone")
+    return _words_by(b.baselines.n == 0, np.zeros(len(b), dtype=np.int64),
+                     lambda k: "no baseline: population prior alone")
 
 
 def cva_high(b: CaseBatch) -> np.ndarray:
-    return _words([p.cva_high for p in b.prior], lambda i: f"{CVA_RULE}: the RCV is dominated by analytical "
-                                                            "imprecision")
+    return _words_by(b.prior_attr(lambda p: p.cva_high, bool), np.zeros(len(b), dtype=np.int64),
+                     lambda k: f"{CVA_RULE}: the RCV is dominated by analytical imprecision")
 
 
 def young_animal(b: CaseBatch) -> np.ndarray:
     """The pack's age rule (``age_dependent``: how the analyte differs in growing animals), for an
     animal younger than :data:`YOUNG_YEARS` at the assessed specimen. Breed and sample notes are
     other flags (:func:`breed_note`)."""
-    age = np.array(b.assessed.col("age_years"), dtype=float)
-    dependent = np.array([bool(p.age_dependent) for p in b.prior], dtype=bool)
+    first = b.assessed.first
+    age = (first["age_years"].to_numpy(dtype=float, na_value=np.nan) if "age_years" in first.columns
+           else np.full(len(b), np.nan))
+    rule = b.prior_attr(lambda p: p.age_dependent, object)
+    dependent = b.prior_attr(lambda p: bool(p.age_dependent), bool)
     return _words(dependent & (age < YOUNG_YEARS), lambda i: (
-        f"young animal ({age[i]:.1f} years; age rule under {YOUNG_YEARS:g} years): {b.prior[i].age_dependent}"))
+        f"young animal ({age[i]:.1f} years; age rule under {YOUNG_YEARS:g} years): {rule[i]}"))
 
 
 def _breed_key(breed: str) -> str:
@@ -150,15 +182,20 @@ def breed_note(b: CaseBatch) -> np.ndarray:
     ``breed_notes`` is a pack field the schema does not carry yet (requested from the pack
     schema's owner); until it does, packs hold such notes in the analyte's ``note`` and this flag
     stays silent."""
-    notes = [getattr(p, "breed_notes", None) or {} for p in b.prior]
-    keys = [_breed_key(br) if br else "" for br in b.breed]
+    notes = b.prior_attr(lambda p: getattr(p, "breed_notes", None) or {}, object)
+    if not any(getattr(p, "breed_notes", None) for p in b.prior_groups[0]):
+        return np.full(len(b), "", dtype=object)
+    bc, bnames = pd.factorize(np.asarray(b.breed, dtype=object))
+    names = np.asarray([_breed_key(x) for x in bnames] + [""], dtype=object)
+    keys = names[bc]
     return _words([bool(k) and k in n for k, n in zip(keys, notes)],
                   lambda i: f"breed note ({b.breed[i]}): {notes[i][keys[i]]}")
 
 
 def breed_centre(b: CaseBatch) -> np.ndarray:
-    used = [bool(br) and c != p.center for br, c, p in zip(b.breed, b.center, b.prior)]
-    return _words(used, lambda i: f"breed-specific centre used ({b.breed[i]})")
+    breed = np.asarray(b.breed, dtype=object)
+    used = (breed != None) & (np.asarray(b.center, dtype=float) != b.prior_attr(lambda p: p.center))  # noqa: E711
+    return _words_by(used, breed, lambda k: f"breed-specific centre used ({k})")
 
 
 #: every flag of a case, in the order a case lists them
@@ -170,15 +207,23 @@ CASE_FLAGS: tuple[Callable[[CaseBatch], np.ndarray], ...] = (
 
 def case_flags(b: CaseBatch, flags=CASE_FLAGS) -> list[list[str]]:
     """The flags of every case (a list of words per case)."""
-    columns = [f(b) for f in flags]
-    return [[w for w in words if w] for words in zip(*columns)]
+    columns = np.stack([f(b) for f in flags], axis=1) if len(flags) else np.empty((len(b), 0), dtype=object)
+    on = columns != ""
+    words = columns[on].tolist()  # row by row, in flag order
+    ends = np.cumsum(on.sum(axis=1)).tolist()
+    starts = [0] + ends[:-1]
+    return [words[a:e] for a, e in zip(starts, ends)]
 
 
 def quality(b: CaseBatch) -> list[str]:
     """Sample quality of each assessed result: ``ok``, or the H/L/I indices over the pack's
     thresholds (``haemolysis,lipaemia``)."""
-    over = [hil_over(b, idx)[0] for idx in HIL_INDICES]
-    return [",".join(n for n, o in zip(HIL_INDICES, row) if o) or "ok" for row in zip(*over)]
+    code = np.zeros(len(b), dtype=np.int64)
+    for k, idx in enumerate(HIL_INDICES):
+        code |= hil_over(b, idx)[0].astype(np.int64) << k
+    names = [",".join(n for k, n in enumerate(HIL_INDICES) if c >> k & 1) or "ok"
+             for c in range(1 << len(HIL_INDICES))]
+    return np.asarray(names, dtype=object)[code].tolist()
 
 
 def not_converged_flag(diagnostics: dict) -> str:

@@ -67,9 +67,15 @@ class RowPriors:
 def row_priors(hist: pd.DataFrame, in_case: np.ndarray, packs: dict) -> RowPriors:
     """Priors of the (species, analyte) pairs of rows in a case; an analyte missing from a
     pack is an error naming up to five of the patients concerned."""
-    pairs = pd.MultiIndex.from_arrays([hist["species"], hist["analyte"]])
-    codes, uniq = pairs.factorize()
-    uniq = [tuple(u) for u in uniq]
+    sp_codes, sp_names = pd.factorize(hist["species"])
+    an_codes, an_names = pd.factorize(hist["analyte"])
+    pair = np.where((sp_codes < 0) | (an_codes < 0), -1,
+                    sp_codes.astype(np.int64) * (len(an_names) + 1) + an_codes)
+    codes, used = pd.factorize(pair, use_na_sentinel=False)
+    width = len(an_names) + 1
+    uniq = [(sp_names[int(k) // width], an_names[int(k) % width]) if k >= 0 else (None, None)
+            for k in np.asarray(used).tolist()]
+    uniq = [(None if s is None else str(s), None if a is None else str(a)) for s, a in uniq]
     of: dict = {}
     for c in pd.unique(codes[in_case]):
         sp, aid = uniq[c]

@@ -72,16 +72,31 @@ def pick_assessed(spec: pd.DataFrame, at) -> str:
     return before["specimen"].iloc[-1]
 
 
+def _specimen_rows(hist: pd.DataFrame):
+    """(patient codes, patient ids, specimen codes, specimen ids, first row of every
+    (patient, specimen) in row order)."""
+    pc, pu = pd.factorize(hist["patient"])
+    sc, su = pd.factorize(hist["specimen"])
+    pair = pc.astype(np.int64) * (len(su) + 1) + sc
+    first = np.sort(np.unique(pair, return_index=True)[1])
+    return pc, pu, sc, su, first
+
+
 def assessed_specimens(hist: pd.DataFrame, at=None) -> Targets:
     """The assessed specimen of each patient (specimens are keyed by patient and id)."""
-    spec = hist.drop_duplicates(["patient", "specimen"])[["patient", "specimen", "collected_at"]]
-    if at is None:
-        last = spec.groupby("patient", sort=False).tail(1)
-        target = dict(zip(last["patient"], last["specimen"]))
-    else:
+    if at is not None:
+        spec = hist.drop_duplicates(["patient", "specimen"])[["patient", "specimen", "collected_at"]]
         target = {pid: pick_assessed(g, at) for pid, g in spec.groupby("patient", sort=False)}
-    t_of = dict(zip(zip(spec["patient"], spec["specimen"]), spec["collected_at"]))
-    when = pd.Series([t_of[(p, s)] for p, s in zip(target, target.values())], index=list(target))
+        t_of = dict(zip(zip(spec["patient"], spec["specimen"]), spec["collected_at"]))
+        when = pd.Series([t_of[(p, s)] for p, s in zip(target, target.values())], index=list(target))
+        return Targets(specimen=target, collected_at=when)
+    pc, pu, _, _, first = _specimen_rows(hist)
+    last = np.full(len(pu), -1, dtype=np.int64)
+    np.maximum.at(last, pc[first], first)  # the last specimen (in row order) of every patient
+    last = np.sort(last)
+    pids = hist["patient"].iloc[last].tolist()
+    target = dict(zip(pids, hist["specimen"].iloc[last].tolist()))
+    when = pd.Series(list(hist["collected_at"].iloc[last]), index=pids)
     return Targets(specimen=target, collected_at=when)
 
 
@@ -90,25 +105,34 @@ class CaseRows:
     """Rows of a history against the assessed specimens: a case is a (patient, analyte)
     measured in the patient's assessed specimen."""
 
-    key: pd.Series  # "patient\\x1fanalyte" of every row
+    key: pd.Series  # the (patient, analyte) of every row (any hashable key)
     is_assessed: np.ndarray  # row of the patient's assessed specimen
     in_case: np.ndarray  # row of an analyte the assessed specimen measured
     earlier: np.ndarray  # in a case, collected before the assessed specimen
     later: np.ndarray  # in a case, not assessed, not earlier
     assessed_keys: np.ndarray  # the cases, in row order
+    case: np.ndarray | None = None  # the case of every row (-1: in none), when known
 
 
 def case_rows(hist: pd.DataFrame, targets: Targets) -> CaseRows:
-    key = hist["patient"].astype(str) + "\x1f" + hist["analyte"].astype(str)
-    is_assessed = (hist["specimen"] == hist["patient"].map(targets.specimen)).to_numpy()
+    pc, pu = pd.factorize(hist["patient"])
+    ac, au = pd.factorize(hist["analyte"])
+    key, _ = pd.factorize(pc.astype(np.int64) * (len(au) + 1) + ac)  # dense (patient, analyte) code
+    sc, su = pd.factorize(hist["specimen"])
+    pids = pd.Index(pu)
+    target_code = pd.Index(su).get_indexer(pids.map(lambda p: targets.specimen.get(p)))
+    is_assessed = (sc == target_code[pc]) & (target_code[pc] >= 0)
     assessed_keys = pd.unique(key[is_assessed])
-    in_case = key.isin(set(assessed_keys)).to_numpy()
+    case_of_key = np.full(int(key.max()) + 1 if len(key) else 0, -1, dtype=np.int64)
+    case_of_key[assessed_keys] = np.arange(len(assessed_keys))
+    case = case_of_key[key]
+    in_case = case >= 0
     t_arr = hist["collected_at"].to_numpy()
-    tt_arr = hist["patient"].map(targets.collected_at).to_numpy()
+    tt_arr = targets.collected_at.reindex(pids).to_numpy()[pc]
     earlier = in_case & ~is_assessed & (t_arr < tt_arr)
     later = in_case & ~is_assessed & ~earlier
     return CaseRows(key=key, is_assessed=is_assessed, in_case=in_case, earlier=earlier, later=later,
-                    assessed_keys=assessed_keys)
+                    assessed_keys=assessed_keys, case=case)
 
 
 # ------------------------------------------------------------------------ baseline rules
@@ -150,7 +174,7 @@ def rule_context(hist: pd.DataFrame, rows: CaseRows, priors: RowPriors,
     compromised, text = _quality_problems(hist, priors, rows.in_case)
     fasted = hist["fasted"] if "fasted" in hist else pd.Series(pd.NA, index=hist.index)
     return RuleContext(
-        key=rows.key.to_numpy(), state=hist["state"].fillna("").astype(str).to_numpy(),
+        key=np.asarray(rows.key), state=hist["state"].fillna("").astype(str).to_numpy(),
         compromised=compromised, quality_text=text,
         feeding=priors.column(is_feeding_sensitive, False, dtype=bool),
         fasted=fasted.eq(True).fillna(False).to_numpy(dtype=bool),

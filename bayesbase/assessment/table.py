@@ -5,7 +5,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from .cases import CaseBatch
+from .cases import CaseBatch, per_object
 from .engine_step import EngineResult
 from .options import Options
 from .roles import Targets
@@ -28,13 +28,22 @@ def assessed_values(b: CaseBatch) -> np.ndarray:
     return np.where(b.assessed.n_rep > 1, np.exp(b.assessed.log_mean), single)
 
 
+def _per_patient(b: CaseBatch, targets: Targets):
+    """(assessed specimen, its collection time) of every case, looked up once per patient."""
+    codes, pids = pd.factorize(np.asarray(b.patient, dtype=object))
+    spec = np.asarray([targets.specimen[p] for p in pids], dtype=object)
+    when = targets.collected_at.reindex(pd.Index(pids, dtype=object))
+    return spec[codes], when.iloc[codes].reset_index(drop=True)
+
+
 def _identity(b: CaseBatch, targets: Targets, values: np.ndarray) -> dict:
-    when = targets.collected_at.to_dict()
+    specimen, collected_at = _per_patient(b, targets)
+    codes, analytes = pd.factorize(np.asarray(b.analyte, dtype=object))
     return {
         "patient": b.patient, "species": b.species, "breed": b.breed, "analyte": b.analyte,
-        "label": [analyte_label(a) for a in b.analyte], "unit": [p.unit for p in b.prior],
-        "specimen": [targets.specimen[p] for p in b.patient],
-        "collected_at": [when[p] for p in b.patient],
+        "label": np.asarray([analyte_label(a) for a in analytes], dtype=object)[codes],
+        "unit": b.prior_attr(lambda p: p.unit, object),
+        "specimen": specimen, "collected_at": collected_at,
         "value": values, "reported_value": b.assessed.col("reported_value"),
         "reported_unit": b.assessed.col("reported_unit"), "censor": b.censor,
         "n_baseline": b.baselines.n.astype(int), "baseline_specimens": b.baselines.specimens,
@@ -44,7 +53,7 @@ def _identity(b: CaseBatch, targets: Targets, values: np.ndarray) -> dict:
 
 def _model(b: CaseBatch, res: dict, coverage: float) -> dict:
     sp_mean = np.exp(res["theta_mean"])
-    mcrc_pct = np.array([100 * float(p.mcrc) if p.mcrc else np.nan for p in b.prior])
+    mcrc_pct = b.prior_attr(lambda p: 100 * float(p.mcrc) if p.mcrc else np.nan)
     return {
         "set_point_mean": sp_mean, "set_point_lower": np.exp(res["theta_lower"]),
         "set_point_upper": np.exp(res["theta_upper"]),
@@ -56,8 +65,8 @@ def _model(b: CaseBatch, res: dict, coverage: float) -> dict:
 
 
 def _population(b: CaseBatch, values: np.ndarray, res: dict, cva: np.ndarray, cvg: np.ndarray) -> dict:
-    pop_lo = np.array([float(p.ri_lower) for p in b.prior])
-    pop_hi = np.array([float(p.ri_upper) for p in b.prior])
+    pop_lo = b.prior_attr(lambda p: float(p.ri_lower))
+    pop_hi = b.prior_attr(lambda p: float(p.ri_upper))
     return {
         "pop_lower": pop_lo, "pop_upper": pop_hi, "outside_population": (values < pop_lo) | (values > pop_hi),
         "cvi_pct": 100 * b.scalars["cvi"], "cvg_pct": 100 * cvg, "cva_pct": 100 * cva,
@@ -75,9 +84,10 @@ def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classica
     cols.update(classical_cols)
     cols.update(_population(b, values, engine.summary, cva, cvg))
     cols.update({
-        "retest_group": [p.group for p in b.prior], "quality": quality,
+        "retest_group": b.prior_attr(lambda p: p.group, object), "quality": quality,
         "comparable": (~b.method.changed | b.method.corrected).tolist(), "flags": [list(f) for f in flags],
-        "engine": opts.engine, "converged": engine.converged, "pack": [pk.id for pk in b.pack],
+        "engine": opts.engine, "converged": engine.converged,
+        "pack": per_object(b.pack, lambda pk: pk.id, object),
     })
     return pd.DataFrame(cols)
 

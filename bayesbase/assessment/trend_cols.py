@@ -28,27 +28,32 @@ def _series(b: CaseBatch):
     return t, y, r, e
 
 
+def _birth_years(b: CaseBatch) -> np.ndarray:
+    """Birth date of every case's animal in years since 1970 (NaN when unknown)."""
+    first = b.assessed.first
+    if "birth_date" not in first.columns:
+        return np.full(len(b), np.nan)
+    bd = pd.to_datetime(first["birth_date"]).to_numpy().astype("datetime64[ns]")
+    ns = bd.astype("int64")
+    return np.where(np.isnat(bd), np.nan, ns / 1e9 / 86400 / YEAR_DAYS)
+
+
 def trend_notes(b: CaseBatch, eligible: np.ndarray, years_to_limit: np.ndarray, first_t: np.ndarray) -> list[str]:
     """Why a trend was not computed, or what to keep in mind when reading it."""
-    birth = b.assessed.col("birth_date")
-    notes = []
-    for i, p in enumerate(b.prior):
-        if not eligible[i]:
-            notes.append(f"trend not computed: needs {TREND_RULE}")
-            continue
-        note = ""
-        if not np.isfinite(years_to_limit[i]):
-            note = f"set point not projected to reach a population limit within {TREND_HORIZON_YEARS:g} years"
-        if p.age_dependent:
-            bd = birth[i]
-            age0 = None
-            if bd is not None and not pd.isna(bd):
-                age0 = first_t[i] - pd.Timestamp(bd).value / 1e9 / 86400 / YEAR_DAYS
-            if age0 is None or age0 < GROWING_YEARS:
-                note = ("young or unknown age: this analyte's set point is known to move with age "
-                        f"({p.age_dependent}); a drift may be growth, not disease")
-        notes.append(note)
-    return notes
+    eligible = np.asarray(eligible, dtype=bool)
+    notes = np.full(len(b), f"trend not computed: needs {TREND_RULE}", dtype=object)
+    notes[eligible] = ""
+    no_limit = eligible & ~np.isfinite(np.asarray(years_to_limit, dtype=float))
+    notes[no_limit] = f"set point not projected to reach a population limit within {TREND_HORIZON_YEARS:g} years"
+    rule = b.prior_attr(lambda p: p.age_dependent, object)
+    dependent = b.prior_attr(lambda p: bool(p.age_dependent), bool)
+    with np.errstate(invalid="ignore"):
+        age0 = first_t - _birth_years(b)
+    young = eligible & dependent & ~(age0 >= GROWING_YEARS)  # unknown age (NaN) counts as young
+    for i in np.flatnonzero(young).tolist():
+        notes[i] = ("young or unknown age: this analyte's set point is known to move with age "
+                    f"({rule[i]}); a drift may be growth, not disease")
+    return notes.tolist()
 
 
 def trend_columns(b: CaseBatch, prior_drift: float, nodes: int) -> dict[str, object]:
@@ -57,8 +62,8 @@ def trend_columns(b: CaseBatch, prior_drift: float, nodes: int) -> dict[str, obj
     t, y, r, e = _series(b)
     out = trend_exact(
         t, y, r, e, S["prior_mean"], S["sg"], S["cvi"], S["cvi_log_sd"], S["sa"], S["slope_sd"],
-        prior_drift=prior_drift, limit_upper=np.log([p.ri_upper for p in b.prior]),
-        limit_lower=np.log([p.ri_lower for p in b.prior]), nodes=nodes,
+        prior_drift=prior_drift, limit_upper=np.log(b.prior_attr(lambda p: p.ri_upper)),
+        limit_lower=np.log(b.prior_attr(lambda p: p.ri_lower)), nodes=nodes,
     )
     elig = np.asarray(out["eligible"], dtype=bool)
 

@@ -11,7 +11,7 @@ DEMO_DIR = "bayesbase-output"
 
 
 def add_parsers(sub) -> None:
-    p = sub.add_parser("demo", help="assess every case of the built-in case library and write reports")
+    p = sub.add_parser("demo", help="assess every patient case of the built-in case library and write reports")
     p.add_argument("--out", default=DEMO_DIR, help=f"output folder (default: ./{DEMO_DIR})")
     p.add_argument("--no-pdf", action="store_true", help="HTML only")
     p.set_defaults(run=cmd_demo)
@@ -126,46 +126,83 @@ def cmd_report(args) -> int:
     return 0
 
 
+#: case.toml tables of a research job's case (the reference-interval job's settings): such a
+#: folder holds a study population, not one patient's history
+_RESEARCH_TABLES = ("interval",)
+
+
+def research_kind(case: dict) -> str | None:
+    """What a case folder holds when it is not one patient's history: its ``kind`` (``study``),
+    or the research job whose table it carries (``interval``); None for a patient case."""
+    kind = case.get("kind")
+    if kind and kind != "patient":
+        return str(kind)
+    return next((t for t in _RESEARCH_TABLES if t in case), None)
+
+
+def _demo_summary(t) -> str:
+    """One line: the probable changes, drifts, compromised samples and method changes."""
+    from ..report import select_changes
+
+    listed = t[select_changes(t["p_change"].to_numpy())]
+    parts = [f"{r.label} {'up' if r.p_increase >= 0.5 else 'down'} (P(change) {r.p_change:.2f}"
+             + (", compromised sample" if r.quality != "ok" else "") + ")"
+             for r in listed.itertuples()]
+    if "trend_p_drift" in t:
+        for r in t[t["trend_p_drift"] >= 0.9].itertuples():
+            parts.append(f"{r.label} drifting {r.trend_pct_per_year:+.1f} %/year (P(drift) {r.trend_p_drift:.2f})")
+    comp = t[(t["quality"] != "ok") & ~t.index.isin(listed.index)]
+    parts += [f"{r.label} compromised sample" for r in comp.itertuples()]
+    if not t["comparable"].all():
+        parts.append("method changed: not directly comparable")
+    return "; ".join(parts) or "no probable change"
+
+
+def _demo_case(case: dict, frame, out: Path, pdf: bool, packs: dict):
+    """Assess one patient case once and write its JSON and report (as ``report_for_file`` does
+    with the species' pack; each species' pack is loaded once for the whole demo)."""
+    from .. import report
+    from ..assessment import assess
+    from ..priors import load_pack
+
+    pid = str(case["patient"])
+    sub = frame[frame["patient"].astype(str) == pid]
+    species = str(sub["species"].iloc[0])
+    if species not in packs:
+        packs[species] = load_pack(species)
+    pack = packs[species]
+    a = assess(sub, pack=pack, at=case.get("at"))
+    (out / f"{case['id']}.json").write_text(a.to_json(), encoding="utf-8")
+    path = report.personal_interval_path(sub, pack, pid, assess, engine="exact", trend=False)
+    report.build_report(a, pack, out / f"{case['id']}.html", pdf=out / f"{case['id']}.pdf" if pdf else None,
+                        interval_path=path, patient=pid)
+    return a
+
+
 def cmd_demo(args) -> int:
     import tomllib
     from importlib import resources
 
-    from .. import report
-    from ..assessment import assess
     from ..io import read_results as load_results
 
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     root = resources.files("bayesbase.case_library")
-    lines = []
+    lines, skipped, packs = [], [], {}
     for case_dir in sorted((p for p in root.iterdir() if p.is_dir() and (p / "case.toml").is_file()),
                            key=lambda p: p.name):
         case = tomllib.loads((case_dir / "case.toml").read_text(encoding="utf-8"))
+        kind = research_kind(case)
+        if kind is not None:
+            skipped.append(f"{case['id']} ({kind})")
+            continue
         with resources.as_file(case_dir / "results.csv") as csv_path:
             frame = load_results(csv_path)
-        a = assess(frame, patient=case["patient"], at=case.get("at"))
-        (out / f"{case['id']}.json").write_text(a.to_json(), encoding="utf-8")
-        files = report.report_for_file(
-            frame, case["patient"], None, out / f"{case['id']}.html",
-            pdf=None if args.no_pdf else out / f"{case['id']}.pdf", at=case.get("at"))
-        from ..report import select_changes
-
-        t = a.table
-        listed = t[select_changes(t["p_change"].to_numpy())]
-        parts = [f"{r.label} {'up' if r.p_increase >= 0.5 else 'down'} (P(change) {r.p_change:.2f}"
-                 + (", compromised sample" if r.quality != "ok" else "") + ")"
-                 for r in listed.itertuples()]
-        if "trend_p_drift" in t:
-            for r in t[t["trend_p_drift"] >= 0.9].itertuples():
-                parts.append(f"{r.label} drifting {r.trend_pct_per_year:+.1f} %/year (P(drift) {r.trend_p_drift:.2f})")
-        comp = t[(t["quality"] != "ok") & ~t.index.isin(listed.index)]
-        parts += [f"{r.label} compromised sample" for r in comp.itertuples()]
-        if not t["comparable"].all():
-            parts.append("method changed: not directly comparable")
-        summary = "; ".join(parts) or "no probable change"
-        lines.append(f"{case['id']:<42} {summary}")
-        del files
+        a = _demo_case(case, frame, out, not args.no_pdf, packs)
+        lines.append(f"{case['id']:<42} {_demo_summary(a.table)}")
     print("\n".join(lines))
-    print(f"\nwrote an HTML{'' if args.no_pdf else ' and PDF'} report and a JSON assessment per case to {out}/")
+    if skipped:
+        print(f"\nskipped the research cases (a population, not one patient's history): {', '.join(skipped)}")
+    print(f"\nwrote an HTML{'' if args.no_pdf else ' and PDF'} report and a JSON assessment per patient case to {out}/")
     print(" ".join(CAUTIONS))
     return 0

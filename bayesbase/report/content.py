@@ -501,9 +501,12 @@ def _provenance(attrs: dict, pack, now: datetime) -> tuple[tuple[str, str], ...]
 # --------------------------------------------------------------------------- figures
 def _figures(history, table, interval_path, dpi: int, svg: bool) -> Figures:
     panels = []
+    per_analyte = figures.analyte_histories(history, table["patient"].iloc[0]) if len(table) else {}
     for _, row in table.iterrows():
+        h = per_analyte.get(row["analyte"])
         fig = figures.analyte_panel(history, row, interval_path, width=FIG_WIDTH,
-                                    height=FIG_HEIGHT)
+                                    height=FIG_HEIGHT,
+                                    analyte_history=h if h is not None else history.iloc[0:0])
         label = str(row["label"])
         panels.append(FigureImage(str(row["analyte"]), label, w.figure_alt(label),
                                   figures.figure_png(fig, dpi=dpi),

@@ -56,6 +56,7 @@ __all__ = [
     "star_svg",
     "tint",
     "analyte_panel",
+    "analyte_histories",
     "small_multiples",
     "legend_figure",
     "legend_handles",
@@ -182,20 +183,39 @@ def _finite(x) -> bool:
         return False
 
 
-def _analyte_history(history: pd.DataFrame, patient, analyte) -> pd.DataFrame:
-    h = history[(history["patient"] == patient) & (history["analyte"] == analyte)]
-    if h.empty:
-        return h
-    # one point per specimen: the mean of replicates on the log scale (geometric mean)
-    cols = ["specimen", "collected_at", "role"]
+def _per_specimen(h: pd.DataFrame, by: list) -> pd.DataFrame:
+    """One point per specimen (grouped ``by`` these columns): the mean of replicates on the log
+    scale (geometric mean) and the first censoring mark."""
     agg = (
         h.assign(_logv=np.log(h["value"].astype(float)))
-        .groupby(cols, sort=False, dropna=False)
+        .groupby(by, sort=False, dropna=False)
         .agg(_logv=("_logv", "mean"), censor=("censor", lambda s: next((c for c in s if c), "")))
         .reset_index()
     )
     agg["value"] = np.exp(agg["_logv"])
+    return agg
+
+
+def _analyte_history(history: pd.DataFrame, patient, analyte) -> pd.DataFrame:
+    h = history[(history["patient"] == patient) & (history["analyte"] == analyte)]
+    if h.empty:
+        return h
+    agg = _per_specimen(h, ["specimen", "collected_at", "role"])
     return agg.sort_values("collected_at").reset_index(drop=True)
+
+
+def analyte_histories(history: pd.DataFrame, patient) -> dict:
+    """:func:`_analyte_history` of every analyte of one patient at once (analyte -> frame, the
+    same frames, from one grouping instead of one per panel)."""
+    h = history[history["patient"] == patient]
+    if h.empty:
+        return {}
+    agg = _per_specimen(h, ["analyte", "specimen", "collected_at", "role"])
+    out = {}
+    for analyte, g in agg.groupby("analyte", sort=False):
+        g = g.drop(columns="analyte").reset_index(drop=True)
+        out[analyte] = g.sort_values("collected_at").reset_index(drop=True)
+    return out
 
 
 def _path_for(interval_path, patient, analyte) -> pd.DataFrame | None:
@@ -335,6 +355,18 @@ def _set_ylim(ax, h: pd.DataFrame, values, steps) -> None:
         ax.set_ylim(max(lo - 0.12 * r, 0.0) if lo >= 0 else lo - 0.12 * r, hi + 0.12 * r)
 
 
+def _y_offset_shown(ax) -> bool:
+    """Whether the y axis will show an offset or multiplier text at draw time (True when that
+    cannot be told without drawing)."""
+    from matplotlib.ticker import ScalarFormatter
+
+    fmt = ax.yaxis.get_major_formatter()
+    if type(fmt) is not ScalarFormatter or not ax.yaxis.offsetText.get_visible():
+        return True
+    fmt.set_locs(ax.yaxis.get_majorticklocs())
+    return bool(fmt.get_offset())
+
+
 def _style_axes(ax, row, compact: bool) -> None:
     # maxticks 4 makes AutoDateLocator warn for spans near 18 months (checked 1 day to 11 years)
     locator = mdates.AutoDateLocator(minticks=2, maxticks=5 if compact else 7)
@@ -346,16 +378,25 @@ def _style_axes(ax, row, compact: bool) -> None:
     ax.spines["left"].set_linewidth(0.6)
     ax.spines["bottom"].set_linewidth(0.6)
     ptxt = w.panel_p_text(row["p_change"] if _finite(row["p_change"]) else None)
+    # the title stays at the top of the axes unless a y offset text ("1e3", "+1.47e2") could
+    # push it up: place it there directly then, which spares matplotlib measuring every tick
+    # label for it at each draw (the same pixels)
     ax.set_title(f"{row['label']}  [{display_unit(str(row['analyte']))}]",
-                 fontsize=8.5 if compact else 10, loc="left", pad=3, fontweight="bold")
+                 fontsize=8.5 if compact else 10, loc="left", pad=3, fontweight="bold",
+                 y=None if _y_offset_shown(ax) else 1.0)
+    # the axis labels are empty: fixed positions spare matplotlib placing them at each draw
+    ax.xaxis.set_label_coords(0.5, -0.1)
+    ax.yaxis.set_label_coords(-0.1, 0.5)
     ax.text(1.0, 1.01, ptxt, transform=ax.transAxes, ha="right", va="bottom",
             fontsize=7.2 if compact else 8, color="#333333")
 
 
 def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
-                compact: bool = False) -> None:
-    """One analyte of one patient over time, on ``ax``."""
-    h = _analyte_history(history, row["patient"], row["analyte"])
+                compact: bool = False, h: pd.DataFrame | None = None) -> None:
+    """One analyte of one patient over time, on ``ax`` (``h``: its :func:`_analyte_history`
+    when already computed)."""
+    if h is None:
+        h = _analyte_history(history, row["patient"], row["analyte"])
     t_assessed = pd.Timestamp(row["collected_at"])
     times = list(h["collected_at"]) if len(h) else [t_assessed]
     xlo, xhi, span = _window(times, t_assessed)
@@ -381,7 +422,8 @@ def _margins(fig: Figure, width: float, height: float, top_in: float = 0.32,
 
 
 def analyte_panel(history: pd.DataFrame, table_row, interval_path: pd.DataFrame | None = None,
-                  trend: dict | None = None, *, width: float = 3.4, height: float = 2.3) -> Figure:
+                  trend: dict | None = None, *, width: float = 3.4, height: float = 2.3,
+                  analyte_history: pd.DataFrame | None = None) -> Figure:
     """One analyte of one patient over time.
 
     Parameters
@@ -393,11 +435,13 @@ def analyte_panel(history: pd.DataFrame, table_row, interval_path: pd.DataFrame 
         ``bayesbase.report.personal_interval_path``).
     trend : optional dict ``pct_per_year, pct_lower, pct_upper``; by default taken from the
         row's trend columns when they are finite.
+    analyte_history : optional, this analyte's entry of :func:`analyte_histories` (computed
+        from ``history`` when not given).
     """
     fig = _new_figure(width, height)
     _margins(fig, width, height)
     ax = fig.add_subplot(1, 1, 1)
-    _draw_panel(ax, history, table_row, interval_path, trend, compact=True)
+    _draw_panel(ax, history, table_row, interval_path, trend, compact=True, h=analyte_history)
     return fig
 
 

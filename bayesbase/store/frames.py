@@ -12,7 +12,7 @@ from datetime import datetime, timezone
 from ..contract import CANONICAL_COLUMNS, CANONICAL_DTYPES
 
 __all__ = ["VALUE_RTOL", "CANONICAL_SORT", "is_missing", "py", "col", "blank_to_none", "iso",
-           "same", "differs", "coerce_canonical", "now_utc"]
+           "same", "differs", "coerce_canonical", "canonical_from_tables", "now_utc"]
 
 #: Relative tolerance under which two canonical values are the same value (float round-off of a
 #: unit conversion; modelling choice of this project).
@@ -109,9 +109,92 @@ def coerce_canonical(frame):
         if dt.startswith("datetime64"):
             s = pd.to_datetime(s, format="ISO8601").astype(dt)
         elif dt == "boolean":
-            s = s.map(lambda x: pd.NA if is_missing(x) else bool(x)).astype("boolean")
+            missing = pd.isna(s).to_numpy(dtype=bool)
+            s = pd.Series(pd.array([None if m else bool(x) for x, m in zip(s.to_numpy(dtype=object), missing)],
+                                   dtype="boolean"), index=s.index)
         else:
             s = s.astype(dt)
         out[name] = s
     df = pd.DataFrame(out)
     return df.sort_values(CANONICAL_SORT, kind="mergesort").reset_index(drop=True)
+
+
+def _text(values, index=None):
+    """A canonical text column (``string`` dtype) from str/None values, taken at ``index``."""
+    import numpy as np
+    import pandas as pd
+    import pyarrow as pa
+
+    arr = pd.array(pa.array(values, type=pa.string()), dtype="string")
+    return arr if index is None else arr.take(np.asarray(index, dtype=np.intp))
+
+
+def _times(values):
+    """ISO 8601 texts as canonical datetimes (as :func:`coerce_canonical` reads them)."""
+    import pandas as pd
+
+    return pd.to_datetime(pd.Series(list(values), dtype=object), format="ISO8601").astype("datetime64[ns]").to_numpy()
+
+
+def _rank(values) -> "np.ndarray":
+    """The rank of every text in code-point order (equal texts share a rank)."""
+    import numpy as np
+    import pandas as pd
+
+    codes, uniq = pd.factorize(np.asarray(values, dtype=object))
+    rank = np.empty(len(uniq), dtype=np.int64)
+    rank[np.argsort(np.asarray(uniq, dtype=object), kind="stable")] = np.arange(len(uniq))
+    return rank[codes]
+
+
+def _positions(keys, pks) -> "np.ndarray":
+    """Row of ``pks`` holding each of ``keys`` (every key is present: foreign keys)."""
+    import numpy as np
+
+    pks = np.asarray(pks, dtype=np.int64)
+    order = np.argsort(pks, kind="stable")
+    return order[np.searchsorted(pks, np.asarray(keys, dtype=np.int64), sorter=order)]
+
+
+def canonical_from_tables(patients: dict, specimens: dict, results: dict, files: dict):
+    """The canonical frame from the store's tables read as columns ({column: tuple}; see
+    :mod:`.queries`): each result row joined to its specimen and patient, the source file taken
+    from the import log when the row names none; canonical dtypes, column order and row order
+    (:data:`CANONICAL_SORT`), as :func:`coerce_canonical` gives them."""
+    import numpy as np
+    import pandas as pd
+
+    n = len(results["specimen"])
+    s_row = _positions(results["specimen"], specimens["pk"]) if n else np.zeros(0, dtype=np.intp)
+    p_of_s = _positions(specimens["patient"], patients["pk"]) if len(specimens["pk"]) else np.zeros(0, np.intp)
+    p_row = p_of_s[s_row]
+    s_time = _times(specimens["collected_at"])
+    order = np.lexsort((
+        np.asarray(results["replicate"], dtype=np.int64), _rank(results["analyte"]),
+        _rank(specimens["id"])[s_row], s_time.astype("int64")[s_row], _rank(patients["id"])[p_row],
+    )) if n else np.zeros(0, dtype=np.intp)
+    s_row, p_row = s_row[order], p_row[order]
+
+    def take(col):
+        out = np.empty(n, dtype=object)
+        out[:] = col
+        return out[order]
+
+    source = [f if f is not None else files.get(k) for f, k in zip(results["source_file"], results["import"])]
+    source = source if n else ()
+    fasted = pd.array([None if v is None else bool(v) for v in specimens["fasted"]], dtype="boolean")
+    cols = {
+        "patient": _text(patients["id"], p_row), "species": _text(patients["species"], p_row),
+        "breed": _text(patients["breed"], p_row), "sex": _text(patients["sex"], p_row),
+        "birth_date": _times(patients["birth_date"])[p_row], "specimen": _text(specimens["id"], s_row),
+        "collected_at": s_time[s_row], "analyte": _text(take(results["analyte"])),
+        "value": np.asarray(results["value"], dtype="float64")[order] if n else np.zeros(0), "unit": _text(take(results["unit"])),
+        "reported_value": _text(take(results["reported_value"])),
+        "reported_unit": _text(take(results["reported_unit"])), "censor": _text(take(results["censor"])),
+        "method": _text(take(results["method"])),
+        "replicate": pd.array(np.asarray(results["replicate"], dtype=np.int64)[order], dtype="Int64"), "fasted": fasted.take(s_row),
+        **{k: np.asarray(specimens[k], dtype="float64")[s_row] for k in ("haemolysis", "lipaemia", "icterus")},
+        "state": _text(specimens["state"], s_row), "source_file": _text(take(source)),
+        "source_row": pd.array(take(results["source_row"]), dtype="Int64"),
+    }
+    return pd.DataFrame(cols, columns=list(CANONICAL_COLUMNS)).astype(CANONICAL_DTYPES)

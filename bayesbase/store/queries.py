@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from ..errors import StoreError
 from ..units import resolve_analyte
-from .frames import coerce_canonical
+from .frames import canonical_from_tables
 
 __all__ = ["results", "history", "history_table", "patients", "imports", "replaced",
            "require_patient", "analyte_id"]
@@ -18,6 +18,17 @@ _SELECT = (
     "FROM results r JOIN specimens s ON s.pk = r.specimen "
     "JOIN patients p ON p.pk = s.patient LEFT JOIN import_log l ON l.id = r.import")
 
+#: the canonical frame is read one table at a time (patients and specimens once each, not once
+#: per result), each as columns; the filters of :func:`_frame` by patient and analyte
+_TABLES = {
+    "patients": ("SELECT pk, id, species, breed, sex, birth_date FROM patients", "pk = ?"),
+    "specimens": ("SELECT pk, patient, id, collected_at, fasted, haemolysis, lipaemia, icterus, state "
+                  "FROM specimens", "patient = ?"),
+    "results": ("SELECT specimen, analyte, value, unit, reported_value, reported_unit, censor, method, "
+                "replicate, import, source_file, source_row FROM results",
+                "specimen IN (SELECT pk FROM specimens WHERE patient = ?)"),
+}
+
 
 def _records(cur):
     """The rows of an executed cursor as a frame with the cursor's column names."""
@@ -26,8 +37,26 @@ def _records(cur):
     return pd.DataFrame.from_records(cur.fetchall(), columns=[d[0] for d in cur.description])
 
 
-def _frame(conn, where: str = "", params: tuple = ()):
-    return coerce_canonical(_records(conn.execute(_SELECT + where, params)))
+def _columns(conn, table: str, patient_pk: int | None, extra: str = "", params: tuple = ()) -> dict:
+    """One table's rows (of one patient when ``patient_pk`` is given) as {column: tuple}."""
+    sql, by_patient = _TABLES[table]
+    where = ([by_patient] if patient_pk is not None else []) + ([extra] if extra else [])
+    args = ((patient_pk,) if patient_pk is not None else ()) + params
+    cur = conn.execute(sql + (" WHERE " + " AND ".join(where) if where else ""), args)
+    names = [d[0] for d in cur.description]
+    rows = cur.fetchall()
+    cols = list(zip(*rows)) if rows else [()] * len(names)
+    return dict(zip(names, cols))
+
+
+def _frame(conn, patient_pk: int | None = None, analyte: str | None = None):
+    """The canonical frame of the store (one patient's when ``patient_pk`` is given, one
+    analyte's when ``analyte`` is), built from the three tables (:func:`.frames.canonical_from_tables`)."""
+    res = _columns(conn, "results", patient_pk, "analyte = ?" if analyte is not None else "",
+                   (analyte,) if analyte is not None else ())
+    files = dict(conn.execute("SELECT id, file FROM import_log").fetchall())
+    return canonical_from_tables(_columns(conn, "patients", patient_pk), _columns(conn, "specimens", patient_pk),
+                                 res, files)
 
 
 def require_patient(conn, path, patient) -> int:
@@ -50,16 +79,13 @@ def results(conn, path, patient: str | None = None):
     """Canonical results frame (all patients, or one), ready for :func:`bayesbase.assess`."""
     if patient is None:
         return _frame(conn)
-    require_patient(conn, path, patient)
-    return _frame(conn, " WHERE p.id = ?", (str(patient),))
+    return _frame(conn, require_patient(conn, path, patient))
 
 
 def history(conn, path, patient: str, analyte: str | None = None):
     """Canonical frame of one patient's results (optionally one analyte), in time order."""
-    require_patient(conn, path, patient)
-    if analyte is None:
-        return _frame(conn, " WHERE p.id = ?", (str(patient),))
-    return _frame(conn, " WHERE p.id = ? AND r.analyte = ?", (str(patient), analyte_id(analyte)))
+    pk = require_patient(conn, path, patient)
+    return _frame(conn, pk, None if analyte is None else analyte_id(analyte))
 
 
 def history_table(h):
