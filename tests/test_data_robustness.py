@@ -357,6 +357,34 @@ def test_utf16_without_bom_is_detected(tmp_path, encoding):
     assert any("UTF-16" in n for n in frame.attrs["notes"])
 
 
+@pytest.mark.parametrize("encoding,bom", [("utf-32", True), ("utf-32-le", False),
+                                          ("utf-32-be", False)])
+def test_utf32_is_read_with_or_without_bom(tmp_path, encoding, bom):
+    # Unicode standard: UTF-32 LE's byte-order mark FF FE 00 00 begins with UTF-16 LE's FF FE,
+    # so UTF-32 is recognised first; without a mark, by three zero bytes per ASCII character
+    text = good_csv(["Tom,cat,S9,2024-05-05,creatinine,150,\u00b5mol/L"])
+    path = write(tmp_path, text, encoding=encoding)
+    assert path.read_bytes().startswith((codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE)) == bom
+    frame = load(path)
+    assert frame.query("specimen == 'S9'")["value"].item() == 150.0
+    assert frame.query("specimen == 'S9'")["reported_unit"].item() == "\u00b5mol/L"
+
+
+@pytest.mark.parametrize("encoding,cut,needle", [
+    ("utf-16-le", 1, "looks like"), ("utf-16-be", 1, "looks like"),
+    ("utf-16", 1, "byte-order mark"), ("utf-32", 2, "byte-order mark")])
+def test_wide_text_cut_mid_character_is_a_plain_problem(tmp_path, encoding, cut, needle):
+    # a UTF-16/UTF-32 file cut off inside its last character (an odd number of bytes) was
+    # read as single bytes, giving columns named 'p<U+0000>a<U+0000>t...'
+    data = good_csv().encode(encoding)[:-cut]
+    for read in (bio.read_results, lambda p: bio.read_results_chunked(p, chunksize=2)):
+        with pytest.raises(ValidationError) as exc:
+            read(write(tmp_path, data))
+        (p,) = exc.value.problems
+        assert p.file == "results.csv" and needle in p.message and "not valid UTF" in p.message
+        assert "UTF-8" in p.hint
+
+
 def test_formula_like_text_values_are_noted(tmp_path):
     header = HEADER + ",breed,method"
     rows = [

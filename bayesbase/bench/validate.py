@@ -1,23 +1,30 @@
-"""Benchmark of ``validate`` for ``bayesbase bench`` (timings only, no assertions)."""
+"""Benchmarks of ``validate`` for ``bayesbase bench`` (timings and memory, no assertions):
+in memory on a frame, and the bounded-memory chunked read of a large tidy CSV file."""
 from __future__ import annotations
 
+import json
+import subprocess
+import sys
+import tempfile
 import time
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-__all__ = ["bench_validate"]
+__all__ = ["bench_validate", "bench_validate_file", "write_bench_csv"]
 
 
-def _bench_frame(n_rows: int, seed: int) -> pd.DataFrame:
-    """Invented results (demo data for the benchmark only): 10 analytes per specimen."""
+def _bench_frame(n_rows: int, seed, start: int = 0) -> pd.DataFrame:
+    """Invented results (demo data for the benchmark only): 10 analytes per specimen; rows
+    ``start`` .. ``start + n_rows`` of one long file (``start`` a multiple of 10)."""
     rng = np.random.default_rng(seed)
     panel = [("CREA", "mg/dL", 0.5, 2.0), ("BUN", "mg/dL", 8, 30), ("ALT", "U/L", 20, 120),
              ("ALKP", "U/L", 20, 150), ("GLU", "mmol/L", 3.5, 7.0), ("TP", "g/dL", 5.5, 7.5),
              ("ALB", "g/L", 25, 40), ("Na", "mEq/L", 140, 155), ("K", "mmol/L", 3.6, 5.6),
              ("HCT", "%", 35, 55)]
     n_spec = -(-n_rows // len(panel))
-    spec = np.repeat(np.arange(n_spec), len(panel))[:n_rows]
+    spec = np.repeat(np.arange(n_spec), len(panel))[:n_rows] + start // len(panel)
     k = np.tile(np.arange(len(panel)), n_spec)[:n_rows]
     patient = spec // 5
     visit = spec % 5
@@ -53,3 +60,62 @@ def bench_validate(n_rows: int = 1_000_000, seed: int = 20240601) -> dict:
     frame = validate(raw, source="<bench>", now="2030-01-01")
     seconds = time.perf_counter() - t0
     return {"n_rows": int(len(frame)), "seconds": seconds, "rows_per_second": len(frame) / seconds}
+
+
+def write_bench_csv(path: Path, n_rows: int, seed: int = 20240601, block: int = 500_000) -> Path:
+    """Write ``n_rows`` invented results as a tidy CSV, ``block`` rows at a time (the file is
+    never whole in memory)."""
+    with open(path, "w", encoding="utf-8", newline="") as fh:
+        for k, start in enumerate(range(0, n_rows, block)):
+            part = _bench_frame(min(block, n_rows - start), [seed, k], start=start)
+            part.to_csv(fh, index=False, header=(k == 0), lineterminator="\n")
+    return path
+
+
+#: Run in a child process, so that its peak resident memory is that of the read alone.
+_CHILD = """
+import json, resource, sys, time
+from bayesbase.io.chunked import iter_results
+from bayesbase.io import read_results
+path, chunksize = sys.argv[1], int(sys.argv[2])
+t = time.perf_counter()
+if chunksize > 0:
+    chunks = iter_results(path, chunksize=chunksize, now="2030-01-01")
+    n = sum(len(c) for c in chunks)
+else:
+    n = len(read_results(path, now="2030-01-01"))
+seconds = time.perf_counter() - t
+use = resource.getrusage(resource.RUSAGE_SELF)
+print(json.dumps({"n": n, "seconds": seconds, "cpu_seconds": use.ru_utime + use.ru_stime,
+                  "peak_mib": use.ru_maxrss / 1024}))  # ru_maxrss: KiB on Linux
+"""
+
+
+def _measure(path: Path, chunksize: int) -> dict:
+    out = subprocess.run([sys.executable, "-c", _CHILD, str(path), str(chunksize)],
+                         capture_output=True, text=True, check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def bench_validate_file(n_rows: int = 10_000_000, chunksize: int = 250_000,
+                        whole_file_rows: int = 1_000_000) -> dict:
+    """Read and validate an ``n_rows`` tidy CSV (written to a temporary file in blocks) with
+    :func:`bayesbase.io.iter_results`, in a child process: rows per second and peak resident
+    memory (``ru_maxrss``). For comparison, the whole-file path (``read_results``) on
+    ``whole_file_rows`` rows (0: skip). Nothing asserted; the target (peak under 1.5 GB at ten
+    million rows) is read from the numbers."""
+    with tempfile.TemporaryDirectory() as d:
+        path = write_bench_csv(Path(d) / "bench.csv", n_rows)
+        size_mb = path.stat().st_size / 1e6
+        got = _measure(path, chunksize)
+        res = {"n_rows": got["n"], "file_mb": round(size_mb, 1), "chunksize": chunksize,
+               "seconds": round(got["seconds"], 1), "cpu_seconds": round(got["cpu_seconds"], 1),
+               "rows_per_second": round(got["n"] / got["seconds"]),
+               "peak_rss_mib (chunked)": round(got["peak_mib"])}
+        if whole_file_rows:
+            small = write_bench_csv(Path(d) / "whole.csv", whole_file_rows)
+            whole = _measure(small, 0)
+            res[f"peak_rss_mib (whole file, {whole_file_rows} rows)"] = round(whole["peak_mib"])
+            res[f"peak_rss_mib (chunked, {whole_file_rows} rows)"] = round(
+                _measure(small, chunksize)["peak_mib"])
+    return res

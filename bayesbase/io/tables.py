@@ -3,8 +3,9 @@
 Input rules (documented choices of this project)
 ------------------------------------------------
 * Text files: comma, semicolon, tab or pipe delimited (the delimiter is the one that occurs most
-  often in the header line); UTF-8 with or without BOM, UTF-16 with BOM, UTF-16 LE/BE without BOM
-  (recognised by its zero bytes), otherwise Windows-1252 / Latin-1 (so a Latin-1 ``µmol/L`` reads
+  often in the header line); UTF-8 with or without BOM, UTF-16 or UTF-32 with BOM, UTF-16 or
+  UTF-32 LE/BE without BOM (recognised by its zero bytes; one that then does not decode, e.g. cut
+  off mid-character, is a problem, never read as single bytes), otherwise Windows-1252 / Latin-1 (so a Latin-1 ``µmol/L`` reads
   correctly; also after a UTF-8 BOM when the rest is not UTF-8, with a note). Blank lines (or
   lines of delimiters only) above the header and at the end are skipped; row numbers stay the
   lines a user sees. A first data row wider than the header is a problem, never re-read as an
@@ -51,6 +52,34 @@ def _looks_utf16(data: bytes) -> str | None:
     return None
 
 
+def _looks_utf32(data: bytes) -> str | None:
+    """'utf-32-le' / 'utf-32-be' when a BOM-less file has the zero-byte pattern of UTF-32 text
+    (three zero bytes with every ASCII character), else None."""
+    sample = data[:4096 - 4096 % 4]
+    sample = sample[:len(sample) - len(sample) % 4]
+    if len(sample) < 8:
+        return None
+    z = [sample[k::4].count(0) / (len(sample) // 4) for k in range(4)]
+    if z[2] > 0.9 and z[3] > 0.9 and z[0] < 0.05:
+        return "utf-32-le"
+    if z[0] > 0.9 and z[1] > 0.9 and z[3] < 0.05:
+        return "utf-32-be"
+    return None
+
+
+def wide_encoding(head: bytes) -> str | None:
+    """The UTF-32 or UTF-16 encoding a BOM-less file's first bytes show by their zero bytes."""
+    return _looks_utf32(head) or _looks_utf16(head)
+
+
+def not_valid_as(name: str, encoding: str, why: str) -> ValidationError:
+    """The problem of a file that looks like (or says it is) ``encoding`` but does not decode."""
+    label = encoding.upper().replace("-LE", " LE").replace("-BE", " BE")
+    return ValidationError([Problem(name, None, None, f"{why} {label} text but is not valid "
+                                    f"{label} (cut off or damaged?)",
+                                    "save the file again as UTF-8 CSV")])
+
+
 def _decode_8bit(data: bytes) -> tuple[str, str]:
     try:
         return data.decode("cp1252"), "cp1252"
@@ -67,13 +96,13 @@ def _decode_bom(data: bytes, name: str) -> tuple[str, str, str | None] | None:
             text, enc = _decode_8bit(data[3:])
             return text, enc, (f"{name}: starts with a UTF-8 byte-order mark but is not UTF-8; "
                                f"read as {enc}")
-    if data.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
-        try:
-            return data.decode("utf-16"), "utf-16", None
-        except UnicodeDecodeError as exc:
-            raise ValidationError([Problem(
-                name, None, None, "starts with a UTF-16 byte-order mark but is not valid UTF-16",
-                "save the file again as UTF-8 CSV")]) from exc
+    for boms, enc in (((codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE), "utf-32"),
+                      ((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE), "utf-16")):
+        if data.startswith(boms):  # UTF-32 first: its LE mark begins with UTF-16's
+            try:
+                return data.decode(enc), enc, None
+            except UnicodeDecodeError as exc:
+                raise not_valid_as(name, enc, "starts with a byte-order mark of") from exc
     return None
 
 
@@ -82,15 +111,15 @@ def decode(data: bytes, name: str) -> tuple[str, str, str | None]:
     with_bom = _decode_bom(data, name)
     if with_bom is not None:
         return with_bom
-    guess = _looks_utf16(data)
+    guess = wide_encoding(data)
     if guess:
         try:
             text = data.decode(guess)
-        except UnicodeDecodeError:
-            pass
-        else:
-            return text, guess, (f"{name}: no byte-order mark; read as UTF-16 "
-                                 f"{guess[-2:].upper()} (detected from its zero bytes)")
+        except UnicodeDecodeError as exc:
+            raise not_valid_as(name, guess, "looks like (zero bytes between the characters)") \
+                from exc
+        return text, guess, (f"{name}: no byte-order mark; read as {guess[:6].upper()} "
+                             f"{guess[-2:].upper()} (detected from its zero bytes)")
     try:
         return data.decode("utf-8"), "utf-8", None
     except UnicodeDecodeError:
@@ -107,6 +136,31 @@ def sniff_delimiter(text: str) -> str:
     return best if counts[best] > 0 else ","
 
 
+def parser_problem(exc: Exception, name: str, delimiter: str, skipped: int) -> ValidationError:
+    """The located problem of a pandas ``ParserError`` (a row wider than the header, an
+    unclosed quote ...); its line number counts from the header, below ``skipped`` lines."""
+    m = re.search(r"line (\d+), saw (\d+)", str(exc))
+    q = re.search(r"EOF inside string starting at row (\d+)", str(exc))  # 0-based line
+    row = int(m.group(1)) + skipped if m else (int(q.group(1)) + 1 + skipped if q else None)
+    msg = (f"has {m.group(2)} fields where the header has fewer" if m
+           else "has a quote that is never closed (the rest of the file is inside it)" if q
+           else visible(f"cannot be parsed: {exc}"))
+    return ValidationError([Problem(visible(name), row, None, f"row {msg}",
+                                    visible(f"delimiter '{delimiter}'; quote values "
+                                            "that contain it"))])
+
+
+def wide_row_problem(df: pd.DataFrame, name: str, delimiter: str, skipped: int) -> ValidationError:
+    """pandas takes the extra leading fields of a first data row that is wider than the
+    header as an index: a misread, never accepted silently."""
+    width = len(df.columns) + df.index.nlevels
+    return ValidationError([Problem(
+        visible(name), skipped + 2, None,
+        f"row has {width} fields where the header has {len(df.columns)}",
+        visible(f"delimiter '{delimiter}'; quote values that contain it, or name "
+                "every column in the header"))])
+
+
 def _parse_csv(text: str, delimiter: str, name: str, skipped: int) -> pd.DataFrame:
     """The table of strings in ``text`` (below ``skipped`` blank lines); a row wider than the
     header is a problem naming its line."""
@@ -118,22 +172,9 @@ def _parse_csv(text: str, delimiter: str, name: str, skipped: int) -> pd.DataFra
     except pd.errors.EmptyDataError:  # e.g. nothing but a stray byte-order mark
         df = pd.DataFrame()
     except pd.errors.ParserError as exc:
-        m = re.search(r"line (\d+), saw (\d+)", str(exc))
-        row = int(m.group(1)) + skipped if m else None
-        msg = (f"has {m.group(2)} fields where the header has fewer" if m
-               else visible(f"cannot be parsed: {exc}"))
-        raise ValidationError([Problem(visible(name), row, None, f"row {msg}",
-                                       visible(f"delimiter '{delimiter}'; quote values "
-                                               "that contain it"))]) from exc
+        raise parser_problem(exc, name, delimiter, skipped) from exc
     if not isinstance(df.index, pd.RangeIndex):
-        # pandas takes the extra leading fields of a first data row that is wider
-        # than the header as an index: a misread, never accepted silently
-        width = len(df.columns) + df.index.nlevels
-        raise ValidationError([Problem(
-            visible(name), skipped + 2, None,
-            f"row has {width} fields where the header has {len(df.columns)}",
-            visible(f"delimiter '{delimiter}'; quote values that contain it, or name "
-                    "every column in the header"))])
+        raise wide_row_problem(df, name, delimiter, skipped)
     df.index = df.index + skipped
     return df
 

@@ -1,6 +1,7 @@
 """Writing a canonical results frame as a tidy CSV that reads back to the same frame."""
 from __future__ import annotations
 
+import csv
 from pathlib import Path
 
 import numpy as np
@@ -40,5 +41,19 @@ def to_tidy_csv(frame: pd.DataFrame, path: str | Path) -> Path:
         else:
             out[c] = s.astype("string").fillna("").astype(object).astype(str)
     path = Path(path)
-    out.to_csv(path, index=False, encoding="utf-8", lineterminator="\n")
+    out.to_csv(path, index=False, encoding="utf-8", lineterminator="\n", quoting=_quoting(out))
     return path
+
+
+def _quoting(out: pd.DataFrame) -> int:
+    """``csv.QUOTE_ALL`` when some cell holds a carriage return, else ``csv.QUOTE_MINIMAL``.
+
+    Python's csv writer (which pandas uses) quotes a cell that holds the delimiter, the quote or
+    a character of the line terminator; with the terminator LF a bare carriage return (CR) is
+    left unquoted, and every CSV reader (RFC 4180) takes it as a line break that splits the row.
+    Such files are rare (the validator removes control characters from free text; a store
+    export neutralises a leading CR as a quote then the CR), so only they get every cell quoted."""
+    for c in out.columns:
+        if out[c].str.contains("\r", regex=False).any():
+            return csv.QUOTE_ALL
+    return csv.QUOTE_MINIMAL

@@ -22,9 +22,9 @@ from ..contract import HIL_INDICES, is_canonical
 from ..errors import ValidationError
 from .checks import PATIENT_FIELDS, internal_problems, non_finite_problems
 from .frames import VALUE_RTOL, blank_to_none, col, differs, now_utc, py, same
-from .summaries import Conflict, ImportSummary
+from .summaries import Conflict, ImportConflict, ImportSummary
 
-__all__ = ["ImportPlan", "ResultUpdate", "prepare", "plan", "apply", "drop_staging",
+__all__ = ["ImportPlan", "ResultUpdate", "prepare", "plan", "apply", "import_chunks", "drop_staging",
            "file_sha256", "frame_sha256", "owner_map", "SPECIMEN_FIELDS"]
 
 #: Specimen attributes an import compares with the stored ones.
@@ -450,15 +450,55 @@ def _write_log(conn, p: ImportPlan, import_id: int, changes: list, pat_pk: dict,
 
 
 def apply(conn, p: ImportPlan, source: str, sha256: str, owners: dict | None = None, *,
-          result_rows=iter) -> ImportSummary:
+          result_rows=iter, import_id: int | None = None) -> ImportSummary:
     """Write ``p`` (made by :func:`plan` in this transaction, its TEMP tables still there):
     the import log entry, new and changed patients, specimens and results, the `replaced` log,
-    the import's patient links and owners. Returns the :class:`ImportSummary`."""
-    import_id = conn.execute("INSERT INTO import_log (file, sha256, imported_at) VALUES (?, ?, ?)",
-                             (source, sha256, now_utc())).lastrowid
+    the import's patient links and owners. Returns the :class:`ImportSummary`. With
+    ``import_id`` (a chunk of :func:`import_chunks`) the log entry is that import's."""
+    if import_id is None:
+        import_id = conn.execute(
+            "INSERT INTO import_log (file, sha256, imported_at) VALUES (?, ?, ?)",
+            (source, sha256, now_utc())).lastrowid
     pat_pk = _write_patients(conn, p)
     spec_pk = _write_specimens(conn, p, pat_pk)
     _insert_results(conn, p.new_results, spec_pk, import_id, source, result_rows)
     changes = list(p.changes) + _update_results(conn, p, pat_pk, import_id, source)
     _write_log(conn, p, import_id, changes, pat_pk, owners or {})
     return p.summary(source, import_id)
+
+
+def import_chunks(conn, chunks, source: str, sha256: str, *, replace: bool = False,
+                  result_rows=iter) -> ImportSummary:
+    """Import a large results file chunk by chunk (canonical frames, e.g. from
+    :func:`bayesbase.io.iter_results`, which checks the rows across chunks) in ONE
+    ``BEGIN IMMEDIATE`` transaction with one import log entry: memory is bounded by the chunk,
+    and the import stays all-or-nothing (a problem in any chunk, raised by the chunks or by
+    the store's checks, or a conflict with a stored value, rolls every chunk back). An
+    ``owner`` column is not read on this path."""
+    totals = [0, 0, 0, 0, 0]  # added, skipped, replaced, patients, specimens
+    import_id = None
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        for chunk in chunks:
+            canon, _ = prepare(chunk, source, {})
+            p = plan(conn, canon)
+            if p.conflicts and not replace:
+                raise ImportConflict(source, list(p.conflicts))
+            s = apply(conn, p, source, sha256, result_rows=result_rows, import_id=import_id)
+            import_id = s.import_id
+            for k, v in enumerate((s.rows_added, s.rows_skipped, s.rows_replaced,
+                                   s.patients_added, s.specimens_added)):
+                totals[k] += v
+            drop_staging(conn)
+        if import_id is not None:
+            conn.execute("UPDATE import_log SET rows_added = ?, rows_skipped = ?, "
+                         "rows_replaced = ? WHERE id = ?", (*totals[:3], import_id))
+        conn.execute("COMMIT")
+    except BaseException:
+        if conn.in_transaction:
+            conn.execute("ROLLBACK")
+        raise
+    finally:
+        drop_staging(conn)
+    return ImportSummary(totals[0], totals[1], totals[2], (), import_id, source, totals[3],
+                         totals[4])
