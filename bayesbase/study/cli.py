@@ -42,7 +42,7 @@ def add_parser(sub) -> None:
     p.add_argument("--robust", action="store_true", help="Bayesian model with Student-t animals and results")
     p.add_argument("--draws", type=int, default=1000, help="Bayesian draws per chain (default 1000)")
     p.add_argument("--tune", type=int, default=1000, help="Bayesian tuning steps per chain (default 1000)")
-    p.add_argument("--chains", type=int, default=2, help="Bayesian chains (default 2)")
+    p.add_argument("--chains", type=int, default=4, help="Bayesian chains (default 4)")
     p.add_argument("--no-figures", action="store_true", help="HTML without figures (faster)")
     g = p.add_argument_group("design planning (--plan)")
     g.add_argument("--plan", action="store_true", help="simulate a planned design instead of reading a file")

@@ -493,7 +493,7 @@ def _attrs(st: _Study, method: str, seed, alpha, ci_prob, outlier_removal, cv_an
 def estimate(data, *, analytes=None, species=None, method: str = "anova", seed: int = 0,
              outlier_removal: bool = True, alpha: float = DEFAULT_ALPHA, ci_prob: float = DEFAULT_CI_PROB,
              cv_anova: bool = False, robust: bool = False, draws: int = 1000, tune: int = 1000,
-             chains: int = 2) -> StudyResult:
+             chains: int = 4) -> StudyResult:
     """Estimate CVA, CVI and CVG of every (or each chosen) analyte of a study.
 
     ``data``: a results file path (read with :func:`bayesbase.io.read_results`; its SHA-256
