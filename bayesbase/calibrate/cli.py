@@ -1,0 +1,92 @@
+"""``bayesbase calibrate``: learn a pack's population level from a results store.
+
+``add_parser(sub)`` registers the command; ``run(args)`` imports lazily, prints, and returns 0 on
+success, 2 on a user error, 3 when the fit did not converge (no pack fragment is then written
+unless ``--force``). Only this module prints.
+"""
+from __future__ import annotations
+
+import sys
+
+
+def _err(msg: str) -> int:
+    print(f"bayesbase: error: {msg}", file=sys.stderr)
+    return 2
+
+
+def add_parser(sub) -> None:
+    """Add the ``calibrate`` command to the ``bayesbase`` subparsers object."""
+    p = sub.add_parser(
+        "calibrate",
+        help="learn breed centres, method biases, CVG and CVI from a results store (hierarchical PyMC model)",
+        description="Fit a hierarchical model to every usable result of a species in a results store (or file): "
+        "population centre, breed centres with partial pooling, a bias per method against a reference method, "
+        "CVG, and the CVI of each animal drawn from a log-normal across animals. Writes pack.toml (a fragment with "
+        "provenance 'calibrated', only when the fit converged), calibration.csv, idata.nc, calibration.html and "
+        "cvi_prior_posterior.png. Decision support, not a diagnosis.")
+    p.add_argument("file", nargs="?", help="results file (CSV/TSV/XLSX/FHIR JSON) instead of --db")
+    p.add_argument("--db", help="results store (SQLite file of `bayesbase store`)")
+    p.add_argument("--species", default="dog", help="species to calibrate (default dog)")
+    p.add_argument("--analytes", help="comma-separated analytes (default: every analyte the pack carries)")
+    p.add_argument("--pack", help="pack whose values are the priors and which the fragment extends "
+                   "(default: the species' pack)")
+    p.add_argument("--reference-method", help="method whose bias is fixed at 0 (default: each analyte's most "
+                   "frequent method)")
+    p.add_argument("--out", required=True, help="output folder")
+    p.add_argument("--sampler", choices=["pymc", "nutpie"], default="pymc",
+                   help="PyMC's NUTS (default) or nutpie (optional extra bayesbase[nutpie])")
+    p.add_argument("--draws", type=int, default=1000, help="draws per chain (default 1000)")
+    p.add_argument("--tune", type=int, default=1000, help="tuning steps per chain (default 1000)")
+    p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
+    p.add_argument("--seed", type=int, default=0, help="sampler seed (default 0)")
+    p.add_argument("--keep-compromised", action="store_true",
+                   help="keep results whose H/L/I index is above the pack's threshold (as they are: "
+                   "no variance inflation in this model)")
+    p.add_argument("--force", action="store_true",
+                   help="write pack.toml even when the fit did not converge (marked as such; exit code stays 3)")
+    p.add_argument("--no-figure", action="store_true", help="no PNG figure (faster)")
+
+
+def _print_table(cal) -> None:
+    print(f"{'analyte':<14}{'parameter':<14}{'group':<22}{'prior':>10}{'estimate':>11}  95 % CrI")
+    for r in cal.table.itertuples(index=False):
+        ci = "" if r.lower != r.lower else f"{r.lower:.4g}-{r.upper:.4g}"
+        print(f"{r.analyte:<14}{r.parameter:<14}{str(r.group)[:21]:<22}{r.prior_value:>10.4g}{r.estimate:>11.4g}  {ci}")
+
+
+def run(args) -> int:
+    """Run ``bayesbase calibrate``; returns the exit code."""
+    from ..errors import BayesbaseError
+
+    if bool(args.file) == bool(args.db):
+        return _err("give either a results FILE or --db PATH (one of them)")
+    try:
+        from .job import calibrate
+        from .output import write_outputs
+
+        analytes = [a.strip() for a in (args.analytes or "").split(",") if a.strip()] or None
+        cal = calibrate(args.db or args.file, species=args.species, analytes=analytes, pack=args.pack,
+                        reference_method=args.reference_method, sampler=args.sampler, draws=args.draws,
+                        tune=args.tune, chains=args.chains, seed=args.seed, keep_compromised=args.keep_compromised)
+        paths = write_outputs(cal, args.out, force=args.force, figure=not args.no_figure)
+    except (BayesbaseError, OSError, ValueError, ImportError) as exc:
+        return _err(str(exc))
+    a, d = cal.attrs, cal.diagnostics
+    print(f"Calibrated {', '.join(a['analytes'])} of {a['species']} on {a['n_animals']} animals, {a['n_specimens']} "
+          f"usable specimens ({a['n_results']} specimen-analyte results; {a['source_kind']} {a['source_label']}, "
+          f"sha256 {a['source_sha256'][:12]}...); "
+          f"priors from pack {a['pack_id']}; {a['sampler']}, {a['chains']} x {a['draws']} draws, seed {a['seed']}, "
+          f"{a['seconds']} s")
+    _print_table(cal)
+    print(f"Convergence: max R-hat {d['max_r_hat']:.4f}, min bulk ESS {d['min_ess_bulk']:.0f}, min tail ESS "
+          f"{d['min_ess_tail']:.0f}, {d['divergences']} divergences")
+    print("Wrote " + ", ".join(str(p) for p in paths.values()))
+    print("Decision support, not a diagnosis; defer to the attending veterinarian, a clinical pathologist and "
+          "local regulation.")
+    if not cal.converged:
+        failed = ", ".join(k for k, ok in d["checks"].items() if not ok)
+        msg = ("a pack fragment was written anyway (--force) and is marked NOT CONVERGED" if "pack.toml" in paths
+               else "NO pack fragment was written (use more --draws/--tune, or --force to write a marked one)")
+        print(f"WARNING: THE FIT DID NOT CONVERGE ({failed}); {msg}.", file=sys.stderr)
+        return 3
+    return 0
