@@ -1,12 +1,14 @@
-"""Commands on the results store: import, patients, history, export, forget."""
+"""Commands on the results store: import (files or Parquet datasets), patients, history, export
+(CSV, FHIR or a Parquet dataset), forget."""
 from __future__ import annotations
 
-from .common import open_store
+from .common import err, open_store
 
 
 def add_parsers(sub) -> None:
-    p = sub.add_parser("import", help="import CSV/XLSX/FHIR files into the results store")
-    p.add_argument("files", nargs="+")
+    p = sub.add_parser("import", help="import CSV/XLSX/FHIR files or Parquet datasets into the "
+                       "results store")
+    p.add_argument("files", nargs="+", help="results files, or Parquet dataset directories")
     p.add_argument("--db")
     p.add_argument("--replace", action="store_true", help="overwrite conflicting stored values (recorded)")
     p.add_argument("--dry-run", action="store_true",
@@ -25,11 +27,16 @@ def add_parsers(sub) -> None:
     p.add_argument("--db")
     p.set_defaults(run=cmd_history)
 
-    p = sub.add_parser("export", help="export one patient's results (pseudonymised by default)")
-    p.add_argument("--patient", required=True,
-                   help="patient id; write an id beginning with '-' with '=': --patient=-REX-1")
-    p.add_argument("--format", choices=["csv", "fhir"], default="csv")
-    p.add_argument("--out", required=True)
+    p = sub.add_parser("export", help="export one patient's results (pseudonymised by default); "
+                       "with --format parquet every patient's, as a partitioned dataset")
+    p.add_argument("--patient",
+                   help="patient id (required for csv and fhir; parquet: default every patient); "
+                   "write an id beginning with '-' with '=': --patient=-REX-1")
+    p.add_argument("--format", choices=["csv", "fhir", "parquet"], default="csv")
+    p.add_argument("--out", required=True, help="output file (parquet: a new directory)")
+    p.add_argument("--partitions", type=int, default=None,
+                   help="parquet: number of partitions (default 64); a patient's partition is a "
+                   "stable hash of its id")
     p.add_argument("--db")
     p.add_argument("--identified", action="store_true", help="keep the real ids (default: pseudonymise)")
     p.set_defaults(run=cmd_export)
@@ -47,7 +54,7 @@ def cmd_import(args) -> int:
     total = 0
     with open_store(args) as st:
         for f in args.files:
-            s = st.import_file(f, replace=args.replace)
+            s = _import_one(st, f, args.replace)
             total += s.rows_added
             if s.rows_added == 0 and s.rows_replaced == 0:
                 print(f"{f}: nothing new ({s.rows_skipped} rows already stored)")
@@ -70,9 +77,24 @@ def _dry_run(args) -> int:
             db = Path(stack.enter_context(tempfile.TemporaryDirectory())) / "empty.sqlite"
         st = stack.enter_context(Store(db))
         for f in args.files:  # each file is compared with the store as it is now
-            print(_dry_run_text(f, st.import_file(f, replace=args.replace, dry_run=True),
+            print(_dry_run_text(f, _import_one(st, f, args.replace, dry_run=True),
                                 args.replace))
     return 0
+
+
+def _import_one(st, f, replace: bool, dry_run: bool = False):
+    """Import one input: a Parquet dataset (a directory or ``.parquet`` file, read whole by
+    :func:`bayesbase.io.read_results_hashed`, one transaction) or a results file."""
+    from ..io.parquet import is_parquet_path
+
+    if is_parquet_path(f):
+        from pathlib import Path
+
+        from ..io import read_results_hashed
+
+        frame, sha = read_results_hashed(f)
+        return st.import_frame(frame, Path(f).name, sha, replace=replace, dry_run=dry_run)
+    return st.import_file(f, replace=replace, dry_run=dry_run)
 
 
 def _dry_run_text(f, s, replace: bool) -> str:
@@ -104,6 +126,10 @@ def cmd_history(args) -> int:
 
 
 def cmd_export(args) -> int:
+    if args.format == "parquet":
+        return _export_parquet(args)
+    if args.patient is None:
+        return err(f"export --format {args.format} needs --patient")
     with open_store(args) as st:
         if args.format == "csv":
             st.export_csv(args.patient, args.out, pseudonymise=not args.identified)
@@ -114,6 +140,17 @@ def cmd_export(args) -> int:
 
         prepend_csv_caution(args.out)
     print(f"wrote {args.out}" + ("" if args.identified else " (pseudonymised)"))
+    return 0
+
+
+def _export_parquet(args) -> int:
+    from ..store.export import store_to_parquet
+
+    with open_store(args) as st:
+        files = store_to_parquet(st, args.patient, args.out, args.partitions,
+                                 pseudonymise=not args.identified)
+    print(f"wrote {args.out} ({len(files)} partition files)"
+          + ("" if args.identified else " (pseudonymised)"))
     return 0
 
 

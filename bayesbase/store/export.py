@@ -1,5 +1,6 @@
-"""Exports from the results store: a tidy CSV (spreadsheet formulas neutralised) or a FHIR R4
-Bundle, pseudonymised by default (:mod:`bayesbase.privacy`). Owner data are never exported.
+"""Exports from the results store: a tidy CSV (spreadsheet formulas neutralised), a FHIR R4
+Bundle or a partitioned Parquet dataset (:mod:`bayesbase.io.parquet`), pseudonymised by default
+(:mod:`bayesbase.privacy`). Owner data are never exported.
 
 CSV exports neutralise spreadsheet formulas (:func:`neutralise_formulas`, after the OWASP "CSV
 Injection" guidance): a text cell that begins with ``=``, ``+``, ``-``, ``@``, tab, carriage
@@ -13,7 +14,8 @@ from pathlib import Path
 from ..privacy import pseudonymise_frame
 from . import queries
 
-__all__ = ["FORMULA_PREFIXES", "neutralise_formulas", "export_frame", "write_csv", "write_fhir"]
+__all__ = ["FORMULA_PREFIXES", "neutralise_formulas", "export_frame", "write_csv", "write_fhir",
+           "write_parquet", "store_to_parquet"]
 
 #: First characters that make a spreadsheet program read a text cell as a formula: the OWASP
 #: "CSV Injection" guidance (common practice) lists =, +, -, @, tab and carriage return; OWASP
@@ -69,3 +71,23 @@ def write_fhir(frame, path) -> Path:
     from ..io import write_bundle
 
     return write_bundle(frame, path, pseudonymise=False)
+
+
+def write_parquet(frame, path, n_partitions: int | None = None, *,
+                  pseudonymised: bool) -> list[Path]:
+    """Write a Parquet dataset (a new directory) of a frame already pseudonymised or not,
+    partitioned by a stable hash of the patient id as written
+    (:func:`bayesbase.io.parquet.write_canonical_dataset`). Parquet cells are typed, so no
+    formula neutralising is needed. Returns the partition files written."""
+    from ..io.parquet import DEFAULT_PARTITIONS, write_canonical_dataset
+
+    return write_canonical_dataset(frame, path, n_partitions or DEFAULT_PARTITIONS,
+                                   pseudonymised=pseudonymised)
+
+
+def store_to_parquet(store, patient: str | None, path, n_partitions: int | None = None,
+                     pseudonymise: bool = True) -> list[Path]:
+    """A :class:`~bayesbase.store.Store`'s results (one patient, or all when None) as a Parquet
+    dataset (:func:`write_parquet`), pseudonymised with the store's salt unless told not to."""
+    frame = store._export_frame(patient, pseudonymise)
+    return write_parquet(frame, path, n_partitions, pseudonymised=pseudonymise)
