@@ -22,8 +22,8 @@ LAYER = {
     "io": 2, "validate": 2, "priors": 2,
     "model": 3, "mcmc": 3,
     "assessment": 4, "store": 4,
-    "research": 5, "report": 5, "study": 5, "interval": 5, "calibrate": 5,
-    "bench": 6, "cli": 6,
+    "research": 5, "report": 5, "study": 5, "interval": 5, "calibrate": 5, "scale": 5,
+    "bench": 6, "cli": 6, "web": 6,
 }
 #: modules that may import PyMC / PyTensor / ArviZ (each builds a graph or reads its output)
 PYMC_ALLOWED_UNITS = {"mcmc"}

@@ -8,17 +8,17 @@ import sys
 
 from .. import __version__
 from ..constants import CAUTIONS
-from . import jobs, priors_cmd, research_cmds, results, store_cmds
+from . import jobs, priors_cmd, research_cmds, results, serve_cmd, store_cmds
 from .common import err
 
 #: groups of commands in the order `bayesbase --help` lists them
-GROUPS = (results, priors_cmd, store_cmds, jobs, research_cmds)
+GROUPS = (results, priors_cmd, store_cmds, jobs, research_cmds, serve_cmd)
 
 
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(
         prog="bayesbase",
-        description="Is this animal's new laboratory result a true change from its own normal? "
+        description="Does this animal's new laboratory result differ from the values usual for it? "
         "Bayesian set points and personal intervals with the RCV beside them. "
         + " ".join(CAUTIONS),
     )
