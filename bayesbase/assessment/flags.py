@@ -177,11 +177,8 @@ def _breed_key(breed: str) -> str:
 
 
 def breed_note(b: CaseBatch) -> np.ndarray:
-    """The pack's note for the animal's breed (``breed_notes``: breed -> text), whatever its age.
-
-    ``breed_notes`` is a pack field the schema does not carry yet (requested from the pack
-    schema's owner); until it does, packs hold such notes in the analyte's ``note`` and this flag
-    stays silent."""
+    """The pack's note for the animal's breed (``breed_notes``: breed -> text, a schema field with
+    its source in ``sources["breed_notes.<breed>"]``), whatever the animal's age."""
     notes = b.prior_attr(lambda p: getattr(p, "breed_notes", None) or {}, object)
     if not any(getattr(p, "breed_notes", None) for p in b.prior_groups[0]):
         return np.full(len(b), "", dtype=object)
