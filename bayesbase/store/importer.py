@@ -20,6 +20,7 @@ from typing import NamedTuple
 
 from ..contract import HIL_INDICES, is_canonical
 from ..errors import ValidationError
+from ..io.parquet import file_sha256  # one file hash for imports, datasets and scores
 from .checks import PATIENT_FIELDS, internal_problems, non_finite_problems
 from .frames import VALUE_RTOL, blank_to_none, col, differs, now_utc, py, same
 from .summaries import Conflict, ImportConflict, ImportSummary
@@ -31,15 +32,6 @@ __all__ = ["ImportPlan", "ResultUpdate", "prepare", "plan", "apply", "import_chu
 SPECIMEN_FIELDS = ("collected_at", "state", "fasted", "haemolysis", "lipaemia", "icterus",
                    "laboratory")
 _STAGING = ("_tmp_patients", "_tmp_specimens", "_tmp_results")
-
-
-def file_sha256(path) -> str:
-    """SHA-256 of a file's bytes."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def frame_sha256(frame) -> str:
