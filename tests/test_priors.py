@@ -526,3 +526,61 @@ def test_haemolysed_case_exceeds_pack_thresholds():
         r = next(r for r in rows if r["aid"] == analyte)
         assert float(r["haemolysis"]) > pack.get(analyte).hil_thresholds["haemolysis"]
         assert pack.get(analyte).interference["haemolysis"] == "up"
+
+
+def test_dog_liver_enzyme_cvi_is_the_feline_range_transferred_with_wide_uncertainty():
+    # vetbiologicalvariation.org, Study Guidelines - Statistics: feline ALP, ALT, AST CVI 12.5-15 %.
+    # The dog pack uses the midpoint (0.125 + 0.15) / 2 = 0.1375 for the three enzymes (as the
+    # cat pack does), not the canine 13-20 % range of the same page (its study is not named
+    # there), and widens cvi_log_sd to 0.45 for the species transfer. CVG is re-derived from the
+    # population interval with the new CVI:
+    # sG^2 = (ln(upper/lower)/3.92)^2 - ln(1 + CVI^2) - ln(1 + CVA^2), CVG = sqrt(exp(sG^2) - 1).
+    dog, cat = priors.load_pack("dog"), priors.load_pack("cat")
+    for aid in ("alt", "ast", "alp"):
+        d, c = dog.get(aid), cat.get(aid)
+        assert d.cvi == pytest.approx((0.125 + 0.15) / 2) == c.cvi
+        assert d.cvi_log_sd >= 0.45 > c.cvi_log_sd
+        assert "13-20" not in dog.cited[aid]["cvi"].source
+        s_total = math.log(d.ri_upper / d.ri_lower) / 3.92
+        s_g2 = s_total ** 2 - math.log1p(d.cvi ** 2) - math.log1p(d.cva ** 2)
+        assert d.cvg == pytest.approx(math.sqrt(math.expm1(s_g2)), rel=1e-5)
+
+
+# --------------------------------------------------------------------------- method biases
+_MB_SRC = "invented for a bayesbase test"
+
+
+def _with_biases(biases: dict):
+    def mutate(d):
+        d["analytes"]["creatinine"]["method_biases"] = biases
+    return mutate
+
+
+def test_method_biases_load_and_survive_a_lab_override(tmp_path):
+    """Invented demo biases (ln scale) against one reference method; a lab override CSV changes
+    creatinine's CVI and keeps the biases."""
+    ok = {"analyser B": {"log_bias": 0.05, "log_sd": 0.02, "reference": "analyser A", "source": _MB_SRC,
+                         "provenance": "derived"}}
+    path = _write_pack(tmp_path, _with_biases(ok))
+    assert priors.check_file(path) == []
+    cr = priors.load_pack(path).analytes["creatinine"]
+    assert cr.method_reference == "analyser A"
+    assert cr.method_log_bias("analyser B") == (0.05, 0.02) and cr.method_log_bias("analyser A") == (0.0, 0.0)
+    over = priors.load_pack(path, overrides=_csv(tmp_path, "analyte,cvi_pct\ncreatinine,9\n"))
+    assert over.analytes["creatinine"].cvi == pytest.approx(0.09)
+    assert over.analytes["creatinine"].method_biases == cr.method_biases
+
+
+def test_method_bias_problems_are_all_collected_with_key_paths(tmp_path):
+    entry = {"log_bias": 0.05, "log_sd": 0.02, "reference": "analyser A", "source": _MB_SRC, "provenance": "derived"}
+    path = _write_pack(tmp_path, _with_biases({
+        "analyser B": {**entry, "log_sd": 0.0},
+        "analyser C": {**entry, "refrence": "analyser A"},
+        "analyser D": {**entry, "reference": "analyser Z"},
+    }))
+    problems = "\n".join(priors.check_file(path))
+    q = f"{path}: analytes.creatinine.method_biases"
+    assert f"{q}.analyser B.log_sd: 0.0 out of range (0, 3] (the SD of a bias must be > 0)" in problems
+    assert f"{q}.analyser C.refrence: unknown key (did you mean 'reference'?)" in problems
+    assert (f"{q}: mixed references: every bias of an analyte is relative to one reference method, found "
+            "'analyser A' (analyser B, analyser C); 'analyser Z' (analyser D)") in problems
