@@ -1,10 +1,32 @@
 """Stage 5: the case batch. A case is one (patient, analyte) of an assessed specimen; the batch
 holds the baselines padded to arrays (log scale, one column per specimen), the assessed result,
-the per-case prior scalars and the metadata later stages read (prior, pack, breed, method)."""
+the per-case prior scalars and the metadata later stages read (prior, pack, breed, method).
+
+A method change (:func:`method_changes`) is made comparable in one of two ways:
+
+* *stated*: ``method_bias[analyte] = (bias, bias_sd)`` fractions given by the caller (the
+  assessment's ``method_bias`` option): the assessed ln value is corrected by ln(1 + bias) onto the
+  baseline's method and ln(1 + bias_sd^2) is added to its variance. An explicit option always wins
+  over the pack.
+* *calibrated*: the pack carries ``method_biases`` for the analyte (ln bias b_m and its SD s_m of
+  every method against one reference method, e.g. from ``bayesbase calibrate``) covering the new
+  result's method and the method of every baseline specimen. Each result is corrected by its own
+  method's bias to the reference method, and the series is read on the new result's method: baseline
+  specimen j moves by b_new - b_m(j) (ln), the new result stays as measured, so the set point, the
+  personal interval and the change are on the scale of the result being read. The uncertainty of
+  the correction is added to the new result's variance: Var(b_new - sum_j b_m(j) / n) =
+  s_new^2 + sum_m (n_m / n)^2 s_m^2, the biases taken as independent (their posterior correlation
+  through the shared reference is not in the pack; the reference has s = 0), with the weights of a
+  plain mean of the n baseline specimens (n_m on method m; one baseline method: s_new^2 + s_old^2).
+  The exact posterior puts less than full weight on the baselines (shrinkage toward the population
+  centre), so this errs on the wide side. The population centre is used as the pack gives it, as
+  for a series that never changed method.
+"""
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from collections import Counter
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -18,8 +40,8 @@ from .packs import RowPriors
 from .roles import CaseRows, Roles
 
 __all__ = ["CaseSets", "Baselines", "AssessedResults", "MethodChange", "CaseBatch", "aggregate_baselines",
-           "assessed_results", "method_changes", "prior_scalars", "build_cases", "distinct", "per_object",
-           "row_cases", "codes_of"]
+           "assessed_results", "method_changes", "pack_correction", "prior_scalars", "build_cases", "distinct",
+           "per_object", "row_cases", "codes_of"]
 
 
 class CaseSets:
@@ -74,6 +96,7 @@ class Baselines:
     specimens: np.ndarray  # "S1;S2" per case
     methods: CaseSets  # case -> set of methods seen in the baseline (``.get(i, default)``)
     units: CaseSets  # case -> set of reported units seen in the baseline
+    method_code: np.ndarray | None = None  # (C, J) method of each specimen's first row, a code of methods.names (-1)
 
 
 def row_cases(rows: CaseRows, case_index: dict) -> np.ndarray:
@@ -138,6 +161,8 @@ def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, c
 
     mcodes, mnames = codes_of(hist, "method")
     ucodes, unames = codes_of(hist, "reported_unit")
+    mcode = np.full((C, J), -1, dtype=np.int64)
+    mcode[gcase, j] = mcodes[first]
     return Baselines(
         y=padded(np.bincount(g, weights=logv[idx], minlength=G) / r, np.nan), r=padded(r, 0.0),
         e=padded(np.bincount(g, weights=extra[idx], minlength=G) / r, 0.0), c=padded(cen_num[first], 0.0),
@@ -145,6 +170,7 @@ def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, c
         n_assumed=np.bincount(gcase, weights=roles.assumed[first].astype(float), minlength=C).astype(int),
         specimens=_joined_specimens(hist, first, gcase, C),
         methods=CaseSets.of_rows(case, mcodes[idx], mnames), units=CaseSets.of_rows(case, ucodes[idx], unames),
+        method_code=mcode,
     )
 
 
@@ -185,22 +211,58 @@ def assessed_results(hist, rows: CaseRows, case_index: dict, years: np.ndarray) 
 
 @dataclass(frozen=True)
 class MethodChange:
-    """Method of the assessed result against the methods of the baseline, per case."""
+    """Method of the assessed result against the methods of the baseline, per case (module
+    docstring: stated and calibrated corrections)."""
 
     changed: np.ndarray  # the assessed method differs from one seen in the baseline
-    corrected: np.ndarray  # ... and a between-method bias is given for the analyte
+    corrected: np.ndarray  # ... and a between-method bias corrects it (stated or calibrated)
     before: list  # the baseline methods, sorted, ", "-joined
     after: list  # the assessed method
-    bias: list  # (bias fraction, bias SD fraction) or None
-    y_shift: np.ndarray  # subtracted from the assessed ln value: ln(1 + bias)
-    extra_var: np.ndarray  # added to the assessed variance: ln(1 + bias_sd^2)
+    bias: list  # stated: (bias fraction, bias SD fraction); else None
+    y_shift: np.ndarray  # subtracted from the assessed ln value (stated: ln(1 + bias); calibrated: 0)
+    extra_var: np.ndarray  # added to the assessed variance (stated: ln(1 + bias_sd^2); calibrated: above)
+    kind: list = field(default_factory=list)  # "stated", "calibrated" or "" per case
+    base_shift: np.ndarray | None = None  # (C, J) subtracted from the baseline ln values (calibrated)
+    calibrated: list = field(default_factory=list)  # per case: None or {reference, biases: {method: (b, s)}}
+    uncovered: list = field(default_factory=list)  # per case: methods the pack's biases do not cover
+
+
+def _case_base_methods(baselines: Baselines, i: int) -> list:
+    """The method of each baseline specimen of case ``i`` (None where none is stated)."""
+    if baselines.method_code is None:
+        return []
+    names = baselines.methods.names
+    out = []
+    for c in baselines.method_code[i, : int(baselines.n[i])].tolist():
+        m = names[c] if c >= 0 else None
+        out.append(m if isinstance(m, str) and m != "" else None)
+    return out
+
+
+def pack_correction(prior, base_methods: list, new_method) -> tuple[dict | None, list]:
+    """The calibrated correction of one case from its prior's ``method_biases`` (module
+    docstring): ({reference, biases, base_shift (per baseline specimen, ln), extra_var}, []) or
+    (None, the methods the pack does not cover; empty when it carries no biases)."""
+    if prior is None or not getattr(prior, "method_biases", None) or not base_methods:
+        return None, []
+    got = {m: prior.method_log_bias(m) for m in set(base_methods) | {new_method}}
+    missing = sorted(m if isinstance(m, str) else "(not stated)" for m, g in got.items() if g is None)
+    if missing:
+        return None, missing
+    b_new, s_new = got[new_method]
+    n = len(base_methods)
+    var_old = sum((k / n) ** 2 * got[m][1] ** 2 for m, k in Counter(base_methods).items())
+    return {"reference": prior.method_reference, "biases": got,
+            "base_shift": [got[m][0] - b_new for m in base_methods], "extra_var": s_new**2 + var_old}, []
 
 
 def method_changes(assessed: AssessedResults, baselines: Baselines, analytes: list,
-                   method_bias: dict, assessed_codes: np.ndarray | None = None) -> MethodChange:
+                   method_bias: dict, assessed_codes: np.ndarray | None = None,
+                   priors: list | None = None) -> MethodChange:
     """Cases whose assessed method differs from a method of the baseline (``assessed_codes``:
     the assessed method as a code of ``baselines.methods.names``, -1 when none; found by name
-    when not given)."""
+    when not given), with the stated correction (``method_bias``, which wins) or the calibrated
+    one (``priors``: the AnalytePrior of every case, whose ``method_biases`` are used)."""
     C = len(analytes)
     after = assessed.col("method")
     if assessed_codes is None:
@@ -209,16 +271,27 @@ def method_changes(assessed: AssessedResults, baselines: Baselines, analytes: li
     has_method = np.array([isinstance(m, str) and m != "" for m in after], dtype=bool)
     changed = has_method & baselines.methods.differs(np.where(has_method, assessed_codes, -1))
     corrected = np.zeros(C, dtype=bool)
-    before, bias = [""] * C, [None] * C
+    before, bias, kind = [""] * C, [None] * C, [""] * C
+    calibrated, uncovered = [None] * C, [[] for _ in range(C)]
     y_shift, extra = np.zeros(C), np.zeros(C)
+    base_shift = np.zeros(baselines.y.shape)
     for i in np.flatnonzero(changed).tolist():
         before[i] = ", ".join(sorted(baselines.methods.get(i, ())))
         if analytes[i] in method_bias:
             b, bsd = method_bias[analytes[i]]
-            corrected[i], bias[i] = True, (b, bsd)
+            corrected[i], bias[i], kind[i] = True, (b, bsd), "stated"
             y_shift[i], extra[i] = math.log1p(b), 0.0 + math.log1p(bsd**2)
+            continue
+        corr, uncovered[i] = pack_correction(None if priors is None else priors[i],
+                                             _case_base_methods(baselines, i), after[i])
+        if corr is not None:
+            corrected[i], kind[i] = True, "calibrated"
+            calibrated[i] = {"reference": corr["reference"], "biases": corr["biases"]}
+            base_shift[i, : len(corr["base_shift"])] = corr["base_shift"]
+            extra[i] = corr["extra_var"]
     return MethodChange(changed=changed, corrected=corrected, before=before, after=after, bias=bias,
-                        y_shift=y_shift, extra_var=extra)
+                        y_shift=y_shift, extra_var=extra, kind=kind, base_shift=base_shift,
+                        calibrated=calibrated, uncovered=uncovered)
 
 
 def distinct(objs: list) -> tuple[list, np.ndarray]:
@@ -346,7 +419,9 @@ def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPri
     breed = [b if isinstance(b, str) and b else None for b in assessed.col("breed")]
     center = _centers(groups, breed)
     mcodes = codes_of(hist, "method")[0][assessed.rows] if assessed.rows is not None else None
-    method = method_changes(assessed, baselines, analyte, opts.method_bias, mcodes)
+    method = method_changes(assessed, baselines, analyte, opts.method_bias, mcodes, priors=prior)
+    if method.base_shift is not None and method.base_shift.any():
+        baselines = replace(baselines, y=baselines.y - method.base_shift)
     scalars = prior_scalars(prior, pack, center, opts, prior_groups=groups)
     scalars["new_y"] = assessed.log_mean - method.y_shift
     scalars["new_extra_var"] = method.extra_var

@@ -3,6 +3,7 @@ cases: it returns an object array with the flag's words where it applies and "" 
 :data:`CASE_FLAGS` gives the order in which a case lists its flags."""
 from __future__ import annotations
 
+import math
 from typing import Callable
 
 import numpy as np
@@ -119,16 +120,35 @@ def not_fasted(b: CaseBatch) -> np.ndarray:
     return _words(mask, lambda i: "assessed specimen not fasted (feeding-sensitive analyte)")
 
 
+def _pct(log_bias: float) -> str:
+    return f"{100 * math.expm1(log_bias):+.1f} %"
+
+
+def calibrated_words(before: str, after: str, cal: dict, extra_var: float) -> str:
+    """The flag of a method change corrected by the pack's calibrated biases (:mod:`.cases`)."""
+    ref = cal["reference"]
+    biases = ", ".join(f"{m} {'reference' if m == ref else _pct(bs[0])}" for m, bs in sorted(cal["biases"].items()))
+    return (f"method changed ({before} -> {after}); calibrated correction applied: each result corrected by "
+            f"its method's bias against the reference method {cal['reference']} from the pack ({biases}), "
+            f"the baseline read on {after}'s scale, bias uncertainty (log SD {math.sqrt(extra_var):.3f}) "
+            "added to the variance")
+
+
 def method_changed(b: CaseBatch) -> np.ndarray:
     m = b.method
+    kind = m.kind or [""] * len(b)
+    uncovered = m.uncovered or [[] for _ in range(len(b))]
 
     def words(i):
+        if m.corrected[i] and kind[i] == "calibrated":
+            return calibrated_words(m.before[i], m.after[i], m.calibrated[i], float(m.extra_var[i]))
         if m.corrected[i]:
             bias, bsd = m.bias[i]
             return (f"method changed ({m.before[i]} -> {m.after[i]}); "
                     f"corrected by a stated bias of {100*bias:+.1f} % (SD {100*bsd:.1f} %)")
-        return (f"not directly comparable: method changed ({m.before[i]} -> {m.after[i]}) "
-                "and no between-method bias is given")
+        why = (f"the pack's calibrated biases do not cover {', '.join(uncovered[i])}" if uncovered[i]
+               else "no between-method bias is given")
+        return f"not directly comparable: method changed ({m.before[i]} -> {m.after[i]}) and {why}"
 
     return _words(m.changed, words)
 

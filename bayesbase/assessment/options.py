@@ -1,6 +1,7 @@
 """Stage 1: the options of one assessment, checked once (a frozen dataclass)."""
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
@@ -27,6 +28,8 @@ class Options:
     at: Any = None
     patient: Any = None
     keep_compromised: bool = False
+    #: stated biases {analyte: (bias fraction, SD fraction)}; an analyte given here wins over the
+    #: pack's calibrated ``method_biases`` (:mod:`bayesbase.assessment.cases`)
     method_bias: Mapping[str, tuple[float, float]] = field(default_factory=dict)
     seed: int = 0
     ci_prob: float = DEFAULT_CI_PROB
@@ -44,6 +47,15 @@ class Options:
         if self.prior_change is not None and not 0 < self.prior_change < 1:
             raise BayesbaseError("prior probability of change must lie between 0 and 1")
         object.__setattr__(self, "method_bias", dict(self.method_bias or {}))
+        for analyte, pair in self.method_bias.items():
+            try:
+                b, sd = (float(x) for x in pair)
+            except (TypeError, ValueError):
+                raise BayesbaseError(f"method_bias[{analyte!r}]: expected (bias fraction, SD fraction), "
+                                     f"got {pair!r}") from None
+            if not (math.isfinite(b) and math.isfinite(sd) and b > -1 and sd >= 0):
+                raise BayesbaseError(f"method_bias[{analyte!r}]: need a bias > -1 and an SD >= 0 (fractions), "
+                                     f"got {pair!r}")
         object.__setattr__(self, "mcmc_options", dict(self.mcmc_options or {}))
 
     @property

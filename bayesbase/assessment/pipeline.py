@@ -54,7 +54,10 @@ def assess(
         variance inflated by sI^2 (default: leave them out).
     method_bias : ``{analyte: (bias_fraction, bias_sd_fraction)}`` for a method change between
         baseline and assessed result; the assessed value is corrected by the bias and its
-        uncertainty enters the variance, and the comparison is then called comparable.
+        uncertainty enters the variance, and the comparison is then called comparable. Without
+        it, a pack whose analyte carries ``method_biases`` (e.g. from ``bayesbase calibrate``)
+        covering every method of the case corrects the change with them (calibrated correction,
+        :mod:`bayesbase.assessment.cases`); an analyte given here always uses the stated bias.
 
     Baseline rule: earlier specimens of the same analyte whose state is healthy or blank (blank
     is reported as "assumed healthy"); unwell specimens are shown but never used; a specimen

@@ -7,7 +7,14 @@ sets ``center``, ``cvg``, ``cvi``, ``cvi_log_sd`` (the predictive SD of ln CVI o
 breed centres of every recorded breed; each a cited number with provenance ``"calibrated"``
 whose source names the store or file and its SHA-256 and whose note gives the 95 % credible
 interval, the animals and specimens it rests on, the date and the pack's own value (the prior).
-Method biases have no key in the pack schema: they are in the CSV, the HTML and the dataset.
+Method biases go into ``[analytes.<id>.method_biases]``: per non-reference method, ``log_bias`` and
+``log_sd`` (posterior mean and SD of the natural-log bias against the reference method, from the
+draws of ``method_log_bias``; a calibration without draws, e.g. one built by hand, gives ln(1 +
+median) and the 95 % interval's log width / 3.92) and ``reference`` (the analyte's reference
+method), with the same source, provenance "calibrated" and a note with the fraction's 95 % credible
+interval, the animals and specimens of that method and the date. ``bayesbase assess`` uses them
+for a method change (:mod:`bayesbase.assessment.cases`). No biases are written for an analyte whose
+reference method is not stated, and no bias for results without a method.
 
 Never silent: a fit that failed a convergence check writes no fragment unless ``force=True``,
 and a forced fragment says so in its header and description. The fragment is checked by the
@@ -29,7 +36,7 @@ import numpy as np
 from .. import __version__
 from ..constants import CAUTIONS
 from ..errors import PackError
-from .core import UNKNOWN_BREED
+from .core import UNKNOWN_BREED, UNSTATED_METHOD
 from .job import Calibration
 
 __all__ = ["PROVENANCE", "fragment_toml", "write_outputs", "cvi_figure", "calibration_html"]
@@ -72,6 +79,41 @@ def _note(r, pack, field: str, what: str) -> str:
     return f"{what}{ci}; {r.n_animals} animals, {r.n_specimens} specimens; {was}"
 
 
+def method_log_bias(cal: Calibration, analyte: str, method: str, row) -> tuple[float, float, str]:
+    """(estimate, SD, how they were found) of the natural-log bias of ``method`` against the
+    analyte's reference method (module docstring; ``row``: its row of the summary table)."""
+    post = getattr(cal.idata, "posterior", None)
+    pairs = list(getattr(cal.data, "bias_pairs", []))
+    if post is not None and "method_log_bias" in post and (analyte, method) in pairs:
+        v = np.asarray(post["method_log_bias"].values)
+        d = v.reshape((-1,) + v.shape[2:])[:, pairs.index((analyte, method))]
+        return float(np.mean(d)), float(np.std(d, ddof=1)), "posterior mean and SD of the draws of method_log_bias"
+    return (math.log1p(row.estimate), (math.log1p(row.upper) - math.log1p(row.lower)) / 3.92,
+            "ln(1 + posterior median), SD = log width of the 95 % CrI / 3.92 (no draws kept)")
+
+
+def _method_bias_lines(cal: Calibration, analyte: str, src: str) -> list[str]:
+    from .model import METHOD_SD_SCALE
+
+    t = cal.table[(cal.table["analyte"] == analyte) & (cal.table["parameter"] == "method_bias")]
+    ref = cal.data.reference[analyte]
+    rows = [r for r in t.itertuples() if r.group not in (ref, UNSTATED_METHOD)]
+    if ref == UNSTATED_METHOD or not rows:
+        return []
+    lines = ["", f"[analytes.{analyte}.method_biases]"]
+    for r in rows:
+        b, sd, how = method_log_bias(cal, analyte, r.group, r)
+        if not (np.isfinite(b) and np.isfinite(sd) and sd > 0):
+            continue
+        note = (f"natural-log bias against {ref}: {how}; as a fraction, posterior median {r.estimate:+.4g}, "
+                f"95 % CrI {r.lower:+.4g} to {r.upper:+.4g}; {r.n_animals} animals, {r.n_specimens} specimens "
+                f"on this method; {cal.attrs['date']}; prior: Normal(0, method SD), method SD ~ "
+                f"HalfNormal({METHOD_SD_SCALE:g}) (calibration model)")
+        lines.append(f"{_s(r.group)} = {{ log_bias = {_num(b)}, log_sd = {_num(sd)}, reference = {_s(ref)}, "
+                     f"source = {_s(src)}, provenance = {_s(PROVENANCE)}, note = {_s(note)} }}")
+    return lines if len(lines) > 2 else []
+
+
 def _analyte_lines(cal: Calibration, pack, analyte: str, src: str) -> list[str]:
     t = cal.table[cal.table["analyte"] == analyte]
     one = {p: r for p, r in zip(t["parameter"], t.itertuples()) if p not in ("breed_center", "method_bias")}
@@ -91,7 +133,7 @@ def _analyte_lines(cal: Calibration, pack, analyte: str, src: str) -> list[str]:
         lines += ["", f"[analytes.{analyte}.breed_centers]"]
         for b in breeds.itertuples():
             lines.append(f"{_breed_key(b.group)} = {_cited(b.estimate, src, _note(b, pack, 'breed_centers.' + _breed_key(b.group), 'posterior median of exp(mu + breed offset), partial pooling'))}")
-    return lines
+    return lines + _method_bias_lines(cal, analyte, src)
 
 
 def fragment_toml(cal: Calibration, pack=None) -> str:
@@ -104,7 +146,7 @@ def fragment_toml(cal: Calibration, pack=None) -> str:
     src = _source(cal)
     state = "" if a["converged"] else (" NOT CONVERGED: written only because the user forced it; do not use "
                                        "it for animals' care.")
-    desc = (f"Population centres, CVG, CVI and breed centres calibrated by bayesbase calibrate on {a['n_animals']} "
+    desc = (f"Population centres, CVG, CVI, breed centres and method biases calibrated by bayesbase calibrate on {a['n_animals']} "
             f"animals and {a['n_specimens']} usable specimens ({a['n_results']} results) of {a['source_label']} (sha256 {sha}), {a['date']}; "
             f"priors from pack '{a['pack_id']}' (sha256 {a['pack_sha256']}), widened. Every number has provenance "
             f"calibrated.{state}")
@@ -112,7 +154,9 @@ def fragment_toml(cal: Calibration, pack=None) -> str:
              "# Every number has provenance \"calibrated\"; its source names the store or file and its SHA-256.",
              "# " + " ".join(CAUTIONS),
              "# It describes the animals, analysers and conditions of this store; layer it over the species' pack.",
-             "# Method biases (fraction, relative to the reference method) have no pack key; see calibration.csv."]
+             "# method_biases: per method, log_bias = posterior mean of the natural-log bias against the analyte's",
+             "# reference method (a result of that method reads exp(log_bias) times the reference's) and log_sd = its",
+             "# posterior SD; bayesbase assess corrects a method change with them (calibration.csv has the fractions)."]
     if not a["converged"]:
         lines.insert(0, "# WARNING: THE FIT DID NOT CONVERGE. This fragment was forced; do not use it for care.")
     lines += ["", "[pack]", f"id = {_s(a['species'] + '+calibrated-' + sha[:8])}", f"species = {_s(a['species'])}",
@@ -215,7 +259,9 @@ def calibration_html(cal: Calibration, png: bytes | None = None) -> str:
              f"(tune {a['tune']}), seed {a['seed']}, {a['seconds']} s; bayesbase {_e(__version__)}, {_e(a['date'])}.</p>",
              "<h2>Convergence</h2>", _diag_html(cal),
              "<h2>Prior (pack value) and posterior (median, 95 % credible interval)</h2>",
-             "<p>CVs are fractions; method_bias is the fraction by which a method reads above the reference method.</p>",
+             "<p>CVs are fractions; method_bias is the fraction by which a method reads above the reference method "
+             "(pack.toml carries each as the posterior mean and SD of its natural-log bias, method_biases, which "
+             "bayesbase assess uses to correct a change of method).</p>",
              _table_html(cal), "<h2>Priors</h2><ul>"
              + "".join(f"<li><b>{_e(k)}</b>: {_e(v)}</li>" for k, v in a["priors"].items()) + "</ul>"]
     if png is not None:

@@ -20,8 +20,8 @@ from typing import NamedTuple
 from .. import units as _units
 from ..errors import AnalyteNotInPack, PackError
 from . import layers, overrides
-from .schema import (HIL, CitedNumber, Collector, CviStudy, IntervalGap, breed_key, consistency_acknowledged,
-                     consistency_warnings, parse_pack)
+from .schema import (HIL, CitedNumber, Collector, CviStudy, IntervalGap, MethodBias, breed_key,
+                     consistency_acknowledged, consistency_warnings, parse_pack)
 
 __all__ = ["AnalytePrior", "RetestGroup", "Pack", "Check", "load_pack", "check", "check_file", "merge"]
 
@@ -74,6 +74,24 @@ class AnalytePrior:
     breed_notes: dict[str, str] = field(default_factory=dict, repr=False)
     #: an acknowledged disagreement between the CVs and the population interval, or None
     interval_gap: IntervalGap | None = field(default=None, repr=False)
+    #: method name -> :class:`.schema.MethodBias` (natural-log bias against one reference method
+    #: and its SD); empty when the pack carries none (source in ``sources["method_biases.<method>"]``)
+    method_biases: dict[str, MethodBias] = field(default_factory=dict, repr=False)
+
+    @property
+    def method_reference(self) -> str | None:
+        """The reference method of the analyte's method biases (None when it has none)."""
+        return next(iter(self.method_biases.values())).reference if self.method_biases else None
+
+    def method_log_bias(self, method: str | None) -> tuple[float, float] | None:
+        """(log bias, its SD) of ``method`` against the reference method: (0, 0) for the reference
+        itself, None for a method the pack does not carry (or when it carries no biases)."""
+        if not self.method_biases or not isinstance(method, str):
+            return None
+        if method == self.method_reference:
+            return 0.0, 0.0
+        mb = self.method_biases.get(method)
+        return None if mb is None else (mb.log_bias, mb.log_sd)
 
     # log-scale SDs: sigma = sqrt(ln(1 + CV^2))
     @property
@@ -184,7 +202,7 @@ def _build_analyte(aid: str, a: dict, cn: dict[str, CitedNumber], asrc: dict[str
         feeding_sensitive=bool(a.get("feeding_sensitive", False)), age_dependent=a.get("age_dependent"),
         group=a["group"], slope_sd=cn["slope_sd"].value, shift_sd=opt["shift_sd"], sources=asrc,
         cvi_studies=a.get("_studies", ()), breed_notes={b: v.text for b, v in a.get("_breed_notes", {}).items()},
-        interval_gap=a.get("_gap"))
+        interval_gap=a.get("_gap"), method_biases=dict(a.get("_method_biases", {})))
 
 
 def build(parts: dict, sha: str) -> Pack:
@@ -204,6 +222,9 @@ def build(parts: dict, sha: str) -> Pack:
         for b, v in a.get("_breed_notes", {}).items():
             asrc[f"breed_notes.{b}"] = v.source + (f" [{v.locator}]" if v.locator else "")
             asrc[f"breed_notes.{b}.provenance"] = v.provenance
+        for m, v in a.get("_method_biases", {}).items():
+            asrc[f"method_biases.{m}"] = v.source + (f" [{v.locator}]" if v.locator else "")
+            asrc[f"method_biases.{m}.provenance"] = v.provenance
         cited[aid] = cn
         sources.update({f"analytes.{aid}.{k}": v for k, v in asrc.items()})
         analytes[aid] = _build_analyte(aid, a, cn, asrc)

@@ -3,7 +3,9 @@ rules between keys, and the consistency warning between the CVs and the populati
 
 :func:`parse_pack` checks a parsed pack TOML and returns its checked parts and every problem
 found, each naming the file and the key path (``analytes.creatinine.cvi.value``). Unknown keys
-get a did-you-mean hint. A problem found in a key that a pack fragment set names the fragment's
+get a did-you-mean hint. An analyte's ``method_biases`` (:class:`MethodBias`: per method, the
+natural-log bias against one reference method and its SD > 0) must all name the same reference.
+A problem found in a key that a pack fragment set names the fragment's
 file (see :class:`Collector`).
 """
 from __future__ import annotations
@@ -20,7 +22,8 @@ from .. import units as _units
 __all__ = [
     "PROVENANCES", "HASHED_PROVENANCES", "LAB_PROVENANCE", "DIRECTIONS", "HIL", "DESIGNS",
     "MIN_LOG_SD_FROM_MEMORY", "COMBINE_RTOL", "INTERVAL_CV_TOLERANCE", "GAP_RATIO_RTOL", "CitedNumber",
-    "CitedNote", "CviStudy", "IntervalGap", "Collector", "hint", "parse_pack", "check_pack_meta",
+    "CitedNote", "CviStudy", "IntervalGap", "MethodBias", "MAX_ABS_LOG_BIAS", "Collector", "hint", "parse_pack",
+    "check_pack_meta",
     "interval_consistency", "consistency_warnings", "consistency_acknowledged", "breed_key",
 ]
 
@@ -46,6 +49,10 @@ INTERVAL_CV_TOLERANCE = 0.25
 #: An analyte's ``interval_gap`` acknowledges the gap only while the ratio it states matches the
 #: ratio the pack's numbers give within this relative tolerance (else the warning comes back).
 GAP_RATIO_RTOL = 0.05
+
+#: Bound on |log_bias| and on log_sd of a method bias (ln units): a factor of e^3 (about 20) between
+#: two methods of one analyte is no bias a correction should carry (schema rule of this project).
+MAX_ABS_LOG_BIAS = 3.0
 
 _SHA256 = re.compile(r"(?<![0-9a-fA-F])[0-9a-fA-F]{64}(?![0-9a-fA-F])")
 
@@ -104,6 +111,23 @@ class CviStudy:
     note: str | None = None
 
 
+@dataclass(frozen=True)
+class MethodBias:
+    """The bias of one method (analyser) of an analyte against the analyte's reference method, on
+    the natural-log scale: a result of ``method`` reads exp(``log_bias``) times what the reference
+    method reads on the same specimen; ``log_sd`` is the SD of ``log_bias`` (its uncertainty).
+    The reference method itself has bias 0 and SD 0 and is not listed."""
+
+    method: str
+    log_bias: float
+    log_sd: float
+    reference: str
+    source: str
+    provenance: str
+    note: str | None = None
+    locator: str | None = None
+
+
 def breed_key(breed: str) -> str:
     """Key of a breed in a pack's breed table: lower case, words joined by underscores."""
     return "_".join(str(breed).strip().lower().replace("-", " ").split())
@@ -145,6 +169,7 @@ _ANALYTE_KEYS = {
     "interval_gap": (_T_TABLE, False, None),
     "note": (_T_STR, False, None),
     "cvi_studies": (_T_LIST, False, None),
+    "method_biases": (_T_TABLE, False, None),
 }
 TOP_KEYS = ("pack", "defaults", "retest_groups", "analytes")
 _CITED_KEYS = ("value", "source", "provenance", "locator", "note")
@@ -156,6 +181,9 @@ _INTERFERENCE_KEYS = (*HIL, "source", "provenance", "note")
 _BREED_NOTE_KEYS = ("text", "source", "provenance", "locator", "note")
 #: Keys of an analyte's ``interval_gap`` (an acknowledged CV / interval disagreement).
 _GAP_KEYS = ("ratio", "reason")
+#: Keys of one method bias (``method_biases.<method>``): log-scale bias and its SD against the
+#: named reference method, and the cited-number keys of its source.
+_METHOD_BIAS_KEYS = ("log_bias", "log_sd", "reference", "source", "provenance", "locator", "note")
 
 
 # --------------------------------------------------------------------------- problems
@@ -400,6 +428,8 @@ def _check_analytes(c: Collector, analytes: dict, groups: dict) -> dict[str, dic
             got["_breed_notes"] = _check_breed_notes(c, f"{p}.breed_notes", got["breed_notes"])
         if "interval_gap" in got:
             got["_gap"] = _check_gap(c, f"{p}.interval_gap", got["interval_gap"])
+        if "method_biases" in got:
+            got["_method_biases"] = check_method_biases(c, f"{p}.method_biases", got["method_biases"])
         out[aid] = got
     return out
 
@@ -507,6 +537,74 @@ def _check_gap(c: Collector, q: str, gap: dict) -> IntervalGap | None:
         c.add(f"{q}.reason", "missing required key (non-empty string: why both numbers are kept)")
         ok = False
     return IntervalGap(float(ratio), reason.strip()) if ok else None
+
+
+# --------------------------------------------------------------------------- method biases
+
+def _log_number(c: Collector, path: str, v: Any, positive: bool) -> float | None:
+    """A finite log-scale number within +/- MAX_ABS_LOG_BIAS (``positive``: in (0, MAX])."""
+    if not _is_number(v) or not math.isfinite(v):
+        c.add(path, f"expected a finite number (natural-log units), got {type(v).__name__} {v!r}")
+        return None
+    lo = 0.0 if positive else -MAX_ABS_LOG_BIAS
+    if not ((v > lo) if positive else (v >= lo)) or v > MAX_ABS_LOG_BIAS:
+        c.add(path, f"{v!r} out of range {'(0' if positive else f'[{lo:g}'}, {MAX_ABS_LOG_BIAS:g}]"
+                    + (" (the SD of a bias must be > 0)" if positive else ""))
+        return None
+    return float(v)
+
+
+def _check_method_bias(c: Collector, q: str, method: str, v: Any) -> MethodBias | None:
+    if not isinstance(v, dict):
+        c.add(q, f"expected {{ log_bias = ..., log_sd = ..., reference = \"...\", source = \"...\", "
+                 f"provenance = \"...\" }}, got {type(v).__name__} {v!r}")
+        return None
+    _unknown_keys(c, q, v, _METHOD_BIAS_KEYS)
+    ok = True
+    for key in ("log_bias", "log_sd", "reference"):
+        if key not in v:
+            c.add(f"{q}.{key}", "missing required key")
+            ok = False
+    bias = _log_number(c, f"{q}.log_bias", v["log_bias"], False) if "log_bias" in v else None
+    sd = _log_number(c, f"{q}.log_sd", v["log_sd"], True) if "log_sd" in v else None
+    ref = v.get("reference")
+    if "reference" in v and not (isinstance(ref, str) and ref.strip() and ref == ref.strip()):
+        c.add(f"{q}.reference", f"expected the reference method's name (a non-empty string without surrounding "
+                                f"spaces), got {ref!r}")
+        ok = False
+    ok = _cited_source(c, q, v) and ok
+    ok = _cited_text(c, q, v) and ok
+    if not ok or bias is None or sd is None:
+        return None
+    locator = v.get("locator")
+    return MethodBias(method, bias, sd, ref, v["source"].strip(), v["provenance"], v.get("note"),
+                      locator.strip() if locator else None)
+
+
+def check_method_biases(c: Collector, q: str, table: dict) -> dict[str, MethodBias]:
+    """``method_biases``: method name -> { log_bias, log_sd, reference, source, provenance[,
+    locator, note] }; every entry of one analyte names the same reference method."""
+    out: dict[str, MethodBias] = {}
+    for m, v in table.items():
+        if not m.strip() or m != m.strip():
+            c.add(f"{q}.{m!r}", "method names are non-empty, without surrounding spaces (as in the results)")
+            continue
+        mb = _check_method_bias(c, f"{q}.{m}", m, v)
+        if mb is not None:
+            out[m] = mb
+    refs: dict[str, list[str]] = {}
+    for m, v in table.items():
+        if isinstance(v, dict) and isinstance(v.get("reference"), str):
+            refs.setdefault(v["reference"], []).append(m)
+    if len(refs) > 1:
+        found = "; ".join(f"'{r}' ({', '.join(ms)})" for r, ms in refs.items())
+        c.add(q, f"mixed references: every bias of an analyte is relative to one reference method, found {found}")
+        return {}
+    ref = next(iter(refs), None)
+    if ref is not None and ref in table:
+        c.add(f"{q}.{ref}", f"'{ref}' is the reference method of the other biases (bias 0 by definition): leave it out")
+        return {}
+    return out
 
 
 # --------------------------------------------------------------------------- evidence behind CVI

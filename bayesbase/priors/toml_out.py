@@ -1,7 +1,10 @@
 """TOML text of a pack table (what ``bayesbase priors merge`` writes).
 
 Top-level tables and tables of tables become ``[a.b]`` sections; a table of plain values (a
-cited number, an interference entry) is written inline; ``cvi_studies`` is an array of inline
+cited number, an interference entry, one method's bias) is written inline, so an analyte's
+``breed_centers`` and ``method_biases`` become ``[analytes.<id>.breed_centers]`` /
+``[analytes.<id>.method_biases]`` sections of one inline table per breed or method (a key that is
+not bare, e.g. a method name with spaces, is quoted); ``cvi_studies`` is an array of inline
 tables, one per line. ``tomllib.loads(dumps(data)) == data`` for every pack table.
 """
 from __future__ import annotations
