@@ -262,3 +262,21 @@ def test_calibrate_then_assess_applies_the_biases(tmp_path, capsys):
     # with the built-in pack the same changes are not comparable
     plain = assess(results, pack="dog", trend=False).table
     assert (~plain["comparable"]).sum() == len(changed)
+
+
+# --------------------------------------------------------------------------- priors show
+def test_priors_show_lists_the_biases(tmp_path):
+    """``bayesbase priors show`` prints each method's ratio exp(log_bias) and its 95 % range
+    exp(log_bias -/+ 1.96 log_sd) (normal quantile 1.96 from scipy), and the tidy view has both."""
+    from bayesbase.priors import describe, describe_text
+    pk = load_pack(_good(tmp_path))
+    text = describe_text(pk, "creatinine", full=True)
+    assert f"method biases against {REF}" in text
+    z = stats.norm.ppf(0.975)
+    for m, (b, s) in BIAS.items():
+        expect = f"{m}: x{math.exp(b):.4g} ({math.exp(b - z * s):.4g}-{math.exp(b + z * s):.4g})"
+        assert expect in text
+    assert max(len(line) for line in text.splitlines()) <= 100
+    table = describe(pk, "creatinine").set_index("field")
+    assert table.loc["method_biases.demo analyser B.log_bias", "value"] == 0.09
+    assert table.loc["method_biases.demo analyser B.log_sd", "value"] == 0.02

@@ -39,6 +39,11 @@ def _describe_rows(pack, aid: str) -> list[dict]:
                          source=f"{', '.join(f'{k} {v}' for k, v in prior.interference.items())}; "
                                 f"{prior.sources.get('interference', '')}",
                          provenance=prior.sources.get("interference.provenance", "")))
+    for m, b in (getattr(prior, "method_biases", None) or {}).items():
+        rows.append(dict(analyte=aid, field=f"method_biases.{m}.log_bias", value=b.log_bias,
+                         unit=f"ln ratio to {b.reference}", source=b.source, provenance=b.provenance))
+        rows.append(dict(analyte=aid, field=f"method_biases.{m}.log_sd", value=b.log_sd,
+                         unit="SD of ln ratio", source=b.source, provenance=b.provenance))
     return rows
 
 
@@ -68,7 +73,9 @@ class _Lines:
         first = f"    {label}"
         if not self.full:
             return [_short(f"{first} {text}", self.width)]
-        return textwrap.wrap(text, width=self.width, initial_indent=first + " ", subsequent_indent=" " * 6)
+        # a label longer than the line (e.g. a breed note's text) is wrapped with its source
+        return textwrap.wrap(f"{label} {text}", width=self.width, initial_indent="    ",
+                             subsequent_indent=" " * 6)
 
 
 def _studies_block(prior, lines: _Lines) -> list[str]:
@@ -105,8 +112,24 @@ def _analyte_block(pack, aid: str, lines: _Lines) -> list[str]:
     for b, text in prior.breed_notes.items():
         out += lines.source(f"breed note ({b}, {prior.sources.get(f'breed_notes.{b}.provenance', '')}): {text}:",
                             prior.sources.get(f"breed_notes.{b}", ""))
+    out += _method_bias_block(prior, lines)
     if prior.cvi_studies:
         out += _studies_block(prior, lines)
+    return out
+
+
+def _method_bias_block(prior, lines: _Lines) -> list[str]:
+    """Per-method biases against the reference method (``method_biases``), as ratios."""
+    biases = getattr(prior, "method_biases", None) or {}
+    if not biases:
+        return []
+    ref = next(iter(biases.values())).reference
+    out = [f"  method biases against {ref} (x exp(log bias); 95 % range from the log SD):"]
+    for m, b in biases.items():
+        lo, hi = math.exp(b.log_bias - 1.96 * b.log_sd), math.exp(b.log_bias + 1.96 * b.log_sd)
+        loc = f" [{b.locator}]" if b.locator else ""
+        out += lines.source(f"{m}: x{math.exp(b.log_bias):.4g} ({lo:.4g}-{hi:.4g}), {b.provenance}:",
+                            b.source + loc + (f". Note: {b.note}" if lines.full and b.note else ""))
     return out
 
 
