@@ -14,19 +14,20 @@ __all__ = ["resolve_pack", "packs_by_species", "RowPriors", "row_priors"]
 
 def resolve_pack(pack, species: str, priors, cache: dict):
     """The pack for ``species``: ``pack`` (a name, path or Pack, with the override CSV
-    ``priors`` layered over it) or, when ``pack`` is None, the species' own pack. ``cache``
-    keeps each pack loaded once per assessment."""
-    from ..priors import Pack, load_pack
+    ``priors`` layered over it) or, when ``pack`` is None, the species' own pack. Packs come from
+    the process-wide cache (:func:`bayesbase.priors.cached_pack`: read again when a file changed);
+    ``cache`` keeps each one looked up once per assessment."""
+    from ..priors import Pack, cached_pack
 
     if isinstance(pack, Pack):
         key = ("obj", id(pack))
         if key not in cache:
-            cache[key] = pack if priors is None else load_pack(pack.id.split("+")[0], overrides=priors)
+            cache[key] = pack if priors is None else cached_pack(pack.id.split("+")[0], overrides=priors)
         return cache[key]
     name = pack if pack is not None else species
     key = (str(name), str(priors))
     if key not in cache:
-        cache[key] = load_pack(name, overrides=priors)
+        cache[key] = cached_pack(name, overrides=priors)
     return cache[key]
 
 

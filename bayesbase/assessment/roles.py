@@ -58,6 +58,15 @@ def pick_assessed(spec: pd.DataFrame, at) -> str:
     at_s = str(at)
     if at_s in set(spec["specimen"]):
         return at_s
+    before = spec[spec["collected_at"] <= _at_time(at_s)]
+    if before.empty:
+        raise BayesbaseError(f"no specimen of this patient was collected on or before {at_s}")
+    return before["specimen"].iloc[-1]
+
+
+def _at_time(at_s: str) -> pd.Timestamp:
+    """The latest collection time ``--at`` allows when it names no specimen (UTC, naive; a bare
+    date means the whole day)."""
     try:
         ts = pd.Timestamp(at_s)
     except (ValueError, TypeError):
@@ -66,10 +75,30 @@ def pick_assessed(spec: pd.DataFrame, at) -> str:
         ts = ts.tz_convert("UTC").tz_localize(None)
     if len(at_s) <= 10:  # a bare date means the whole day
         ts = ts + pd.Timedelta(days=1) - pd.Timedelta(microseconds=1)
-    before = spec[spec["collected_at"] <= ts]
-    if before.empty:
-        raise BayesbaseError(f"no specimen of this patient was collected on or before {at_s}")
-    return before["specimen"].iloc[-1]
+    return ts
+
+
+def _targets_at(hist: pd.DataFrame, at) -> Targets:
+    """:func:`pick_assessed` for every patient at once (same choice, same errors): the specimen
+    ``at`` names where the patient has it, else the last specimen (row order) collected on or
+    before the time ``at`` gives."""
+    pc, pu, _, _, first = _specimen_rows(hist)
+    at_s = str(at)
+    sp = hist["specimen"].to_numpy(dtype=object)[first]
+    pick = np.full(len(pu), -1, dtype=np.int64)
+    named = first[sp == at_s]
+    pick[pc[named]] = named
+    if (pick < 0).any():
+        t = hist["collected_at"].to_numpy(dtype="datetime64[ns]")[first]
+        ok = first[t <= _at_time(at_s).to_datetime64()]
+        last = np.full(len(pu), -1, dtype=np.int64)
+        np.maximum.at(last, pc[ok], ok)
+        pick = np.where(pick < 0, last, pick)
+        if (pick < 0).any():
+            raise BayesbaseError(f"no specimen of this patient was collected on or before {at_s}")
+    pids = [str(p) for p in pu]
+    target = dict(zip(pids, hist["specimen"].iloc[pick].tolist()))
+    return Targets(specimen=target, collected_at=pd.Series(list(hist["collected_at"].iloc[pick]), index=pids))
 
 
 def _specimen_rows(hist: pd.DataFrame):
@@ -85,11 +114,7 @@ def _specimen_rows(hist: pd.DataFrame):
 def assessed_specimens(hist: pd.DataFrame, at=None) -> Targets:
     """The assessed specimen of each patient (specimens are keyed by patient and id)."""
     if at is not None:
-        spec = hist.drop_duplicates(["patient", "specimen"])[["patient", "specimen", "collected_at"]]
-        target = {pid: pick_assessed(g, at) for pid, g in spec.groupby("patient", sort=False)}
-        t_of = dict(zip(zip(spec["patient"], spec["specimen"]), spec["collected_at"]))
-        when = pd.Series([t_of[(p, s)] for p, s in zip(target, target.values())], index=list(target))
-        return Targets(specimen=target, collected_at=when)
+        return _targets_at(hist, at)
     pc, pu, _, _, first = _specimen_rows(hist)
     last = np.full(len(pu), -1, dtype=np.int64)
     np.maximum.at(last, pc[first], first)  # the last specimen (in row order) of every patient

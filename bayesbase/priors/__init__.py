@@ -17,16 +17,18 @@ animals of a breed (the ``breed note`` flag), apart from the age rule (``age_dep
 Modules: :mod:`.schema` (key specs and rules), :mod:`.pack` (loaded packs, loading, hashing,
 checking, merging), :mod:`.layers` (built-in packs and files; fragments with ``[pack] extends``
 layered over a base), :mod:`.overrides` (the lab override CSV), :mod:`.text` (views for people),
-:mod:`.toml_out` (the TOML writer of ``priors merge``).
+:mod:`.toml_out` (the TOML writer of ``priors merge``), :mod:`.cache` (one process-wide cache of
+loaded packs, :func:`cached_pack`, re-read when a pack file changes on disk).
 """
 from __future__ import annotations
 
+from .cache import cached_pack, clear_pack_cache
 from .layers import available_packs
 from .overrides import OVERRIDE_COLUMNS
 from .pack import AnalytePrior, Check, Pack, RetestGroup, check, check_file, load_pack, merge
 from .schema import (COMBINE_RTOL, DESIGNS, DIRECTIONS, GAP_RATIO_RTOL, HASHED_PROVENANCES, HIL,
                      INTERVAL_CV_TOLERANCE, LAB_PROVENANCE, MIN_LOG_SD_FROM_MEMORY, PROVENANCES, CitedNote,
-                     CitedNumber, CviStudy, IntervalGap, breed_key, consistency_acknowledged,
+                     CitedNumber, CviStudy, IntervalGap, MethodBias, breed_key, consistency_acknowledged,
                      consistency_warnings, interval_consistency)
 from .text import describe, describe_text
 
@@ -46,12 +48,15 @@ __all__ = [
     "CviStudy",
     "CitedNote",
     "IntervalGap",
+    "MethodBias",
     "RetestGroup",
     "AnalytePrior",
     "Pack",
     "Check",
     "available_packs",
     "load_pack",
+    "cached_pack",
+    "clear_pack_cache",
     "check",
     "check_file",
     "merge",

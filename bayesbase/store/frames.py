@@ -120,13 +120,35 @@ def coerce_canonical(frame):
 
 
 def _text(values, index=None):
-    """A canonical text column (``string`` dtype) from str/None values, taken at ``index``."""
+    """A canonical text column (``string`` dtype) from str/None values (or an Arrow string array),
+    taken at ``index`` (in Arrow: no Python object per row)."""
     import numpy as np
     import pandas as pd
     import pyarrow as pa
 
-    arr = pd.array(pa.array(values, type=pa.string()), dtype="string")
-    return arr if index is None else arr.take(np.asarray(index, dtype=np.intp))
+    arr = values if isinstance(values, pa.Array) else pa.array(values, type=pa.string())
+    if index is not None:
+        arr = arr.take(pa.array(np.asarray(index, dtype=np.int64)))
+    return pd.array(arr, dtype="string")
+
+
+def _ints(values) -> "np.ndarray":
+    """An integer column (int64) of ints (every one present)."""
+    return _int_column(values)[0]
+
+
+def _int_column(values) -> tuple:
+    """(int64 array with 0 where NULL, bool array of the NULLs or None when there is none) of a
+    column of ints and None."""
+    import numpy as np
+
+    try:
+        return np.fromiter(values, dtype=np.int64, count=len(values)), None
+    except TypeError:  # a None among them
+        obj = np.array(values, dtype=object)
+        nulls = np.equal(obj, None)
+        obj[nulls] = 0
+        return obj.astype(np.int64), nulls
 
 
 def _times(values):
@@ -151,16 +173,32 @@ def _positions(keys, pks) -> "np.ndarray":
     """Row of ``pks`` holding each of ``keys`` (every key is present: foreign keys)."""
     import numpy as np
 
-    pks = np.asarray(pks, dtype=np.int64)
+    pks = _ints(pks)
     order = np.argsort(pks, kind="stable")
-    return order[np.searchsorted(pks, np.asarray(keys, dtype=np.int64), sorter=order)]
+    return order[np.searchsorted(pks, _ints(keys), sorter=order)]
+
+
+def _source(results: dict, files: dict):
+    """The source file of every result: its own, else the file of its import (import log)."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    own = pa.array(results["source_file"], type=pa.string())
+    imp, no_imp = _int_column(results["import"])
+    ids, inverse = np.unique(imp, return_inverse=True)
+    logged = pa.array([files.get(int(k)) for k in ids], type=pa.string()).take(pa.array(inverse.astype(np.int64)))
+    if no_imp is not None:
+        logged = pc.if_else(pa.array(no_imp), pa.nulls(len(imp), pa.string()), logged)
+    return pc.coalesce(own, logged)
 
 
 def canonical_from_tables(patients: dict, specimens: dict, results: dict, files: dict):
     """The canonical frame from the store's tables read as columns ({column: tuple}; see
     :mod:`.queries`): each result row joined to its specimen and patient, the source file taken
     from the import log when the row names none; canonical dtypes, column order and row order
-    (:data:`CANONICAL_SORT`), as :func:`coerce_canonical` gives them."""
+    (:data:`CANONICAL_SORT`), as :func:`coerce_canonical` gives them. Text columns are taken
+    in Arrow and integers gathered with numpy: no Python object is made per row here."""
     import numpy as np
     import pandas as pd
 
@@ -169,32 +207,28 @@ def canonical_from_tables(patients: dict, specimens: dict, results: dict, files:
     p_of_s = _positions(specimens["patient"], patients["pk"]) if len(specimens["pk"]) else np.zeros(0, np.intp)
     p_row = p_of_s[s_row]
     s_time = _times(specimens["collected_at"])
+    replicate = _ints(results["replicate"]) if n else np.zeros(0, dtype=np.int64)
     order = np.lexsort((
-        np.asarray(results["replicate"], dtype=np.int64), _rank(results["analyte"]),
+        replicate, _rank(results["analyte"]),
         _rank(specimens["id"])[s_row], s_time.astype("int64")[s_row], _rank(patients["id"])[p_row],
     )) if n else np.zeros(0, dtype=np.intp)
     s_row, p_row = s_row[order], p_row[order]
-
-    def take(col):
-        out = np.empty(n, dtype=object)
-        out[:] = col
-        return out[order]
-
-    source = [f if f is not None else files.get(k) for f, k in zip(results["source_file"], results["import"])]
-    source = source if n else ()
+    row, no_row = _int_column(results["source_row"])
+    src_row = pd.arrays.IntegerArray(row[order], np.zeros(n, dtype=bool) if no_row is None else no_row[order])
     fasted = pd.array([None if v is None else bool(v) for v in specimens["fasted"]], dtype="boolean")
     cols = {
         "patient": _text(patients["id"], p_row), "species": _text(patients["species"], p_row),
         "breed": _text(patients["breed"], p_row), "sex": _text(patients["sex"], p_row),
         "birth_date": _times(patients["birth_date"])[p_row], "specimen": _text(specimens["id"], s_row),
-        "collected_at": s_time[s_row], "analyte": _text(take(results["analyte"])),
-        "value": np.asarray(results["value"], dtype="float64")[order] if n else np.zeros(0), "unit": _text(take(results["unit"])),
-        "reported_value": _text(take(results["reported_value"])),
-        "reported_unit": _text(take(results["reported_unit"])), "censor": _text(take(results["censor"])),
-        "method": _text(take(results["method"])),
-        "replicate": pd.array(np.asarray(results["replicate"], dtype=np.int64)[order], dtype="Int64"), "fasted": fasted.take(s_row),
+        "collected_at": s_time[s_row], "analyte": _text(results["analyte"], order),
+        "value": np.asarray(results["value"], dtype="float64")[order] if n else np.zeros(0),
+        "unit": _text(results["unit"], order),
+        "reported_value": _text(results["reported_value"], order),
+        "reported_unit": _text(results["reported_unit"], order), "censor": _text(results["censor"], order),
+        "method": _text(results["method"], order),
+        "replicate": pd.array(replicate[order], dtype="Int64"), "fasted": fasted.take(s_row),
         **{k: np.asarray(specimens[k], dtype="float64")[s_row] for k in ("haemolysis", "lipaemia", "icterus")},
-        "state": _text(specimens["state"], s_row), "source_file": _text(take(source)),
-        "source_row": pd.array(take(results["source_row"]), dtype="Int64"),
+        "state": _text(specimens["state"], s_row), "source_file": _text(_source(results, files), order),
+        "source_row": src_row,
     }
     return pd.DataFrame(cols, columns=list(CANONICAL_COLUMNS)).astype(CANONICAL_DTYPES)

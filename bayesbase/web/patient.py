@@ -7,7 +7,6 @@ import math
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, field
-from functools import lru_cache
 
 from ..constants import DEFAULT_COVERAGE
 from .config import DeskError
@@ -154,16 +153,16 @@ class StateCache:
             return value
 
 
-@lru_cache(maxsize=8)
 def _builtin_pack(species: str):
-    from ..priors import load_pack
+    from ..priors import cached_pack
 
-    return load_pack(species)
+    return cached_pack(species)
 
 
 def species_pack(frame):
-    """The built-in pack of the frame's one species, loaded once per process (a pack file is
-    read and checked in about 0.3 s; built-in packs do not change while the desk runs), or None
+    """The built-in pack of the frame's one species, loaded once per process while its file is
+    unchanged (:func:`bayesbase.priors.cached_pack`; a pack file is read and checked in about
+    0.3 s), or None
     (several species, or none built in: ``assess`` then chooses and explains)."""
     from ..errors import BayesbaseError
 
