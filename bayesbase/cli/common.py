@@ -28,6 +28,12 @@ def add_assess_options(p):
     p.add_argument("--db", help="read results from this store instead of a file")
 
 
+def add_chunk_option(p):
+    p.add_argument("--chunk-rows", type=int, default=None, metavar="N",
+                   help="read a CSV/TSV/TXT file N rows at a time (bounded memory; done "
+                   "anyway above 64 MiB); XLSX and FHIR JSON files are always read whole")
+
+
 def load_frame(args):
     if getattr(args, "db", None):
         from ..store import Store
@@ -37,7 +43,16 @@ def load_frame(args):
     if not args.file:
         raise SystemExit(err("give a results FILE or --db PATH"))
     from ..io import read_results
+    from ..io.chunked import STREAM_ABOVE_BYTES, stream_chunksize
 
+    if stream_chunksize(args.file) is not None:  # too large to hold whole: the store streams
+        from ..errors import BayesbaseError
+
+        raise BayesbaseError(
+            f"{args.file} is larger than {STREAM_ABOVE_BYTES // 2**20} MiB, too large to "
+            f"{args.command} whole in memory: import it into a store first (bayesbase import "
+            f"{args.file} --db STORE, read in chunks) and then run bayesbase {args.command} "
+            "--db STORE --patient ID")
     return read_results(Path(args.file))
 
 

@@ -5,7 +5,7 @@ import sys
 from pathlib import Path
 
 from ..constants import CAUTIONS
-from .common import add_assess_options, err, load_frame, run_assess
+from .common import add_assess_options, add_chunk_option, err, load_frame, run_assess
 
 DEMO_DIR = "bayesbase-output"
 
@@ -19,6 +19,7 @@ def add_parsers(sub) -> None:
     p = sub.add_parser("check", help="validate a results file and print the normalised table or every problem")
     p.add_argument("file")
     p.add_argument("--rows", type=int, default=40, help="rows of the normalised table to print")
+    add_chunk_option(p)
     p.set_defaults(run=cmd_check)
 
     p = sub.add_parser("assess", help="assess the latest (or --at) specimen against the animal's history")
@@ -38,20 +39,48 @@ def add_parsers(sub) -> None:
     p.set_defaults(run=cmd_report)
 
 
+_CHECK_COLUMNS = ["patient", "species", "specimen", "collected_at", "analyte", "value", "unit",
+                  "reported_value", "reported_unit", "censor", "state"]
+
+
 def cmd_check(args) -> int:
+    from ..io.chunked import stream_chunksize
+
+    chunksize = stream_chunksize(args.file, args.chunk_rows)
+    if chunksize is not None:
+        return _check_chunked(args, chunksize)
     from ..io import read_results
 
     frame = read_results(args.file)
+    _print_head(frame, args.rows)
+    print(f"\n{len(frame)} rows, {frame['patient'].nunique()} patient(s), "
+          f"{len(frame[['patient', 'specimen']].drop_duplicates())} specimen(s): valid.")
+    for n in frame.attrs.get("notes") or []:
+        print(f"note: {n}")
+    return 0
+
+
+def _print_head(frame, rows: int) -> None:
     import pandas as pd
 
     with pd.option_context("display.width", 200, "display.max_columns", 30):
-        cols = ["patient", "species", "specimen", "collected_at", "analyte", "value", "unit",
-                "reported_value", "reported_unit", "censor", "state"]
-        print(frame[cols].head(args.rows).to_string(index=False))
-    notes = frame.attrs.get("notes") or []
-    print(f"\n{len(frame)} rows, {frame['patient'].nunique()} patient(s), "
-          f"{len(frame[['patient', 'specimen']].drop_duplicates())} specimen(s): valid.")
-    for n in notes:
+        print(frame[_CHECK_COLUMNS].head(rows).to_string(index=False))
+
+
+def _check_chunked(args, chunksize: int) -> int:
+    """``check`` of a large text table, read and validated a chunk at a time (the first rows
+    printed are the first chunk's, in the canonical order within it)."""
+    from ..io.chunked import iter_results
+
+    chunks = iter_results(args.file, chunksize=chunksize)
+    printed = False
+    for frame in chunks:
+        if not printed:
+            _print_head(frame, args.rows)
+            printed = True
+    print(f"\n{chunks.n_rows} rows, {chunks.n_patients} patient(s), {chunks.n_specimens} "
+          f"specimen(s): valid (read in chunks of {chunksize} rows).")
+    for n in chunks.notes:
         print(f"note: {n}")
     return 0
 
@@ -158,19 +187,17 @@ def _demo_summary(t) -> str:
     return "; ".join(parts) or "no probable change"
 
 
-def _demo_case(case: dict, frame, out: Path, pdf: bool, packs: dict):
+def _demo_case(case: dict, frame, out: Path, pdf: bool):
     """Assess one patient case once and write its JSON and report (as ``report_for_file`` does
-    with the species' pack; each species' pack is loaded once for the whole demo)."""
+    with the species' pack; each species' pack is loaded once for the whole demo, through the
+    process-wide cache :func:`bayesbase.priors.cached_pack`)."""
     from .. import report
     from ..assessment import assess
-    from ..priors import load_pack
+    from ..priors import cached_pack
 
     pid = str(case["patient"])
     sub = frame[frame["patient"].astype(str) == pid]
-    species = str(sub["species"].iloc[0])
-    if species not in packs:
-        packs[species] = load_pack(species)
-    pack = packs[species]
+    pack = cached_pack(str(sub["species"].iloc[0]))
     a = assess(sub, pack=pack, at=case.get("at"))
     (out / f"{case['id']}.json").write_text(a.to_json(), encoding="utf-8")
     path = report.personal_interval_path(sub, pack, pid, assess, engine="exact", trend=False)
@@ -188,7 +215,7 @@ def cmd_demo(args) -> int:
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     root = resources.files("bayesbase.case_library")
-    lines, skipped, packs = [], [], {}
+    lines, skipped = [], []
     for case_dir in sorted((p for p in root.iterdir() if p.is_dir() and (p / "case.toml").is_file()),
                            key=lambda p: p.name):
         case = tomllib.loads((case_dir / "case.toml").read_text(encoding="utf-8"))
@@ -198,7 +225,7 @@ def cmd_demo(args) -> int:
             continue
         with resources.as_file(case_dir / "results.csv") as csv_path:
             frame = load_results(csv_path)
-        a = _demo_case(case, frame, out, not args.no_pdf, packs)
+        a = _demo_case(case, frame, out, not args.no_pdf)
         lines.append(f"{case['id']:<42} {_demo_summary(a.table)}")
     print("\n".join(lines))
     if skipped:

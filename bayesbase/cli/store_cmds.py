@@ -2,7 +2,7 @@
 (CSV, FHIR or a Parquet dataset), forget."""
 from __future__ import annotations
 
-from .common import err, open_store
+from .common import add_chunk_option, err, open_store
 
 
 def add_parsers(sub) -> None:
@@ -14,6 +14,7 @@ def add_parsers(sub) -> None:
     p.add_argument("--dry-run", action="store_true",
                    help="show the rows each file would add, find already stored, replace or "
                         "conflict with, and write nothing")
+    add_chunk_option(p)
     p.set_defaults(run=cmd_import)
 
     p = sub.add_parser("patients", help="list the patients in the store")
@@ -54,7 +55,7 @@ def cmd_import(args) -> int:
     total = 0
     with open_store(args) as st:
         for f in args.files:
-            s = _import_one(st, f, args.replace)
+            s = _import_one(st, f, args.replace, chunk_rows=args.chunk_rows)
             total += s.rows_added
             if s.rows_added == 0 and s.rows_replaced == 0:
                 print(f"{f}: nothing new ({s.rows_skipped} rows already stored)")
@@ -77,15 +78,24 @@ def _dry_run(args) -> int:
             db = Path(stack.enter_context(tempfile.TemporaryDirectory())) / "empty.sqlite"
         st = stack.enter_context(Store(db))
         for f in args.files:  # each file is compared with the store as it is now
-            print(_dry_run_text(f, _import_one(st, f, args.replace, dry_run=True),
-                                args.replace))
+            print(_dry_run_text(f, _import_one(st, f, args.replace, dry_run=True,
+                                               chunk_rows=args.chunk_rows), args.replace))
     return 0
 
 
-def _import_one(st, f, replace: bool, dry_run: bool = False):
+def _import_one(st, f, replace: bool, dry_run: bool = False, chunk_rows: int | None = None):
     """Import one input: a Parquet dataset (a directory or ``.parquet`` file, read whole by
-    :func:`bayesbase.io.read_results_hashed`, one transaction) or a results file."""
+    :func:`bayesbase.io.read_results_hashed`, one transaction), a large text table (or any with
+    ``--chunk-rows``) chunk by chunk in one transaction, or a results file read whole."""
+    from ..io.chunked import stream_chunksize
     from ..io.parquet import is_parquet_path
+
+    chunksize = None if is_parquet_path(f) else stream_chunksize(f, chunk_rows)
+    if chunksize is not None:
+        from ..store.importer import import_file_chunked
+
+        return import_file_chunked(st.connection, f, chunksize, replace=replace,
+                                   dry_run=dry_run, result_rows=st._result_rows)
 
     if is_parquet_path(f):
         from pathlib import Path

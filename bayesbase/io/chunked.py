@@ -25,6 +25,14 @@ lines above the header, row numbers as a spreadsheet shows them). Differences, b
 An XLSX file (at most 1,048,576 rows per worksheet, ECMA-376) is read whole and then validated
 the same way; a FHIR JSON file or a Parquet dataset is read whole by ``read_results`` and then
 given in chunks.
+
+Columns the validator does not know but a consumer wants (the store's ``owner`` column) are
+taken off each raw chunk before validation with ``keep=("owner",)`` and given beside the chunk
+by :meth:`ResultChunks.with_kept` (as raw text, with the raw ``patient`` column), so the
+validation is that of a file without them, as the whole-file import does.
+
+The command line streams a text table (CSV/TSV/TXT) when it is larger than
+:data:`STREAM_ABOVE_BYTES` or when asked to (``--chunk-rows``): :func:`stream_chunksize`.
 """
 from __future__ import annotations
 
@@ -42,15 +50,38 @@ from ..validate.text import visible
 from . import tables
 from .results import FHIR_SUFFIXES, read_results
 
-__all__ = ["DEFAULT_CHUNKSIZE", "MAX_PROBLEMS", "ResultChunks", "iter_results",
-           "read_results_chunked", "CANONICAL_ORDER"]
+__all__ = ["DEFAULT_CHUNKSIZE", "MAX_PROBLEMS", "STREAM_ABOVE_BYTES", "WHOLE_FILE_SUFFIXES",
+           "ResultChunks", "iter_results", "read_results_chunked", "stream_chunksize",
+           "CANONICAL_ORDER"]
 
 DEFAULT_CHUNKSIZE = 250_000
+#: A text table larger than this is read in chunks by ``bayesbase import`` and ``check`` (and
+#: refused whole by ``assess``/``report``): 64 MiB is about 900,000 result rows of a typical
+#: tidy CSV, whose whole-file frame (raw strings plus canonical columns) takes a few GB.
+STREAM_ABOVE_BYTES = 64 * 1024 * 1024
+#: Inputs always read whole: XLSX (one worksheet, at most 1,048,576 rows, ECMA-376), FHIR JSON,
+#: Parquet datasets.
+WHOLE_FILE_SUFFIXES = (".xlsx", ".xlsm", ".xls", ".parquet", *FHIR_SUFFIXES)
 #: Problems listed by one chunked read (a file where every row is bad stays bounded).
 MAX_PROBLEMS = 1000
 #: The canonical frame's row order (``bayesbase.validate.assemble``).
 CANONICAL_ORDER = ["patient", "collected_at", "specimen", "analyte", "replicate"]
 _BLOCK = 1 << 24  # bytes per block when checking a file's encoding
+
+
+def stream_chunksize(path, chunk_rows: int | None = None) -> int | None:
+    """Rows per chunk when ``path`` is to be streamed, else None (read whole): a text table
+    (not XLSX, FHIR JSON or Parquet; not a directory) with ``chunk_rows`` given, or larger than
+    :data:`STREAM_ABOVE_BYTES` (then :data:`DEFAULT_CHUNKSIZE` rows)."""
+    path = Path(path)
+    if path.suffix.lower() in WHOLE_FILE_SUFFIXES or path.is_dir() or not path.is_file():
+        return None
+    if chunk_rows is not None:
+        if int(chunk_rows) < 1:
+            raise ValidationError([Problem(visible(path.name), None, None,
+                                           f"--chunk-rows must be at least 1 (got {chunk_rows})")])
+        return int(chunk_rows)
+    return DEFAULT_CHUNKSIZE if path.stat().st_size > STREAM_ABOVE_BYTES else None
 
 
 # ------------------------------------------------------------------------------ decoding
@@ -313,11 +344,13 @@ class ResultChunks:
     iteration ``n_rows``, ``n_dropped`` and ``notes`` describe the whole file. Raises one
     :class:`~bayesbase.errors.ValidationError` at the end when any problem was found."""
 
-    def __init__(self, path, chunksize: int = DEFAULT_CHUNKSIZE, now=None):
+    def __init__(self, path, chunksize: int = DEFAULT_CHUNKSIZE, now=None, keep=()):
         if int(chunksize) < 1:
             raise ValueError("chunksize must be at least 1")
         self.path, self.chunksize, self.now = Path(path), int(chunksize), now
+        self.keep = tuple(keep)
         self.n_rows = self.n_dropped = 0
+        self.n_patients = self.n_specimens = 0
         self._plain: list[str] = []
         self._counted: dict[str, int] = {}
         self.problems: list[Problem] = []
@@ -351,17 +384,30 @@ class ResultChunks:
         return out
 
     def _validated(self):
-        """(raw chunk, canonical frame or the chunk's ValidationError); a chunk left empty by
-        blank lines is skipped, unless no chunk has a row (then its problem is the file's)."""
+        """(raw chunk, canonical frame or the chunk's ValidationError, kept columns or None);
+        a chunk left empty by blank lines is skipped, unless no chunk has a row (then its
+        problem is the file's)."""
         empty, any_rows = None, False
         for raw in _raw_chunks(self.path, self.chunksize):
+            raw, kept = self._split(raw)
             if len(raw) == 0 and len(raw.columns):
                 empty = raw
                 continue
             any_rows = True
-            yield raw, self._validate(raw)
+            yield raw, self._validate(raw), kept
         if not any_rows and empty is not None:
-            yield empty, self._validate(empty)
+            yield empty, self._validate(empty), None
+
+    def _split(self, raw):
+        """(raw chunk without the ``keep`` columns, those columns with ``patient``, or None);
+        dropped as the whole-file import drops its ``owner`` column (``DataFrame.drop``, the
+        attributes kept)."""
+        names = [c for c in raw.columns if str(c).strip().lower() in self.keep]
+        if not names:
+            return raw, None
+        cols = (["patient"] if "patient" in raw.columns else []) + names
+        kept = raw.loc[:, cols]
+        return raw.drop(columns=names), kept
 
     def _validate(self, raw):
         try:
@@ -370,19 +416,31 @@ class ResultChunks:
             return exc
 
     def __iter__(self):
+        for frame, _ in self.with_kept():
+            yield frame
+
+    def _whole(self):
+        """A FHIR Bundle read whole, or a Parquet dataset (canonical already), in chunks."""
+        frame = read_results(self.path, now=self.now)
+        self._note(frame.attrs.get("notes") or [])
+        self.n_dropped = int(frame.attrs.get("n_duplicates_dropped") or 0)
+        self.n_patients = int(frame["patient"].nunique())
+        self.n_specimens = len(frame[["patient", "specimen"]].drop_duplicates())
+        for start in range(0, len(frame), self.chunksize):
+            self.n_rows += min(self.chunksize, len(frame) - start)
+            yield frame.iloc[start:start + self.chunksize], None
+
+    def with_kept(self):
+        """Yield ``(canonical frame, kept)`` per chunk: ``kept`` is the raw text of the
+        ``keep`` columns (with the raw ``patient`` column) of the chunk's rows, or None when
+        the file has none of them. Same checks and errors as iterating."""
         name = visible(self.path.name)
         across = _Across(name)
         suffix = self.path.suffix.lower()
         if suffix in FHIR_SUFFIXES or suffix == ".parquet" or self.path.is_dir():
-            # a FHIR Bundle is read whole; a Parquet dataset is canonical already
-            frame = read_results(self.path, now=self.now)
-            self._note(frame.attrs.get("notes") or [])
-            self.n_dropped = int(frame.attrs.get("n_duplicates_dropped") or 0)
-            for start in range(0, len(frame), self.chunksize):
-                self.n_rows += min(self.chunksize, len(frame) - start)
-                yield frame.iloc[start:start + self.chunksize]
+            yield from self._whole()
             return
-        for raw, frame in self._validated():
+        for raw, frame, kept in self._validated():
             if isinstance(frame, ValidationError):
                 exc = frame
                 header = raw.attrs.get("header_row", 1)
@@ -402,7 +460,8 @@ class ResultChunks:
             if not keep.all():
                 frame = frame.loc[keep].reset_index(drop=True)
             self.n_rows += len(frame)
-            yield frame
+            self.n_patients, self.n_specimens = len(across.species), len(across.draws)
+            yield frame, kept
         self.n_dropped += across.n_dropped
         if self.problems:
             problems = sorted(self.problems, key=lambda p: (-1 if p.row is None else p.row))
@@ -413,10 +472,11 @@ class ResultChunks:
             raise ValidationError(problems)
 
 
-def iter_results(path, chunksize: int = DEFAULT_CHUNKSIZE, now=None) -> ResultChunks:
+def iter_results(path, chunksize: int = DEFAULT_CHUNKSIZE, now=None, keep=()) -> ResultChunks:
     """The canonical frames of a results table, ``chunksize`` rows at a time (see the module
-    docstring); ``now`` as for :func:`bayesbase.io.read_results`."""
-    return ResultChunks(path, chunksize, now)
+    docstring); ``now`` as for :func:`bayesbase.io.read_results`; ``keep``: lower-case names
+    of columns taken off before validation and given by :meth:`ResultChunks.with_kept`."""
+    return ResultChunks(path, chunksize, now, keep)
 
 
 def read_results_chunked(path, chunksize: int = DEFAULT_CHUNKSIZE, now=None) -> pd.DataFrame:

@@ -19,14 +19,15 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 from ..contract import HIL_INDICES, is_canonical
-from ..errors import ValidationError
+from ..errors import Problem, ValidationError
 from ..io.parquet import file_sha256  # one file hash for imports, datasets and scores
 from .checks import PATIENT_FIELDS, internal_problems, non_finite_problems
-from .frames import VALUE_RTOL, blank_to_none, col, differs, now_utc, py, same
+from .frames import VALUE_RTOL, blank_to_none, col, differs, is_missing, now_utc, py, same
 from .summaries import Conflict, ImportConflict, ImportSummary
 
-__all__ = ["ImportPlan", "ResultUpdate", "prepare", "plan", "apply", "import_chunks", "drop_staging",
-           "file_sha256", "frame_sha256", "owner_map", "SPECIMEN_FIELDS"]
+__all__ = ["ImportPlan", "ResultUpdate", "prepare", "plan", "apply", "import_chunks",
+           "import_file_chunked", "drop_staging", "file_sha256", "frame_sha256", "owner_map",
+           "SPECIMEN_FIELDS"]
 
 #: Specimen attributes an import compares with the stored ones.
 SPECIMEN_FIELDS = ("collected_at", "state", "fasted", "haemolysis", "lipaemia", "icterus",
@@ -144,7 +145,10 @@ class ImportPlan:
 
 
 def _patient_rows(canon) -> list[tuple]:
-    pat = canon.drop_duplicates("patient")[["patient", *PATIENT_FIELDS]]
+    # the first non-missing value of each patient field, as for specimens (the input's checks
+    # allow one value per field and patient, missing rows say nothing): which row comes first
+    # then never matters, so a file imported whole or in chunks stores the same
+    pat = canon.groupby("patient", sort=False)[list(PATIENT_FIELDS)].first().reset_index()
     return list(zip(col(pat, "patient"), col(pat, "species"), blank_to_none(col(pat, "breed")),
                     blank_to_none(col(pat, "sex")), col(pat, "birth_date", "time")))
 
@@ -155,7 +159,9 @@ def _same_time_or_conflict(old, new) -> str:
     return "" if pd.Timestamp(old) == pd.Timestamp(new) else "conflict"
 
 
-def _plan_patients(conn, canon) -> _Part:
+def _plan_patients(conn, canon, created: int | None = None) -> _Part:
+    """The patients part of the plan; a stored patient whose pk is above ``created`` was made
+    by this import (an earlier chunk): a field it fills is not a change for `replaced`."""
     rows = _patient_rows(canon)
     conn.execute("CREATE TEMP TABLE _tmp_patients (id TEXT PRIMARY KEY, species TEXT, "
                  "breed TEXT, sex TEXT, birth_date TEXT)")
@@ -178,7 +184,8 @@ def _plan_patients(conn, canon) -> _Part:
                 part.conflicts.append(Conflict("patient", row[0], None, None, None, f, old, new))
             if kind:
                 part.updates.append((f, new, s[0]))
-                part.changes.append((s[0], "patient", None, None, None, f, old, new))
+                if created is None or s[0] <= created:
+                    part.changes.append((s[0], "patient", None, None, None, f, old, new))
     return part
 
 
@@ -201,10 +208,10 @@ def _specimen_rows(canon) -> list[tuple]:
         col(spec, "icterus", "float"), blank_to_none(col(spec, "laboratory"))))
 
 
-def _plan_specimens(conn, canon) -> tuple[_Part, dict]:
+def _plan_specimens(conn, canon, created: int | None = None) -> tuple[_Part, dict]:
     """The specimens part of the plan, and the stored specimens the input names:
     (patient id, specimen id) -> (pk, patient id, id, collected_at, state, fasted, H, L, I,
-    laboratory, patient pk)."""
+    laboratory, patient pk). ``created`` as for :func:`_plan_patients`."""
     rows = _specimen_rows(canon)
     conn.execute("CREATE TEMP TABLE _tmp_specimens (patient TEXT, id TEXT, collected_at TEXT, "
                  "state TEXT, fasted INTEGER, haemolysis REAL, lipaemia REAL, icterus REAL, "
@@ -232,7 +239,8 @@ def _plan_specimens(conn, canon) -> tuple[_Part, dict]:
                 part.updates.append((f, new, s[0]))
                 if f == "state" and old == "":
                     old = None  # a blank state is an empty field: logged as NULL
-                part.changes.append((s[10], "specimen", row[1], None, None, f, old, new))
+                if created is None or s[0] <= created:
+                    part.changes.append((s[10], "specimen", row[1], None, None, f, old, new))
     return part, stored
 
 
@@ -322,12 +330,15 @@ def _plan_results(conn, canon, stored_spec: dict):
     return new_rows, updates, conflicts
 
 
-def plan(conn, canon) -> ImportPlan:
+def plan(conn, canon, created: tuple[int, int] | None = None) -> ImportPlan:
     """What importing the canonical frame ``canon`` would do, compared with the stored rows.
-    Reads the database and writes only TEMP tables (drop them with :func:`drop_staging`)."""
+    Reads the database and writes only TEMP tables (drop them with :func:`drop_staging`).
+    ``created``: (patient pk, specimen pk) above which stored rows were made by this import
+    (a chunked import's earlier chunks): the fields they fill are not logged in `replaced`."""
     drop_staging(conn)
-    patients = _plan_patients(conn, canon)
-    specimens, stored_spec = _plan_specimens(conn, canon)
+    created = created or (None, None)
+    patients = _plan_patients(conn, canon, created[0])
+    specimens, stored_spec = _plan_specimens(conn, canon, created[1])
     new_rows, updates, result_conflicts = _plan_results(conn, canon, stored_spec)
     return ImportPlan(
         n_rows=len(canon), new_patients=tuple(patients.new),
@@ -459,38 +470,182 @@ def apply(conn, p: ImportPlan, source: str, sha256: str, owners: dict | None = N
     return p.summary(source, import_id)
 
 
-def import_chunks(conn, chunks, source: str, sha256: str, *, replace: bool = False,
-                  result_rows=iter) -> ImportSummary:
-    """Import a large results file chunk by chunk (canonical frames, e.g. from
-    :func:`bayesbase.io.iter_results`, which checks the rows across chunks) in ONE
-    ``BEGIN IMMEDIATE`` transaction with one import log entry: memory is bounded by the chunk,
-    and the import stays all-or-nothing (a problem in any chunk, raised by the chunks or by
-    the store's checks, or a conflict with a stored value, rolls every chunk back). An
-    ``owner`` column is not read on this path."""
-    totals = [0, 0, 0, 0, 0]  # added, skipped, replaced, patients, specimens
-    import_id = None
-    conn.execute("BEGIN IMMEDIATE")
-    try:
-        for chunk in chunks:
-            canon, _ = prepare(chunk, source, {})
-            p = plan(conn, canon)
-            if p.conflicts and not replace:
-                raise ImportConflict(source, list(p.conflicts))
-            s = apply(conn, p, source, sha256, result_rows=result_rows, import_id=import_id)
-            import_id = s.import_id
-            for k, v in enumerate((s.rows_added, s.rows_skipped, s.rows_replaced,
-                                   s.patients_added, s.specimens_added)):
-                totals[k] += v
-            drop_staging(conn)
-        if import_id is not None:
-            conn.execute("UPDATE import_log SET rows_added = ?, rows_skipped = ?, "
-                         "rows_replaced = ? WHERE id = ?", (*totals[:3], import_id))
-        conn.execute("COMMIT")
-    except BaseException:
-        if conn.in_transaction:
-            conn.execute("ROLLBACK")
-        raise
-    finally:
+# ---------------------------------------------------------------------------------------------
+# a large file, chunk by chunk, in one transaction
+# ---------------------------------------------------------------------------------------------
+#: What one chunked import remembers of the file across its chunks (TEMP tables): per patient
+#: and per specimen the first non-missing value of each field the input's checks
+#: (:func:`bayesbase.store.checks.internal_problems`) allow once.
+_SEEN = (
+    ("_tmp_patients", "_imp_patients", ("id",), PATIENT_FIELDS,
+     "id TEXT PRIMARY KEY, species TEXT, breed TEXT, sex TEXT, birth_date TEXT"),
+    ("_tmp_specimens", "_imp_specimens", ("patient", "id"),
+     ("collected_at", "state", "fasted", *HIL_INDICES),
+     "patient TEXT, id TEXT, collected_at TEXT, state TEXT, fasted INTEGER, haemolysis REAL, "
+     "lipaemia REAL, icterus REAL, PRIMARY KEY (patient, id)"),
+)
+
+
+def _across_problem(canon, source: str, key: tuple, field: str, old, new) -> Problem:
+    """A patient or specimen of this chunk whose ``field`` differs from an earlier chunk's."""
+    mask = canon["patient"].astype(str).to_numpy() == key[0]
+    if len(key) == 2:
+        mask &= canon["specimen"].astype(str).to_numpy() == key[1]
+    sub = canon.loc[mask]
+    given = sub.loc[sub[field].notna(), "source_row"] if "source_row" in sub else ()
+    row = int(given.iloc[0]) if len(given) and not is_missing(given.iloc[0]) else None
+    label = f"patient {key[0]}" + (f", specimen {key[1]}" if len(key) == 2 else "")
+    return Problem(source, row, field,
+                   f"{label} has more than one {field} in this file: {old!r} in an earlier row "
+                   f"and {new!r}", "one value per patient (specimen); correct the rows")
+
+
+def _across_chunks(conn, canon, source: str) -> list[Problem]:
+    """Compare the chunk staged by :func:`plan` with the earlier chunks of the file (what
+    ``internal_problems`` checks within one frame), then remember its values."""
+    problems = []
+    for tmp, seen, keys, fields, _ in _SEEN:
+        on = " AND ".join(f"s.{k} = t.{k}" for k in keys)
+        differ = " OR ".join(f"(t.{f} IS NOT NULL AND s.{f} IS NOT NULL AND t.{f} <> s.{f})"
+                             for f in fields)
+        sel = ", ".join([f"t.{k}" for k in keys] + [f"t.{f}, s.{f}" for f in fields])
+        for r in conn.execute(f"SELECT {sel} FROM {tmp} t JOIN {seen} s ON {on} "
+                              f"WHERE {differ} LIMIT 200").fetchall():
+            key, vals = r[:len(keys)], r[len(keys):]
+            for j, f in enumerate(fields):
+                new, old = vals[2 * j], vals[2 * j + 1]
+                if new is not None and old is not None and new != old:
+                    problems.append(_across_problem(canon, source, key, f, old, new))
+        cols = ", ".join((*keys, *fields))
+        fill = ", ".join(f"{f} = coalesce({seen}.{f}, excluded.{f})" for f in fields)
+        conn.execute(f"INSERT INTO {seen} ({cols}) SELECT {cols} FROM {tmp} WHERE true "
+                     f"ON CONFLICT ({', '.join(keys)}) DO UPDATE SET {fill}")
+    return problems
+
+
+def _write_owners(conn, owners: dict) -> None:
+    """Owners of this chunk's rows (patient id -> owner, last one wins as in a whole-file
+    import), for patients of this import only."""
+    conn.executemany(
+        "INSERT INTO owners (patient, owner) SELECT p.pk, ? FROM _imp_patients i "
+        "JOIN patients p ON p.id = i.id WHERE i.id = ? "
+        "ON CONFLICT (patient) DO UPDATE SET owner = excluded.owner",
+        [(str(o), str(pt)) for pt, o in owners.items()])
+
+
+class _Chunked:
+    """State of one chunked import: totals, conflicts, problems, the import log id."""
+
+    def __init__(self, conn, source: str, sha256: str, result_rows):
+        self.conn, self.source, self.sha256, self.result_rows = conn, source, sha256, result_rows
+        self.totals = [0, 0, 0, 0, 0]  # added, skipped, replaced, patients, specimens
+        self.conflicts: list = []
+        self.problems: list = []
+        self.import_id = None
+        self.created = tuple(conn.execute(f"SELECT coalesce(max(pk), 0) FROM {t}").fetchone()[0]
+                             for t in ("patients", "specimens"))
+
+    def chunk(self, chunk) -> None:
+        frame, owners = chunk if isinstance(chunk, tuple) else (chunk, {})
+        try:
+            canon, _ = prepare(frame, self.source, {})
+        except ValidationError as exc:
+            self.problems += exc.problems
+            return
+        if self.problems:
+            return  # keep checking the rest of the file; nothing more is planned
+        conn = self.conn
+        p = plan(conn, canon, self.created)
+        self.problems += _across_chunks(conn, canon, self.source)
+        if self.problems:
+            return
+        self.conflicts += p.conflicts
+        s = apply(conn, p, self.source, self.sha256, result_rows=self.result_rows,
+                  import_id=self.import_id)
+        _write_owners(conn, owners or {})
+        self.import_id = s.import_id
+        for k, v in enumerate((s.rows_added, s.rows_skipped, s.rows_replaced,
+                               s.patients_added, s.specimens_added)):
+            self.totals[k] += v
         drop_staging(conn)
-    return ImportSummary(totals[0], totals[1], totals[2], (), import_id, source, totals[3],
-                         totals[4])
+
+    def finish(self, failed: ValidationError | None) -> None:
+        """Raise the problems of the whole file (the reader's and the import's) together."""
+        problems = (list(failed.problems) if failed else []) + self.problems
+        if problems:
+            problems.sort(key=lambda q: -1 if q.row is None else q.row)
+            raise ValidationError(problems)
+        if self.import_id is not None:
+            self.conn.execute("UPDATE import_log SET rows_added = ?, rows_skipped = ?, "
+                              "rows_replaced = ? WHERE id = ?", (*self.totals[:3], self.import_id))
+
+    def summary(self, dry_run: bool) -> ImportSummary:
+        t = self.totals
+        return ImportSummary(t[0], t[1], t[2], tuple(self.conflicts),
+                             None if dry_run else self.import_id, self.source, t[3], t[4],
+                             dry_run)
+
+
+def import_chunks(conn, chunks, source: str, sha256: str, *, replace: bool = False,
+                  dry_run: bool = False, result_rows=iter) -> ImportSummary:
+    """Import a large results file chunk by chunk in ONE ``BEGIN IMMEDIATE`` transaction with
+    one import log entry; memory is bounded by the chunk. ``chunks`` gives canonical (or raw)
+    frames, or ``(frame, owners)`` pairs (patient id -> owner, as :func:`owner_map`), e.g.
+    from :func:`bayesbase.io.iter_results`, which checks the rows across chunks; what one
+    patient or specimen must carry once is checked here across chunks, so the store ends as a
+    whole-file import of the same rows leaves it (``replaced`` holds only changes to rows
+    stored before this import). All-or-nothing: a problem in any chunk (raised together at
+    the end as one :class:`~bayesbase.errors.ValidationError`) or a conflict with a stored
+    value (:class:`ImportConflict`, every one listed, unless ``replace``) rolls every chunk
+    back. With ``dry_run`` the chunks are written and then rolled back (the write lock is held
+    meanwhile): the summary says what the import would do and lists the conflicts."""
+    saved = conn.execute("PRAGMA temp_store").fetchone()[0]
+    conn.execute("PRAGMA temp_store = FILE")  # what is staged across chunks stays on disk
+    try:
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            for _, seen, _, _, ddl in _SEEN:
+                conn.execute(f"CREATE TEMP TABLE {seen} ({ddl})")
+            state = _Chunked(conn, source, sha256, result_rows)
+            failed = None
+            try:
+                for chunk in chunks:
+                    state.chunk(chunk)
+            except ValidationError as exc:
+                failed = exc
+            state.finish(failed)
+            if dry_run or (state.conflicts and not replace):
+                conn.execute("ROLLBACK")
+                if not dry_run:
+                    raise ImportConflict(source, state.conflicts)
+            else:
+                conn.execute("COMMIT")
+        except BaseException:
+            if conn.in_transaction:
+                conn.execute("ROLLBACK")
+            raise
+        finally:
+            drop_staging(conn)
+            for _, seen, *_ in _SEEN:
+                conn.execute(f"DROP TABLE IF EXISTS temp.{seen}")
+    finally:
+        conn.execute(f"PRAGMA temp_store = {int(saved)}")
+    return state.summary(dry_run)
+
+
+def import_file_chunked(conn, path, chunksize: int, *, replace: bool = False,
+                        dry_run: bool = False, result_rows=iter) -> ImportSummary:
+    """Import a text results table (CSV/TSV/TXT) a chunk of ``chunksize`` rows at a time
+    (:func:`bayesbase.io.iter_results`, then :func:`import_chunks`): the store ends as
+    :meth:`bayesbase.store.Store.import_file` leaves it, ``owner`` column included."""
+    from pathlib import Path
+
+    from ..io.chunked import iter_results
+
+    path = Path(path)
+    sha = file_sha256(path)
+    chunks = iter_results(path, chunksize=chunksize, keep=("owner",))
+    pairs = ((frame, (owner_map(kept) or {}) if kept is not None else {})
+             for frame, kept in chunks.with_kept())
+    return import_chunks(conn, pairs, path.name, sha, replace=replace, dry_run=dry_run,
+                         result_rows=result_rows)
