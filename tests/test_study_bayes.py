@@ -396,3 +396,121 @@ def test_interval_coverage_over_seeded_studies_inside_the_binomial_band():
         (np.arange(20000) + 0.5) / 20000))) ** 2))))  # RMS CVI of the log-normal, by quadrature
     assert abs(np.mean(np.log(cvi["anova"] / rms))) < 0.05
     assert np.mean(np.log(cvi["anova"] / cvi["estimate"])) == pytest.approx(0.09, abs=0.05)
+
+
+# ----------------------------------------------------------------------------- many analytes
+def test_grouped_statistics_rebuild_the_specimen_sums(small_unbalanced):
+    """The (animal, replicate count) groups of the batched model hold, for every animal, the
+    specimen count, and the sum and the sum of squares of the specimen means, computed here
+    directly from the raw replicates with pandas (an unbalanced design, with an animal whose
+    specimens have different replicate counts)."""
+    d = bayes.prepare_design(small_unbalanced)
+    gr = bayes._grouped([d])
+    c, m, q = gr["count"][0], gr["mean"][0], gr["ss"][0]
+    spec = small_unbalanced.groupby(["animal", "specimen"], sort=False)["y"].agg(["mean", "size"])
+    for i, a in enumerate(d.animals):
+        x = spec.loc[a]
+        assert c[i].sum() == len(x)
+        assert (c[i] * m[i]).sum() == pytest.approx(x["mean"].sum(), rel=1e-12)
+        assert (q[i] + c[i] * m[i] ** 2).sum() == pytest.approx((x["mean"] ** 2).sum(), rel=1e-12)
+        used = c[i] > 0
+        assert sorted(gr["n_rep"][0][i][used]) == sorted(set(x["size"]))
+    assert (spec.groupby(level=0)["size"].nunique() > 1).any()  # the fixture is unbalanced
+
+
+def test_batched_robust_log_density_is_the_sum_of_the_single_models(small_unbalanced):
+    """As the normal check above, for the robust (Student-t) model: each analyte of the batch
+    has the log density of its own build_model (itself checked against scipy)."""
+    pytest.importorskip("pymc")
+    other, _ = simulate(13, 4, 3, 2)
+    designs = [bayes.prepare_design(f) for f in (small_unbalanced, other)]
+    batch = bayes.build_batch_model(designs, robust=True)
+    rng = np.random.default_rng(1)
+    points, total = [], 0.0
+    for d in designs:
+        single = bayes.build_model(d, robust=True)
+        p = {k: np.asarray(v) + rng.normal(0, 0.05, np.shape(v))
+             for k, v in single.initial_point().items()}
+        total += _point_logp(single, p)
+        points.append(p)
+    joint = {k: np.concatenate([np.atleast_1d(p[k]) for p in points]) for k in points[0]}
+    assert _point_logp(batch, joint) == pytest.approx(total, rel=1e-10, abs=1e-8)
+
+
+@pytest.mark.slow
+def test_batched_fit_agrees_with_one_analyte_fits_within_monte_carlo_error():
+    """Three analytes (invented, different CVs) fitted together in one model (fit_many, PyMC)
+    and each alone (fit_bayes), different seeds: the posterior medians and 95 % bounds of CVA,
+    CVI, spread and CVG agree within 4 Monte Carlo standard errors of the two runs combined
+    (ArviZ mcse of the quantile, an outside reference for the Monte Carlo error). A frame that
+    cannot be fitted is returned as its ValidationError without stopping the others."""
+    import arviz as az
+
+    frames = {f"an{k}": simulate(40 + k, 10, 6, 2, cva=cva, cvi=cvi, cvg=cvg)[0]
+              for k, (cva, cvi, cvg) in enumerate([(0.02, 0.05, 0.3), (0.04, 0.15, 0.2),
+                                                   (0.03, 0.10, 0.1)])}
+    bad = frames["an0"].assign(y=1.0)
+    fits = bayes.fit_many(dict(frames, bad=bad), draws=600, tune=400, chains=2, cores=1,
+                          seed=11, sampler="pymc")
+    assert isinstance(fits["bad"], ValidationError)
+    for k, (key, frame) in enumerate(frames.items()):
+        many = fits[key]
+        one = bayes.fit_bayes(frame, draws=600, tune=400, chains=2, cores=1, seed=20 + k)
+        # short runs (CI time): the Monte Carlo error below carries the ESS; the chains must mix
+        for f in (many, one):
+            assert f.diagnostics["divergences"] == 0 and f.diagnostics["max_r_hat"] < 1.02, f.diagnostics
+        assert many.settings["batch_analytes"] == 3 and many.settings["sampler"] == "pymc"
+        assert list(many.animal_cvi.index) == list(one.animal_cvi.index)
+        for comp in ("cva", "cvi", "cvi_spread_log_sd", "cvg"):
+            for q, col in ((0.5, "estimate"), (0.025, "lower"), (0.975, "upper")):
+                se = [float(az.mcse(f.idata.posterior[comp], method="quantile", prob=q)
+                            .to_array().values.squeeze()) for f in (many, one)]
+                diff = many.table.loc[comp, col] - one.table.loc[comp, col]
+                assert abs(diff) <= 4 * np.hypot(*se) + 1e-9, (key, comp, col, diff, se)
+
+
+def test_estimate_fits_every_analyte_in_one_batched_call(monkeypatch):
+    """estimate(method="bayes") hands every analyte to ONE fit_many call (one seed), and stays
+    never silent per analyte: an unconverged analyte gets rows marked 'bayes (not converged)' and
+    a warning, an analyte that cannot be fitted gets a note and a warning, and rows stay grouped
+    by analyte in the study's order. The fits are stand-ins (this checks the wiring; the model is
+    checked above)."""
+    import types
+    from pathlib import Path
+
+    from bayesbase.study import core
+
+    case = Path(__file__).resolve().parents[1] / "case_library" / "dog_bv_study_example" / "results.csv"
+    calls = []
+
+    def fit_many(frames, *, seed, sampler, robust, draws, tune, chains):
+        calls.append(dict(keys=list(frames), seed=seed, sampler=sampler, draws=draws))
+        out = {}
+        for i, (key, f) in enumerate(frames.items()):
+            if i == 2:
+                out[key] = ValidationError([bayes.Problem("study data", None, "y", "stand-in")])
+                continue
+            ok = i == 0
+            table = pd.DataFrame({"estimate": [0.03, 0.06, 0.25, 0.07, 0.19],
+                                  "lower": [0.02, 0.05, 0.1, 0.04, 0.13],
+                                  "upper": [0.04, 0.08, 0.4, 0.12, 0.3]}, index=COMPONENTS)
+            out[key] = types.SimpleNamespace(
+                table=table, converged=ok, diagnostics=dict(
+                    converged=ok, max_r_hat=1.0 if ok else 1.3, min_ess_bulk=800 if ok else 20,
+                    min_ess_tail=800 if ok else 20, divergences=0 if ok else 3))
+        return out
+
+    mod = types.SimpleNamespace(fit_many=fit_many, resolve_sampler=lambda s: "pymc")
+    monkeypatch.setattr(core, "_bayes_module", lambda: mod)
+    ids = list(dict.fromkeys(pd.read_csv(case)["analyte"]))[:3]
+    r = core.estimate(case, analytes=ids, method="both", seed=5, draws=200)
+    assert calls == [dict(keys=ids, seed=5, sampler="auto", draws=200)]
+    est = r.estimates
+    assert list(dict.fromkeys(est["analyte"])) == ids
+    assert list(est[est["analyte"] == ids[0]]["method"]) == ["anova", "bayes"]
+    assert list(est[est["analyte"] == ids[1]]["method"]) == ["anova", core.UNCONVERGED]
+    assert list(est[est["analyte"] == ids[2]]["method"]) == ["anova"]
+    assert any(w.startswith(f"{ids[1]}: Bayesian fit did not converge") for w in r.warnings)
+    assert f"{ids[2]}: no Bayesian estimate (" in " ".join(r.warnings)
+    assert r.bayes[ids[2]] is None and r.attrs["sampler"] == "pymc"
+    assert "bayes" in r.attrs["fits"][ids[0]] and "bayes" not in r.attrs["fits"][ids[1]]

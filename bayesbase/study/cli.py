@@ -43,6 +43,9 @@ def add_parser(sub) -> None:
     p.add_argument("--draws", type=int, default=1000, help="Bayesian draws per chain (default 1000)")
     p.add_argument("--tune", type=int, default=1000, help="Bayesian tuning steps per chain (default 1000)")
     p.add_argument("--chains", type=int, default=4, help="Bayesian chains (default 4)")
+    p.add_argument("--sampler", choices=["auto", "pymc", "nutpie"], default="auto",
+                   help="Bayesian sampler: nutpie (optional package) or PyMC; auto uses nutpie when installed "
+                   "(default auto). All analytes are fitted in one model, sampled once")
     p.add_argument("--no-figures", action="store_true", help="HTML without figures (faster)")
     g = p.add_argument_group("design planning (--plan)")
     g.add_argument("--plan", action="store_true", help="simulate a planned design instead of reading a file")
@@ -104,7 +107,8 @@ def run(args) -> int:
         analytes = [a for a in (args.analytes or "").split(",") if a.strip()] or None
         result = estimate(args.file, analytes=analytes, species=args.species, method=args.method, seed=args.seed,
                           outlier_removal=not args.no_outlier_removal, alpha=args.alpha, cv_anova=args.cv_anova,
-                          robust=args.robust, draws=args.draws, tune=args.tune, chains=args.chains)
+                          robust=args.robust, draws=args.draws, tune=args.tune, chains=args.chains,
+                          sampler=args.sampler)
         paths = write_outputs(result, args.out, figures=not args.no_figures)
     except BayesbaseError as exc:
         return _err(str(exc))

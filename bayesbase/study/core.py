@@ -414,20 +414,53 @@ def _convergence_note(diag: dict) -> str:
             f"{diag.get('divergences', 0)} divergence(s)")
 
 
+def _bayes_data(an: _Analyte, replicate: np.ndarray) -> pd.DataFrame:
+    """The results kept of one analyte as the Bayesian model takes them (log values)."""
+    k = an.keep
+    return pd.DataFrame({"animal": an.a_labels[an.a_codes[k]].astype(str),
+                         "specimen": an.spec_names[an.s_codes[k]].astype(str),
+                         "replicate": replicate[an.use][k], "y": an.y[k]})
+
+
 def _bayesian(an: _Analyte, replicate: np.ndarray, bayes_mod, seed: int, fit_kw: dict, out: _Collect) -> None:
-    """Stage 5: the Bayesian model on the results kept. Never silent: a fit that fails is a note and
-    a warning; a fit that does not converge gets rows marked ``UNCONVERGED`` (``converged`` False),
+    """Stage 5 for one analyte (its own model, ``fit_bayes``). Never silent: a fit that fails is a note
+    and a warning; a fit that does not converge gets rows marked ``UNCONVERGED`` (``converged`` False),
     a warning, and is not used for the pack fragment."""
-    aid, k = an.aid, an.keep
-    bdata = pd.DataFrame({"animal": an.a_labels[an.a_codes[k]].astype(str),
-                          "specimen": an.spec_names[an.s_codes[k]].astype(str),
-                          "replicate": replicate[an.use][k], "y": an.y[k]})
     try:
-        bfit = bayes_mod.fit_bayes(bdata, seed=seed, **fit_kw)
+        bfit = bayes_mod.fit_bayes(_bayes_data(an, replicate), seed=seed, **fit_kw)
     except BayesbaseError as exc:
+        bfit = exc
+    _bayes_record(an, bfit, out)
+
+
+def _bayesian_batch(ans: dict, replicate: np.ndarray, bayes_mod, seed: int, fit_kw: dict, sampler: str,
+                    out: _Collect) -> None:
+    """Stage 5 for every analyte at once: ONE compiled model with the analyte as a dim, sampled once
+    (``bayes.fit_many``; each analyte keeps its own posterior and its own convergence checks, the joint
+    run's divergences charged to every analyte). ``ans``: analyte -> (position k, _Analyte). A bayes
+    module without ``fit_many`` is run one analyte at a time with seed ``seed + k``."""
+    fit_many = getattr(bayes_mod, "fit_many", None)
+    if fit_many is None:
+        for aid, (k, an) in ans.items():
+            _bayesian(an, replicate, bayes_mod, seed + k, fit_kw, out)
+        return
+    try:
+        fits = fit_many({aid: _bayes_data(an, replicate) for aid, (_, an) in ans.items()}, seed=seed,
+                        sampler=sampler, **fit_kw)
+    except BayesbaseError as exc:
+        fits = {aid: exc for aid in ans}
+    for aid, (_, an) in ans.items():
+        _bayes_record(an, fits[aid], out)
+
+
+def _bayes_record(an: _Analyte, bfit, out: _Collect) -> None:
+    """Rows, notes and warnings of one analyte's Bayesian fit (``bfit`` a fit or the error that
+    prevented it)."""
+    aid = an.aid
+    if isinstance(bfit, Exception):
+        out.notes[aid].append(f"Bayesian estimate not possible: {bfit}")
+        out.warnings.append(f"{aid}: no Bayesian estimate ({bfit})")
         bfit = None
-        out.notes[aid].append(f"Bayesian estimate not possible: {exc}")
-        out.warnings.append(f"{aid}: no Bayesian estimate ({exc})")
     out.bayes_fits[aid] = bfit
     if bfit is None:
         return
@@ -493,20 +526,23 @@ def _attrs(st: _Study, method: str, seed, alpha, ci_prob, outlier_removal, cv_an
 def estimate(data, *, analytes=None, species=None, method: str = "anova", seed: int = 0,
              outlier_removal: bool = True, alpha: float = DEFAULT_ALPHA, ci_prob: float = DEFAULT_CI_PROB,
              cv_anova: bool = False, robust: bool = False, draws: int = 1000, tune: int = 1000,
-             chains: int = 4) -> StudyResult:
+             chains: int = 4, sampler: str = "auto") -> StudyResult:
     """Estimate CVA, CVI and CVG of every (or each chosen) analyte of a study.
 
     ``data``: a results file path (read with :func:`bayesbase.io.read_results`; its SHA-256
     goes into the provenance) or a results DataFrame. ``method``: ``"anova"``, ``"bayes"`` or
     ``"both"``; ``cv_anova`` adds CV-ANOVA rows. ``outlier_removal=False`` keeps every result
-    (outliers are still tested and listed as kept). The Bayesian fit of analyte number k uses
-    seed ``seed + k``. Raises :class:`StudyError` for an unusable file or design.
+    (outliers are still tested and listed as kept). The Bayesian fits of all analytes run as ONE
+    compiled model with the analyte as a dim, sampled once with seed ``seed``
+    (:func:`bayesbase.study.bayes.fit_many`; ``sampler`` ``"auto"`` uses nutpie when installed, else
+    PyMC). Raises :class:`StudyError` for an unusable file or design.
     """
     _check_options(method, alpha, ci_prob)
     st = _read(data, species, analytes)
     run_anova, run_bayes = method in ("anova", "both"), method in ("bayes", "both")
     bayes_mod = _bayes_module() if run_bayes else None
     out = _Collect()
+    pending = {}
     for k, aid in enumerate(st.analytes):
         out.notes[aid] = []
         an = _exclude_inputs(st, aid, out)
@@ -514,17 +550,32 @@ def estimate(data, *, analytes=None, species=None, method: str = "anova", seed: 
         out.series_parts.append(_series_part(st, an))
         if run_anova or cv_anova:
             _classical(an, st.source, ci_prob, run_anova, cv_anova, out)
-        if run_bayes:
-            _bayesian(an, st.replicate, bayes_mod, seed + k,
-                      dict(robust=robust, draws=draws, tune=tune, chains=chains), out)
-        warning = _desirable_warning(aid, out.used_fits.get(aid, {}))
-        if warning:
-            out.warnings.append(warning)
+        pending[aid] = (k, an)
+        if not run_bayes:
+            _add_desirable(aid, out)
+    if run_bayes:
+        _bayesian_batch(pending, st.replicate, bayes_mod, seed,
+                        dict(robust=robust, draws=draws, tune=tune, chains=chains), sampler, out)
+        for aid in st.analytes:
+            _add_desirable(aid, out)
     frames = _tables(out)
+    if run_bayes:  # rows grouped by analyte, in the order of the study (the fits ran after the loop)
+        for key in ("table", "estimates"):
+            order = frames[key]["analyte"].map({a: i for i, a in enumerate(st.analytes)})
+            frames[key] = frames[key].iloc[np.argsort(order.to_numpy(), kind="stable")].reset_index(drop=True)
     attrs = _attrs(st, method, seed, alpha, ci_prob, outlier_removal, cv_anova, robust, draws, tune, chains)
+    if run_bayes:
+        resolve = getattr(bayes_mod, "resolve_sampler", None)
+        attrs["sampler"] = resolve(sampler) if resolve else sampler
     dataset = _dataset(frames["table"], frames["estimates"], st.analytes, attrs)
     return StudyResult(dataset=dataset, notes=out.notes, warnings=out.warnings, bayes=out.bayes_fits,
                        attrs=dict(attrs, fits=out.used_fits), **frames)
+
+
+def _add_desirable(aid: str, out: _Collect) -> None:
+    warning = _desirable_warning(aid, out.used_fits.get(aid, {}))
+    if warning:
+        out.warnings.append(warning)
 
 
 def _var_name(method: str) -> str:
