@@ -61,3 +61,9 @@ class ConvergenceError(BayesbaseError):
 
 class StoreError(BayesbaseError):
     """A problem with the results store (import conflicts, bad database)."""
+
+
+class MissingExtra(BayesbaseError, ImportError):
+    """An optional package (an extra of pyproject, e.g. nutpie or dask) is needed and not
+    installed; the message says how to install it. Also an ImportError, for callers that catch
+    that."""

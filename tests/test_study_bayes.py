@@ -12,6 +12,7 @@ The simulator below is written here, independently of the module's own.
 from __future__ import annotations
 
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -514,3 +515,22 @@ def test_estimate_fits_every_analyte_in_one_batched_call(monkeypatch):
     assert f"{ids[2]}: no Bayesian estimate (" in " ".join(r.warnings)
     assert r.bayes[ids[2]] is None and r.attrs["sampler"] == "pymc"
     assert "bayes" in r.attrs["fits"][ids[0]] and "bayes" not in r.attrs["fits"][ids[1]]
+
+
+def test_nutpie_missing_is_a_clean_cli_error(tmp_path, monkeypatch, capsys):
+    """``--sampler nutpie`` without the optional package stops with exit 2 and an install hint,
+    no traceback (sys.modules[name] = None makes ``import nutpie`` raise ImportError, Python's
+    documented import-system behaviour)."""
+    import sys
+
+    from bayesbase.cli.main import main
+    from bayesbase.errors import MissingExtra
+
+    monkeypatch.setitem(sys.modules, "nutpie", None)
+    study = Path(__file__).resolve().parents[1] / "case_library" / "dog_bv_study_example" / "results.csv"
+    code = main(["study", str(study), "--out", str(tmp_path / "out"), "--method", "bayes",
+                 "--sampler", "nutpie", "--analytes", "creatinine"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert "pip install" in err and "nutpie" in err and "Traceback" not in err
+    assert issubclass(MissingExtra, ImportError)

@@ -619,7 +619,8 @@ def _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune, chai
     try:
         import nutpie
     except ImportError as exc:  # optional extra
-        raise ImportError("sampler='nutpie' needs the optional package nutpie "
+        from ..errors import MissingExtra
+        raise MissingExtra("sampler='nutpie' needs the optional package nutpie "
                           "(pip install 'nutpie>=0.16,<0.17')") from exc
     key = _model_key(structure, robust, nu) + (
         len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]), len(coords[DIM_OBS]))

@@ -805,7 +805,8 @@ def _sample_joint(model, sampler, draws, tune, chains, cores, seed, target_accep
         try:
             import nutpie
         except ImportError as exc:  # optional extra
-            raise ImportError("sampler='nutpie' needs the optional package nutpie "
+            from ..errors import MissingExtra
+            raise MissingExtra("sampler='nutpie' needs the optional package nutpie "
                               "(pip install 'nutpie>=0.16,<0.17')") from exc
         t0, c0 = time.perf_counter(), time.process_time()
         cm = nutpie.compile_pymc_model(model, backend="numba")
@@ -833,7 +834,8 @@ def _sample_nutpie(design, robust, draws, tune, chains, cores, seed, target_acce
     try:
         import nutpie
     except ImportError as exc:  # optional extra
-        raise ImportError("sampler='nutpie' needs the optional package nutpie "
+        from ..errors import MissingExtra
+        raise MissingExtra("sampler='nutpie' needs the optional package nutpie "
                           "(pip install 'nutpie>=0.16,<0.17')") from exc
     key = (bool(robust),) + design.shape
     cm = _NUTPIE_CACHE.get(key) if reuse else None

@@ -90,6 +90,22 @@ def _run_plan(args) -> int:
     return 0
 
 
+def _check_sampler(args) -> None:
+    """An explicit ``--sampler nutpie`` without the optional package stops before any work."""
+    import importlib.util
+
+    if getattr(args, "sampler", None) == "nutpie" and args.method in ("bayes", "both"):
+        try:
+            found = importlib.util.find_spec("nutpie") is not None
+        except ValueError:  # a module entry of None (removed) behaves as not installed
+            found = False
+        if not found:
+            from ..errors import MissingExtra
+            raise MissingExtra("--sampler nutpie needs the optional package nutpie "
+                               "(pip install 'bayesbase[nutpie]' or pip install 'nutpie>=0.16,<0.17'); "
+                               "or use --sampler pymc")
+
+
 def run(args) -> int:
     """Run ``bayesbase study``; returns the exit code."""
     from ..errors import BayesbaseError
@@ -101,6 +117,7 @@ def run(args) -> int:
             return _err("give a study results FILE (or --plan to size a study)")
         if not args.out:
             return _err("give an output folder with --out DIR")
+        _check_sampler(args)
         from .core import estimate
         from .output import write_outputs
 
