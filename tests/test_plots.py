@@ -329,5 +329,53 @@ def test_panel_pixels_do_not_depend_on_the_fixed_title_and_label_positions():
     off = plots.analyte_panel(a.history, row, path)
     ax = off.axes[0]
     ax.set_ylim(1000.001, 1000.004)  # tick labels with an offset text
+    ax.yaxis.set_major_locator(mticker.AutoLocator())  # the panel's ticks are fixed to its view
     ax.yaxis.set_major_formatter(mticker.ScalarFormatter())
     assert plots._y_offset_shown(ax)
+
+
+def _png_pixels(png: bytes) -> np.ndarray:
+    import io
+
+    from PIL import Image
+
+    return np.asarray(Image.open(io.BytesIO(png)).convert("RGB"))
+
+
+def test_ticks_fixed_to_the_view_draw_what_matplotlibs_locators_draw():
+    """A panel's ticks are fixed to those inside its view (fewer tick artists); with
+    matplotlib's own date and number locators and formatters put back, the same pixels."""
+    import matplotlib.dates as mdates
+    import matplotlib.ticker as mticker
+
+    a, row, path = every_role()
+    for r in (row, *[r for _, r in a.table.iterrows()]):
+        fig = plots.analyte_panel(a.history, r, path)
+        ax = fig.axes[0]
+        assert isinstance(ax.yaxis.get_major_locator(), mticker.FixedLocator)
+        fixed = plots.figure_png(fig, dpi=60)
+        locator = mdates.AutoDateLocator(minticks=2, maxticks=5)
+        ax.xaxis.set_major_locator(locator)
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+        ax.yaxis.set_major_locator(mticker.AutoLocator())
+        ax.yaxis.set_major_formatter(mticker.ScalarFormatter())
+        assert plots.figure_png(fig, dpi=60) == fixed, r["analyte"]
+
+
+def test_shared_figure_cells_are_the_panels_drawn_alone():
+    """The report draws every panel once in one shared figure and cuts each out: a cut panel
+    has the size and the pixels of the same panel drawn alone (a tick may land one pixel
+    apart where a position rounds the other way: at most 0.1 % of the pixels differ)."""
+    a = case_assessment("dog_liver_enzymes_after_anticonvulsant")
+    patient = str(a.table["patient"].iloc[0])
+    path = personal_interval_path(case_frame("dog_liver_enzymes_after_anticonvulsant"), None,
+                                  patient, assess, engine="exact", trend=False)
+    grid = plots.panel_grid(a.history, a.table, path, width=3.4, height=2.3, ncols=3, dpi=60)
+    assert len(grid.figure.axes) == len(a.table) == len(grid.boxes)
+    whole, cells = plots.grid_pixels(grid)
+    assert whole.shape[2] == 3 and whole.dtype == np.uint8  # RGB, no alpha channel
+    for (_, r), cell in zip(a.table.iterrows(), cells):
+        alone = _png_pixels(plots.figure_png(plots.analyte_panel(a.history, r, path, width=3.4,
+                                                                 height=2.3), dpi=60))
+        assert cell.shape == alone.shape == (round(2.3 * 60), round(3.4 * 60), 3)
+        assert (cell != alone).any(axis=2).mean() <= 0.001, r["analyte"]

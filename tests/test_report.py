@@ -378,6 +378,44 @@ def test_pdf_has_table_and_cautions(built):
     assert "µmol/L" in text  # Unicode survives (DejaVu font)
 
 
+def test_pngs_are_the_reports_figures_and_an_overview(tmp_path):
+    """The PNGs written beside the report are its own figures (cut from its one shared
+    figure, RGB without alpha); the overview holds every panel and the legend strip."""
+    from PIL import Image
+
+    a = case_assessment("dog_alp_personal_change")
+    files = report.build_report(a, None, tmp_path / "r.html", png_dir=tmp_path / "png", dpi=72)
+    content = report.build_content(a, dpi=72)
+    by_name = {p.name: p for p in files.pngs}
+    for panel in content.figures.panels:
+        (path,) = [p for n, p in by_name.items() if n.endswith(f"_{panel.analyte}.png")]
+        with Image.open(path) as img:
+            assert img.mode == "RGB" and img.size == (round(3.4 * 72), round(2.3 * 72))
+            assert np.array_equal(np.asarray(img), panel.rgb)
+    (overview,) = [p for n, p in by_name.items() if n.endswith("_overview.png")]
+    grid, legend = content.figures.grid_rgb, content.figures.legend_rgb
+    with Image.open(overview) as img:
+        assert img.mode == "RGB"
+        assert img.size == (max(grid.shape[1], legend.shape[1]), grid.shape[0] + legend.shape[0])
+        assert np.array_equal(np.asarray(img)[:grid.shape[0], :grid.shape[1]], grid)
+
+
+def test_pdfs_in_a_row_keep_their_text_and_fonts(tmp_path):
+    """Each PDF embeds the font subset of its own text (the font is read once per process and
+    made new per document): the text of two reports written one after the other reads back."""
+    for name in ("dog_new_analyser_and_units", "cat_creatinine_sdma_rise"):
+        a = case_assessment(name)
+        files = report.build_report(a, None, tmp_path / f"{name}.html", pdf=tmp_path / f"{name}.pdf",
+                                    dpi=40)
+        text = pdf_text(files.pdf)
+        for lab in a.table["label"]:
+            assert lab in text, (name, lab)
+        for unit in {units.display_unit(x) for x in a.table["analyte"]}:
+            assert unit in text, (name, unit)
+        for c in CAUTIONS:
+            assert c in text
+
+
 def test_html_and_pdf_say_the_same_sentences(built):
     """Both outputs are laid out from one content model: its sentences appear in both."""
     a, files = built

@@ -4,7 +4,9 @@
 - :mod:`.wording`: every sentence and number format, written once;
 - :mod:`.panel`: the panel rules (false-discovery selection, many-results chance, P(change) band);
 - :mod:`.html` (jinja2 template, autoescape on) and :mod:`.pdf` (fpdf2): layout only;
-- :mod:`.figures`: the small-multiple figures (matplotlib, no pyplot);
+- :mod:`.templating`: the one jinja2 set-up (the report's and the web desk's templates);
+- :mod:`.figures`: the small-multiple figures (matplotlib, no pyplot): every panel of a report
+  drawn once in one shared figure, cut out per analyte for the HTML and the PDF;
 - :mod:`.build`: writes the files (HTML, PDF, PNG/SVG) and assesses a results file for a report.
 
 References

@@ -6,6 +6,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from ..contract import is_canonical
@@ -73,9 +74,23 @@ def _interval_path(interval_path, assessment, pack, patient: str):
     return personal_interval_path(results, pack, patient, interval_path, **kw)
 
 
+def _overview_rgb(figs) -> np.ndarray:
+    """The report's shared figure with the legend strip centred under it (pixels as drawn)."""
+    grid, legend = figs.grid_rgb, figs.legend_rgb
+    width = max(grid.shape[1], legend.shape[1])
+    out = np.full((grid.shape[0] + legend.shape[0], width, 3), 255, dtype=np.uint8)
+    x = (width - grid.shape[1]) // 2
+    out[:grid.shape[0], x:x + grid.shape[1]] = grid
+    x = (width - legend.shape[1]) // 2
+    out[grid.shape[0]:, x:x + legend.shape[1]] = legend
+    return out
+
+
 def _write_figures(content: ReportContent, assessment, interval_path, png_dir,
-                   svg: bool) -> tuple[Path, ...]:
-    """One PNG (and SVG) per analyte plus an overview grid, in ``png_dir``."""
+                   svg: bool, dpi: int) -> tuple[Path, ...]:
+    """One PNG (and SVG) per analyte plus an overview of every panel, in ``png_dir``: the
+    PNGs are the report's own (cut from its one shared figure); the overview is that figure
+    with the legend under it."""
     png_dir = Path(png_dir)
     png_dir.mkdir(parents=True, exist_ok=True)
     stem = _safe_name(content.patient)
@@ -87,11 +102,11 @@ def _write_figures(content: ReportContent, assessment, interval_path, png_dir,
         if svg:
             out.append(base.with_suffix(".svg"))
             out[-1].write_text(panel.svg, encoding="utf-8")
-    _, table, history = one_patient(assessment, content.patient)
-    overview = figures.small_multiples(history, table, interval_path)
     out.append(png_dir / f"{stem}_overview.png")
-    out[-1].write_bytes(figures.figure_png(overview, dpi=110))
+    out[-1].write_bytes(figures.png_bytes(_overview_rgb(content.figures), dpi))
     if svg:
+        _, table, history = one_patient(assessment, content.patient)
+        overview = figures.small_multiples(history, table, interval_path)
         out.append(png_dir / f"{stem}_overview.svg")
         out[-1].write_text(figures.figure_svg(overview), encoding="utf-8")
     return tuple(out)
@@ -110,7 +125,7 @@ def build_report(assessment, pack, out_html, pdf=None, png_dir=None,
     out_html : path of the self-contained HTML file.
     pdf : optional path of a PDF with the same content (A4 landscape).
     png_dir : optional directory for one PNG per analyte plus an overview PNG (and SVG when
-        ``svg=True``).
+        ``svg=True``); the PNGs are the report's own figures.
     title : report title (default "Probability of change — patient <id>").
     interval_path : the personal interval as it stood at each specimen: a DataFrame (columns
         patient, analyte, specimen, collected_at, pi_lower, pi_upper), or a callable used as
@@ -130,7 +145,7 @@ def build_report(assessment, pack, out_html, pdf=None, png_dir=None,
         pdf_path = Path(pdf)
         pdf_path.parent.mkdir(parents=True, exist_ok=True)
         pdf_out.render(content, pdf_path)
-    pngs = _write_figures(content, assessment, path, png_dir, svg) if png_dir is not None else ()
+    pngs = _write_figures(content, assessment, path, png_dir, svg, dpi) if png_dir is not None else ()
     return ReportFiles(html=out_html, pdf=pdf_path, pngs=pngs)
 
 

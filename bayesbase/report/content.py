@@ -19,7 +19,7 @@ the order a busy reader needs them:
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 
 import numpy as np
@@ -38,7 +38,7 @@ __all__ = [
     "ReportContent", "SpecimenLine", "RolePart", "Summary", "Change", "Row", "Verdict", "Advice",
     "FigureImage", "Figures", "CvCell", "CvRow",
     "build_content", "one_patient", "panel_summary", "report_rows", "common_notes",
-    "retest_advice", "DRIFT_SENTENCE_P",
+    "retest_advice", "patient_header", "provenance_lines", "DRIFT_SENTENCE_P",
 ]
 
 #: P(drift) from which a drift sentence is written (modelling choice of this project).
@@ -152,11 +152,14 @@ class Advice:
 
 @dataclass(frozen=True)
 class FigureImage:
+    """One analyte's panel: its PNG (HTML) and the same pixels as an RGB array (PDF)."""
+
     analyte: str
     label: str
     alt: str
     png: bytes
     svg: str | None = None
+    rgb: np.ndarray | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -166,6 +169,9 @@ class Figures:
     legend: tuple[tuple[str, str], ...]
     ratio: float  # height / width of a panel
     legend_ratio: float  # height / width of the legend strip
+    #: the whole shared figure and the legend strip, as drawn (RGB arrays)
+    grid_rgb: np.ndarray | None = field(default=None, compare=False, repr=False)
+    legend_rgb: np.ndarray | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -412,7 +418,13 @@ def retest_advice(table: pd.DataFrame, pack) -> tuple[Advice, ...]:
 
 
 # --------------------------------------------------------------------------- header
-def _header(history: pd.DataFrame, row0) -> tuple[tuple[str, str], ...]:
+def patient_header(history: pd.DataFrame, row0) -> tuple[tuple[str, str], ...]:
+    """The header fields of one patient's report, as (name, text) pairs: patient, species,
+    breed, sex, age at the assessed specimen, the assessed specimen and its date.
+
+    ``history`` is the patient's Assessment.history (species, breed and sex from its first row,
+    the age from the assessed specimen's rows); ``row0`` any row of the patient's table (the
+    patient, the species when the history lacks it, and the assessed specimen)."""
     first = history.iloc[0]
 
     def pick(col):
@@ -488,7 +500,13 @@ def _cv_row(row, pack, refs: _Refs) -> CvRow:
     return CvRow(str(row["label"]), **cells)
 
 
-def _provenance(attrs: dict, pack, now: datetime) -> tuple[tuple[str, str], ...]:
+def provenance_lines(attrs: dict, pack, now: datetime) -> tuple[tuple[str, str], ...]:
+    """The method-and-provenance lines of a report, as (name, text) pairs: prior pack (id,
+    title, version) and its sha256, engine, settings, coverage, prior P(change), seed, the
+    versions that assessed and reported, and the time ``now`` the report is made.
+
+    ``attrs`` are the Assessment's attrs (pack_id, pack_sha256, engine, settings, coverage,
+    prior_change, seed, version); ``pack`` the prior pack the assessment used."""
     return w.provenance_items(
         pack=w.pack_line(str(attrs["pack_id"]), pack.title, pack.version),
         sha256=str(attrs["pack_sha256"]), engine=str(attrs["engine"]),
@@ -500,21 +518,31 @@ def _provenance(attrs: dict, pack, now: datetime) -> tuple[tuple[str, str], ...]
 
 # --------------------------------------------------------------------------- figures
 def _figures(history, table, interval_path, dpi: int, svg: bool) -> Figures:
+    """Every panel drawn once, in one shared figure (:func:`.figures.panel_grid`), and cut out
+    per analyte: the PNGs of the HTML and the pixels the PDF places come from that one
+    drawing. SVGs (``svg=True``) are drawn per panel."""
     panels = []
     per_analyte = figures.analyte_histories(history, table["patient"].iloc[0]) if len(table) else {}
-    for _, row in table.iterrows():
-        h = per_analyte.get(row["analyte"])
-        fig = figures.analyte_panel(history, row, interval_path, width=FIG_WIDTH,
-                                    height=FIG_HEIGHT,
-                                    analyte_history=h if h is not None else history.iloc[0:0])
+    grid_rgb, cells = None, []
+    if len(table):
+        grid = figures.panel_grid(history, table, interval_path, width=FIG_WIDTH,
+                                  height=FIG_HEIGHT, dpi=dpi, histories=per_analyte)
+        grid_rgb, cells = figures.grid_pixels(grid)
+    for (_, row), rgb in zip(table.iterrows(), cells):
         label = str(row["label"])
+        svg_text = None
+        if svg:
+            h = per_analyte.get(row["analyte"])
+            fig = figures.analyte_panel(history, row, interval_path, width=FIG_WIDTH,
+                                        height=FIG_HEIGHT,
+                                        analyte_history=h if h is not None else history.iloc[0:0])
+            svg_text = figures.figure_svg(fig)
         panels.append(FigureImage(str(row["analyte"]), label, w.figure_alt(label),
-                                  figures.figure_png(fig, dpi=dpi),
-                                  figures.figure_svg(fig) if svg else None))
-    strip = figures.legend_figure()
-    width, height = strip.get_size_inches()
-    return Figures(tuple(panels), figures.figure_png(strip, dpi=dpi), figures.LEGEND_TEXT,
-                   FIG_HEIGHT / FIG_WIDTH, float(height / width))
+                                  figures.png_bytes(rgb, dpi), svg_text, rgb=rgb))
+    legend = figures.legend_rgb(dpi)
+    return Figures(tuple(panels), figures.legend_png(dpi), figures.LEGEND_TEXT,
+                   FIG_HEIGHT / FIG_WIDTH, legend.shape[0] / legend.shape[1],
+                   grid_rgb=grid_rgb, legend_rgb=legend)
 
 
 # --------------------------------------------------------------------------- assembly
@@ -537,12 +565,12 @@ def build_content(assessment, pack=None, *, patient: str | None = None, interval
     cv_rows = tuple(_cv_row(r, pack, refs) for _, r in table.iterrows())
     return ReportContent(
         title=title or w.title(patient), patient=patient, cautions=CAUTIONS,
-        header=_header(history, table.iloc[0]), specimens=specimen_lines(history),
+        header=patient_header(history, table.iloc[0]), specimens=specimen_lines(history),
         summary=panel_summary(table, ci_prob=float(attrs["ci_prob"])),
         headings=w.result_headings(float(table["coverage"].iloc[0])), rows=rows,
         common_notes=common, common_line=w.common_notes_line(common) if common else None,
         table_key=w.table_key(), advice=advice, no_advice=None if advice else w.NO_ADVICE,
         figures=_figures(history, table, interval_path, dpi, svg), method=w.method_text(),
-        provenance=_provenance(attrs, pack, now or datetime.now(timezone.utc)),
+        provenance=provenance_lines(attrs, pack, now or datetime.now(timezone.utc)),
         cv_rows=cv_rows, references=tuple(refs.items),
     )

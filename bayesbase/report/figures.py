@@ -29,6 +29,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 import pandas as pd
@@ -62,6 +63,12 @@ __all__ = [
     "legend_handles",
     "figure_png",
     "figure_svg",
+    "PanelGrid",
+    "panel_grid",
+    "grid_pixels",
+    "legend_png",
+    "legend_rgb",
+    "png_bytes",
 ]
 
 #: Okabe-Ito colours (Okabe & Ito 2008), named by their use here.
@@ -389,6 +396,29 @@ def _style_axes(ax, row, compact: bool) -> None:
     ax.yaxis.set_label_coords(-0.1, 0.5)
     ax.text(1.0, 1.01, ptxt, transform=ax.transAxes, ha="right", va="bottom",
             fontsize=7.2 if compact else 8, color="#333333")
+    _ticks_in_view(ax.xaxis)
+    _ticks_in_view(ax.yaxis)
+
+
+def _ticks_in_view(axis) -> None:
+    """Fix the axis's ticks to those its locator gives inside the view, each with the label
+    (and the axis with the offset text) its formatter gives when it sees every tick, as at draw
+    time: the same ticks and text are drawn, but matplotlib no longer builds tick artists for
+    the ticks just outside the view that it never draws (tick artists were the largest cost of
+    a panel). Call once the view limits are final."""
+    from matplotlib.ticker import FixedFormatter, FixedLocator
+
+    locs = np.asarray(axis.get_majorticklocs(), dtype=float)
+    fmt = axis.get_major_formatter()
+    labels = fmt.format_ticks(locs)
+    offset = fmt.get_offset()
+    lo, hi = sorted(axis.get_view_interval())
+    tol = (hi - lo) * 1e-10  # matplotlib's own test of a tick inside the view (linear scale)
+    keep = (locs >= lo - tol) & (locs <= hi + tol)
+    axis.set_major_locator(FixedLocator(locs[keep]))
+    fixed = FixedFormatter([lab for lab, k in zip(labels, keep) if k])
+    fixed.set_offset_string(offset)
+    axis.set_major_formatter(fixed)
 
 
 def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
@@ -508,13 +538,58 @@ def small_multiples(history: pd.DataFrame, table: pd.DataFrame,
     return fig
 
 
-def figure_png(fig: Figure, dpi: int = 150) -> bytes:
-    """PNG bytes of a figure (no pyplot involved)."""
+#: zlib level of the PNGs: 3 is faster than the usual 6 and, without an alpha channel, the
+#: files are still smaller than the former RGBA ones at 6 (measured on the report's panels)
+PNG_COMPRESS_LEVEL = 3
+
+
+def png_bytes(rgb: np.ndarray, dpi: float | None = None) -> bytes:
+    """PNG bytes of an RGB pixel array (height x width x 3, uint8), no alpha channel."""
     import io
 
+    from PIL import Image
+
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": None})
+    kw = {"dpi": (dpi, dpi)} if dpi else {}
+    Image.fromarray(np.ascontiguousarray(rgb[..., :3])).save(
+        buf, format="PNG", compress_level=PNG_COMPRESS_LEVEL, **kw)
     return buf.getvalue()
+
+
+def _rgb(fig: Figure, dpi: float) -> np.ndarray:
+    """Draw ``fig`` once at ``dpi`` on an Agg canvas (no pyplot) and return its pixels as RGB
+    (a copy: the canvas may be drawn again)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = FigureCanvasAgg(fig)
+    old = fig.dpi
+    fig.dpi = dpi
+    try:
+        canvas.draw()
+        return np.array(np.asarray(canvas.buffer_rgba())[..., :3])
+    finally:
+        fig.dpi = old
+
+
+def figure_png(fig: Figure, dpi: int = 150) -> bytes:
+    """PNG bytes of a figure (no pyplot involved; RGB, no alpha channel: the figures are drawn
+    on an opaque white background)."""
+    return png_bytes(_rgb(fig, dpi), dpi)
+
+
+@lru_cache(maxsize=4)
+def legend_rgb(dpi: int = 150) -> np.ndarray:
+    """Pixels of :func:`legend_figure` (the same strip for every report: drawn once per dpi;
+    read-only)."""
+    rgb = _rgb(legend_figure(), dpi)
+    rgb.flags.writeable = False
+    return rgb
+
+
+@lru_cache(maxsize=4)
+def legend_png(dpi: int = 150) -> bytes:
+    """PNG of :func:`legend_figure` (encoded once per dpi)."""
+    return png_bytes(legend_rgb(dpi), dpi)
 
 
 def figure_svg(fig: Figure) -> str:
@@ -525,3 +600,75 @@ def figure_svg(fig: Figure) -> str:
     fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None, "Format": None,
                                              "Type": None})
     return buf.getvalue()
+
+
+# --------------------------------------------------------------------------- one figure per report
+#: room (inches) between the cells of a report's shared figure, across and down: text that runs
+#: past a cell's edge (a long title, a wide tick label) lands there and is cut away with the
+#: cell, as it is cut at the edge of a panel drawn alone. Cells start at whole multiples of a
+#: quarter inch from the top left (the hatch "////" repeats every quarter inch), so the
+#: population hatch meets each panel in the same phase as when it is drawn alone (cells 3.9 by
+#: 2.6 inches apart had it shifted; tests/test_plots.py checks the pixels)
+GRID_GUTTER = (0.6, 0.2)
+
+
+def _pitch(size: float, gutter: float) -> float:
+    """Cell size plus gutter, rounded up to a whole quarter inch."""
+    return math.ceil((size + gutter) * 4 - 1e-9) / 4
+
+
+@dataclass(frozen=True)
+class PanelGrid:
+    """One figure holding every panel of a report (one axes per analyte, each in a cell of the
+    size of an :func:`analyte_panel` figure, with the same margins), and the pixel box
+    ``(left, top, right, bottom)`` of each cell when drawn at ``dpi``."""
+
+    figure: Figure
+    boxes: tuple[tuple[int, int, int, int], ...]
+    dpi: float
+
+
+def panel_grid(history: pd.DataFrame, table: pd.DataFrame,
+               interval_path: pd.DataFrame | None = None, *, width: float = 3.4,
+               height: float = 2.3, ncols: int = 4, dpi: float = 150,
+               histories: dict | None = None) -> PanelGrid:
+    """Every row of ``table`` (one patient) as a panel of one shared figure, in table order.
+
+    Each cell holds what :func:`analyte_panel` draws for the row at ``width`` x ``height``
+    inches (same margins, fonts and marks); cells are at least ``GRID_GUTTER`` apart (see
+    there), ``ncols`` to a row. Draw it once with
+    :func:`grid_pixels` and cut each panel out by its box. ``histories``: the patient's
+    :func:`analyte_histories` when already computed.
+    """
+    n = len(table)
+    if n == 0:
+        raise ValueError("panel_grid: the table has no rows")
+    ncols = max(1, min(ncols, n))
+    nrows = math.ceil(n / ncols)
+    px, py = _pitch(width, GRID_GUTTER[0]), _pitch(height, GRID_GUTTER[1])
+    W, H = ncols * px, nrows * py
+    fig = Figure(figsize=(W, H), dpi=dpi, facecolor="white")
+    if histories is None:
+        histories = analyte_histories(history, table["patient"].iloc[0])
+    empty = history.iloc[0:0]
+    # each panel reads its own analyte's rows of the path (the same rows, split once)
+    paths = ({} if interval_path is None or len(interval_path) == 0 else
+             dict(iter(interval_path.groupby("analyte", sort=False, observed=True))))
+    boxes = []
+    for i, (_, row) in enumerate(table.iterrows()):
+        r, c = divmod(i, ncols)
+        x0, top = c * px, r * py  # the cell, inches from the top left
+        # the margins of analyte_panel: left 0.5, right 0.1, top 0.32, bottom 0.28 inches
+        ax = fig.add_axes(((x0 + 0.5) / W, 1 - (top + height - 0.28) / H,
+                           (width - 0.6) / W, (height - 0.6) / H))
+        h = histories.get(row["analyte"])
+        _draw_panel(ax, history, row, paths.get(row["analyte"]), compact=True,
+                    h=h if h is not None else empty)
+        boxes.append(tuple(round(v * dpi) for v in (x0, top, x0 + width, top + height)))
+    return PanelGrid(fig, tuple(boxes), dpi)
+
+
+def grid_pixels(grid: PanelGrid) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Draw the shared figure once: (all its pixels, each panel's pixels), RGB uint8."""
+    rgb = _rgb(grid.figure, grid.dpi)
+    return rgb, [np.ascontiguousarray(rgb[t:b, l:r]) for l, t, r, b in grid.boxes]

@@ -10,21 +10,14 @@ from functools import lru_cache
 from . import figures
 from . import wording
 from .content import ReportContent, Row
+from .templating import jinja_environment
 
 __all__ = ["render"]
 
 
 @lru_cache(maxsize=1)
 def _environment():
-    import jinja2
-
-    env = jinja2.Environment(
-        loader=jinja2.PackageLoader("bayesbase.report", "templates"),
-        autoescape=True,
-        undefined=jinja2.StrictUndefined,
-        trim_blocks=True,
-        lstrip_blocks=True,
-    )
+    env = jinja_environment("bayesbase.report")
     env.filters["b64"] = lambda data: base64.b64encode(data).decode("ascii")
     return env
 

@@ -40,8 +40,15 @@ def _font_paths() -> tuple[Path, Path] | None:
 def _quick_width_class(base: type) -> type:
     """A subclass of an fpdf2 font class whose text width is the same sum of the same integer
     glyph widths (``cw``: exact, so the layout is unchanged) without a Python generator per
-    character. fpdf2 measures every growing prefix of a line while it breaks lines, which made
-    text width most of the PDF's time. Symbol fonts and shaped text keep fpdf2's own method."""
+    character, and a prefix of the last text measured is not summed again. fpdf2 measures every
+    growing prefix of a line while it breaks lines, which made text width most of the PDF's
+    time. Symbol fonts and shaped text keep fpdf2's own method."""
+
+    # the last text measured: (font, its width table, text, sum of glyph widths). Line breaking
+    # measures each growing prefix of a line, so the next text mostly extends the last one and
+    # only the new characters are added (integers: the same sum). One entry, so no width table
+    # is kept alive beyond the last font used.
+    last = [None, None, "", 0]
 
     class QuickWidths(base):
         __slots__ = ()
@@ -51,7 +58,14 @@ def _quick_width_class(base: type) -> type:
                 return super().get_text_width(text, font_size_pt, text_shaping_params)
             if font_size_pt > self.biggest_size_pt:
                 self.biggest_size_pt = font_size_pt
-            return len(text), sum(map(self.cw.__getitem__, map(ord, text))) * font_size_pt * 0.001
+            cw = self.cw
+            font, table, prev, total = last
+            if font is self and table is cw and text.startswith(prev):
+                total += sum(map(cw.__getitem__, map(ord, text[len(prev):])))
+            else:
+                total = sum(map(cw.__getitem__, map(ord, text)))
+            last[:] = (self, cw, text, total)
+            return len(text), total * font_size_pt * 0.001
 
     QuickWidths.__name__ = QuickWidths.__qualname__ = f"QuickWidths{base.__name__}"
     return QuickWidths
@@ -61,6 +75,48 @@ def _quick_widths(font) -> None:
     """Switch one of this document's TrueType fonts to :func:`_quick_width_class`."""
     if hasattr(font, "cw") and hasattr(font, "is_symbol") and hasattr(font, "biggest_size_pt"):
         font.__class__ = _quick_width_class(type(font))
+
+
+#: what a TrueType font of fpdf2 changes while one document is written (the rest, its glyph
+#: widths and character map, is read only)
+_PER_DOCUMENT = ("i", "ttfont", "subset", "missing_glyphs", "biggest_size_pt", "desc")
+
+
+@lru_cache(maxsize=None)
+def _font_template(family: str, style: str, path: str):
+    """The font as fpdf2 reads it for a document (its glyph-width table is built glyph by glyph,
+    about a tenth of a short report's PDF time), read once per process; never written out."""
+    from fpdf import FPDF
+
+    doc = FPDF()
+    doc.add_font(family, style, path)
+    return next(iter(doc.fonts.values()))
+
+
+def _add_font(doc, family: str, style: str, path: str) -> None:
+    """``doc.add_font(family, style, path)``, the font's read-only tables taken from
+    :func:`_font_template` and the parts a document writes (font number, the font file that is
+    subset on output, the subset map, the descriptor) made new for this document. Falls back to
+    ``add_font`` when the font object is not the one this was written for."""
+    import copy
+
+    template = _font_template(family, style, path)
+    slots = getattr(type(template), "__slots__", ())
+    if (type(template).__name__ != "TTFFont" or not all(a in slots for a in _PER_DOCUMENT)
+            or getattr(template, "color_font", None) is not None):
+        doc.add_font(family, style, path)
+        return
+    from fontTools import ttLib
+
+    font = copy.copy(template)
+    font.i = len(doc.fonts) + 1
+    font.ttfont = ttLib.TTFont(template.ttffile, recalcTimestamp=False,
+                               fontNumber=template.collection_font_number, lazy=True)
+    font.subset = type(template.subset)(font)
+    font.missing_glyphs = []
+    font.biggest_size_pt = 0
+    font.desc = copy.copy(template.desc)
+    doc.fonts[template.fontkey] = font
 
 
 def _document(title: str):
@@ -80,8 +136,8 @@ def _document(title: str):
     doc = _Doc(orientation="L", unit="mm", format="A4")
     fonts = _font_paths()
     if fonts:
-        doc.add_font("DejaVu", "", str(fonts[0]))
-        doc.add_font("DejaVu", "B", str(fonts[1]))
+        _add_font(doc, "DejaVu", "", str(fonts[0]))
+        _add_font(doc, "DejaVu", "B", str(fonts[1]))
         doc.font_name = "DejaVu"
         for font in doc.fonts.values():
             _quick_widths(font)
@@ -90,6 +146,16 @@ def _document(title: str):
     doc.set_auto_page_break(True, margin=13)
     doc.set_margins(10, 10, 10)
     return doc
+
+
+def _image(rgb, png: bytes):
+    """What the PDF places for a figure: its pixels as drawn (an RGB image, so the PNG is not
+    decoded again), or its PNG when the pixels are not at hand."""
+    if rgb is None:
+        return BytesIO(png)
+    from PIL import Image
+
+    return Image.fromarray(rgb)
 
 
 class _Layout:
@@ -219,7 +285,8 @@ class _Layout:
         ch = cw * figs.ratio
         # keep the heading with the legend strip, its key and the first row of figures
         self.h2(w.SECTION_FIGURES, need=self.W * 0.8 * figs.legend_ratio + 25 + ch)
-        pdf.image(BytesIO(figs.legend_png), w=self.W * 0.8, x=pdf.l_margin + self.W * 0.1)
+        pdf.image(_image(figs.legend_rgb, figs.legend_png), w=self.W * 0.8,
+                  x=pdf.l_margin + self.W * 0.1)
         self.para(" \u00b7 ".join(f"{k}: {v}" for k, v in figs.legend), 6.8)
         y = pdf.get_y() + 1
         for i, panel in enumerate(figs.panels):
@@ -229,7 +296,8 @@ class _Layout:
             if y + ch > pdf.h - 13:
                 pdf.add_page()
                 y = pdf.t_margin
-            pdf.image(BytesIO(panel.png), x=pdf.l_margin + col * (cw + gap), y=y, w=cw, h=ch)
+            pdf.image(_image(panel.rgb, panel.png), x=pdf.l_margin + col * (cw + gap), y=y,
+                      w=cw, h=ch)
         pdf.set_y(y + ch + gap)
 
     def method(self) -> None:

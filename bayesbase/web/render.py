@@ -24,15 +24,9 @@ def link(path: str, **params) -> str:
 
 @lru_cache(maxsize=1)
 def environment():
-    import jinja2
+    from ..report.templating import jinja_environment
 
-    env = jinja2.Environment(
-        loader=jinja2.PackageLoader("bayesbase.web", "templates"),
-        autoescape=True,
-        undefined=jinja2.StrictUndefined,
-        trim_blocks=True,
-        lstrip_blocks=True,
-    )
+    env = jinja_environment("bayesbase.web")
     env.globals.update(CAUTIONS=CAUTIONS, link=link, version=__version__,
                        CSRF_FIELD=CSRF_FIELD, age_text=age_text, date_text=date_text)
     env.filters["merged"] = lambda d, **kw: {**d, **kw}

@@ -5,9 +5,6 @@ common notes, panel summary, retest advice, specimen roles, header, provenance),
 figures, so the page is fast; each figure is drawn by the report's figure function when the
 browser asks for its image. The downloads are the report itself (:func:`full_content` ->
 ``report.html.render`` / ``report.pdf.render``).
-
-Two pieces of the content model have no public name yet (``content._header`` and
-``content._provenance``); they are called here only, so a public name replaces two lines.
 """
 from __future__ import annotations
 
@@ -62,7 +59,7 @@ def sections(assessment, pack, patient: str) -> Sections:
     advice = rc.retest_advice(table, pack)
     return Sections(
         title=w.title(patient),
-        header=rc._header(history, table.iloc[0]),
+        header=rc.patient_header(history, table.iloc[0]),
         specimens=rc.specimen_lines(history),
         summary=rc.panel_summary(table, ci_prob=float(attrs["ci_prob"])),
         headings=w.result_headings(float(table["coverage"].iloc[0])),
@@ -74,7 +71,7 @@ def sections(assessment, pack, patient: str) -> Sections:
         no_advice=None if advice else w.NO_ADVICE,
         figures=tuple((r.analyte, r.label, w.figure_alt(r.label)) for r in rows),
         legend=tuple(w.LEGEND_TEXT),
-        provenance=rc._provenance(attrs, pack, datetime.now(timezone.utc)),
+        provenance=rc.provenance_lines(attrs, pack, datetime.now(timezone.utc)),
         section_titles=dict(summary=w.SECTION_SUMMARY, results=w.SECTION_RESULTS,
                             next=w.SECTION_NEXT, figures=w.SECTION_FIGURES,
                             method=w.SECTION_METHOD),
@@ -175,12 +172,10 @@ def report_pdf(content) -> bytes:
 def report_css_text() -> str:
     """The report's own style sheet (``report/templates/report.css``, filled with the figures'
     colour-blind-safe palette), so the desk keeps the report's visual language."""
-    import jinja2
-
     from ..report import figures
+    from ..report.templating import jinja_environment
 
-    env = jinja2.Environment(loader=jinja2.PackageLoader("bayesbase.report", "templates"),
-                             autoescape=False, undefined=jinja2.StrictUndefined)
+    env = jinja_environment("bayesbase.report", autoescape=False)
     # the values are fixed colours of the figures module, never data
     return env.get_template("report.css").render(ramp=figures.CHANGE_RAMP,
                                                  palette=figures.PALETTE)
