@@ -44,6 +44,21 @@ __all__ = ["CaseSets", "Baselines", "AssessedResults", "MethodChange", "CaseBatc
            "per_object", "row_cases", "codes_of"]
 
 
+def _sorted_unique(values: np.ndarray) -> np.ndarray:
+    """``np.unique`` of integers by one sort (numpy's hash path is slower on many values)."""
+    a = np.sort(np.asarray(values))
+    return a[np.r_[True, a[1:] != a[:-1]]] if len(a) else a
+
+
+def _texts(col: pd.Series) -> tuple[np.ndarray, np.ndarray] | None:
+    """(values as objects, None where missing; mask of the non-empty texts) of a column held as a
+    pandas string dtype, else None (then read value by value)."""
+    if not isinstance(col.dtype, pd.StringDtype):
+        return None
+    values = col.to_numpy(dtype=object, na_value=None)
+    return values, (col.notna() & col.ne("")).to_numpy(dtype=bool)
+
+
 class CaseSets:
     """The distinct non-empty texts (methods, reported units) of the baseline rows of every
     case, held as sorted (case, code) pairs over one table of ``names``. ``get(i, default)``
@@ -60,7 +75,7 @@ class CaseSets:
         if len(names):
             ok &= np.array([isinstance(v, str) and v != "" for v in names], dtype=bool)[np.maximum(row_code, 0)]
         width = len(names) + 1
-        pairs = np.unique(row_case[ok].astype(np.int64) * width + row_code[ok])
+        pairs = _sorted_unique(row_case[ok].astype(np.int64) * width + row_code[ok])
         return cls(pairs // width, pairs % width, names)
 
     def get(self, i: int, default=()):
@@ -125,15 +140,24 @@ def _baseline_groups(hist, row_case, roles: Roles, years):
     return idx, case, np.cumsum(new) - 1, np.flatnonzero(new)
 
 
-def _joined_specimens(hist, idx_first: np.ndarray, gcase: np.ndarray, C: int) -> np.ndarray:
-    """"S1;S2" per case from its groups (in order)."""
+def _joined_specimens(hist, idx_first: np.ndarray, gcase: np.ndarray, j: np.ndarray, C: int) -> np.ndarray:
+    """"S1;S2" per case from its groups (in order, ``j``: position in the case), joined once per
+    distinct sequence of specimens (the analytes of a patient mostly share one)."""
     out = np.full(C, "", dtype=object)
     if not len(gcase):
         return out
-    names = [str(s) for s in hist["specimen"].iloc[idx_first].tolist()]
-    starts = np.flatnonzero(np.r_[True, gcase[1:] != gcase[:-1]])
-    bounds = starts.tolist() + [len(gcase)]
-    out[gcase[starts]] = [";".join(names[a:b]) for a, b in zip(bounds[:-1], bounds[1:])]
+    codes, uniq = pd.factorize(hist["specimen"].iloc[idx_first], use_na_sentinel=False)
+    names = [str(s) for s in np.asarray(uniq, dtype=object).tolist()]
+    seq = np.full((C, int(j.max()) + 1), -1, dtype=np.int64)
+    seq[gcase, j] = codes
+    cases = gcase[np.r_[True, gcase[1:] != gcase[:-1]]]  # gcase is sorted
+    seq = seq[cases]
+    key = np.zeros(len(cases), dtype=np.int64)  # dense code of each case's sequence, column by column
+    for col in seq.T:
+        key = np.unique(key * (len(names) + 1) + col + 1, return_inverse=True)[1].reshape(-1)
+    rows = seq[np.unique(key, return_index=True)[1]]
+    joined = [";".join(names[c] for c in row if c >= 0) for row in rows.tolist()]
+    out[cases] = np.asarray(joined, dtype=object)[key]
     return out
 
 
@@ -168,7 +192,7 @@ def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, c
         e=padded(np.bincount(g, weights=extra[idx], minlength=G) / r, 0.0), c=padded(cen_num[first], 0.0),
         t=padded(years[first], np.nan), n=np.bincount(gcase, minlength=C),
         n_assumed=np.bincount(gcase, weights=roles.assumed[first].astype(float), minlength=C).astype(int),
-        specimens=_joined_specimens(hist, first, gcase, C),
+        specimens=_joined_specimens(hist, first, gcase, j, C),
         methods=CaseSets.of_rows(case, mcodes[idx], mnames), units=CaseSets.of_rows(case, ucodes[idx], unames),
         method_code=mcode,
     )
@@ -224,7 +248,7 @@ class MethodChange:
     kind: list = field(default_factory=list)  # "stated", "calibrated" or "" per case
     base_shift: np.ndarray | None = None  # (C, J) subtracted from the baseline ln values (calibrated)
     calibrated: list = field(default_factory=list)  # per case: None or {reference, biases: {method: (b, s)}}
-    uncovered: list = field(default_factory=list)  # per case: methods the pack's biases do not cover
+    uncovered: list = field(default_factory=list)  # per case: methods the pack's biases do not cover (tuple)
 
 
 def _case_base_methods(baselines: Baselines, i: int) -> list:
@@ -268,11 +292,13 @@ def method_changes(assessed: AssessedResults, baselines: Baselines, analytes: li
     if assessed_codes is None:
         lookup = {v: k for k, v in enumerate(baselines.methods.names)}
         assessed_codes = np.array([lookup.get(m, -2) if isinstance(m, str) else -1 for m in after], dtype=np.int64)
-    has_method = np.array([isinstance(m, str) and m != "" for m in after], dtype=bool)
+    text = _texts(assessed.first["method"]) if "method" in assessed.first.columns else None
+    has_method = (text[1] if text is not None else
+                  np.array([isinstance(m, str) and m != "" for m in after], dtype=bool))
     changed = has_method & baselines.methods.differs(np.where(has_method, assessed_codes, -1))
     corrected = np.zeros(C, dtype=bool)
     before, bias, kind = [""] * C, [None] * C, [""] * C
-    calibrated, uncovered = [None] * C, [[] for _ in range(C)]
+    calibrated, uncovered = [None] * C, [()] * C
     y_shift, extra = np.zeros(C), np.zeros(C)
     base_shift = np.zeros(baselines.y.shape)
     for i in np.flatnonzero(changed).tolist():
@@ -282,8 +308,9 @@ def method_changes(assessed: AssessedResults, baselines: Baselines, analytes: li
             corrected[i], bias[i], kind[i] = True, (b, bsd), "stated"
             y_shift[i], extra[i] = math.log1p(b), 0.0 + math.log1p(bsd**2)
             continue
-        corr, uncovered[i] = pack_correction(None if priors is None else priors[i],
-                                             _case_base_methods(baselines, i), after[i])
+        corr, missing = pack_correction(None if priors is None else priors[i],
+                                        _case_base_methods(baselines, i), after[i])
+        uncovered[i] = tuple(missing)
         if corr is not None:
             corrected[i], kind[i] = True, "calibrated"
             calibrated[i] = {"reference": corr["reference"], "biases": corr["biases"]}
@@ -318,17 +345,17 @@ def _per_value(values, fn) -> np.ndarray:
 
 
 def prior_scalars(priors: list, packs: list, centers: list, opts: Options,
-                  prior_groups=None) -> dict[str, np.ndarray]:
+                  prior_groups=None, pack_groups=None) -> dict[str, np.ndarray]:
     """Per-case prior scalars on the log scale (prior mean at the breed's centre when known);
-    each computed once per distinct prior and pack (``prior_groups``: :func:`distinct` of
-    ``priors`` when known)."""
+    each computed once per distinct prior and pack (``prior_groups``, ``pack_groups``: groups
+    of ``priors`` and ``packs`` as :func:`distinct` gives them, when known)."""
     def tau(p):
         t = float(p.shift_sd) if p.shift_sd else math.sqrt(float(p.sg) ** 2 + float(p.si) ** 2)
         return t * float(opts.shift_scale) if opts.shift_scale else t
 
     g = prior_groups if prior_groups is not None else distinct(priors)
     pc = per_object(packs, lambda pk: opts.prior_change if opts.prior_change is not None
-                    else float(pk.defaults.get("prior_change", DEFAULT_PRIOR_CHANGE)))
+                    else float(pk.defaults.get("prior_change", DEFAULT_PRIOR_CHANGE)), groups=pack_groups)
     cols = {
         "prior_mean": _per_value(centers, math.log), "sg": per_object(priors, lambda p: float(p.sg), groups=g),
         "cvi": per_object(priors, lambda p: float(p.cvi), groups=g),
@@ -359,6 +386,7 @@ class CaseBatch:
     scalars: dict[str, np.ndarray]  # prior scalars plus new_y and new_extra_var
     engine: str
     prior_groups: tuple | None = None  # :func:`distinct` of ``prior`` (computed when not given)
+    pack_groups: tuple | None = None  # (distinct packs, index of each case's) as :func:`distinct` gives them
 
     def __len__(self) -> int:
         return len(self.keys)
@@ -390,7 +418,24 @@ def _case_priors(priors: RowPriors, assessed: AssessedResults, species: list, an
     codes = np.asarray(priors.codes)[assessed.rows]
     used, index = np.unique(codes, return_inverse=True)
     uniq = [priors.priors[c] for c in used.tolist()]
-    return [uniq[i] for i in index.tolist()], (uniq, index.astype(np.int64))
+    return _gather(uniq, index), (uniq, index.astype(np.int64))
+
+
+def _gather(values: list, index: np.ndarray) -> list:
+    """``[values[i] for i in index]`` (the same objects), gathered in numpy."""
+    arr = np.empty(len(values), dtype=object)
+    for k, v in enumerate(values):
+        arr[k] = v
+    return arr[np.asarray(index, dtype=np.int64)].tolist()
+
+
+def _case_packs(packs: dict, species: list) -> tuple[list, tuple]:
+    """(pack of every case, (distinct packs, index of each case's)), looked up once per species."""
+    codes, names = pd.factorize(np.asarray(species, dtype=object), use_na_sentinel=False)
+    found = [packs[sp] for sp in names.tolist()]
+    uniq, first = distinct(found)
+    index = first[codes].astype(np.int64)
+    return _gather(found, codes), (uniq, index)
 
 
 def _centers(prior_groups, breed: list) -> list:
@@ -402,7 +447,24 @@ def _centers(prior_groups, breed: list) -> list:
     used, inv = np.unique(pair, return_inverse=True)
     width = len(bnames) + 1
     vals = [uniq[int(k) // width].center_for(bnames[k % width - 1] if k % width else None) for k in used.tolist()]
-    return [vals[i] for i in inv.tolist()]
+    return _gather(vals, inv.reshape(-1))
+
+
+def _breeds(assessed: AssessedResults) -> list:
+    """The breed of every case (None when blank or unknown)."""
+    text = _texts(assessed.first["breed"]) if "breed" in assessed.first.columns else None
+    if text is None:
+        return [b if isinstance(b, str) and b else None for b in assessed.col("breed")]
+    return np.where(text[1], text[0], None).tolist()
+
+
+def _case_keys(assessed: AssessedResults, patient: list, analyte: list) -> np.ndarray:
+    """"patient\x1fanalyte" of every case (in pandas when both are text columns with no gap)."""
+    first = assessed.first
+    if all(c in first.columns and isinstance(first[c].dtype, pd.StringDtype) and not first[c].isna().any()
+           for c in ("patient", "analyte")):
+        return (first["patient"] + "\x1f" + first["analyte"]).to_numpy(dtype=object)
+    return np.asarray([f"{p}\x1f{a}" for p, a in zip(patient, analyte)], dtype=object)
 
 
 def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPriors, packs: dict,
@@ -415,19 +477,19 @@ def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPri
     assessed = assessed_results(hist, rows, case_index, years)
     species, analyte, patient = assessed.col("species"), assessed.col("analyte"), assessed.col("patient")
     prior, groups = _case_priors(priors, assessed, species, analyte)
-    pack = [packs[sp] for sp in species]
-    breed = [b if isinstance(b, str) and b else None for b in assessed.col("breed")]
+    pack, pack_groups = _case_packs(packs, species)
+    breed = _breeds(assessed)
     center = _centers(groups, breed)
     mcodes = codes_of(hist, "method")[0][assessed.rows] if assessed.rows is not None else None
     method = method_changes(assessed, baselines, analyte, opts.method_bias, mcodes, priors=prior)
     if method.base_shift is not None and method.base_shift.any():
         baselines = replace(baselines, y=baselines.y - method.base_shift)
-    scalars = prior_scalars(prior, pack, center, opts, prior_groups=groups)
+    scalars = prior_scalars(prior, pack, center, opts, prior_groups=groups, pack_groups=pack_groups)
     scalars["new_y"] = assessed.log_mean - method.y_shift
     scalars["new_extra_var"] = method.extra_var
     return CaseBatch(
-        keys=np.asarray([f"{p}\x1f{a}" for p, a in zip(patient, analyte)], dtype=object), patient=patient,
+        keys=_case_keys(assessed, patient, analyte), patient=patient,
         species=species, analyte=analyte, breed=breed, prior=prior, pack=pack, center=center,
         censor=[c or "" for c in assessed.col("censor")], baselines=baselines, assessed=assessed,
-        method=method, scalars=scalars, engine=opts.engine, prior_groups=groups,
+        method=method, scalars=scalars, engine=opts.engine, prior_groups=groups, pack_groups=pack_groups,
     )

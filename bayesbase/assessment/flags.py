@@ -3,7 +3,9 @@ cases: it returns an object array with the flag's words where it applies and "" 
 :data:`CASE_FLAGS` gives the order in which a case lists its flags."""
 from __future__ import annotations
 
+import gc
 import math
+from contextlib import contextmanager
 from typing import Callable
 
 import numpy as np
@@ -137,7 +139,7 @@ def calibrated_words(before: str, after: str, cal: dict, extra_var: float) -> st
 def method_changed(b: CaseBatch) -> np.ndarray:
     m = b.method
     kind = m.kind or [""] * len(b)
-    uncovered = m.uncovered or [[] for _ in range(len(b))]
+    uncovered = m.uncovered or [()] * len(b)
 
     def words(i):
         if m.corrected[i] and kind[i] == "calibrated":
@@ -222,6 +224,20 @@ CASE_FLAGS: tuple[Callable[[CaseBatch], np.ndarray], ...] = (
 )
 
 
+@contextmanager
+def _collector_paused():
+    """Pause Python's cycle collector while one list per case is made: the lists hold strings
+    only (no cycle to find), and a collection pass triggered by every few hundred new lists would
+    walk the whole heap again and again."""
+    was = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was:
+            gc.enable()
+
+
 def case_flags(b: CaseBatch, flags=CASE_FLAGS) -> list[list[str]]:
     """The flags of every case (a list of words per case)."""
     columns = np.stack([f(b) for f in flags], axis=1) if len(flags) else np.empty((len(b), 0), dtype=object)
@@ -229,7 +245,8 @@ def case_flags(b: CaseBatch, flags=CASE_FLAGS) -> list[list[str]]:
     words = columns[on].tolist()  # row by row, in flag order
     ends = np.cumsum(on.sum(axis=1)).tolist()
     starts = [0] + ends[:-1]
-    return [words[a:e] for a, e in zip(starts, ends)]
+    with _collector_paused():
+        return [words[a:e] for a, e in zip(starts, ends)]
 
 
 def quality(b: CaseBatch) -> list[str]:

@@ -74,9 +74,19 @@ def _population(b: CaseBatch, values: np.ndarray, res: dict, cva: np.ndarray, cv
     }
 
 
+def _cells(flags) -> np.ndarray:
+    """The flags column: an object array holding each case's list (a tuple becomes a list)."""
+    out = np.empty(len(flags), dtype=object)
+    for i, f in enumerate(flags):
+        out[i] = f if type(f) is list else list(f)
+    return out
+
+
 def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classical_cols: dict,
                   cvs: tuple, quality: list, flags: list, opts: Options) -> pd.DataFrame:
-    """One row per case; column order is part of the contract (DEVELOPERS.md)."""
+    """One row per case; column order is part of the contract (DEVELOPERS.md). The lists of
+    ``flags`` (one per case, fresh from :func:`.flags.case_flags`) become the table's cells as
+    they are, not copied."""
     values = assessed_values(b)
     cva, _, cvg = cvs
     cols = _identity(b, targets, values)
@@ -85,9 +95,9 @@ def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classica
     cols.update(_population(b, values, engine.summary, cva, cvg))
     cols.update({
         "retest_group": b.prior_attr(lambda p: p.group, object), "quality": quality,
-        "comparable": (~b.method.changed | b.method.corrected).tolist(), "flags": [list(f) for f in flags],
+        "comparable": (~b.method.changed | b.method.corrected).tolist(), "flags": _cells(flags),
         "engine": opts.engine, "converged": engine.converged,
-        "pack": per_object(b.pack, lambda pk: pk.id, object),
+        "pack": per_object(b.pack, lambda pk: pk.id, object, groups=b.pack_groups),
     })
     return pd.DataFrame(cols)
 
