@@ -274,8 +274,10 @@ def test_cli_needs_exactly_one_input(capsys):
 # --------------------------------------------------------------------------- model (compiles PyTensor)
 @pytest.mark.slow
 def test_marginal_density_matches_scipy_multivariate_normal():
-    """The potential of the specimen means (set points integrated out) equals the sum over cells
-    of scipy's multivariate normal log density with covariance diag(v) + sigma_g^2 J."""
+    """The potential of the specimen means (set points integrated out), written per specimen and
+    per animal through its sufficient statistics, equals the sum over cells of scipy's
+    multivariate normal log density with covariance diag(v) + sigma_g^2 J (outside reference:
+    scipy.stats.multivariate_normal). Two methods, so the bias terms of the statistics count."""
     from scipy import stats
 
     from bayesbase.calibrate import model as M
@@ -285,20 +287,22 @@ def test_marginal_density_matches_scipy_multivariate_normal():
     pack = load_pack("dog")
     sel = select_specimens(frame, "dog", pack)
     data = prepare(sel.usable, reference_methods(sel.usable))
-    m = M.build_model(data, M.prior_values(pack, data.analytes))
+    pri = M.prior_values(pack, data.analytes)
+    m = M.build_model(data, pri, likelihood="specimens")
+    m_stats = M.build_model(data, pri, likelihood="animal_stats")
     rng = np.random.default_rng(1)
     point = {k: rng.normal(0, 0.3, np.shape(v)) + (v if k.startswith("mu") else 0)
              for k, v in m.initial_point().items()}
-    def at_point(name):
-        out = m.replace_rvs_by_values([m[name]])[0]
-        return m.compile_fn(out, inputs=m.value_vars, point_fn=True, on_unused_input="ignore")(point)
 
-    got = float(at_point("specimen_means"))
+    def at_point(names, model):
+        outs = model.replace_rvs_by_values([model[n] for n in names])
+        return model.compile_fn(outs, inputs=model.value_vars, point_fn=True, on_unused_input="ignore")(point)
+
+    got, offset = at_point(["specimen_means", "breed_offset"], m)
+    got_stats = float(at_point(["specimen_means"], m_stats)[0])
     mu = point["mu"]
     sg = np.exp(point["sigma_g_log__"])
     ln_med, spread = point["ln_cvi_median"], np.exp(point["cvi_log_sd_log__"])
-    breed_sd = np.exp(point["breed_sd_log__"])
-    z = at_point("breed_z")
     bias = point["method_log_bias"]
     breeds = sorted({b for _, b in data.breed_pairs})
     sa = np.array([math.sqrt(math.log1p(pack.analytes[a].cva ** 2)) for a in data.analytes])
@@ -309,10 +313,68 @@ def test_marginal_density_matches_scipy_multivariate_normal():
         obs = np.flatnonzero(data.obs_cell == c)
         cvi = np.exp(ln_med[a] + spread[a] * point["cvi_z"][c])
         v = np.log1p(cvi**2) + sa[a] ** 2 / data.n_rep[obs]
-        mean = mu[a] + breed_sd[a] * z[a, b] + np.append(bias, 0.0)[data.obs_bias[obs]]
+        mean = mu[a] + offset[a, b] + np.append(bias, 0.0)[data.obs_bias[obs]]
         cov = np.diag(v) + sg[a] ** 2
         want += stats.multivariate_normal(mean, cov).logpdf(data.y[obs])
     assert got == pytest.approx(want, rel=1e-9, abs=1e-9)
+    assert got_stats == pytest.approx(want, rel=1e-9, abs=1e-9)  # per-animal sufficient statistics
+
+
+@pytest.mark.slow
+def test_marginal_form_equals_the_integral_over_the_set_point():
+    """Exact agreement of the two forms of one animal's likelihood on a small case: the
+    marginalised form (``model._cell_logp``, set point integrated out in closed form) against the
+    non-marginalised form, prod_j Normal(y_j | theta + b_j, v_j) x Normal(theta | m, sigma_g^2),
+    integrated over theta numerically (outside reference: scipy.integrate.quad with
+    scipy.stats.norm). Unequal variances (replicates, animal CVI) and a method bias on one
+    specimen; two animals, to check the sum over cells."""
+    import pytensor.tensor as pt
+    from scipy import integrate, stats
+
+    from bayesbase.calibrate import model as M
+
+    y = np.array([4.52, 4.61, 4.40, 4.70, 3.41, 3.38])  # invented ln values
+    v = np.array([0.010, 0.006, 0.010, 0.004, 0.030, 0.025])
+    bias = np.array([0.0, 0.0, 0.07, 0.0, 0.0, -0.05])
+    cell = np.array([0, 0, 0, 0, 1, 1])
+    m = np.array([4.45, 3.50])
+    sg = np.array([0.20, 0.12])
+    r = y - m[cell] - bias
+    got = float(M._cell_logp(pt.as_tensor(r), pt.as_tensor(v), pt.as_tensor(sg**2), cell, 2).eval())
+
+    def integral(c):
+        k = cell == c
+
+        def joint(theta):
+            return math.exp(stats.norm.logpdf(y[k], theta + bias[k], np.sqrt(v[k])).sum()
+                            + stats.norm.logpdf(theta, m[c], sg[c]))
+
+        val, err = integrate.quad(joint, m[c] - 12 * sg[c], m[c] + 12 * sg[c], epsabs=0, epsrel=1e-12, limit=200)
+        assert err < 1e-9 * val
+        return math.log(val)
+
+    want = integral(0) + integral(1)
+    assert got == pytest.approx(want, rel=1e-9)
+    # a wrong set-point variance must break the agreement (the check can fail)
+    off = float(M._cell_logp(pt.as_tensor(r), pt.as_tensor(v), pt.as_tensor((1.1 * sg) ** 2), cell, 2).eval())
+    assert abs(off - want) > 1e-3
+
+
+def test_breed_layer_is_centred_for_large_breeds_only():
+    """The per-level choice of parameterisation follows the animal counts of the layout."""
+    from bayesbase.calibrate import model as M
+    from bayesbase.calibrate.simulate import breed_list
+
+    breeds = breed_list(40, {"big": 1.0, "small": 3})
+    assert breeds.count("small") == 3 and breeds.count("big") == 37
+    frame, _ = simulate_store(seed=2, n_animals=40, n_specimens=2, breed_counts={"beagle": 1.0, "border collie": 3})
+    sel = select_specimens(frame, "dog", load_pack("dog"))
+    data = prepare(sel.usable, reference_methods(sel.usable))
+    flags = M.centred_breeds(data, ["beagle", "border collie"])
+    assert flags.tolist() == [[True, False]]
+    assert not M.centred_breeds(data, ["beagle", "border collie"], "noncentred").any()
+    with pytest.raises(ValueError, match="breed_param"):
+        M.centred_breeds(data, ["beagle"], "sideways")
 
 
 def _mixedlm_reference(frame):

@@ -98,6 +98,8 @@ PLAN = (
     ("validate", "bench.validate", "bench_validate", {"n_rows": 100_000}),
     ("validate_file", "bench.validate", "bench_validate_file",
      {"n_rows": 500_000, "whole_file_rows": 100_000}),
+    ("import_file", "bench.validate", "bench_import_file",
+     {"n_rows": 200_000, "chunk_rows": 50_000}),
     ("trend", "bench.model", "bench_trend", {"n_series": 20_000}),
     ("store_import", "bench.store", "bench_import", {"n_rows": 100_000}),
     ("store_history", "bench.store", "bench_history", {}),
@@ -105,13 +107,14 @@ PLAN = (
     ("compare", "bench.research", "bench_compare", {"animals": 100_000}),
     ("mcmc_panel", "bench.mcmc", "bench_mcmc_panel", {"draws": 200}),
     ("interval", "bench.interval", "bench_interval", {"n_animals": 130, "n_boot": 300}),
-    ("study", "bench.study", "bench_study", {"n_analytes": 5}),
-    ("study_bayes", "bench.study", "bench_study",
-     {"method": "bayes", "n_analytes": 2, "draws": 300, "tune": 300}),
+    # issue 13: 25 analytes x 20 animals x 10 specimens x 2 replicates, classical and Bayesian
+    ("study", "bench.study", "bench_study_both", {"n_analytes": 5, "draws": 300, "tune": 300}),
     ("study_coverage", "bench.study", "bench_study_coverage",
      {"n_studies": 10, "draws": 300, "tune": 300, "batch_size": 10}),
     ("web", "bench.web", "bench_web", {"n_patients": 2_000, "n_requests": 10}),
     ("calibrate", "bench.calibrate", "bench_calibrate", {"n_animals": 100, "draws": 300, "tune": 300, "chains": 2}),
+    ("calibrate_large", "bench.calibrate", "bench_calibrate_large",
+     {"n_animals": 1_000, "draws": 300, "tune": 300, "chains": 2}),
     ("scale", "bench.scale", "bench_scale", {"n_patients": 2_000, "n_partitions": 8}),
 )
 

@@ -6,7 +6,8 @@ Model, natural-log scale, every analyte a in one graph (parameters carry an ``an
     y[j]          mean ln value of specimen j of animal i (cell c = (a, i)), n_j replicates
     y[j]          = theta[c] + bias[a, method_j] + s[j] + e[j]
     theta[c]      ~ Normal(mu[a] + breed_offset[a, breed_i], sigma_g[a])     set points (CVG)
-    breed_offset  = breed_sd[a] * z,  z ~ ZeroSumNormal(1) over breeds          (non-centred)
+    breed centre  c[a, b] = mu[a] + breed_offset[a, b] ~ Normal(mu[a], breed_sd[a])
+                  (centred for a breed with >= CENTRED_MIN_ANIMALS animals, else non-centred)
     bias[a, m]    ~ Normal(0, method_sd[a]); the reference method's bias is 0 (centred: see below)
     ln CVI[c]     = ln_cvi_median[a] + cvi_log_sd[a] * eta[c],  eta ~ Normal(0, 1)  (non-centred)
     s[j]          ~ Normal(0, sigma_i[c]),  sigma_i = sqrt(ln(1 + CVI[c]^2))   (CVI)
@@ -21,21 +22,32 @@ and within-specimen sum of squares (as in ``bayesbase.study.bayes``), and the se
 integrated out: the specimen means of one cell are multivariate normal with mean
 mu + breed_offset + bias and covariance diag(v) + sigma_g^2 J, v_j = sigma_i^2 + sigma_a^2 / n_j,
 whose log density follows from the matrix determinant lemma and Sherman-Morrison with sums over
-the cell's specimens. ``tests/test_calibrate.py`` checks it against scipy's multivariate normal.
+the cell's specimens. When the specimens of a cell have equal replicate counts (v constant in the
+cell) those sums reduce to the animal's sufficient statistics: its number of specimens m, their
+mean, their sum of squares about it and, per non-reference method, a count and a sum of
+deviations (:func:`animal_stats`, ``likelihood="animal_stats"``; the default ``auto`` takes
+them whenever they apply). ``tests/test_calibrate.py`` checks both forms against scipy's
+multivariate normal, and the marginal against a numerical integral over the set point
+(scipy.integrate.quad). The animal CVIs are not integrated out: no closed form exists for a
+log-normal scale mixture, so each animal keeps one latent eta.
 
-Parameterisation. The CVI layer and the breed offsets are non-centred (a between-breed SD
-learned from a few breeds, and a CVI spread that may be near 0, make funnels when centred). The
-breed offsets of an analyte sum to zero (PyMC's ZeroSumNormal), so mu is the mean of the breed
-centres on the ln scale and is not traded against the offsets along a ridge; ``breed_sd`` is the
-scale of those zero-sum offsets. Breed levels are shared by all analytes (an analyte with no
-result of a breed carries that breed's offset from the prior only). Animals without a recorded
-breed form the level ``(unknown)``, which is never written into a pack. The method biases are
-centred: each rests on many specimens, so the data pin it down and a non-centred bias would tie
-it to its SD in a narrow ridge.
-Measured limit (``bayesbase bench`` entry ``calibrate``, 500 invented animals x 4 specimens x 3
-analytes, 4 chains x 1000 draws, PyMC NUTS, 2026-12-03): max R-hat 1.011, min tail ESS 251 and 37
-divergences, so the gate refused the pack. Not yet diagnosed; the suspect is the non-centred breed
-layer once every breed has many animals (a centred layer suits well-identified offsets).
+Parameterisation (benchmarks: ``bayesbase bench`` entries ``calibrate`` and ``calibrate_large``).
+The CVI layer is non-centred: each animal's 3-4 specimens say little about its own CVI, the
+regime in which a non-centred layer has no funnel. The breed layer is chosen per (analyte,
+breed) level: a level with at least CENTRED_MIN_ANIMALS animals is centred (its ln centre is the
+free parameter; the data pin it down, and a non-centred z = offset / breed_sd would lie on a
+curved ridge against breed_sd: the suspected cause of the 37 divergences measured earlier with a
+non-centred zero-sum layer on three breeds of 167 dogs each), a smaller level non-centred (a
+breed of three dogs is mostly prior, where the centred form makes the funnel). mu is the mean of the breed-centre
+distribution (no zero-sum constraint: the large breeds' centres are free parameters, so mu is
+not traded against them along a ridge). The SDs learned from few groups (breed_sd, method_sd)
+have boundary-avoiding Gamma(2) priors (:data:`SD_GAMMA_SHAPE`), so the sampler is not drawn
+into the neck of a funnel at SD -> 0 that a single method bias per analyte cannot rule out.
+Breed levels are shared by all analytes (an analyte with no result of a breed carries that
+breed's centre from the prior only). Animals without a recorded breed form the level
+``(unknown)``, which is never written into a pack. The method biases are centred: each rests on
+many specimens, so the data pin it down and a non-centred bias would tie it to its SD in a
+narrow ridge.
 
 Priors, from the pack's values, widened (every value is written into the output):
 
@@ -46,9 +58,9 @@ Priors, from the pack's values, widened (every value is written into the output)
   of e^0.7 = 2 at one SD is taken (bayesbase modelling choice);
 * ln_cvi_median ~ Normal(ln CVI_pack, WIDEN x cvi_log_sd_pack); cvi_log_sd ~ HalfNormal(WIDEN x
   cvi_log_sd_pack);
-* breed_sd ~ HalfNormal(sG_pack): breeds differing by up to about one between-animal SD
-  (bayesbase modelling choice); method_sd ~ HalfNormal(METHOD_SD_SCALE) (a 10 % bias at one SD;
-  bayesbase modelling choice).
+* breed_sd ~ Gamma(2, mean sG_pack): breeds differing by up to about one between-animal SD
+  (bayesbase modelling choice); method_sd ~ Gamma(2, mean METHOD_SD_SCALE) (a 10 % bias at one
+  SD; bayesbase modelling choice).
 
 Convergence uses the thresholds of :mod:`bayesbase.mcmc.engine` (R-hat, bulk and tail ESS, no
 divergence) on every free parameter, and the never-silent rule: a fit that fails a check is
@@ -66,8 +78,9 @@ import numpy as np
 
 from .core import CalibrationData
 
-__all__ = ["WIDEN", "SCALE_LOG_SD", "METHOD_SD_SCALE", "SAMPLERS", "prior_values", "prior_text",
-           "build_model", "fit", "diagnostics", "FREE_NAMES"]
+__all__ = ["WIDEN", "SCALE_LOG_SD", "METHOD_SD_SCALE", "SAMPLERS", "LIKELIHOODS", "CENTRED_MIN_ANIMALS",
+           "SD_GAMMA_SHAPE", "METHOD_SD_PRIOR_TEXT", "prior_values", "prior_text", "centred_breeds",
+           "animal_stats", "build_model", "fit", "diagnostics", "FREE_NAMES"]
 
 #: Factor by which the pack's stated uncertainty is widened (bayesbase modelling choice).
 WIDEN = 2.0
@@ -76,9 +89,21 @@ SCALE_LOG_SD = 0.7
 #: Scale of the half-normal prior on the SD of the method biases (log units).
 METHOD_SD_SCALE = 0.1
 SAMPLERS = ("pymc", "nutpie")
+LIKELIHOODS = ("auto", "specimens", "animal_stats")
+#: Shape of the boundary-avoiding Gamma priors on breed_sd and method_sd (Chung Y, Rabe-Hesketh S,
+#: Dorie V, Gelman A, Liu J. A nondegenerate penalized likelihood estimator for variance
+#: parameters in multilevel models. Psychometrika 2013;78(4):685-709: Gamma(2, rate) for a
+#: group-level SD estimated from few groups; from memory). Mean = the scale in ``prior_values``.
+SD_GAMMA_SHAPE = 2.0
+#: The method-SD prior in words (for notes written beside calibrated method biases).
+METHOD_SD_PRIOR_TEXT = f"Gamma({SD_GAMMA_SHAPE:g}, mean {METHOD_SD_SCALE:g})"
+#: A breed level with at least this many animals gets a centred parameterisation (module
+#: docstring; bayesbase modelling choice: at 10 animals of 4 specimens the breed mean's SE is
+#: about sigma_g / 3, below a typical breed SD, so the data dominate the level's prior).
+CENTRED_MIN_ANIMALS = 10
 _LOG_2PI = math.log(2.0 * math.pi)
 #: free parameters (each checked for convergence when present)
-FREE_NAMES = ("mu", "sigma_g", "ln_cvi_median", "cvi_log_sd", "breed_sd", "breed_z", "method_sd",
+FREE_NAMES = ("mu", "sigma_g", "ln_cvi_median", "cvi_log_sd", "breed_sd", "breed_raw", "method_sd",
               "method_log_bias", "sigma_a", "cvi_z")
 
 
@@ -109,8 +134,8 @@ def prior_text(pack, analytes) -> dict[str, str]:
                   f"interval {p.ri_lower:g}-{p.ri_upper:g}, SD x {WIDEN:g}); sigma_g ~ LogNormal(ln {v['sg'][i]:.3g}, "
                   f"{SCALE_LOG_SD:g}) (CVG {p.cvg:g}); ln CVI median ~ Normal(ln {p.cvi:g}, {v['ln_cvi_sd'][i]:.3g}) "
                   f"(CVI {p.cvi:g}, cvi_log_sd {p.cvi_log_sd:g} x {WIDEN:g}); cvi_log_sd ~ HalfNormal("
-                  f"{v['spread_scale'][i]:.3g}); breed_sd ~ HalfNormal({v['breed_sd_scale'][i]:.3g}); method_sd ~ "
-                  f"HalfNormal({METHOD_SD_SCALE:g}); sigma_a ~ LogNormal(ln {v['sa'][i]:.3g}, {SCALE_LOG_SD:g}) with "
+                  f"{v['spread_scale'][i]:.3g}); breed_sd ~ Gamma({SD_GAMMA_SHAPE:g}, mean {v['breed_sd_scale'][i]:.3g}); "
+                  f"method_sd ~ Gamma({SD_GAMMA_SHAPE:g}, mean {METHOD_SD_SCALE:g}); sigma_a ~ LogNormal(ln {v['sa'][i]:.3g}, {SCALE_LOG_SD:g}) with "
                   f"replicates, else CVA fixed at {p.cva:g}")
     return out
 
@@ -137,8 +162,41 @@ def _data_values(data: CalibrationData) -> dict:
                 within_const=-0.5 * data.log_n_rep[ridx] - 0.5 * data.df_within[ridx] * _LOG_2PI)
 
 
-def build_model(data: CalibrationData, pri: dict):
-    """The PyMC model of the module docstring for ``data`` with prior constants ``pri``."""
+def centred_breeds(data: CalibrationData, breeds, breed_param: str = "auto") -> np.ndarray:
+    """(analyte, breed) flags: True where the breed layer is centred. ``auto``: a breed level with
+    at least :data:`CENTRED_MIN_ANIMALS` animals of that analyte (module docstring)."""
+    flags = np.zeros((len(data.analytes), len(breeds)), dtype=bool)
+    if breed_param in ("centred", "noncentred"):
+        flags[:] = breed_param == "centred"
+        return flags
+    if breed_param != "auto":
+        raise ValueError(f"breed_param must be auto, centred or noncentred, got {breed_param!r}")
+    for i, a in enumerate(data.analytes):
+        for j, b in enumerate(breeds):
+            flags[i, j] = data.counts.get((a, "breed", b), (0, 0))[0] >= CENTRED_MIN_ANIMALS
+    return flags
+
+
+def _breed_layer(pm, pt, data, breeds, mu, pri, breed_param):
+    """Breed offsets (analyte x breed) with a per-level choice of parameterisation: a centred level
+    samples its ln centre c ~ Normal(mu, breed_sd); a non-centred level samples z ~ Normal(0, 1)
+    with c = mu + breed_sd z. ``breed_raw`` holds c or z accordingly."""
+    flag = centred_breeds(data, breeds, breed_param).astype(float)
+    breed_sd = pm.Gamma("breed_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / pri["breed_sd_scale"], dims="analyte")
+    sd, m = breed_sd[:, None], mu[:, None]
+    raw = pm.Normal("breed_raw", m * flag, flag * sd + (1.0 - flag), dims=("analyte", "breed"))
+    centre = flag * raw + (1.0 - flag) * (m + sd * raw)
+    return pm.Deterministic("breed_offset", centre - m, dims=("analyte", "breed"))
+
+
+def build_model(data: CalibrationData, pri: dict, breed_param: str = "auto", likelihood: str = "auto"):
+    """The PyMC model of the module docstring for ``data`` with prior constants ``pri``;
+    ``breed_param`` (auto, centred, noncentred) chooses the breed layer's parameterisation;
+    ``likelihood`` (auto, specimens, animal_stats) how the specimen means enter: one term per
+    specimen, or per animal through its sufficient statistics (:func:`animal_stats`; ``auto``
+    takes them when every animal's specimens have equal replicate counts). Same density."""
+    if likelihood not in LIKELIHOODS:
+        raise ValueError(f"likelihood must be one of {LIKELIHOODS}, got {likelihood!r}")
     import pymc as pm
     import pytensor.tensor as pt
 
@@ -157,15 +215,12 @@ def build_model(data: CalibrationData, pri: dict):
         sigma_g = pm.LogNormal("sigma_g", np.log(pri["sg"]), SCALE_LOG_SD, dims="analyte")
         ln_med = pm.Normal("ln_cvi_median", pri["ln_cvi"], pri["ln_cvi_sd"], dims="analyte")
         spread = pm.HalfNormal("cvi_log_sd", pri["spread_scale"], dims="analyte")
-        offset = pt.zeros((A, 1))
-        if len(breeds) > 1:
-            breed_sd = pm.HalfNormal("breed_sd", pri["breed_sd_scale"], dims="analyte")
-            z = pm.ZeroSumNormal("breed_z", sigma=1.0, dims=("analyte", "breed"))
-            offset = pm.Deterministic("breed_offset", breed_sd[:, None] * z, dims=("analyte", "breed"))
+        offset = _breed_layer(pm, pt, data, breeds, mu, pri, breed_param) if len(breeds) > 1 else pt.zeros((A, 1))
         bias = pt.zeros(1)
         if data.bias_pairs:
             ma = np.array([a_of[a] for a, _ in data.bias_pairs])
-            method_sd = pm.HalfNormal("method_sd", pri["method_sd_scale"], dims="analyte")
+            method_sd = pm.Gamma("method_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / pri["method_sd_scale"],
+                                 dims="analyte")
             b = pm.Normal("method_log_bias", 0.0, method_sd[ma], dims="method_level")
             bias = pt.concatenate([b, pt.zeros(1)])
         sa = pt.as_tensor_variable(pri["sa"])
@@ -175,13 +230,58 @@ def build_model(data: CalibrationData, pri: dict):
             pm.Potential("within_specimen", pt.sum(d["within_const"] - d["df_within"] * pt.log(sa_free)
                                                    - d["ss_within"] / (2.0 * sa_free**2)))
         eta = pm.Normal("cvi_z", 0.0, 1.0, dims="cell")
-        cvi_cell = pt.exp(ln_med[ca] + spread[ca] * eta)
-        v = pt.log1p(cvi_cell**2)[d["obs_cell"]] + sa[oa] ** 2 / d["n_rep"]
+        si2 = pt.log1p(pt.exp(2.0 * (ln_med[ca] + spread[ca] * eta)))  # sigma_i^2 of each cell
         cell_mean = mu[ca] + (offset[ca, d["cell_breed"]] if len(breeds) > 1 else 0.0)
-        r = d["y"] - cell_mean[d["obs_cell"]] - bias[d["obs_bias"]]
-        pm.Potential("specimen_means", _cell_logp(r, v, (sigma_g**2)[ca], d["obs_cell"], C))
+        sg2 = (sigma_g**2)[ca]
+        st = animal_stats(data) if likelihood != "specimens" else None
+        if likelihood == "animal_stats" and st is None:
+            raise ValueError("likelihood='animal_stats' needs equal replicate counts within each animal")
+        if st is None:
+            v = si2[d["obs_cell"]] + sa[oa] ** 2 / d["n_rep"]
+            r = d["y"] - cell_mean[d["obs_cell"]] - bias[d["obs_bias"]]
+            pm.Potential("specimen_means", _cell_logp(r, v, sg2, d["obs_cell"], C))
+        else:
+            v = si2 + sa[ca] ** 2 / st["n_rep"]
+            pm.Potential("specimen_means", _stats_logp(st, cell_mean, bias[:-1], v, sg2))
         _deterministics(pm, pt, data, breeds, mu, sigma_g, ln_med, sa, offset, bias)
     return model
+
+
+def animal_stats(data: CalibrationData) -> dict | None:
+    """Per cell (analyte, animal): number of specimens m, mean ybar of the specimen means, their
+    sum of squares about ybar, and per non-reference method the count and the sum of deviations
+    from ybar; None when a cell's specimens have unequal replicate counts (v not constant)."""
+    C, K = len(data.cell_analyte), len(data.bias_pairs)
+    oc = data.obs_cell
+    m = np.bincount(oc, minlength=C).astype(float)
+    n_rep = np.bincount(oc, weights=data.n_rep, minlength=C) / m
+    if not np.allclose(n_rep[oc], data.n_rep):
+        return None
+    ybar = np.bincount(oc, weights=data.y, minlength=C) / m
+    dev = data.y - ybar[oc]
+    nk, tk = np.zeros((C, K + 1)), np.zeros((C, K + 1))
+    np.add.at(nk, (oc, data.obs_bias), 1.0)
+    np.add.at(tk, (oc, data.obs_bias), dev)
+    return dict(m=m, n_rep=n_rep, ybar=ybar, ss=np.bincount(oc, weights=dev * dev, minlength=C),
+                nk=nk[:, :K], tk=tk[:, :K])
+
+
+def _stats_logp(st, cell_mean, b, v, sg2):
+    """The density of :func:`_cell_logp` from the animals' sufficient statistics (v constant
+    within a cell): with delta = ybar - cell mean, the residual sum R = m delta - sum_j b_j and
+    the residual sum of squares Q = ss + m delta^2 + sum_j b_j^2 - 2 sum_j dev_j b_j - 2 delta sum_j b_j."""
+    import pytensor.tensor as pt
+
+    m, delta = st["m"], st["ybar"] - cell_mean
+    if st["nk"].shape[1]:
+        nb, nb2, tb = pt.dot(st["nk"], b), pt.dot(st["nk"], b * b), pt.dot(st["tk"], b)
+    else:
+        nb = nb2 = tb = 0.0
+    rsum = m * delta - nb
+    q = st["ss"] + m * delta**2 + nb2 - 2.0 * tb - 2.0 * delta * nb
+    one_plus = 1.0 + sg2 * m / v
+    return pt.sum(-0.5 * (m * _LOG_2PI + m * pt.log(v) + pt.log(one_plus) + q / v
+                          - sg2 * (rsum / v) ** 2 / one_plus))
 
 
 def _cell_logp(r, v, sg2, obs_cell, n_cells):
@@ -217,7 +317,8 @@ def _deterministics(pm, pt, data, breeds, mu, sigma_g, ln_med, sa, offset, bias)
 
 # ----------------------------------------------------------------------------- fitting
 def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
-        seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9):
+        seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9,
+        breed_param: str = "auto", likelihood: str = "auto"):
     """Sample the model; returns (idata, diagnostics, settings). Never raises on poor
     convergence: ``diagnostics["converged"]`` says so."""
     if draws < 1 or tune < 0 or chains < 1:
@@ -228,7 +329,8 @@ def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000
 
     cores = max(1, min(chains, os.cpu_count() or 1)) if cores is None else int(cores)
     settings = dict(sampler=sampler, draws=int(draws), tune=int(tune), chains=int(chains), cores=cores,
-                    seed=int(seed), target_accept=float(target_accept))
+                    seed=int(seed), target_accept=float(target_accept), breed_param=breed_param,
+                    likelihood=likelihood)
     loggers = [logging.getLogger(n) for n in ("pymc", "pymc.sampling.mcmc", "pytensor")]
     levels = [lg.level for lg in loggers]
     for lg in loggers:
@@ -246,8 +348,17 @@ def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000
             warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
             warnings.filterwarnings("ignore", category=FutureWarning, module="arviz")
             t0 = time.perf_counter()
-            model = build_model(data, pri)
+            model = build_model(data, pri, breed_param, likelihood)
+            settings["likelihood_used"] = "specimens" if likelihood == "specimens" or animal_stats(data) is None \
+                else "animal_stats"
+            breeds = _breed_grid(data)[0]
+            n_centred = int(centred_breeds(data, breeds, breed_param).sum())
+            settings["centred_breed_levels"] = n_centred if len(breeds) > 1 else 0
             idata = _sample(model, sampler, draws, tune, chains, cores, seed, target_accept, settings)
+            idata.posterior.attrs.update(likelihood=settings["likelihood_used"], breed_param=breed_param,
+                                         centred_breed_levels=settings["centred_breed_levels"])
+            if "sample_seconds" in settings:
+                idata.posterior.attrs["sample_seconds"] = settings["sample_seconds"]
             settings["seconds"] = time.perf_counter() - t0
             diag = diagnostics(idata, RHAT_MAX, ESS_MIN)
     finally:
@@ -273,8 +384,10 @@ def _sample(model, sampler, draws, tune, chains, cores, seed, target_accept, set
     t0 = time.perf_counter()
     cm = nutpie.compile_pymc_model(model, backend="numba")
     settings["compile_seconds"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
     idata = nutpie.sample(cm, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
                           progress_bar=False, save_warmup=False, target_accept=target_accept)
+    settings["sample_seconds"] = time.perf_counter() - t0
     return az.InferenceData(posterior=idata.posterior, sample_stats=idata.sample_stats)
 
 

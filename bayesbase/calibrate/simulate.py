@@ -5,6 +5,11 @@
 points with CVG, animal-specific CVIs log-normal across animals, CVA; patients ``SIM-0000`` ...,
 methods ``demo analyser A`` (reference, most frequent) and ``demo analyser B``. The truth values
 are demo numbers chosen here, not reference values.
+
+:func:`demo_truths` builds invented truths for any analytes of a pack (centre, CVG and CVA
+taken from the pack so the priors are well placed; CVI medians, spreads, breed offsets and
+method biases drawn at random, demo numbers), and ``breed_counts`` gives breeds of unequal
+sizes (:data:`BENCH_BREEDS`: three large breeds, a middling one and breeds of 3 animals).
 """
 from __future__ import annotations
 
@@ -16,7 +21,7 @@ import pandas as pd
 
 from ..contract import CANONICAL_COLUMNS, CANONICAL_DTYPES
 
-__all__ = ["Truth", "DEMO_TRUTH", "simulate_store"]
+__all__ = ["Truth", "DEMO_TRUTH", "BENCH_BREEDS", "demo_truths", "breed_list", "simulate_store"]
 
 
 @dataclass(frozen=True)
@@ -49,6 +54,45 @@ DEMO_TRUTH = {
 }
 
 
+#: Breed sizes of the benchmark store, out of 500 animals (invented): large breeds beside breeds of
+#: 3 animals, the case where a single parameterisation of the breed layer fails.
+BENCH_BREEDS = {"labrador retriever": 0.40, "border collie": 0.25, "beagle": 0.16, "greyhound": 0.08,
+                "dachshund": 0.05, "whippet": 3, "basenji": 3, "saluki": 3, "(unknown)": 0.04}
+
+
+def breed_list(n_animals: int, breed_counts: dict) -> list[str]:
+    """Breed of each animal: an int is a number of animals, a float a share of ``n_animals``
+    (rounded; the largest breed takes the remainder). An ``(unknown)`` breed is left blank."""
+    fixed = {b: int(c) for b, c in breed_counts.items() if isinstance(c, int)}
+    left = n_animals - sum(fixed.values())
+    shares = {b: float(c) for b, c in breed_counts.items() if not isinstance(c, int)}
+    tot = sum(shares.values()) or 1.0
+    counts = {**fixed, **{b: int(round(left * f / tot)) for b, f in shares.items()}}
+    big = max(shares or fixed, key=lambda b: counts[b])
+    counts[big] += n_animals - sum(counts.values())
+    if min(counts.values()) < 0:
+        raise ValueError("breed_counts asks for more animals than n_animals")
+    return [b for b, c in counts.items() for _ in range(c)]
+
+
+def demo_truths(analytes, pack="dog", seed: int = 0, breeds=tuple(BENCH_BREEDS)) -> dict:
+    """Invented truths for ``analytes`` of ``pack``: centre, CVG and CVA from the pack; CVI median
+    = pack CVI x U(0.7, 1.4), spread U(0.2, 0.45) on ln CVI, breed offsets N(0, (0.6 sigma_g)^2),
+    method bias U(-0.08, 0.08) (all demo numbers, seeded)."""
+    from ..priors import Pack, load_pack
+
+    pk = pack if isinstance(pack, Pack) else load_pack(pack)
+    rng = np.random.default_rng(seed)
+    out = {}
+    for a in analytes:
+        p = pk.analytes[a]
+        sg = _sig(p.cvg)
+        offs = {b: (0.0 if b == "(unknown)" else float(rng.normal(0.0, 0.6 * sg))) for b in breeds}
+        out[a] = Truth(a, p.unit, float(p.center), float(p.cvg), float(p.cvi * rng.uniform(0.7, 1.4)),
+                       float(rng.uniform(0.2, 0.45)), float(p.cva), float(rng.uniform(-0.08, 0.08)), offs)
+    return out
+
+
 def _sig(cv: float) -> float:
     return math.sqrt(math.log1p(cv * cv))
 
@@ -66,17 +110,22 @@ def _one_analyte(rng, t: Truth, breeds, methods_of, n_specimens):
 
 def simulate_store(seed: int = 0, n_animals: int = 60, n_specimens: int = 4, analytes=("creatinine",),
                    truths: dict | None = None, p_method_b: float = 0.3, n_unwell: int = 0,
-                   source: str = "simulated calibration store") -> tuple[pd.DataFrame, dict]:
+                   source: str = "simulated calibration store",
+                   breed_counts: dict | None = None) -> tuple[pd.DataFrame, dict]:
     """(canonical frame, {analyte: Truth, "cvi_animal": {analyte: array}}) of an invented store.
 
-    Breeds cycle through the truth's breeds; each specimen's method is B with probability
+    Breeds cycle through the truth's breeds, or follow ``breed_counts`` (:func:`breed_list`; a
+    breed missing from a truth has offset 0); each specimen's method is B with probability
     ``p_method_b``. ``n_unwell`` extra specimens (state ``unwell``, values doubled) are added to
     the first animals: usable-specimen selection must leave them out.
     """
     rng = np.random.default_rng(seed)
     truths = truths or DEMO_TRUTH
-    names = list(next(iter(truths[a] for a in analytes)).breed_log_offsets)
-    breeds = [names[i % len(names)] for i in range(n_animals)]
+    if breed_counts is None:
+        names = list(next(iter(truths[a] for a in analytes)).breed_log_offsets)
+        breeds = [names[i % len(names)] for i in range(n_animals)]
+    else:
+        breeds = breed_list(n_animals, breed_counts)
     methods_of = (rng.random((n_animals, n_specimens)) < p_method_b).astype(int)
     rows, cvis = [], {}
     for a in analytes:
@@ -98,7 +147,8 @@ def _frame(rows, breeds, source) -> pd.DataFrame:
     pat = np.array([f"SIM-{k:04d}" for k in i])
     n = len(rows)
     df = pd.DataFrame({
-        "patient": pat, "species": "dog", "breed": np.array(breeds, dtype=object)[i], "sex": "female_neutered",
+        "patient": pat, "species": "dog",
+        "breed": np.array([None if b == "(unknown)" else b for b in breeds], dtype=object)[i], "sex": "female_neutered",
         "birth_date": np.datetime64("2018-03-01", "ns"),
         "specimen": [f"{p}-{k:02d}" for p, k in zip(pat, j)],
         "collected_at": np.datetime64("2024-01-05T09:00:00", "ns") + (j * 30 + i % 11).astype("timedelta64[D]"),
