@@ -90,9 +90,13 @@ def bench_study(n_animals: int = 20, n_specimens: int = 10, n_replicates: int = 
     return out
 
 
-def bench_study_both(**kw) -> dict:
+def bench_study_both(n_animals: int = 20, n_specimens: int = 10, n_replicates: int = 2,
+                     n_analytes: int = 25, seed: int = 0, draws: int = 1000, tune: int = 1000,
+                     chains: int = 4, sampler: str = "auto") -> dict:
     """:func:`bench_study` of both methods (the benchmark of issue 13 in ``bayesbase bench``)."""
-    return bench_study(method="both", **kw)
+    return bench_study(n_animals=n_animals, n_specimens=n_specimens, n_replicates=n_replicates,
+                       n_analytes=n_analytes, method="both", seed=seed, draws=draws, tune=tune,
+                       chains=chains, sampler=sampler)
 
 
 def bench_study_coverage(n_studies: int = 500, n_animals: int = 12, n_specimens: int = 6, n_replicates: int = 2,
