@@ -1,7 +1,8 @@
 """:func:`calibrate`: usable results -> hierarchical fit -> summary table, dataset, stamps.
 
 Summaries are posterior medians with 95 % equal-tailed credible intervals, CVs as fractions:
-``center`` (exp mu: the geometric mean of the breed centres, on the reference method), ``cvg`` (between animals
+``center`` (exp mu: the centre of the breed-centre distribution, on the reference method; close
+to the geometric mean of the breed centres when there are many breeds), ``cvg`` (between animals
 within a breed), ``cvi`` (the median animal's CVI), ``cvi_log_sd`` (SD of ln CVI across animals),
 ``cva``, ``breed_center`` (exp(mu + breed offset), per breed) and ``method_bias`` (fraction, per
 method: a result of that method reads (1 + bias) times the reference method's; the reference
@@ -43,6 +44,7 @@ class Calibration:
     selection: Selection
     data: CalibrationData
     attrs: dict = field(default_factory=dict)
+    heldout: object = None  # :class:`bayesbase.calibrate.heldout.HeldOut` when asked for (heldout_folds)
 
     @property
     def converged(self) -> bool:
@@ -168,15 +170,18 @@ def _attrs(pack, source, data, settings, diag, analytes, pri_text, pred_sd) -> d
 def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=None,
               reference_method: str | None = None, sampler: str = "pymc", draws: int = 1000,
               tune: int = 1000, chains: int = 4, seed: int = 0, cores: int | None = None,
-              target_accept: float = 0.9, keep_compromised: bool = False, now=None) -> Calibration:
+              target_accept: float = 0.9, keep_compromised: bool = False, now=None,
+              heldout_folds: int = 0) -> Calibration:
     """Fit the hierarchical calibration model (:mod:`bayesbase.calibrate.model`) to every usable
     result of ``species`` in a store (a ``Store`` or its file), a results file or a frame.
 
     ``pack``: the pack whose values are the priors (name, path or Pack; default the species'
     own). ``analytes``: ids to calibrate (default every analyte of the input the pack carries).
     ``reference_method``: the method whose bias is fixed at 0 (default: each analyte's most
-    frequent). Returns a :class:`Calibration`; never raises on poor convergence (it says so in
-    ``diagnostics`` and ``converged``)."""
+    frequent). ``heldout_folds`` >= 2 adds the k-fold held-out proof of
+    :mod:`bayesbase.calibrate.heldout` (same settings; ``Calibration.heldout``). Returns a
+    :class:`Calibration`; never raises on poor convergence (it says so in ``diagnostics`` and
+    ``converged``)."""
     from ..priors import Pack, load_pack
     from . import model as _model
 
@@ -198,5 +203,12 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
     attrs["n_specimens"] = int(len(sel.usable[["patient", "specimen"]].drop_duplicates()))
     idata.posterior.attrs.update({k: str(v) if not isinstance(v, (int, float, str)) or isinstance(v, bool) else v
                                   for k, v in attrs.items()})
+    held = None
+    if heldout_folds:
+        from .heldout import heldout_proof
+
+        held = heldout_proof(frame, species=species, analytes=data.analytes, pack=pack, folds=heldout_folds, seed=seed,
+                             reference_method=reference_method, sampler=sampler, draws=draws, tune=tune, chains=chains,
+                             cores=cores, target_accept=target_accept, keep_compromised=keep_compromised, now=now)
     return Calibration(table=table, dataset=to_dataset(table, attrs), idata=idata, diagnostics=diag,
-                       selection=sel, data=data, attrs=attrs)
+                       selection=sel, data=data, attrs=attrs, heldout=held)

@@ -93,7 +93,7 @@ def method_log_bias(cal: Calibration, analyte: str, method: str, row) -> tuple[f
 
 
 def _method_bias_lines(cal: Calibration, analyte: str, src: str) -> list[str]:
-    from .model import METHOD_SD_SCALE
+    from .model import METHOD_SD_PRIOR_TEXT
 
     t = cal.table[(cal.table["analyte"] == analyte) & (cal.table["parameter"] == "method_bias")]
     ref = cal.data.reference[analyte]
@@ -108,7 +108,7 @@ def _method_bias_lines(cal: Calibration, analyte: str, src: str) -> list[str]:
         note = (f"natural-log bias against {ref}: {how}; as a fraction, posterior median {r.estimate:+.4g}, "
                 f"95 % CrI {r.lower:+.4g} to {r.upper:+.4g}; {r.n_animals} animals, {r.n_specimens} specimens "
                 f"on this method; {cal.attrs['date']}; prior: Normal(0, method SD), method SD ~ "
-                f"HalfNormal({METHOD_SD_SCALE:g}) (calibration model)")
+                f"{METHOD_SD_PRIOR_TEXT} (calibration model)")
         lines.append(f"{_s(r.group)} = {{ log_bias = {_num(b)}, log_sd = {_num(sd)}, reference = {_s(ref)}, "
                      f"source = {_s(src)}, provenance = {_s(PROVENANCE)}, note = {_s(note)} }}")
     return lines if len(lines) > 2 else []
@@ -309,4 +309,7 @@ def write_outputs(cal: Calibration, out_dir, force: bool = False, figure: bool =
         paths["cvi_prior_posterior.png"] = out / "cvi_prior_posterior.png"
     (out / "calibration.html").write_text(calibration_html(cal, png), encoding="utf-8")
     paths["calibration.html"] = out / "calibration.html"
+    from .heldout import write_heldout  # held-out proof, when run: heldout.csv and its section of the page
+
+    paths.update(write_heldout(cal, out))
     return paths
