@@ -261,15 +261,17 @@ def test_vectorised_model2_decisions_match_the_kernel(pack):
 
 
 def test_simulator_quadrature_nodes_are_accurate(pack):
-    """SIM_QUAD_NODES against the engine default (24): percentile within 1e-5 and P(change)
-    within 1e-4 on simulated creatinine and ALT cases with and without a shift."""
+    """SIM_QUAD_NODES against 64 nodes (Gauss-Hermite converges fast in the node count; 64
+    agrees with 32 to ~1e-7 here): percentile within 1e-5 and P(change) within 1e-4 on simulated
+    creatinine and ALT cases (ALT has the widest CVI uncertainty of the dog pack) with and
+    without a shift."""
     for a in ("creatinine", "alt"):
         spec = research.spec_from_pack(pack, a)
         y = research._simulate(spec, "model", research._draws(SEED, a, 0, 5000, 3))
         for s in (0.0, 0.3):
             ca = research._case_arrays(spec, y[:, :3], y[:, 3] + s)
             o1 = exact_assess(ca, nodes=research.SIM_QUAD_NODES, intervals=False)
-            o2 = exact_assess(ca, nodes=24, intervals=False)
+            o2 = exact_assess(ca, nodes=64, intervals=False)
             assert np.max(np.abs(o1["percentile"] - o2["percentile"])) < 1e-5
             assert np.max(np.abs(o1["p_change"] - o2["p_change"])) < 1e-4
 

@@ -143,11 +143,16 @@ def browser(tmp_path):
 
 def _wait(driver, condition, timeout: float = 120):
     """Wait for ``condition``; on a timeout, fail with the page's text."""
-    from selenium.common.exceptions import TimeoutException
+    from selenium.common.exceptions import (NoSuchElementException, StaleElementReferenceException,
+                                            TimeoutException)
     from selenium.webdriver.support.ui import WebDriverWait
 
+    # an element found on the page being left goes stale when the next page loads: the condition
+    # is then simply not met yet (selenium's documented wait pattern), not an error
+    ignored = (NoSuchElementException, StaleElementReferenceException)
     try:
-        return WebDriverWait(driver, timeout, poll_frequency=0.2).until(condition)
+        return WebDriverWait(driver, timeout, poll_frequency=0.2,
+                             ignored_exceptions=ignored).until(condition)
     except TimeoutException:
         pytest.fail(f"timed out at {driver.current_url}; the page reads:\n"
                     + driver.find_element("tag name", "body").text[:3000])
