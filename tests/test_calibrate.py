@@ -250,6 +250,12 @@ def test_unconverged_fit_writes_no_fragment_unless_forced(tmp_path):
     forced = write_outputs(cal, out, force=True, figure=False)
     text = forced["pack.toml"].read_text(encoding="utf-8")
     assert text.startswith("# WARNING: THE FIT DID NOT CONVERGE") and "NOT CONVERGED" in load_pack(forced["pack.toml"]).description
+    # the mark travels in the pack id and title, which every assessment and report made with it prints
+    pk = load_pack(forced["pack.toml"])
+    assert pk.id.endswith("-not-converged") and "NOT CONVERGED (forced)" in pk.title
+    ok = load_pack(write_outputs(_fake_calibration(tmp_path, converged=True), tmp_path / "ok",
+                                 figure=False)["pack.toml"])
+    assert "not-converged" not in ok.id and "NOT CONVERGED" not in ok.title
 
 
 def test_dataset_has_named_dims(tmp_path):

@@ -159,8 +159,12 @@ def fragment_toml(cal: Calibration, pack=None) -> str:
              "# posterior SD; bayesbase assess corrects a method change with them (calibration.csv has the fractions)."]
     if not a["converged"]:
         lines.insert(0, "# WARNING: THE FIT DID NOT CONVERGE. This fragment was forced; do not use it for care.")
-    lines += ["", "[pack]", f"id = {_s(a['species'] + '+calibrated-' + sha[:8])}", f"species = {_s(a['species'])}",
-              f"title = {_s('Calibrated on ' + Path(a['source_label']).name)}",
+    # a forced fragment says so in its id and title, which every assessment, table and report
+    # made with it prints (never silent)
+    mark = "" if a["converged"] else "-not-converged"
+    title = ("" if a["converged"] else "NOT CONVERGED (forced), not for care: ") + "Calibrated on "
+    lines += ["", "[pack]", f"id = {_s(a['species'] + '+calibrated-' + sha[:8] + mark)}", f"species = {_s(a['species'])}",
+              f"title = {_s(title + Path(a['source_label']).name)}",
               f"version = {_s(__version__ + '+' + sha[:8])}", f"description = {_s(desc)}",
               f"extends = {_s(a['pack_ref'])}"]
     for analyte in a["analytes"]:
