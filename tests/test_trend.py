@@ -534,12 +534,15 @@ def _reference_series(t, y, r, e, mu, sg, cvi, s, sa, sb, pi, lim_up, lim_lo, no
 def kernel_path(request, monkeypatch):
     """Run a test with the numba loops (a declared dependency) and with the numpy/scipy path
     small inputs take."""
-    from bayesbase.model import normal
+    from bayesbase.model import normal, trend
 
     if request.param == "compiled":
         assert normal.prepare(10**9)
+        assert trend._kernels(10**9)
+        monkeypatch.setattr(trend, "_kernels", lambda size=None: trend._K)  # small jobs too
     else:
         monkeypatch.setattr(normal, "_kernels", lambda size=None: None)
+        monkeypatch.setattr(trend, "_kernels", lambda size=None: None)
     return request.param
 
 
@@ -575,3 +578,38 @@ def test_trend_fast_path_equals_plain_reference(kernel_path):
                 assert (np.isinf(got) and np.isinf(val)) or abs(got - val) <= tol, (key, i, got, val)
             checked += 1
         assert checked >= 30
+
+
+def test_compiled_exp_log_and_start_quantile_match_numpy_and_scipy():
+    """The drift loops' call-free exp and log (written so the loops vectorise) against numpy's
+    exp and log (within 2 ulp over the range the model uses, and their special values), and the
+    solvers' start quantile against scipy.special.ndtri (within 1e-7)."""
+    import numba
+
+    from bayesbase.model import _jit_trend as k
+
+    @numba.njit
+    def apply(x, out_e, out_l):
+        for i in range(x.size):
+            out_e[i] = k.vexp(x[i])
+            out_l[i] = k.vlog(x[i])
+
+    xe = np.concatenate([np.linspace(-700.0, 700.0, 200_001), -np.logspace(-300, 2, 1001)])
+    xl = np.concatenate([np.exp(np.linspace(-700.0, 700.0, 200_001)), np.linspace(0.5, 2.0, 10_001),
+                         [5e-324, 1e-310]])
+    for x, ref_fn, slot in ((xe, np.exp, 0), (xl, np.log, 1)):
+        got = [np.empty_like(x), np.empty_like(x)]
+        apply(x, *got)
+        ref = ref_fn(x)
+        ulps = np.abs(got[slot] - ref) / np.spacing(np.abs(ref))
+        assert np.max(ulps[ref != 0]) <= 2.0, (ref_fn.__name__, np.max(ulps[ref != 0]))
+    special_x = np.array([0.0, -np.inf, np.inf, np.nan, -1.0, -800.0])
+    got_e, got_l = np.empty(6), np.empty(6)
+    apply(special_x, got_e, got_l)
+    with np.errstate(all="ignore"):
+        np.testing.assert_array_equal(got_e[:5], np.exp(special_x[:5]))
+        np.testing.assert_array_equal(got_l, np.log(special_x))
+    assert got_e[5] == 0.0  # below -708 the compiled exp flushes to 0 (numpy: 0 too, after underflow)
+    q = np.concatenate([np.logspace(-300, -1, 300), np.linspace(0.1, 0.9, 41), 1 - np.logspace(-15, -1, 60)])
+    got = np.array([k.ndtri_start(v) for v in q])
+    assert np.max(np.abs(got - special.ndtri(q))) < 1e-7

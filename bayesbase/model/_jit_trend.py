@@ -1,0 +1,668 @@
+"""Compiled (numba) loops of the drift model (:mod:`bayesbase.model.trend`); imported on first use
+only (jobs of at least ``normal.NUMBA_MIN_ELEMS`` (series, node) elements), so importing the model
+stays light. Compiled once and cached on disk (numba ``cache=True``).
+
+:func:`trend_k` runs every eligible series in one pass, series by series, with that series' nodes
+in a small scratch array: the node fits, the marginal likelihoods, the H1 weights (nodes whose
+weight is below ``prune`` for this series are dropped), the summaries, the slope and model-averaged
+quantiles (fourth-order steps from the Cornish-Fisher start, as :mod:`bayesbase.model.normal`) and
+the three time-to-limit quantiles (Halley steps inside a bisection bracket). The formulas are
+those of the numpy path of :mod:`bayesbase.model.trend`, written for one series.
+
+Speed: the loops over a series' nodes vectorise (4 doubles at a time), so exp and ln are written
+without library calls (:func:`vexp`, :func:`vlog`, within 2 ulp), node counts are padded to a
+multiple of 4 with zero-weight nodes, and sums may be reordered (``fastmath={"reassoc",
+"contract"}``: rounding-level differences only; NaN and inf keep their meaning).
+"""
+from __future__ import annotations
+
+import numba
+import numpy as np
+from numba import types
+from numba.extending import intrinsic
+
+_SQRTH = 0.70710678118654752440  # sqrt(1/2)
+_C = 0.39894228040143267794  # 1 / sqrt(2 pi)
+# Cephes ndtr.c coefficient tables (Moshier SL, Cephes Math Library 2.9, the tables of
+# scipy.special.ndtr; copied from bayesbase.model._jit); the leading 1 of U, Q and S is implicit
+_T = (9.60497373987051638749e0, 9.00260197203842689217e1, 2.23200534594684319226e3,
+      7.00332514112805075473e3, 5.55923013010394962768e4)
+_U = (3.35617141647503099647e1, 5.21357949780152679795e2, 4.59432382970980127987e3,
+      2.26290000613890934246e4, 4.92673942608635921086e4)
+_P = (2.46196981473530512524e-10, 5.64189564831068821977e-1, 7.46321056442269912687e0,
+      4.86371970985681366614e1, 1.96520832956077098242e2, 5.26445194995477358631e2,
+      9.34528527171957607540e2, 1.02755188689515710272e3, 5.57535335369399327526e2)
+_Q = (1.32281951154744992508e1, 8.67072140885989742329e1, 3.54937778887819891062e2,
+      9.75708501743205489753e2, 1.82390916687909736289e3, 2.24633760818710981792e3,
+      1.65666309194161350182e3, 5.57535340817727675546e2)
+_R = (5.64189583547755073984e-1, 1.27536670759978104416e0, 5.01905042251180477414e0,
+      6.16021097993053585195e0, 7.40974269950448939160e0, 2.97886665372100240670e0)
+_S = (2.26052863220117276590e0, 9.39603524938001434673e0, 1.20489539808096656605e1,
+      1.70814450747565897222e1, 9.60896809063285878198e0, 3.36907645100081516050e0)
+
+#: rows of the kernel's output array, in order
+ROWS = ("log_bf10", "p_drift", "p_increase", "slope_mean", "slope_sd", "exp_slope_mean",
+        "slope_lower", "slope_upper", "avg_lower", "avg_upper", "theta_last_mean",
+        "years_mid", "years_lo", "years_hi", "p_beyond_limit")
+#: early stops of the slope-quantile and time-to-limit solvers (``early`` of :func:`mix_quantile`
+#: and :func:`cross_quantile`)
+EARLY = (1e-2, 1e-4)
+# scratch rows (per node of one series)
+_ML0, _ML1, _MT, _MB, _VTT, _VTB, _VBB, _W, _SB, _ISB, _M0, _V0, _C0B, _MBS, _SI2 = range(15)
+N_SCRATCH = 15
+
+_jit = numba.njit(cache=True, error_model="numpy", nogil=True)
+# loops over a series' nodes: sums may be reordered so the CPU can vectorise them
+_jit_sum = numba.njit(cache=True, error_model="numpy", nogil=True,
+                      fastmath={"reassoc", "contract"})
+_inline = numba.njit(inline="always", error_model="numpy")
+
+_LOG2E = 1.4426950408889634  # 1 / ln 2
+_LN2HI = 6.93147180369123816490e-01  # ln 2 split in two (fdlibm's e_exp.c constants)
+_LN2LO = 1.90821492927058770002e-10
+_SQRT2 = 1.41421356237309504880
+_TINY = 2.2250738585072014e-308  # smallest normal float64
+_INV_FACT = tuple(1.0 / float(np.prod(np.arange(1, k + 1, dtype=float))) for k in range(14))
+
+
+@intrinsic
+def _as_f64(typingctx, x):
+    """The float64 whose bits are the int64 x."""
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.float64))
+    return types.float64(types.int64), codegen
+
+
+@intrinsic
+def _as_i64(typingctx, x):
+    """The int64 whose bits are the float64 x."""
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.int64))
+    return types.int64(types.float64), codegen
+
+
+@_inline
+def vexp(x):
+    """exp(x) within 1 ulp for x < 709 (+inf above; 0 below -708; NaN stays), written without
+    calls so the loops that use it vectorise: x = n ln 2 + r, |r| <= ln(2)/2, exp(r) by its
+    Taylor polynomial of degree 13 (truncation below 1e-17), times 2^n built from its bits."""
+    xc = x if x > -708.0 else -708.0
+    xc = xc if xc < 709.0 else 709.0
+    n = np.floor(xc * _LOG2E + 0.5)
+    r = (xc - n * _LN2HI) - n * _LN2LO
+    p = _INV_FACT[13]
+    for k in range(12, -1, -1):
+        p = p * r + _INV_FACT[k]
+    y = p * _as_f64((np.int64(n) + 1023) << 52)
+    y = y if x > -708.0 else 0.0
+    y = y if x < 709.0 else np.inf
+    return y if x == x else x
+
+
+@_inline
+def vlog(x):
+    """ln(x) within 2 ulp, written without calls so the loops that use it vectorise: x = 2^e m,
+    m in [sqrt(1/2), sqrt(2)), ln m = 2 atanh(f), f = (m - 1) / (m + 1), by its series to
+    f^23 (truncation below 1e-17); 0 -> -inf, inf -> inf, negative or NaN -> NaN."""
+    sub = x < _TINY
+    xs = x * 18014398509481984.0 if sub else x  # subnormal: scale by 2^54 first
+    b = _as_i64(xs)
+    e = (b >> 52) - 1023
+    m = _as_f64((b & 0x000FFFFFFFFFFFFF) | 0x3FF0000000000000)  # [1, 2)
+    big = m > _SQRT2
+    m = m * 0.5 if big else m
+    e = e + 1 if big else e
+    f = (m - 1.0) / (m + 1.0)
+    s = f * f
+    p = 1.0 / 23.0
+    for k in range(21, 1, -2):
+        p = p * s + 1.0 / k
+    ef = float(e) - 54.0 if sub else float(e)
+    y = ef * _LN2HI + (2.0 * f + (ef * _LN2LO + 2.0 * f * s * p))
+    y = y if x < np.inf else x
+    return y if x > 0.0 else (-np.inf if x == 0.0 else np.nan)
+
+
+@numba.njit(inline="always", error_model="numpy")
+def phi(z, e):
+    """Phi(z) given e = exp(-z^2/2): Cephes' three branches (as bayesbase.model._jit.phi)."""
+    x = z * _SQRTH
+    a = abs(x)
+    x2 = x * x
+    num = x * ((((_T[0] * x2 + _T[1]) * x2 + _T[2]) * x2 + _T[3]) * x2 + _T[4])
+    den = ((((x2 + _U[0]) * x2 + _U[1]) * x2 + _U[2]) * x2 + _U[3]) * x2 + _U[4]
+    p = (((((((_P[0] * a + _P[1]) * a + _P[2]) * a + _P[3]) * a + _P[4]) * a + _P[5]) * a
+          + _P[6]) * a + _P[7]) * a + _P[8]
+    q = (((((((a + _Q[0]) * a + _Q[1]) * a + _Q[2]) * a + _Q[3]) * a + _Q[4]) * a + _Q[5]) * a
+         + _Q[6]) * a + _Q[7]
+    r = ((((_R[0] * a + _R[1]) * a + _R[2]) * a + _R[3]) * a + _R[4]) * a + _R[5]
+    s = (((((a + _S[0]) * a + _S[1]) * a + _S[2]) * a + _S[3]) * a + _S[4]) * a + _S[5]
+    small = a < _SQRTH
+    far = a >= 8.0
+    n = num if small else (r if far else p)
+    d = den if small else (s if far else q)
+    ratio = n / d
+    tail = 0.5 * e * ratio if e > 0.0 else 0.0 * e  # |z| = inf: ratio is inf/inf; NaN stays
+    big = 1.0 - tail if x > 0 else tail
+    return 0.5 + 0.5 * ratio if small else big
+
+
+@_jit
+def ndtri_start(q):
+    """Standard normal quantile for a solver's start only: Abramowitz M, Stegun IA, Handbook of
+    Mathematical Functions 1964, 26.2.23 (|error| < 4.5e-4) in the nearer tail, then one Halley
+    step on Phi there (error below 1e-8)."""
+    p = min(q, 1.0 - q)
+    if not p > 0.0:
+        return -np.inf if q <= 0.5 else np.inf
+    t = np.sqrt(-2.0 * np.log(p))
+    z = (2.515517 + t * (0.802853 + t * 0.010328)) / (
+        1.0 + t * (1.432788 + t * (0.189269 + t * 0.001308))) - t  # the p-quantile, p <= 0.5
+    e = np.exp(-0.5 * z * z)
+    if e > 0.0:
+        f = phi(z, e) - p
+        d = _C * e
+        z -= f / (d * (1.0 + 0.5 * z * f / d))
+    return -z if q > 0.5 else z
+
+
+# ------------------------------------------------------------------------------ node fits
+@_jit
+def _node_si2(cvi, cvs, x, si2):
+    """sI^2 = ln(1 + CVI_k^2), CVI_k = CVI exp(s x_k), at each node."""
+    for j in range(x.size):
+        c = cvi * np.exp(cvs * x[j])
+        si2[j] = np.log1p(c * c)
+
+
+@_jit
+def _series_sums(i, times, y, r, ev_extra, mask, t_ref, pm, sa2, gs, tj, yj, vj):
+    """Plain sums of (1, t, t^2, y, t y, y^2) over the usable specimens (t, y centred) into
+    gs; the usable specimens' centred t, y and extra variance sA^2 / r + e into tj, yj, vj.
+    Returns (number used, their largest extra variance, all extra variances equal)."""
+    n = 0
+    ev0 = -np.inf
+    for g in range(6):
+        gs[g] = 0.0
+    for j in range(times.shape[1]):
+        if not mask[i, j]:
+            continue
+        tc = times[i, j] - t_ref
+        yc = y[i, j] - pm
+        ev = sa2 / r[i, j] + ev_extra[i, j]
+        gs[0] += 1.0
+        gs[1] += tc
+        gs[2] += tc * tc
+        gs[3] += yc
+        gs[4] += tc * yc
+        gs[5] += yc * yc
+        tj[n] = tc
+        yj[n] = yc
+        vj[n] = ev
+        ev0 = max(ev0, ev)
+        n += 1
+    uniform = True
+    for j in range(n):
+        if vj[j] != ev0:
+            uniform = False
+    return n, ev0, uniform
+
+
+@_jit_sum
+def _fit_uniform(n, ev0, gs, lw, sg2, sb2, S):
+    """Per node, for a series whose specimens share one variance v = sI^2 + ev0: log marginal
+    likelihoods under H0 and H1 (the constant n ln(2 pi) left out, it cancels in every use) and
+    the H1 posterior of (theta0 - mu, beta), into the scratch rows."""
+    isg = 1.0 / sg2
+    isb = 1.0 / sb2
+    ml0, ml1, si2 = S[_ML0], S[_ML1], S[_SI2]
+    mt, mb, vtt, vtb, vbb = S[_MT], S[_MB], S[_VTT], S[_VTB], S[_VBB]
+    g0, g1, g2, g3, g4, g5 = gs[0], gs[1], gs[2], gs[3], gs[4], gs[5]
+    for k in range(lw.size):
+        v = si2[k] + ev0
+        iv = 1.0 / v
+        s1 = g1 * iv
+        h0 = g3 * iv
+        h1 = g4 * iv
+        qq = g5 * iv
+        p0 = isg + g0 * iv
+        a11 = isb + g2 * iv
+        det = p0 * a11 - s1 * s1
+        idet = 1.0 / det
+        mt[k] = (a11 * h0 - s1 * h1) * idet
+        mb[k] = (p0 * h1 - s1 * h0) * idet
+        vtt[k] = a11 * idet
+        vtb[k] = -s1 * idet
+        vbb[k] = p0 * idet
+        common = vlog(v) * g0
+        o5 = qq - h0 * h0 / p0
+        o6 = qq - (a11 * h0 * h0 - 2.0 * s1 * h0 * h1 + p0 * h1 * h1) * idet
+        ml0[k] = lw[k] - 0.5 * (common + vlog(sg2 * p0) + o5)
+        ml1[k] = lw[k] - 0.5 * (common + vlog(sg2 * sb2 * det) + o6)
+
+
+@_jit_sum
+def _fit_general(nj, tj, yj, vj, lw, sg2, sb2, S):
+    """:func:`_fit_uniform` for a series whose specimens' variances differ (replicates, extra
+    variance): the weighted sums per node over the specimens."""
+    isg = 1.0 / sg2
+    isb = 1.0 / sb2
+    for k in range(lw.size):
+        si2 = S[_SI2, k]
+        s0 = s1 = s2 = h0 = h1 = qq = common = 0.0
+        for j in range(nj):
+            v = si2 + vj[j]
+            iv = 1.0 / v
+            s0 += iv
+            s1 += tj[j] * iv
+            s2 += tj[j] * tj[j] * iv
+            h0 += yj[j] * iv
+            h1 += tj[j] * yj[j] * iv
+            qq += yj[j] * yj[j] * iv
+            common += vlog(v)
+        p0 = isg + s0
+        a11 = isb + s2
+        det = p0 * a11 - s1 * s1
+        idet = 1.0 / det
+        S[_MT, k] = (a11 * h0 - s1 * h1) * idet
+        S[_MB, k] = (p0 * h1 - s1 * h0) * idet
+        S[_VTT, k] = a11 * idet
+        S[_VTB, k] = -s1 * idet
+        S[_VBB, k] = p0 * idet
+        o5 = qq - h0 * h0 / p0
+        o6 = qq - (a11 * h0 * h0 - 2.0 * s1 * h0 * h1 + p0 * h1 * h1) * idet
+        S[_ML0, k] = lw[k] - 0.5 * (common + vlog(sg2 * p0) + o5)
+        S[_ML1, k] = lw[k] - 0.5 * (common + vlog(sg2 * sb2 * det) + o6)
+
+
+@_jit_sum
+def _lse(a, e, n):
+    """log(sum(exp(a[:n]))); e[:n] = exp(a - max) (for the weights)."""
+    mx = -np.inf
+    for k in range(n):
+        mx = max(mx, a[k])
+    if not np.isfinite(mx):
+        mx = 0.0
+    s = 0.0
+    for k in range(n):
+        t = vexp(a[k] - mx)
+        e[k] = t
+        s += t
+    return vlog(s) + mx, s
+
+
+@_jit
+def _pad(S, kn):
+    """Zero-weight copies of node 0 up to a multiple of 4 nodes (the vector width of the loops;
+    a remainder would run one node at a time). Returns the padded count."""
+    kp = (kn + 3) // 4 * 4
+    for k in range(kn, kp):
+        for row in (_MT, _MB, _VTT, _VTB, _VBB):
+            S[row, k] = S[row, 0]
+        S[_W, k] = 0.0
+    return kp
+
+
+@_jit
+def _weights(S, kn, tot, prune):
+    """H1 weights exp(ml1 - lp1) from exp(ml1 - max) in the weight row and their sum ``tot``;
+    nodes with weight <= prune are dropped (rows compacted, the kept weights renormalised when
+    any was dropped), then padded by :func:`_pad`. Returns the number of nodes (padded)."""
+    w = S[_W]
+    inv = 1.0 / tot
+    drop = False
+    for k in range(kn):
+        w[k] *= inv
+        drop |= not w[k] > prune
+    if not (drop and prune > 0 and kn > 1):
+        return _pad(S, kn)
+    kept = 0
+    for k in range(kn):
+        if not w[k] > prune:
+            continue
+        for row in (_MT, _MB, _VTT, _VTB, _VBB, _W):
+            S[row, kept] = S[row, k]
+        kept += 1
+    tot = 0.0
+    for k in range(kept):
+        tot += w[k]
+    for k in range(kept):
+        w[k] /= tot
+    return _pad(S, kept)
+
+
+# ------------------------------------------------------------------ normal-mixture quantile
+@_jit_sum
+def mix_moments(w, m, s, kn, mom):
+    """Of the mixture sum_j w_j N(m_j, s_j^2): mean, SD, skewness, excess kurtosis, the bracket
+    min(m - 12 s), max(m + 12 s) and the smallest s, into mom[0:7] (the moments of
+    bayesbase.model._jit.start_k)."""
+    a = 0.0
+    for j in range(kn):
+        a += w[j] * m[j]
+    b = 0.0
+    c = 0.0
+    e = 0.0
+    mn = np.inf
+    mx = -np.inf
+    smin = np.inf
+    for j in range(kn):
+        d = m[j] - a
+        d2 = d * d
+        s2 = s[j] * s[j]
+        b += w[j] * (s2 + d2)
+        c += w[j] * d * (3.0 * s2 + d2)
+        e += w[j] * (d2 * d2 + 6.0 * d2 * s2 + 3.0 * s2 * s2)
+        mn = min(mn, m[j] - 12.0 * s[j])
+        mx = max(mx, m[j] + 12.0 * s[j])
+        smin = min(smin, s[j])
+    sd = np.sqrt(max(b, 1e-300))
+    mom[0] = a
+    mom[1] = sd
+    mom[2] = c / (b * sd)
+    mom[3] = e / (b * b) - 3.0
+    mom[4] = mn
+    mom[5] = mx
+    mom[6] = smin
+
+
+@_jit
+def _mix_start(mom, z):
+    """Cornish-Fisher start at standard normal deviate z (the normal approximation when that
+    leaves the bracket)."""
+    a, sd, g1, g2, mn, mx = mom[0], mom[1], mom[2], mom[3], mom[4], mom[5]
+    z2 = z * z
+    xi = a + sd * (z + g1 / 6.0 * (z2 - 1.0) + g2 / 24.0 * z * (z2 - 3.0)
+                   - g1 * g1 / 36.0 * z * (2.0 * z2 - 5.0))
+    if not (xi > mn and xi < mx):
+        xi = a + sd * z
+    return xi
+
+
+@_jit_sum
+def _mix_step(x, q, w, m, inv_s, kn):
+    """g = F(x) - q, the fourth-order step h and the Newton step t (as bayesbase.model._jit
+    eval_k and step4, one row)."""
+    f = d1 = d2 = d3 = d4 = 0.0
+    for j in range(kn):
+        si = inv_s[j]
+        zz = (x - m[j]) * si
+        ee = vexp(-0.5 * zz * zz)
+        f += w[j] * phi(zz, ee)
+        u = w[j] * ee * si
+        d1 += u
+        u *= si
+        d2 -= u * zz
+        u *= si
+        d3 += u * (zz * zz - 1.0)
+        u *= si
+        d4 -= u * zz * (zz * zz - 3.0)
+    g = f - q
+    d1 = max(_C * d1, 1e-300)
+    t = -g / d1
+    a = _C * d2 / (2.0 * d1)
+    b = _C * d3 / (6.0 * d1)
+    c = _C * d4 / (24.0 * d1)
+    h = t * (1.0 + t * (-a + t * ((2.0 * a * a - b) + t * (5.0 * a * b - 5.0 * a * a * a - c))))
+    fine = abs(a * t) <= 0.1 and h == h
+    if not fine:
+        h = t
+    return g, h, t, fine
+
+
+@_jit
+def mix_quantile(q, z, w, m, mom, inv_s, kn, tol, max_iter, early):
+    """Quantile q (standard normal deviate z, for the start) of sum_j w_j N(m_j, s_j^2)
+    (inv_s = 1 / s; ``mom`` from :func:`mix_moments`): the algorithm of bayesbase.model.normal.mixture_quantile for one row (the
+    last step applied); it also stops after a fourth-order step whose Newton step t is at most
+    ``early`` times the smallest component SD s (the step's error is then of order
+    s (t / s)^5, about 1e-10 s for early = 1e-2; on the benchmark's series the slope limits
+    move by less than 1e-12 from the fully converged ones)."""
+    x = _mix_start(mom, z)
+    lo, hi, smin = mom[4], mom[5], mom[6]
+    for _ in range(max_iter):
+        g, h, t, fine = _mix_step(x, q, w, m, inv_s, kn)
+        if g < 0:
+            lo = max(lo, x)
+        if g > 0:
+            hi = min(hi, x)
+        xn = x + h
+        done = abs(t) <= tol or (fine and abs(t) <= early * smin and xn > lo and xn < hi)
+        if not done and not (xn > lo and xn < hi):
+            xn = 0.5 * (lo + hi)
+        x = xn
+        if done:
+            break
+    return x
+
+
+# ---------------------------------------------------------------------- time to a limit
+@_jit_sum
+def _cross_start(z, w, m0, v0, mb, c0b, vb, kn, a, horizon):
+    """Start for F(tau) = q (standard normal deviate z of q): the root of the one normal with
+    the mixture's mean and covariance of (theta_last, beta) (as the numpy path's start), the
+    middle of [0, horizon] when none fits."""
+    mm = bb = 0.0
+    for j in range(kn):
+        mm += w[j] * m0[j]
+        bb += w[j] * mb[j]
+    vv0 = cc = vvb = 0.0
+    for j in range(kn):
+        dm = m0[j] - mm
+        db = mb[j] - bb
+        vv0 += w[j] * (v0[j] + dm * dm)
+        cc += w[j] * (c0b[j] + dm * db)
+        vvb += w[j] * (vb[j] + db * db)
+    d = mm - a
+    z2 = z * z
+    a2 = bb * bb - z2 * vvb
+    a1 = d * bb - z2 * cc
+    a0 = d * d - z2 * vv0
+    root = np.sqrt(a1 * a1 - a2 * a0)
+    for k in range(3):
+        if k == 0:
+            r = (-a1 + root) / a2
+        elif k == 1:
+            r = (-a1 - root) / a2
+        else:
+            r = -a0 / (2.0 * a1)
+        if r > 0 and r < horizon and (z == 0.0 or np.sign(d + bb * r) == np.sign(z)):
+            return r
+    return 0.5 * horizon
+
+
+@_jit_sum
+def _cross_cdf(tau, w, m0, v0, mb, c0b, vb, kn, a):
+    """F(tau) = sum_j w_j Phi((m0 + mb tau - a) / s_j(tau)), s^2 = v0 + 2 tau c0b + tau^2 vb."""
+    f = 0.0
+    for j in range(kn):
+        s2 = max(v0[j] + tau * (2.0 * c0b[j] + tau * vb[j]), 1e-300)
+        zz = (m0[j] + mb[j] * tau - a) / np.sqrt(s2)
+        f += w[j] * phi(zz, vexp(-0.5 * zz * zz))
+    return f
+
+
+@_jit_sum
+def _cross_step(tau, q, w, m0, v0, mb, c0b, vb, kn, a):
+    """g = F(tau) - q, the Halley step and the Newton step (as bayesbase.model._jit
+    cross_prep_k and cross_eval_k, one row)."""
+    f = d1 = d2 = 0.0
+    for j in range(kn):
+        sl = c0b[j] + tau * vb[j]
+        si = 1.0 / np.sqrt(max(v0[j] + tau * (c0b[j] + sl), 1e-300))
+        ds = sl * si
+        d2s = (vb[j] - ds * ds) * si
+        zz = (m0[j] + mb[j] * tau - a) * si
+        z1 = (mb[j] - zz * ds) * si
+        d2z = -(2.0 * z1 * ds + zz * d2s) * si
+        e = vexp(-0.5 * zz * zz)
+        u = w[j] * e
+        f += w[j] * phi(zz, e)
+        d1 += u * z1
+        d2 += u * (d2z - zz * z1 * z1)
+    g = f - q
+    d1 *= _C
+    d2 *= _C
+    t = -g / d1
+    h = -2.0 * g * d1 / (2.0 * d1 * d1 - g * d2)
+    fine = abs(h) <= 2.0 * abs(t)
+    if not fine:  # Halley unreliable far from the root (or NaN)
+        h = t
+    return g, h, t, fine
+
+
+@_jit
+def cross_quantile(q, z, w, m0, v0, mb, c0b, vb, kn, a, lo, hi, tol, max_iter, early):
+    """Smallest tau in [lo, hi] with F(tau) = q, given F(lo) < q <= F(hi): Halley steps from
+    the one-normal start, kept inside the bisection bracket; done when the Newton step or the
+    bracket is at most ``tol`` (as the numpy path), or after a Halley step whose Newton step
+    is at most ``early`` years (its error is then of order early^3: 1e-12 years for 1e-4)."""
+    x = _cross_start(z, w, m0, v0, mb, c0b, vb, kn, a, hi)
+    if not (x > lo and x < hi):
+        x = 0.5 * (lo + hi)
+    for _ in range(max_iter):
+        g, h, t, fine = _cross_step(x, q, w, m0, v0, mb, c0b, vb, kn, a)
+        if g < 0:
+            lo = x
+        else:
+            hi = x
+        xn = x + h
+        ok = np.isfinite(xn) and xn >= lo and xn <= hi
+        if not ok:
+            xn = 0.5 * (lo + hi)
+        x = xn
+        if (ok and (abs(t) <= tol or (fine and abs(t) <= early))) or (hi - lo <= tol):
+            break
+    return x
+
+
+# --------------------------------------------------------------------------- per series
+@_jit_sum
+def _summaries(S, kn, out, c):
+    """P(beta > 0 | H1), slope mean and SD, E[exp(beta)] and P(beta < 0 | H1) of the kept nodes;
+    fills the scratch rows of slope SDs and their inverses."""
+    w, mbr, vbr, sbr, isr = S[_W], S[_MB], S[_VBB], S[_SB], S[_ISB]
+    p_inc = mean = m2 = ex = f1_0 = 0.0
+    for k in range(kn):
+        mb = mbr[k]
+        vb = vbr[k]
+        sb = np.sqrt(vb)
+        sbr[k] = sb
+        isr[k] = 1.0 / sb
+        zz = mb / sb
+        p_pos = phi(zz, vexp(-0.5 * zz * zz))
+        p_inc += w[k] * p_pos
+        f1_0 += w[k] * (1.0 - p_pos)
+        mean += w[k] * mb
+        m2 += w[k] * (vb + mb * mb)
+        ex += w[k] * vexp(mb + 0.5 * vb)
+    out[2, c] = p_inc
+    out[3, c] = mean
+    out[4, c] = np.sqrt(max(m2 - mean * mean, 0.0))
+    out[5, c] = ex
+    return f1_0
+
+
+@_jit
+def _slope_limits(S, kn, p_drift, f1_0, a, za, tol, max_iter, early, out, c):
+    """Central interval of the slope under H1 and of the model-averaged slope (point mass
+    1 - P(drift) at 0 plus P(drift) x the H1 posterior), log units."""
+    w, mb, isb = S[_W], S[_MB], S[_ISB]
+    mom = np.empty(7)
+    mix_moments(w, mb, S[_SB], kn, mom)
+    out[6, c] = mix_quantile(a, -za, w, mb, mom, isb, kn, tol, max_iter, early)
+    out[7, c] = mix_quantile(1.0 - a, za, w, mb, mom, isb, kn, tol, max_iter, early)
+    below = p_drift * f1_0  # averaged CDF just below 0
+    above = below + (1.0 - p_drift)  # averaged CDF at 0
+    for r, qv in ((8, a), (9, 1.0 - a)):
+        val = 0.0
+        if qv < below:
+            qq = qv / p_drift
+            val = mix_quantile(qq, ndtri_start(qq), w, mb, mom, isb, kn, tol, max_iter, early)
+        elif qv > above:
+            qq = min((qv - (1.0 - p_drift)) / p_drift, 1 - 1e-15)
+            val = mix_quantile(qq, ndtri_start(qq), w, mb, mom, isb, kn, tol, max_iter, early)
+        out[r, c] = val
+
+
+@_jit
+def _limit(S, kn, tcl, pm, lu, ll, zq, a, horizon, tol, max_iter, early, out, c):
+    """Set point at the last specimen and the time to the population limit the H1 slope
+    points to (quantiles a, 0.5, 1 - a; 0 when already reached, +inf when not within
+    ``horizon``), and P(already beyond it)."""
+    w = S[_W]
+    th = 0.0
+    for k in range(kn):
+        th += w[k] * (S[_MT, k] + pm + S[_MB, k] * tcl)
+    out[10, c] = th
+    slope = out[3, c]
+    has = np.isfinite(lu) or np.isfinite(ll)
+    for r in (11, 12, 13):
+        out[r, c] = np.inf if has else np.nan
+    out[14, c] = np.nan
+    if np.isfinite(lu) and slope > 0:
+        sign, lim, side = 1.0, lu, 1
+    elif np.isfinite(ll) and slope < 0:
+        sign, lim, side = -1.0, ll, -1
+    else:
+        return 0
+    m0, v0, mbs, c0b, vb = S[_M0], S[_V0], S[_MBS], S[_C0B], S[_VBB]
+    for k in range(kn):
+        mb = S[_MB, k]
+        m0[k] = sign * (S[_MT, k] + pm + mb * tcl)
+        v0[k] = S[_VTT, k] + 2.0 * tcl * S[_VTB, k] + tcl * tcl * S[_VBB, k]
+        mbs[k] = sign * mb
+        c0b[k] = S[_VTB, k] + tcl * S[_VBB, k]
+    aa = sign * lim
+    f0 = _cross_cdf(0.0, w, m0, v0, mbs, c0b, vb, kn, aa)
+    fh = _cross_cdf(horizon, w, m0, v0, mbs, c0b, vb, kn, aa)
+    out[14, c] = f0
+    for r, q, z in ((11, 0.5, zq[0]), (12, a, zq[1]), (13, 1.0 - a, zq[2])):
+        if f0 >= q:
+            out[r, c] = 0.0
+        elif fh >= q:
+            out[r, c] = cross_quantile(q, z, w, m0, v0, mbs, c0b, vb, kn, aa, 0.0, horizon,
+                                       tol, max_iter, early)
+    return side
+
+
+@_jit
+def trend_k(idx, times, y, r, ev_extra, mask, t_ref, t_last, pm, sg, sb, cvi, cvs, sa, pi, lu,
+            ll, x_nodes, lw_nodes, a, zq, horizon, prune, intervals, early, out, side):
+    """Every series idx[c] (eligible: at least one usable specimen): the drift model's outputs
+    into out[:, c] (rows :data:`ROWS`) and the limit side (1 upper, -1 lower, 0 none) into
+    side[c]. ``zq`` = the standard normal deviates of (0.5, a, 1 - a); ``early`` = the early
+    stops of the slope and the time-to-limit solvers (:data:`EARLY`)."""
+    kk = x_nodes.size
+    S = np.empty((N_SCRATCH, (kk + 3) // 4 * 4))
+    gs = np.empty(6)
+    nj = times.shape[1]
+    tj, yj, vj = np.empty(nj), np.empty(nj), np.empty(nj)
+    last_cvi = np.nan
+    last_cvs = np.nan
+    for c in range(idx.size):
+        i = idx[c]
+        if not (cvi[i] == last_cvi and cvs[i] == last_cvs):  # sI^2 per node, once per (CVI, s)
+            _node_si2(cvi[i], cvs[i], x_nodes, S[_SI2])
+            last_cvi, last_cvs = cvi[i], cvs[i]
+        n, ev0, uniform = _series_sums(i, times, y, r, ev_extra, mask, t_ref[i], pm[i],
+                                       sa[i] * sa[i], gs, tj, yj, vj)
+        sg2 = sg[i] * sg[i]
+        if uniform:
+            _fit_uniform(n, ev0, gs, lw_nodes, sg2, sb[i] * sb[i], S)
+        else:
+            _fit_general(n, tj, yj, vj, lw_nodes, sg2, sb[i] * sb[i], S)
+        lp0, _ = _lse(S[_ML0], S[_W], kk)
+        lp1, tot = _lse(S[_ML1], S[_W], kk)
+        log_bf = lp1 - lp0
+        p_drift = 1.0 / (1.0 + np.exp(-(np.log(pi[i]) - np.log1p(-pi[i]) + log_bf)))
+        out[0, c] = log_bf
+        out[1, c] = p_drift
+        kn = _weights(S, kk, tot, prune)
+        f1_0 = _summaries(S, kn, out, c)
+        side[c] = 0
+        if not intervals:
+            continue
+        _slope_limits(S, kn, p_drift, f1_0, a, zq[2], 1e-9, 60, early[0], out, c)
+        side[c] = _limit(S, kn, t_last[i] - t_ref[i], pm[i], lu[i], ll[i], zq, a, horizon,
+                         1e-7, 80, early[1], out, c)
