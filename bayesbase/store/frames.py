@@ -3,6 +3,14 @@
 Every missing value (None, NaN, NaT, ``pd.NA``, whatever the dtype) becomes SQL NULL on the way
 in, never the text of a missing value; a frame read back gets the canonical dtypes, column order
 and row order (:func:`coerce_canonical`).
+
+Reading a whole store fast: SQLite concatenates each integer or text column of a table into one
+string (:func:`aggregate_select`; no Python object per cell, which was most of the read time),
+split here with numpy into Arrow arrays (:func:`aggregate_columns`); REAL columns are read as rows
+(SQLite's text form of a double is not guaranteed to give the same double back). A text holding
+the separator, a value of another type than its column's or a string over SQLite's length limit
+sends that table to the row-by-row read (:func:`columns_from_rows`); the frame is the same either
+way (tests/test_store_read_speed_equivalence.py).
 """
 from __future__ import annotations
 
@@ -11,8 +19,10 @@ from datetime import datetime, timezone
 
 from ..contract import CANONICAL_COLUMNS, CANONICAL_DTYPES
 
-__all__ = ["VALUE_RTOL", "CANONICAL_SORT", "is_missing", "py", "col", "blank_to_none", "iso",
-           "same", "differs", "coerce_canonical", "canonical_from_tables", "now_utc"]
+__all__ = ["VALUE_RTOL", "CANONICAL_SORT", "AGG_SEP", "NotAggregated", "is_missing", "py", "col",
+           "blank_to_none", "iso", "same", "differs", "coerce_canonical", "aggregate_select",
+           "aggregate_columns", "columns_from_rows", "concat_columns", "canonical_from_tables",
+           "now_utc"]
 
 #: Relative tolerance under which two canonical values are the same value (float round-off of a
 #: unit conversion; modelling choice of this project).
@@ -119,54 +129,176 @@ def coerce_canonical(frame):
     return df.sort_values(CANONICAL_SORT, kind="mergesort").reset_index(drop=True)
 
 
+#: Separator of one column's texts in one aggregated string (the ASCII unit separator): a text
+#: holding it splits into more pieces than there are rows, which is detected
+#: (:class:`NotAggregated`), and the table is then read row by row.
+AGG_SEP = "\x1f"
+
+
+class NotAggregated(Exception):
+    """An aggregated read (:func:`aggregate_select`) would not give these rows back exactly (a
+    text holding :data:`AGG_SEP`, a value of another type than its column's, a string longer
+    than SQLite allows): the caller reads the table row by row instead."""
+
+
+def aggregate_select(kinds: dict) -> str:
+    """The select list that reads a table's columns as one string per column (``group_concat``
+    in SQLite: no Python object per cell), the row count first. ``kinds`` maps every column to
+    ``int``, ``int?`` (NULL allowed), ``text`` or ``text?``; ``real`` columns are left out (their
+    text form in SQLite does not always give the same double back; they are read as rows).
+    A nullable text column gives its texts without the NULLs, then the count of texts (where
+    the NULLs are is asked apart, only when there are some: :func:`aggregate_columns`)."""
+    parts = ["count(*)"]
+    for name, kind in kinds.items():
+        q = f'"{name}"'
+        if kind == "int":
+            parts.append(f"group_concat({q})")
+        elif kind == "int?":
+            parts.append(f"group_concat(ifnull({q}, ''))")
+        elif kind == "text":
+            parts.append(f"group_concat({q}, '{AGG_SEP}')")
+        elif kind == "text?":
+            parts += [f"group_concat({q}, '{AGG_SEP}')", f"count({q})"]
+    return ", ".join(parts)
+
+
+def _pieces(text, sep: str, n: int):
+    """The ``n`` pieces of one aggregated string as an Arrow large_string array, built from the
+    string's UTF-8 bytes with numpy (the separator, an ASCII byte, never occurs inside a
+    multi-byte character); :class:`NotAggregated` when they are not ``n`` (a text held the
+    separator)."""
+    import numpy as np
+    import pyarrow as pa
+
+    if n == 0:
+        return pa.array([], type=pa.large_string())
+    if text is None:  # every value NULL in a column that allows none
+        raise NotAggregated(f"no text for {n} rows")
+    raw = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
+    is_sep = raw == ord(sep)
+    cuts = np.flatnonzero(is_sep)
+    if len(cuts) != n - 1:
+        raise NotAggregated(f"a text holds the separator ({len(cuts) + 1} pieces for {n} rows)")
+    offsets = np.empty(n + 1, dtype=np.int64)
+    offsets[0], offsets[n] = 0, len(raw) - (n - 1)
+    offsets[1:n] = cuts - np.arange(n - 1)
+    data = raw[~is_sep]
+    return pa.LargeStringArray.from_buffers(n, pa.py_buffer(offsets), pa.py_buffer(data))
+
+
+def aggregate_columns(row, kinds: dict, null_pks=None) -> dict:
+    """The columns of one row of :func:`aggregate_select` as Arrow arrays (int64 and
+    large_string, NULL where SQL had NULL), in the order SQLite aggregated the rows. For a
+    ``text?`` column holding some NULLs, ``null_pks(column)`` gives the primary keys of those
+    rows (``kinds`` then starts with ``pk``)."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    n = int(row[0])
+    out, i = {}, 1
+    for name, kind in kinds.items():
+        if kind == "real":
+            continue
+        if kind.startswith("int"):
+            pieces = _pieces(row[i], ",", n)
+            if kind == "int?":
+                pieces = pc.if_else(pc.equal(pieces, ""), pa.scalar(None, pa.large_string()), pieces)
+            try:
+                out[name] = pc.cast(pieces, pa.int64())
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as exc:  # a value not an integer
+                raise NotAggregated(f"column {name}: {exc}") from exc
+        elif kind == "text":
+            out[name] = _pieces(row[i], AGG_SEP, n)
+        else:
+            i += 1
+            out[name] = texts = _pieces(row[i - 1], AGG_SEP, int(row[i]))
+            if len(texts) < n:
+                null = np.isin(out["pk"].to_numpy(), null_pks(name))
+                at = np.cumsum(~null) - 1
+                out[name] = texts.take(pa.array(at, mask=null))
+        i += 1
+    return out
+
+
+def columns_from_rows(rows, kinds: dict) -> dict:
+    """The columns of rows fetched one by one (``SELECT`` of every column of ``kinds``, in that
+    order) as :func:`aggregate_columns` gives them, ``real`` ones as float64 with NaN for NULL."""
+    import numpy as np
+    import pyarrow as pa
+
+    cols = list(zip(*rows)) if rows else [()] * len(kinds)
+    out = {}
+    for (name, kind), values in zip(kinds.items(), cols):
+        if kind == "real":
+            out[name] = np.array([math.nan if v is None else v for v in values], dtype=np.float64)
+        else:
+            out[name] = pa.array(values, type=pa.int64() if kind.startswith("int") else pa.large_string())
+    return out
+
+
+def concat_columns(parts: list, kinds: dict) -> dict:
+    """Chunks of columns (each as :func:`aggregate_columns` / :func:`columns_from_rows` give
+    them, with the ``real`` ones) as one set of columns."""
+    import numpy as np
+    import pyarrow as pa
+
+    if not parts:
+        return columns_from_rows([], kinds)
+    if len(parts) == 1:
+        return parts[0]
+    return {name: (np.concatenate([p[name] for p in parts]) if kind == "real"
+                   else pa.concat_arrays([p[name] for p in parts])) for name, kind in kinds.items()}
+
+
 def _text(values, index=None):
-    """A canonical text column (``string`` dtype) from str/None values (or an Arrow string array),
-    taken at ``index`` (in Arrow: no Python object per row)."""
+    """A canonical text column (``string`` dtype) of an Arrow string array taken at ``index``
+    (no Python object per row)."""
     import numpy as np
     import pandas as pd
     import pyarrow as pa
 
-    arr = values if isinstance(values, pa.Array) else pa.array(values, type=pa.string())
+    arr = values if isinstance(values, (pa.Array, pa.ChunkedArray)) else pa.array(values, type=pa.string())
     if index is not None:
         arr = arr.take(pa.array(np.asarray(index, dtype=np.int64)))
     return pd.array(arr, dtype="string")
 
 
 def _ints(values) -> "np.ndarray":
-    """An integer column (int64) of ints (every one present)."""
+    """An integer column (int64) of an Arrow int64 array with no NULL."""
     return _int_column(values)[0]
 
 
 def _int_column(values) -> tuple:
-    """(int64 array with 0 where NULL, bool array of the NULLs or None when there is none) of a
-    column of ints and None."""
+    """(int64 array with 0 where NULL, bool array of the NULLs or None when there is none) of an
+    Arrow int64 array."""
     import numpy as np
+    import pyarrow.compute as pc
 
-    try:
-        return np.fromiter(values, dtype=np.int64, count=len(values)), None
-    except TypeError:  # a None among them
-        obj = np.array(values, dtype=object)
-        nulls = np.equal(obj, None)
-        obj[nulls] = 0
-        return obj.astype(np.int64), nulls
+    if values.null_count == 0:
+        return np.asarray(values.to_numpy(zero_copy_only=False), dtype=np.int64), None
+    return (np.asarray(pc.fill_null(values, 0).to_numpy(zero_copy_only=False), dtype=np.int64),
+            values.is_null().to_numpy(zero_copy_only=False))
 
 
 def _times(values):
-    """ISO 8601 texts as canonical datetimes (as :func:`coerce_canonical` reads them)."""
+    """ISO 8601 texts (Arrow) as canonical datetimes (as :func:`coerce_canonical` reads them)."""
     import pandas as pd
 
-    return pd.to_datetime(pd.Series(list(values), dtype=object), format="ISO8601").astype("datetime64[ns]").to_numpy()
+    return pd.to_datetime(pd.Series(values.to_pylist(), dtype=object),
+                          format="ISO8601").astype("datetime64[ns]").to_numpy()
 
 
 def _rank(values) -> "np.ndarray":
-    """The rank of every text in code-point order (equal texts share a rank)."""
+    """The rank of every text (Arrow) in code-point order (equal texts share a rank; UTF-8 byte
+    order is code-point order)."""
     import numpy as np
-    import pandas as pd
+    import pyarrow.compute as pc
 
-    codes, uniq = pd.factorize(np.asarray(values, dtype=object))
-    rank = np.empty(len(uniq), dtype=np.int64)
-    rank[np.argsort(np.asarray(uniq, dtype=object), kind="stable")] = np.arange(len(uniq))
-    return rank[codes]
+    enc = pc.dictionary_encode(values)
+    rank = np.empty(len(enc.dictionary), dtype=np.int64)
+    rank[pc.sort_indices(enc.dictionary).to_numpy()] = np.arange(len(enc.dictionary))
+    return rank[enc.indices.to_numpy(zero_copy_only=False)]
 
 
 def _positions(keys, pks) -> "np.ndarray":
@@ -184,21 +316,32 @@ def _source(results: dict, files: dict):
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    own = pa.array(results["source_file"], type=pa.string())
+    own = results["source_file"]
     imp, no_imp = _int_column(results["import"])
     ids, inverse = np.unique(imp, return_inverse=True)
-    logged = pa.array([files.get(int(k)) for k in ids], type=pa.string()).take(pa.array(inverse.astype(np.int64)))
+    logged = pa.array([files.get(int(k)) for k in ids], type=own.type).take(pa.array(inverse.astype(np.int64)))
     if no_imp is not None:
-        logged = pc.if_else(pa.array(no_imp), pa.nulls(len(imp), pa.string()), logged)
+        logged = pc.if_else(pa.array(no_imp), pa.nulls(len(imp), own.type), logged)
     return pc.coalesce(own, logged)
 
 
+def _fasted(values):
+    """The fasting flag (0/1/NULL in SQL) as a ``boolean`` array."""
+    import pandas as pd
+
+    import numpy as np
+
+    v, nulls = _int_column(values)
+    return pd.arrays.BooleanArray(v != 0, np.zeros(len(v), dtype=bool) if nulls is None else nulls)
+
+
 def canonical_from_tables(patients: dict, specimens: dict, results: dict, files: dict):
-    """The canonical frame from the store's tables read as columns ({column: tuple}; see
-    :mod:`.queries`): each result row joined to its specimen and patient, the source file taken
-    from the import log when the row names none; canonical dtypes, column order and row order
-    (:data:`CANONICAL_SORT`), as :func:`coerce_canonical` gives them. Text columns are taken
-    in Arrow and integers gathered with numpy: no Python object is made per row here."""
+    """The canonical frame from the store's tables read as columns (see :mod:`.queries`:
+    integers and texts as Arrow arrays, ``real`` columns as float64): each result row joined to
+    its specimen and patient, the source file taken from the import log when the row names none;
+    canonical dtypes, column order and row order (:data:`CANONICAL_SORT`), as
+    :func:`coerce_canonical` gives them. Texts are taken in Arrow and integers gathered with
+    numpy: no Python object is made per result row here."""
     import numpy as np
     import pandas as pd
 
@@ -207,7 +350,7 @@ def canonical_from_tables(patients: dict, specimens: dict, results: dict, files:
     p_of_s = _positions(specimens["patient"], patients["pk"]) if len(specimens["pk"]) else np.zeros(0, np.intp)
     p_row = p_of_s[s_row]
     s_time = _times(specimens["collected_at"])
-    replicate = _ints(results["replicate"]) if n else np.zeros(0, dtype=np.int64)
+    replicate = _ints(results["replicate"])
     order = np.lexsort((
         replicate, _rank(results["analyte"]),
         _rank(specimens["id"])[s_row], s_time.astype("int64")[s_row], _rank(patients["id"])[p_row],
@@ -215,19 +358,17 @@ def canonical_from_tables(patients: dict, specimens: dict, results: dict, files:
     s_row, p_row = s_row[order], p_row[order]
     row, no_row = _int_column(results["source_row"])
     src_row = pd.arrays.IntegerArray(row[order], np.zeros(n, dtype=bool) if no_row is None else no_row[order])
-    fasted = pd.array([None if v is None else bool(v) for v in specimens["fasted"]], dtype="boolean")
     cols = {
         "patient": _text(patients["id"], p_row), "species": _text(patients["species"], p_row),
         "breed": _text(patients["breed"], p_row), "sex": _text(patients["sex"], p_row),
         "birth_date": _times(patients["birth_date"])[p_row], "specimen": _text(specimens["id"], s_row),
         "collected_at": s_time[s_row], "analyte": _text(results["analyte"], order),
-        "value": np.asarray(results["value"], dtype="float64")[order] if n else np.zeros(0),
-        "unit": _text(results["unit"], order),
+        "value": results["value"][order], "unit": _text(results["unit"], order),
         "reported_value": _text(results["reported_value"], order),
         "reported_unit": _text(results["reported_unit"], order), "censor": _text(results["censor"], order),
         "method": _text(results["method"], order),
-        "replicate": pd.array(replicate[order], dtype="Int64"), "fasted": fasted.take(s_row),
-        **{k: np.asarray(specimens[k], dtype="float64")[s_row] for k in ("haemolysis", "lipaemia", "icterus")},
+        "replicate": pd.array(replicate[order], dtype="Int64"), "fasted": _fasted(specimens["fasted"]).take(s_row),
+        **{k: specimens[k][s_row] for k in ("haemolysis", "lipaemia", "icterus")},
         "state": _text(specimens["state"], s_row), "source_file": _text(_source(results, files), order),
         "source_row": src_row,
     }

@@ -3,9 +3,13 @@ display table, the patient list, the import log and the log of replaced values. 
 never read here."""
 from __future__ import annotations
 
+import math
+import sqlite3
+
 from ..errors import StoreError
 from ..units import resolve_analyte
-from .frames import canonical_from_tables
+from .frames import (NotAggregated, aggregate_columns, aggregate_select, canonical_from_tables,
+                     columns_from_rows, concat_columns)
 
 __all__ = ["results", "history", "history_table", "patients", "imports", "replaced",
            "require_patient", "analyte_id"]
@@ -19,15 +23,22 @@ _SELECT = (
     "JOIN patients p ON p.pk = s.patient LEFT JOIN import_log l ON l.id = r.import")
 
 #: the canonical frame is read one table at a time (patients and specimens once each, not once
-#: per result), each as columns; the filters of :func:`_frame` by patient and analyte
+#: per result): every column by kind (:func:`.frames.aggregate_select`), and the filter by patient
+#: of :func:`_frame`
 _TABLES = {
-    "patients": ("SELECT pk, id, species, breed, sex, birth_date FROM patients", "pk = ?"),
-    "specimens": ("SELECT pk, patient, id, collected_at, fasted, haemolysis, lipaemia, icterus, state "
-                  "FROM specimens", "patient = ?"),
-    "results": ("SELECT specimen, analyte, value, unit, reported_value, reported_unit, censor, method, "
-                "replicate, import, source_file, source_row FROM results",
+    "patients": ({"pk": "int", "id": "text", "species": "text", "breed": "text?", "sex": "text?",
+                  "birth_date": "text?"}, "pk = ?"),
+    "specimens": ({"pk": "int", "patient": "int", "id": "text", "collected_at": "text", "fasted": "int?",
+                   "haemolysis": "real", "lipaemia": "real", "icterus": "real", "state": "text"},
+                  "patient = ?"),
+    "results": ({"pk": "int", "specimen": "int", "analyte": "text", "value": "real", "unit": "text",
+                 "reported_value": "text", "reported_unit": "text", "censor": "text", "method": "text?",
+                 "replicate": "int", "import": "int?", "source_file": "text?", "source_row": "int?"},
                 "specimen IN (SELECT pk FROM specimens WHERE patient = ?)"),
 }
+#: rows of a whole table aggregated in one string per column (by primary-key range), so no
+#: string approaches SQLite's length limit; a filtered read is aggregated at once
+_CHUNK_PKS = 1 << 20
 
 
 def _records(cur):
@@ -37,26 +48,92 @@ def _records(cur):
     return pd.DataFrame.from_records(cur.fetchall(), columns=[d[0] for d in cur.description])
 
 
+def _names(kinds: dict) -> str:
+    return ", ".join(f'"{c}"' for c in kinds)
+
+
+def _reals(cur, k: int):
+    """The rows of ``k`` REAL columns of an executed cursor as an (n, k) float64 array, NaN for
+    NULL (one column is read without a list of rows)."""
+    import numpy as np
+
+    if k == 1:
+        return np.fromiter((math.nan if v is None else v for (v,) in cur), dtype=np.float64).reshape(-1, 1)
+    return np.array(cur.fetchall(), dtype=np.float64).reshape(-1, k)
+
+
+def _aggregated(conn, table: str, kinds: dict, where: list, args: tuple) -> dict:
+    """One table's columns read as one string per column (:func:`.frames.aggregate_select`),
+    the ``real`` columns as rows in primary-key order beside them; the aggregated columns are put
+    in primary-key order too (SQLite aggregates in the order it scans)."""
+    import numpy as np
+    import pyarrow as pa
+
+    reals = {c: k for c, k in kinds.items() if k == "real"}
+    if where:  # a filtered read (one patient): aggregated at once
+        ranges = [(" WHERE " + " AND ".join(where), args)]
+    else:  # min and max apart: each is then one step down the primary key
+        lo, hi = conn.execute(f"SELECT (SELECT min(pk) FROM {table}), (SELECT max(pk) FROM {table})").fetchone()
+        ranges = [] if lo is None else [(" WHERE pk >= ? AND pk < ?", (a, min(a + _CHUNK_PKS, hi + 1)))
+                                        for a in range(lo, hi + 1, _CHUNK_PKS)]
+    parts = []
+    for cond, cargs in ranges:
+        agg = conn.execute(f"SELECT {aggregate_select(kinds)} FROM {table}{cond}", cargs).fetchone()
+
+        def null_pks(column, cond=cond, cargs=cargs):
+            got = conn.execute(f'SELECT group_concat(pk) FROM {table}{cond} AND "{column}" IS NULL',
+                               cargs).fetchone()[0]
+            return np.array(got.split(","), dtype=np.int64) if got else np.zeros(0, dtype=np.int64)
+
+        part = aggregate_columns(agg, kinds, null_pks)
+        pk = part["pk"].to_numpy()
+        if np.any(pk[1:] <= pk[:-1]):
+            at = pa.array(np.argsort(pk, kind="stable"))
+            part = {c: v.take(at) for c, v in part.items()}
+        if reals:
+            vals = _reals(conn.execute(f"SELECT {_names(reals)} FROM {table}{cond} ORDER BY pk", cargs), len(reals))
+            if len(vals) != len(pk):
+                raise NotAggregated(f"{table}: {len(vals)} rows beside {len(pk)}")
+            part.update({c: vals[:, j].copy() for j, c in enumerate(reals)})
+        parts.append(part)
+    return concat_columns(parts, kinds)
+
+
 def _columns(conn, table: str, patient_pk: int | None, extra: str = "", params: tuple = ()) -> dict:
-    """One table's rows (of one patient when ``patient_pk`` is given) as {column: tuple}."""
-    sql, by_patient = _TABLES[table]
+    """One table's rows (of one patient when ``patient_pk`` is given) as columns
+    (:func:`.frames.aggregate_columns`), in primary-key order; read row by row when the
+    aggregated read would not give them back exactly (:class:`.frames.NotAggregated`)."""
+    kinds, by_patient = _TABLES[table]
     where = ([by_patient] if patient_pk is not None else []) + ([extra] if extra else [])
     args = ((patient_pk,) if patient_pk is not None else ()) + params
-    cur = conn.execute(sql + (" WHERE " + " AND ".join(where) if where else ""), args)
-    names = [d[0] for d in cur.description]
-    rows = cur.fetchall()
-    cols = list(zip(*rows)) if rows else [()] * len(names)
-    return dict(zip(names, cols))
+    try:
+        return _aggregated(conn, table, kinds, where, args)
+    except NotAggregated:
+        pass
+    except sqlite3.DataError as exc:  # SQLITE_TOOBIG: a string longer than SQLite allows
+        if "too big" not in str(exc):
+            raise
+    cond = " WHERE " + " AND ".join(where) if where else ""
+    return columns_from_rows(conn.execute(f"SELECT {_names(kinds)} FROM {table}{cond} ORDER BY pk",
+                                          args).fetchall(), kinds)
 
 
 def _frame(conn, patient_pk: int | None = None, analyte: str | None = None):
     """The canonical frame of the store (one patient's when ``patient_pk`` is given, one
-    analyte's when ``analyte`` is), built from the three tables (:func:`.frames.canonical_from_tables`)."""
-    res = _columns(conn, "results", patient_pk, "analyte = ?" if analyte is not None else "",
-                   (analyte,) if analyte is not None else ())
-    files = dict(conn.execute("SELECT id, file FROM import_log").fetchall())
-    return canonical_from_tables(_columns(conn, "patients", patient_pk), _columns(conn, "specimens", patient_pk),
-                                 res, files)
+    analyte's when ``analyte`` is), built from the three tables (:func:`.frames.canonical_from_tables`),
+    all read in one snapshot (a read transaction unless the caller holds one)."""
+    own = not conn.in_transaction
+    if own:
+        conn.execute("BEGIN")
+    try:
+        res = _columns(conn, "results", patient_pk, "analyte = ?" if analyte is not None else "",
+                       (analyte,) if analyte is not None else ())
+        files = dict(conn.execute("SELECT id, file FROM import_log").fetchall())
+        pats, specs = _columns(conn, "patients", patient_pk), _columns(conn, "specimens", patient_pk)
+    finally:
+        if own:
+            conn.execute("COMMIT")
+    return canonical_from_tables(pats, specs, res, files)
 
 
 def require_patient(conn, path, patient) -> int:
