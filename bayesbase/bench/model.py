@@ -44,11 +44,13 @@ def _engine_cases(n, seed):
     )
 
 
-def bench_engine(n_cases=400_000, repeat=3, seed=0):
+def bench_engine(n_cases=400_000, repeat=3, seed=0, threads=(1, 2)):
     """Throughput of :func:`exact_assess` (warm: the compiled loops are loaded first and that
     one-off time is reported as ``kernel_load_s``): scores only (P(change), BF, percentile) and
     full output (plus set-point CrI and personal-interval quantiles); best of ``repeat``, with
-    the ratio to the issue's floor and the 1-minute load average (the machine may be shared)."""
+    the ratio to the issue's floor and the 1-minute load average (the machine may be shared).
+    ``scores_cases_per_s`` and ``full_cases_per_s`` are one thread; each further count in
+    ``threads`` (threads of the same process) adds ``..._cases_per_s_<n>threads`` keys."""
     from ..model import normal
 
     cases = _engine_cases(n_cases, seed)
@@ -56,10 +58,12 @@ def bench_engine(n_cases=400_000, repeat=3, seed=0):
     exact_assess(cases.subset(slice(0, min(n_cases, 5_000))))
     load_s = time.perf_counter() - t0
     res = {"cases": int(n_cases), "compiled_loops": normal.have_numba(), "kernel_load_s": round(load_s, 3)}
-    for label, intervals, floor in (("scores", False, FLOOR_SCORES), ("full", True, FLOOR_FULL)):
-        dt = _best(lambda: exact_assess(cases, intervals=intervals), repeat)
-        res[f"{label}_cases_per_s"] = round(n_cases / dt)
-        res[f"{label}_ratio_to_floor"] = round(n_cases / dt / floor, 3)
+    for nt in threads:
+        suffix = "" if nt == 1 else f"_{nt}threads"
+        for label, intervals, floor in (("scores", False, FLOOR_SCORES), ("full", True, FLOOR_FULL)):
+            dt = _best(lambda: exact_assess(cases, intervals=intervals, threads=nt), repeat)
+            res[f"{label}_cases_per_s{suffix}"] = round(n_cases / dt)
+            res[f"{label}_ratio_to_floor{suffix}"] = round(n_cases / dt / floor, 3)
     res["load_average_1min"] = _load()
     return res
 

@@ -1,6 +1,11 @@
 """Compiled (numba) loops behind :mod:`bayesbase.model.normal`; imported on first use only, so
 importing the model stays light. Compiled once and cached on disk (numba ``cache=True``).
 
+The exact engine's one-pass kernel (:func:`engine_cases_k`) scores one case at a time with
+every per-node quantity in a small scratch array; its exp and log are branch-free polynomial
+loops (:func:`vexp`, :func:`vlog`, accurate to a few units in the last place) that the compiler
+vectorises, where a library call per element would not be.
+
 Sums over mixture components may be reordered so the CPU can vectorise them
 (``fastmath={"reassoc", "contract"}``): rounding-level differences only, as with numpy's own
 pairwise sums; no other fast-math assumption is made (NaN and inf keep their meaning).
@@ -145,52 +150,8 @@ def eval_k(z, e, w, inv_s, q, out):
         out[i, 2] = t
 
 
-@_jit
-def score_prep_k(m, nv, yy, tau2, t, z0, zi):
-    """Exponents of the exact engine's scores per (case, node): t[0] = -r^2 / (2 V0),
-    t[1] = -r^2 / (2 V1), t[2] = -zi^2 / 2 with r = y* - m, V1 = V0 + tau^2, z0 = r / sqrt(V0)
-    and zi = (tau^2 / V1) r / sqrt(tau^2 V0 / V1) (the H1 posterior of the change over its SD)."""
-    n, k = m.shape
-    for i in range(n):
-        y = yy[i]
-        ta = tau2[i]
-        for j in range(k):
-            r = y - m[i, j]
-            v0 = nv[i, j]
-            v1 = v0 + ta
-            r2 = r * r
-            t[0, i, j] = -0.5 * r2 / v0
-            t[1, i, j] = -0.5 * r2 / v1
-            zz = r / np.sqrt(v0)
-            z0[i, j] = zz
-            zz = ta / v1 * r / np.sqrt(ta * v0 / v1)
-            zi[i, j] = zz
-            t[2, i, j] = -0.5 * zz * zz
 
 
-@_jit_sum
-def score_sum_k(w, nv, tau2, e, z0, zi, out):
-    """Per case: out[:, 0] = sum w e0 / sqrt(V0), out[:, 1] = sum w e1 / sqrt(V1) (the two
-    predictive densities times sqrt(2 pi)), out[:, 2] = sum w Phi(z0) (the percentile),
-    out[:, 3] = sum w e1 / sqrt(V1) Phi(zi) (P(increase) times out[:, 1])."""
-    n, k = w.shape
-    for i in range(n):
-        a = 0.0
-        b = 0.0
-        c = 0.0
-        d = 0.0
-        ta = tau2[i]
-        for j in range(k):
-            v0 = nv[i, j]
-            u1 = w[i, j] * e[1, i, j] / np.sqrt(v0 + ta)
-            a += w[i, j] * e[0, i, j] / np.sqrt(v0)
-            b += u1
-            c += w[i, j] * phi(z0[i, j], e[0, i, j])
-            d += u1 * phi(zi[i, j], e[2, i, j])
-        out[i, 0] = a
-        out[i, 1] = b
-        out[i, 2] = c
-        out[i, 3] = d
 
 
 @_jit_sum
@@ -372,23 +333,530 @@ def trend_fit_k(si2, ev0, gs, sg2, sb2, pm, out, lg):
             lg[2, i, j] = sg2[i] * sb2[i] * det
 
 
-@_jit
-def engine_post_k(si2, ev0, nb, sy, syy, sg2, m_c, pv, lg):
-    """Exact engine, cases whose baselines share one variance per node (v0 = sI^2 + ev0):
-    set-point posterior mean (centred) and variance, and for the log marginal likelihood
-    -0.5 (n ln v0 + ln(sG^2 prec) + (syy - m sy) / v0) the arguments lg[0] = v0,
-    lg[1] = sG^2 prec and, in lg[2], the quadratic part (syy - m sy) / v0."""
-    n, k = si2.shape
+
+
+# ------------------------------------------------------------------ exact engine, one pass per case
+_LOG2E = 1.4426950408889634
+_LN2_HI = 6.93147180369123816490e-01  # ln 2 split in two (fdlibm's e_exp.c constants)
+_LN2_LO = 1.90821492927058770002e-10
+_SQRT2 = 1.4142135623730951
+#: rows of the fused kernel's output, in the order of :data:`bayesbase.model.engine.OUTPUT_KEYS`
+(_O_NB, _O_TM, _O_TL, _O_TU, _O_CVI, _O_PL, _O_PU, _O_PCT, _O_LBF, _O_BF, _O_PCH, _O_PINC,
+ _O_PEX) = range(13)
+_CACHE = 64  # slots of the per-call table of node CVIs keyed by (CVI, uncertainty)
+# rows of the per-call scratch array (one value per quadrature node)
+(_S_M, _S_PV, _S_LW, _S_W, _S_NV, _S_A, _S_B, _S_A2, _S_B2, _S_T, _S_WC, _S_MC, _S_VC, _S_T0,
+ _S_T1, _S_T2, _S_E0, _S_E1, _S_E2, _S_EA, _S_EB, _S_EA2, _S_EB2, _S_ISD, _S_E, _S_TMP,
+ _S_N_SCRATCH) = range(27)
+# no reference counting in these loops (they take views of the caller's scratch per case and
+# never allocate): the scratch arrays come from the caller
+_jit_vec = numba.njit(cache=True, error_model="numpy", nogil=True, fastmath={"contract"}, _nrt=False)
+_jit_e = numba.njit(cache=True, error_model="numpy", nogil=True, _nrt=False)
+_jit_e_sum = numba.njit(cache=True, error_model="numpy", nogil=True, _nrt=False,
+                        fastmath={"reassoc", "contract"})
+
+
+@_jit_vec
+def vexp(x, out, n, tmp):
+    """exp(x[:n]) into out[:n] (``tmp``: scratch of n floats; none of the three may overlap) in
+    loops the compiler vectorises (no library call): x = k ln 2 + r, |r| <= ln2 / 2, exp(r) by
+    its Taylor polynomial to r^13 (remainder below 1e-17 relative), 2^k added in the exponent
+    bits. Relative error below 3e-16 (checked against numpy.exp in the tests); arguments below
+    -708 give 0 (the callers read anything below 1e-250 as an underflow)."""
     for i in range(n):
-        isg = 1.0 / sg2[i]
-        for j in range(k):
-            v0 = si2[i, j] + ev0[i]
-            inv0 = 1.0 / v0
-            prec = isg + nb[i] * inv0
-            p = 1.0 / prec
-            m = sy[i] * inv0 * p
-            m_c[i, j] = m
-            pv[i, j] = p
-            lg[0, i, j] = v0
-            lg[1, i, j] = sg2[i] * prec
-            lg[2, i, j] = (syy[i] - m * sy[i]) * inv0
+        xx = min(max(x[i], -708.0), 709.0)
+        kf = np.floor(xx * _LOG2E + 0.5)
+        r = (xx - kf * _LN2_HI) - kf * _LN2_LO
+        p = 1.0 / 6227020800
+        p = p * r + 1.0 / 479001600
+        p = p * r + 1.0 / 39916800
+        p = p * r + 1.0 / 3628800
+        p = p * r + 1.0 / 362880
+        p = p * r + 1.0 / 40320
+        p = p * r + 1.0 / 5040
+        p = p * r + 1.0 / 720
+        p = p * r + 1.0 / 120
+        p = p * r + 1.0 / 24
+        p = p * r + 1.0 / 6
+        p = p * r + 0.5
+        p = p * r + 1.0
+        p = p * r + 1.0
+        out[i] = p
+        tmp[i] = kf if x[i] >= -708.0 else -4096.0
+    bits = out.view(np.int64)
+    for i in range(n):
+        kf = tmp[i]
+        bits[i] = bits[i] + (np.int64(kf) << 52) if kf > -2048.0 else 0
+
+
+@_jit_vec
+def vlog(x, out, n, tmp):
+    """ln x[:n] into out[:n] (x positive; ``tmp``: scratch of n floats; none of the three may
+    overlap) in loops the compiler vectorises: x = 2^e m with m in [sqrt(1/2), sqrt(2)),
+    ln m = 2 atanh(s), s = (m - 1) / (m + 1), by its series to s^23 (|s| < 0.172: remainder below
+    1e-17); x outside the normal range takes the library log."""
+    xb = x.view(np.int64)
+    ob = out.view(np.int64)
+    for i in range(n):
+        b = xb[i]
+        ob[i] = (b & 0x000FFFFFFFFFFFFF) | 0x3FF0000000000000
+        tmp[i] = float((b >> 52) - 1023)
+    for i in range(n):
+        mm = out[i]
+        e = tmp[i]
+        big = mm > _SQRT2
+        mm = 0.5 * mm if big else mm
+        e = e + 1.0 if big else e
+        s = (mm - 1.0) / (mm + 1.0)
+        s2 = s * s
+        lm = 1.0 / 23
+        lm = lm * s2 + 1.0 / 21
+        lm = lm * s2 + 1.0 / 19
+        lm = lm * s2 + 1.0 / 17
+        lm = lm * s2 + 1.0 / 15
+        lm = lm * s2 + 1.0 / 13
+        lm = lm * s2 + 1.0 / 11
+        lm = lm * s2 + 1.0 / 9
+        lm = lm * s2 + 1.0 / 7
+        lm = lm * s2 + 1.0 / 5
+        lm = lm * s2 + 1.0 / 3
+        lm = lm * s2 + 1.0
+        out[i] = e * _LN2_HI + (2.0 * s * lm + e * _LN2_LO)
+    for i in range(n):
+        if not (x[i] >= 2.3e-308 and x[i] < 1.7e308):
+            out[i] = np.log(x[i])
+
+
+@_jit_e
+def _cvi_slot(cvi, s, xn, key, ck, si2):
+    """Row of the (CVI, uncertainty) table holding CVI_k = CVI exp(s x_k) and sI^2 = ln(1 + CVI_k^2)
+    for this pair (filled on first use; a slot collision only recomputes)."""
+    h = cvi * 7919.0 + s * 104729.0
+    slot = int(h * 64.0 - 64.0 * np.floor(h)) % _CACHE if np.isfinite(h) else 0
+    if not (key[slot, 0] == cvi and key[slot, 1] == s):
+        for k in range(xn.size):
+            c = cvi * np.exp(s * xn[k])
+            ck[slot, k] = c
+            si2[slot, k] = np.log1p(c * c)
+        key[slot, 0] = cvi
+        key[slot, 1] = s
+    return slot
+
+
+@_jit_e
+def _baseline_sums(i, pm, sa, by, br, bev):
+    """Count, centred sum and sum of squares of case i's baselines, their common variance
+    sA^2 / r + extra and whether every baseline has it."""
+    sa2 = sa[i] * sa[i]
+    nb = 0
+    sy = 0.0
+    syy = 0.0
+    ev0 = 0.0
+    uniform = True
+    for j in range(by.shape[1]):
+        if br[i, j] > 0 and by[i, j] == by[i, j]:
+            ev = sa2 / br[i, j] + bev[i, j]
+            if nb == 0:
+                ev0 = ev
+            elif ev != ev0:
+                uniform = False
+            yc = by[i, j] - pm[i]
+            sy += yc
+            syy += yc * yc
+            nb += 1
+    return nb, sy, syy, ev0, uniform
+
+
+@_jit_e_sum
+def _case_posterior(i, pm, sg, sa, by, br, bev, si2, lwn, sc):
+    """Per node of case i: set-point posterior mean sc[_S_M] and variance sc[_S_PV], and the
+    unnormalised log weight sc[_S_LW] = ln w_node + log marginal likelihood of the baselines,
+    -0.5 (sum ln v_j + ln(sG^2 prec) + sum yc_j^2 / v_j - m_c b), constants dropped (the
+    normal-normal algebra of the module docstring). Returns the number of baselines."""
+    kk = lwn.size
+    nb, sy, syy, ev0, uniform = _baseline_sums(i, pm, sa, by, br, bev)
+    sg2 = sg[i] * sg[i]
+    isg = 1.0 / sg2
+    m, pv, lw, a, b = sc[_S_M], sc[_S_PV], sc[_S_LW], sc[_S_A], sc[_S_B]
+    if uniform:
+        # loops of few output arrays, so the compiler vectorises them
+        for k in range(kk):
+            v0 = si2[k] + ev0
+            a[k] = v0
+            b[k] = sg2 * isg + sg2 * nb / v0
+        la, lb = sc[_S_A2], sc[_S_B2]
+        vlog(a, la, kk, sc[_S_TMP])
+        vlog(b, lb, kk, sc[_S_TMP])
+        for k in range(kk):
+            inv0 = 1.0 / a[k]
+            p = 1.0 / (isg + nb * inv0)
+            mc = sy * inv0 * p
+            lw[k] = lwn[k] - 0.5 * (nb * la[k] + lb[k] + (syy - mc * sy) * inv0)
+        for k in range(kk):
+            inv0 = 1.0 / a[k]
+            p = 1.0 / (isg + nb * inv0)
+            m[k] = sy * inv0 * p + pm[i]
+            pv[k] = p
+        return nb
+    sa2 = sa[i] * sa[i]
+    for k in range(kk):
+        prec = isg
+        bb = 0.0
+        qq = 0.0
+        lg = 0.0
+        for j in range(by.shape[1]):
+            if br[i, j] > 0 and by[i, j] == by[i, j]:
+                v = si2[k] + sa2 / br[i, j] + bev[i, j]
+                yc = by[i, j] - pm[i]
+                prec += 1.0 / v
+                bb += yc / v
+                qq += yc * yc / v
+                lg += np.log(v)
+        p = 1.0 / prec
+        mc = bb * p
+        m[k] = mc + pm[i]
+        pv[k] = p
+        lw[k] = lwn[k] - 0.5 * (lg + np.log(sg2 * prec) + qq - mc * bb)
+    return nb
+
+
+@_jit_e_sum
+def _normalise(sc, kk):
+    """sc[_S_W] = exp(sc[_S_LW]) normalised, sc[_S_LW] its logarithm; returns the largest weight."""
+    lw, w, t = sc[_S_LW], sc[_S_W], sc[_S_T]
+    mx = -np.inf
+    for k in range(kk):
+        mx = max(mx, lw[k])
+    for k in range(kk):
+        t[k] = lw[k] - mx
+    vexp(t, w, kk, sc[_S_TMP])
+    tot = 0.0
+    for k in range(kk):
+        tot += w[k]
+    lt = np.log(tot)
+    wmax = 0.0
+    for k in range(kk):
+        w[k] /= tot
+        lw[k] -= mx + lt
+        wmax = max(wmax, w[k])
+    return wmax
+
+
+@_jit_e_sum
+def _score_terms(y, tau2, delta, sc, n, acc):
+    """Sums over the n compacted nodes (weights sc[_S_WC], means sc[_S_MC], H0 predictive variances
+    V0 sc[_S_VC]) into acc[0:5]: sum w e0/sqrt(V0), sum w e1/sqrt(V1) (the two predictive densities
+    times sqrt(2 pi)), sum w Phi(z0) (the percentile), sum w e1/sqrt(V1) Phi(zi) and, for a finite
+    delta, sum w e1/sqrt(V1) P(|D| > delta | node); V1 = V0 + tau^2, zi the H1 posterior mean of
+    the change over its SD (tau^2 r / V1 over sqrt(tau^2 V0 / V1))."""
+    wc, mc, vc = sc[_S_WC], sc[_S_MC], sc[_S_VC]
+    t0, t1, t2, e0, e1, e2 = sc[_S_T0], sc[_S_T1], sc[_S_T2], sc[_S_E0], sc[_S_E1], sc[_S_E2]
+    tmp = sc[_S_TMP]
+    tau = np.sqrt(tau2)
+    # few output arrays per loop (the compiler then vectorises); the last loop only reads
+    for j in range(n):
+        res = y - mc[j]
+        r2 = res * res
+        t0[j] = -0.5 * r2 / vc[j]
+        t1[j] = -0.5 * r2 / (vc[j] + tau2)
+    for j in range(n):
+        t2[j] = t0[j] - t1[j]
+    vexp(t0, e0, n, tmp)
+    vexp(t1, e1, n, tmp)
+    vexp(t2, e2, n, tmp)
+    a = 0.0
+    b = 0.0
+    c = 0.0
+    d = 0.0
+    for j in range(n):
+        res = y - mc[j]
+        v0 = vc[j]
+        s0 = np.sqrt(v0)
+        s1 = np.sqrt(v0 + tau2)
+        u1 = wc[j] * e1[j] / s1
+        a += wc[j] * e0[j] / s0
+        b += u1
+        c += wc[j] * phi(res / s0, e0[j])
+        d += u1 * phi(res * tau / (s0 * s1), e2[j])
+    acc[0] = a
+    acc[1] = b
+    acc[2] = c
+    acc[3] = d
+    acc[4] = _tail_terms(y, tau2, delta, sc, n) if np.isfinite(delta) else 0.0
+
+
+@_jit_e_sum
+def _tail_terms(y, tau2, delta, sc, n):
+    """sum w e1 / sqrt(V1) P(|D| > delta | node) over the compacted nodes (e1 in sc[_S_E1])."""
+    wc, mc, vc, e1 = sc[_S_WC], sc[_S_MC], sc[_S_VC], sc[_S_E1]
+    ea, eb, ta, tb = sc[_S_EA], sc[_S_EB], sc[_S_EA2], sc[_S_EB2]
+    for j in range(n):
+        v1 = vc[j] + tau2
+        dm = tau2 / v1 * (y - mc[j])
+        dsd = np.sqrt(tau2 * vc[j] / v1)
+        za = (dm - delta) / dsd
+        zb = (-delta - dm) / dsd
+        ta[j] = -0.5 * za * za
+        tb[j] = -0.5 * zb * zb
+    vexp(ta, ea, n, sc[_S_TMP])
+    vexp(tb, eb, n, sc[_S_TMP])
+    t = 0.0
+    for j in range(n):
+        v1 = vc[j] + tau2
+        dm = tau2 / v1 * (y - mc[j])
+        dsd = np.sqrt(tau2 * vc[j] / v1)
+        u = wc[j] * e1[j] / np.sqrt(v1)
+        t += u * (phi((dm - delta) / dsd, ea[j]) + phi((-delta - dm) / dsd, eb[j]))
+    return t
+
+
+@_jit_e
+def _score_logs(y, tau2, delta, lw, m, nv, l0, l1, acc):
+    """The log-sum-exp form of :func:`_score_terms` over every node for a case whose densities
+    underflow (an extreme new value): acc[0:2] = log densities, acc[3], acc[4] = P(increase) and
+    P(|D| > delta) given a change (acc[2] is left as it is)."""
+    kk = lw.size
+    mx0 = -np.inf
+    mx1 = -np.inf
+    for k in range(kk):
+        res = y - m[k]
+        v1 = nv[k] + tau2
+        l0[k] = lw[k] - 0.5 * (np.log(nv[k]) + res * res / nv[k])
+        l1[k] = lw[k] - 0.5 * (np.log(v1) + res * res / v1)
+        mx0 = max(mx0, l0[k])
+        mx1 = max(mx1, l1[k])
+    s0 = 0.0
+    s1 = 0.0
+    for k in range(kk):
+        s0 += np.exp(l0[k] - mx0)
+        s1 += np.exp(l1[k] - mx1)
+    lp1 = np.log(s1) + mx1
+    acc[0] = np.log(s0) + mx0
+    acc[1] = lp1
+    pinc = 0.0
+    tail = 0.0
+    for k in range(kk):
+        res = y - m[k]
+        v1 = nv[k] + tau2
+        w1 = np.exp(l1[k] - lp1)
+        dm = tau2 / v1 * res
+        dsd = np.sqrt(tau2 * nv[k] / v1)
+        z = dm / dsd
+        pinc += w1 * phi(z, np.exp(-0.5 * z * z))
+        if np.isfinite(delta):
+            za = (dm - delta) / dsd
+            zb = (-delta - dm) / dsd
+            tail += w1 * (phi(za, np.exp(-0.5 * za * za)) + phi(zb, np.exp(-0.5 * zb * zb)))
+    acc[3] = pinc
+    acc[4] = tail
+
+
+@_jit_e
+def _compact(sc, kk, thr, var_row):
+    """Copy the nodes whose weight is at least ``thr`` into sc[_S_WC], sc[_S_MC], sc[_S_VC] (the
+    variances of row ``var_row``); returns their number, the weight left out and the smallest
+    variance left out."""
+    w, m, v = sc[_S_W], sc[_S_M], sc[var_row]
+    wc, mc, vc = sc[_S_WC], sc[_S_MC], sc[_S_VC]
+    n = 0
+    wp = 0.0
+    vmin = np.inf
+    for k in range(kk):
+        if w[k] >= thr:
+            wc[n] = w[k]
+            mc[n] = m[k]
+            vc[n] = v[k]
+            n += 1
+        else:
+            wp += w[k]
+            vmin = min(vmin, v[k])
+    return n, wp, vmin
+
+
+@_jit_e
+def _scores_case(i, y, tau2, delta, pchg, sc, kk, wmax, acc, out):
+    """P(change), Bayes factor, percentile, P(increase), P(|D| > delta) of case i. Nodes below
+    1e-13 of the largest weight are left out unless their largest possible share of either
+    predictive density exceeds 1e-12 (an extreme new value can revive a node)."""
+    n, wp, vmin = _compact(sc, kk, 1e-13 * wmax, _S_NV)
+    _score_terms(y, tau2, delta, sc, n, acc)
+    if n < kk and not (wp <= 1e-12 * acc[0] * np.sqrt(vmin) and
+                       wp <= 1e-12 * acc[1] * np.sqrt(vmin + tau2)):
+        n, wp, vmin = _compact(sc, kk, 0.0, _S_NV)
+        _score_terms(y, tau2, delta, sc, n, acc)
+    pct = acc[2]
+    if acc[0] > 1e-250 and acc[1] > 1e-250:
+        lbf = np.log(acc[1]) - np.log(acc[0])
+        pinc = acc[3] / acc[1]
+        ptail = acc[4] / acc[1]
+    else:
+        _score_logs(y, tau2, delta, sc[_S_LW], sc[_S_M], sc[_S_NV], sc[_S_T0], sc[_S_T1], acc)
+        lbf = acc[1] - acc[0]
+        pinc = acc[3]
+        ptail = acc[4]
+    logit = np.log(pchg) - np.log1p(-pchg) + lbf
+    pc = 1.0 / (1.0 + np.exp(-logit)) if logit >= 0 else np.exp(logit) / (1.0 + np.exp(logit))
+    out[_O_PCT, i] = pct
+    out[_O_LBF, i] = lbf
+    out[_O_BF, i] = np.exp(lbf)
+    out[_O_PCH, i] = pc
+    out[_O_PINC, i] = pinc
+    out[_O_PEX, i] = pc * ptail if np.isfinite(delta) else np.nan
+
+
+@_jit_e_sum
+def _quantile(q, zq, sc, n, mom, tol, max_iter):
+    """Quantile q (standard normal deviate zq) of the mixture sum w N(m, s^2) over the n
+    compacted nodes (sc[_S_WC], sc[_S_MC], 1/s in sc[_S_ISD]): Cornish-Fisher start from the
+    moments mom = (mean, var, m3, m4, lo, hi), fourth-order steps (:func:`step4`) inside the
+    bisection bracket [lo, hi]. Stops when the Newton step t is at most ``tol``, or when
+    L |t| <= 1e-3 for the scale L = (sum u_k ((|z_k| + 2) / s_k)^6 / sum u_k)^(1/6),
+    u_k = w_k phi(z_k) / s_k: the j-th derivative ratio F^(j+1) / F' of the mixture CDF is a
+    u-weighted mean of He_j(z_k) / s_k^j and |He_j(z)| <= (|z| + 2)^j, so (power means growing
+    with the order) |F^(j+1) / F'| <= L^j for j <= 6 and the series step's remainder is far
+    below 1e-9 |t|; that last step is applied."""
+    c0 = 0.39894228040143267794  # 1 / sqrt(2 pi)
+    wc, mc, isd, t2, e = sc[_S_WC], sc[_S_MC], sc[_S_ISD], sc[_S_T], sc[_S_E]
+    a, b, c, ee, lo, hi = mom[0], mom[1], mom[2], mom[3], mom[4], mom[5]
+    sd = np.sqrt(max(b, 1e-300))
+    z2 = zq * zq
+    g1 = c / (b * sd)
+    g2 = ee / (b * b) - 3.0
+    x = a + sd * (zq + g1 / 6.0 * (z2 - 1.0) + g2 / 24.0 * zq * (z2 - 3.0)
+                  - g1 * g1 / 36.0 * zq * (2.0 * z2 - 5.0))
+    if not (x > lo and x < hi):
+        x = a + sd * zq
+    for _ in range(max_iter):
+        for j in range(n):
+            zz = (x - mc[j]) * isd[j]
+            t2[j] = -0.5 * zz * zz
+        vexp(t2, e, n, sc[_S_TMP])
+        f = 0.0
+        d1 = 0.0
+        d2 = 0.0
+        d3 = 0.0
+        d4 = 0.0
+        l6 = 0.0
+        for j in range(n):
+            si = isd[j]
+            zz = (x - mc[j]) * si
+            f += wc[j] * phi(zz, e[j])
+            u = wc[j] * e[j] * si
+            d1 += u
+            h2 = (abs(zz) + 2.0) * si
+            h2 *= h2
+            l6 += u * h2 * h2 * h2
+            u *= si
+            d2 -= u * zz
+            u *= si
+            d3 += u * (zz * zz - 1.0)
+            u *= si
+            d4 -= u * zz * (zz * zz - 3.0)
+        g = f - q
+        h, t = step4(g, c0 * d1, c0 * d2, c0 * d3, c0 * d4)
+        if g < 0:
+            lo = max(lo, x)
+        if g > 0:
+            hi = min(hi, x)
+        xn = x + h
+        lsc = (l6 / d1) ** (1.0 / 6.0) if d1 > 0 else np.inf
+        done = abs(t) <= tol or (lsc * abs(t) <= 1e-3 and h != t)
+        if not done and not (xn > lo and xn < hi):
+            xn = 0.5 * (lo + hi)
+        x = xn
+        if done:
+            break
+    return x
+
+
+@_jit_e_sum
+def _moments(sc, n, mom):
+    """Mean, variance, third and fourth central moments of the mixture over the n compacted
+    nodes and the bracket min(m - 12 s), max(m + 12 s) (mom[0:6]; s = 1 / sc[_S_ISD])."""
+    wc, mc, isd = sc[_S_WC], sc[_S_MC], sc[_S_ISD]
+    a = 0.0
+    for j in range(n):
+        a += wc[j] * mc[j]
+    b = 0.0
+    c = 0.0
+    e = 0.0
+    mn = np.inf
+    mx = -np.inf
+    for j in range(n):
+        s = 1.0 / isd[j]
+        d = mc[j] - a
+        d2 = d * d
+        s2 = s * s
+        b += wc[j] * (s2 + d2)
+        c += wc[j] * d * (3.0 * s2 + d2)
+        e += wc[j] * (d2 * d2 + 6.0 * d2 * s2 + 3.0 * s2 * s2)
+        mn = min(mn, mc[j] - 12.0 * s)
+        mx = max(mx, mc[j] + 12.0 * s)
+    mom[0] = a
+    mom[1] = b
+    mom[2] = c
+    mom[3] = e
+    mom[4] = mn
+    mom[5] = mx
+
+
+@_jit_e
+def _intervals_case(i, levels, zl, sc, kk, wmax, prune, tol, max_iter, mom, out):
+    """Set-point credible limits and personal-interval limits of case i from the nodes whose
+    weight is at least ``prune`` times the largest (weights renormalised over them)."""
+    for part in range(2):
+        n, wp, _ = _compact(sc, kk, prune * wmax, _S_PV if part == 0 else _S_NV)
+        wc, vc, isd = sc[_S_WC], sc[_S_VC], sc[_S_ISD]
+        tot = 1.0 - wp
+        for j in range(n):
+            wc[j] /= tot
+            isd[j] = 1.0 / np.sqrt(vc[j])
+        _moments(sc, n, mom)
+        for side in range(2):
+            lv = 2 * part + side
+            x = _quantile(levels[lv], zl[lv], sc, n, mom, tol, max_iter)
+            out[(_O_TL, _O_TU, _O_PL, _O_PU)[lv], i] = x
+
+
+@_jit_e
+def engine_cases_k(start, stop, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, ny, nr, nev, tau,
+                   delta, pchg, levels, zl, intervals, prune, tol, max_iter, out, key, ck, si2, sc,
+                   acc):
+    """Every output of the exact engine for cases start..stop-1, one case at a time (the rows
+    of ``out`` follow ``OUTPUT_KEYS``): node posteriors and weights, the scores, and with
+    ``intervals`` the four mixture quantiles (levels, with their normal deviates zl). Scratch
+    (one set per thread, see :func:`engine_scratch`): key, ck, si2 the (CVI, uncertainty)
+    table, sc (_S_N_SCRATCH, nodes), acc (11,)."""
+    kk = xn.size
+    mom = acc[5:11]
+    for i in range(start, stop):
+        slot = _cvi_slot(cvi[i], cs[i], xn, key, ck, si2)
+        nb = _case_posterior(i, pm, sg, sa, by, br, bev, si2[slot], lwn, sc)
+        wmax = _normalise(sc, kk)
+        w, m, pv, nv = sc[_S_W], sc[_S_M], sc[_S_PV], sc[_S_NV]
+        tm = 0.0
+        cm = 0.0
+        ev_new = sa[i] * sa[i] / max(nr[i], 1.0) + nev[i]
+        for k in range(kk):
+            tm += w[k] * m[k]
+            cm += w[k] * ck[slot, k]
+            nv[k] = pv[k] + si2[slot, k] + ev_new
+        out[_O_NB, i] = nb
+        out[_O_TM, i] = tm
+        out[_O_CVI, i] = cm
+        if np.isfinite(ny[i]):
+            _scores_case(i, ny[i], tau[i] * tau[i], delta[i], pchg[i], sc, kk, wmax, acc, out)
+        else:
+            for o in (_O_PCT, _O_LBF, _O_BF, _O_PCH, _O_PINC, _O_PEX):
+                out[o, i] = np.nan
+        if intervals:
+            _intervals_case(i, levels, zl, sc, kk, wmax, prune, tol, max_iter, mom, out)
+        else:
+            for o in (_O_TL, _O_TU, _O_PL, _O_PU):
+                out[o, i] = np.nan
+
+
+def engine_scratch(nodes):
+    """Scratch arrays for one thread of :func:`engine_cases_k` (key, ck, si2, sc, acc)."""
+    return (np.full((_CACHE, 2), np.nan), np.empty((_CACHE, nodes)), np.empty((_CACHE, nodes)),
+            np.empty((_S_N_SCRATCH, nodes)), np.empty(11))

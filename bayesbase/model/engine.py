@@ -15,9 +15,13 @@ normal-normal empirical-Bayes algebra); the marginal likelihood of the baselines
 quadrature nodes, so every predictive quantity is a finite normal mixture. Mixture quantiles
 are found by safeguarded fourth-order iterations (bisection fallback; :mod:`.normal`).
 
-Cases are scored in blocks of about ``_BLOCK_ELEMS / nodes`` rows so every (case, node) array
-stays in the CPU cache; the usual case (baselines of equal variance) reduces to counts, sums and
-sums of squares, and the per-node CVI terms are computed once per distinct (CVI, uncertainty).
+Large jobs run one compiled pass per case (:func:`._jit.engine_cases_k`: node posteriors and
+weights, the scores, then the four quantiles, with the nodes of negligible weight left out per
+case), optionally over several threads of the process. Small jobs (and an install without
+numba) use numpy: cases in blocks of about ``_BLOCK_ELEMS / nodes`` rows so every (case, node)
+array stays in the CPU cache. On both paths the usual case (baselines of equal variance) reduces
+to counts, sums and sums of squares, and the per-node CVI terms are computed once per distinct
+(CVI, uncertainty).
 
 References
 ----------
@@ -209,17 +213,6 @@ def _node_cvi(cvi, s, x_nodes):
 def _uniform_terms(si2, ev0, yc, n_b, sg2):
     """Posterior mean (centred), variance and log marginal likelihood (up to a per-case
     constant) per node when every baseline of a case has the same variance ``ev0``."""
-    k = normal._kernels(si2.size)
-    if k:
-        m_c, pv = np.empty_like(si2), np.empty_like(si2)
-        lg = np.empty((3,) + si2.shape)
-        k.engine_post_k(si2, ev0, n_b, yc.sum(-1), np.einsum("ij,ij->i", yc, yc), sg2, m_c, pv, lg)
-        np.log(lg[:2], out=lg[:2])
-        lml = lg[0] * n_b[:, None]
-        lml += lg[1]
-        lml += lg[2]
-        lml *= -0.5
-        return m_c, pv, lml
     nb = n_b[:, None]
     sy = yc.sum(-1)[:, None]
     syy = np.einsum("ij,ij->i", yc, yc)[:, None]
@@ -291,10 +284,11 @@ def _node_posterior(f, x_nodes, log_w_nodes):
 
 
 def _prune(prune, w, logw, *arrays):
-    """Drop the nodes whose weight is below ``prune`` in every case of the block."""
+    """Drop the nodes whose weight is below ``prune`` times the case's largest weight in every
+    case of the block."""
     if not (prune > 0 and w.shape[1] > 1):
         return (w, logw) + arrays
-    keep = np.max(w, axis=0) > prune
+    keep = np.max(w / np.max(w, axis=1, keepdims=True), axis=0) >= prune
     if keep.all():
         return (w, logw) + arrays
     idx = np.nonzero(keep)[0]  # np.take keeps the arrays C-ordered (the compiled loops want it)
@@ -325,33 +319,8 @@ def _mix_log_density(w, logw, a2, var):
 
 
 def _score_sums(w, logw, m, new_var, yy, tau2):
-    """Per case: log predictive densities under H0 and H1 (up to -0.5 ln 2 pi), the percentile,
-    P(D > 0 | y*, H1), and for the tail probability the H1 node weights and the mean and SD of
-    D per node (None when the compiled loops did the sums)."""
-    k = normal._kernels(m.size)
-    if k:
-        n = m.shape[0]
-        t = np.empty((3,) + m.shape)
-        z0, zi = np.empty_like(m), np.empty_like(m)
-        k.score_prep_k(m, new_var, yy, tau2, t, z0, zi)
-        np.exp(t, out=t)
-        res = np.empty((n, 4))
-        k.score_sum_k(w, new_var, tau2, t, z0, zi, res)
-        ok = (res[:, 0] > 1e-250) & (res[:, 1] > 1e-250)
-        if ok.all():
-            with np.errstate(divide="ignore"):
-                lp = np.log(res[:, :2])
-            return lp[:, 0], lp[:, 1], res[:, 2], res[:, 3] / res[:, 1]
-        # an underflowing row (an extreme new value) takes the log-sum-exp path below
-        lp0, lp1, pct, p_inc = _score_sums_numpy(w, logw, m, new_var, yy, tau2)
-        lp = np.log(np.where(ok[:, None], res[:, :2], 1.0))
-        return (np.where(ok, lp[:, 0], lp0), np.where(ok, lp[:, 1], lp1),
-                np.where(ok, res[:, 2], pct), np.where(ok, res[:, 3] / np.where(ok, res[:, 1], 1.0), p_inc))
-    return _score_sums_numpy(w, logw, m, new_var, yy, tau2)
-
-
-def _score_sums_numpy(w, logw, m, new_var, yy, tau2):
-    """:func:`_score_sums` with numpy and scipy only."""
+    """Per case: log predictive densities under H0 and H1 (up to -0.5 ln 2 pi), the percentile
+    and P(D > 0 | y*, H1), with numpy and scipy."""
     tau2 = tau2[:, None]
     yy = yy[:, None]
     v1 = new_var + tau2
@@ -399,7 +368,8 @@ def _scores(f, w, logw, m, new_var, theta_mean, out):
     nan = np.nan
     out["percentile"] = np.where(has_y, pct, nan)
     out["log_bf10"] = np.where(has_y, log_bf, nan)
-    out["bf10"] = np.exp(out["log_bf10"])
+    with np.errstate(over="ignore"):  # an overwhelming change: BF = inf, P(change) = 1
+        out["bf10"] = np.exp(out["log_bf10"])
     out["p_change"] = np.where(has_y, p_change, nan)
     out["p_increase"] = np.where(has_y, p_inc, nan)
     out["p_exceed_delta"] = np.where(has_delta, p_change * p_tail, nan)
@@ -438,6 +408,32 @@ def _assess_block(f, x_nodes, log_w_nodes, coverage, ci_prob, intervals, prune):
     return out
 
 
+def _assess_compiled(f, x_nodes, log_w_nodes, coverage, ci_prob, intervals, prune, threads):
+    """:func:`exact_assess` by the compiled one-pass kernel, the cases split over ``threads``
+    threads (the kernel releases the GIL)."""
+    k = normal._kernels()
+    n = f["prior_mean"].shape[0]
+    a, b = 0.5 * (1.0 - ci_prob), 0.5 * (1.0 - coverage)
+    levels = np.array([a, 1.0 - a, b, 1.0 - b])
+    out = np.empty((len(OUTPUT_KEYS), n))
+    c = {key: np.ascontiguousarray(v, dtype=float) for key, v in f.items()}
+    args = (x_nodes, log_w_nodes, c["prior_mean"], c["sg"], c["cvi"], c["cvi_log_sd"], c["sa"],
+            c["base_y"], c["base_r"], c["base_extra_var"], c["new_y"], c["new_r"],
+            c["new_extra_var"], c["tau"], c["delta"], c["prior_change"], levels,
+            special.ndtri(levels), bool(intervals), float(prune), 1e-9, 60, out)
+    nt = max(1, min(int(threads), n // 2_000 or 1))
+    if nt == 1:
+        k.engine_cases_k(0, n, *args, *k.engine_scratch(x_nodes.size))
+    else:
+        from concurrent.futures import ThreadPoolExecutor
+
+        edges = np.linspace(0, n, nt + 1).astype(int)
+        with ThreadPoolExecutor(nt) as pool:
+            list(pool.map(lambda j: k.engine_cases_k(edges[j], edges[j + 1], *args,
+                                                     *k.engine_scratch(x_nodes.size)), range(nt)))
+    return dict(zip(OUTPUT_KEYS, out))
+
+
 def exact_assess(
     cases: CaseArrays,
     coverage: float = DEFAULT_COVERAGE,
@@ -446,7 +442,8 @@ def exact_assess(
     kind: str = "gh",
     chunk: int = 50_000,
     intervals: bool = True,
-    prune: float = 1e-10,
+    prune: float = 1e-13,
+    threads: int = 1,
 ) -> dict[str, np.ndarray]:
     """Score every case; returns a dict of (C,) arrays (log scale where a value is returned).
 
@@ -459,10 +456,16 @@ def exact_assess(
     ``intervals=False`` skips the four mixture quantiles (set point and personal interval
     limits, returned as NaN) for bulk scoring: the personal-interval decision is then read from
     ``percentile`` (outside the central interval <=> percentile < (1-coverage)/2 or > (1+coverage)/2).
-    Cases are scored in blocks of at most ``chunk`` rows (fewer when the nodes are many, so the
-    block stays in cache). ``prune``: the four quantiles leave out the quadrature nodes whose
-    posterior weight is below it in every case of the block (their total contribution is below
-    ``prune * nodes``); the scores always use every node.
+    Jobs of at least :data:`.normal.NUMBA_MIN_ELEMS` (case, node) elements (or any job once
+    the compiled loops are loaded) run one compiled pass per case (:func:`._jit.engine_cases_k`),
+    split over ``threads`` threads of this process (same numbers for any count); smaller jobs
+    use numpy in blocks of at most ``chunk`` rows (fewer when the nodes are many, so the block
+    stays in cache). ``prune``: the four quantiles leave out the quadrature nodes whose
+    posterior weight is below ``prune`` times the largest weight (of the case; on the numpy
+    path, in every case of the block), so their total share is below ``prune * nodes``. The
+    compiled scores leave out nodes below 1e-13 of the largest weight only while their largest
+    possible share of either predictive density is below 1e-12 (a node an extreme new result
+    revives is kept); the numpy scores use every node.
     """
     if not 0 < coverage < 1 or not 0 < ci_prob < 1:
         raise ValueError("coverage and ci_prob must lie in (0, 1)")
@@ -471,8 +474,10 @@ def exact_assess(
     with np.errstate(divide="ignore"):
         log_w_nodes = np.log(w_nodes)
     block = max(1, min(int(chunk), _BLOCK_ELEMS // x_nodes.size))
-    normal.prepare(n * x_nodes.size)
     fields = {k: getattr(cases, k) for k in _FIELDS}
+    if normal.prepare(n * x_nodes.size):
+        return _assess_compiled(fields, x_nodes, log_w_nodes, coverage, ci_prob, intervals, prune,
+                                threads)
     out = {k: np.empty(n) for k in OUTPUT_KEYS}
     for i in range(0, n, block):
         sl = slice(i, min(i + block, n))
