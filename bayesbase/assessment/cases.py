@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import math
 from collections import Counter
+from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -37,11 +38,89 @@ from ..model.engine import CaseArrays
 from .frame import years_of
 from .options import Options
 from .packs import RowPriors
-from .roles import CaseRows, Roles
+from .roles import CaseRows, Roles, texts_full
 
 __all__ = ["CaseSets", "Baselines", "AssessedResults", "MethodChange", "CaseBatch", "aggregate_baselines",
            "assessed_results", "method_changes", "pack_correction", "prior_scalars", "build_cases", "distinct",
-           "per_object", "row_cases", "codes_of"]
+           "per_object", "row_cases", "codes_of", "text_column", "series_text", "object_texts"]
+
+
+_ARROW_TEXT: list = []  # [(dtype, Arrow type)] pandas gives a list of texts, once known; [None] when not Arrow
+
+
+def _arrow_text():
+    """(dtype, Arrow type) of the column pandas infers from a list of texts when that is an
+    Arrow-backed string dtype (pandas 3 with pyarrow), else None: the text columns below are built
+    in Arrow only when the result is the very column pandas would infer from the values."""
+    if not _ARROW_TEXT:
+        dt = pd.Series(["a", None]).dtype
+        ok = isinstance(dt, pd.StringDtype) and dt.storage == "pyarrow"
+        _ARROW_TEXT.append((dt, pa_array(pd.array(["a"], dtype=dt)).type) if ok else None)
+    return _ARROW_TEXT[0]
+
+
+def pa_array(values):
+    """An Arrow array of a pandas array or Series (no copy for Arrow-backed ones)."""
+    import pyarrow as pa
+
+    return pa.array(values)
+
+
+def text_column(codes: np.ndarray, uniques) -> np.ndarray:
+    """``uniques[codes]`` (code -1: None) as the table column pandas infers from those values, built
+    once per distinct value: an Arrow string array when pandas makes text columns so and every
+    value is a text or None (at least one a text), else an object array."""
+    uniques = list(uniques) + [None]
+    codes = np.asarray(codes, dtype=np.int64)
+    codes = np.where(codes < 0, len(uniques) - 1, codes)
+    arrow = _arrow_text()
+    if arrow is not None and all(u is None or type(u) is str for u in uniques) and len(codes):
+        used = np.bincount(codes, minlength=len(uniques)) > 0
+        if any(u is not None for u, k in zip(uniques, used.tolist()) if k):
+            import pyarrow as pa
+
+            taken = pa.array(uniques, type=arrow[1]).take(pa.array(codes))
+            return pd.array(taken, dtype=arrow[0])
+    out = np.empty(len(uniques), dtype=object)
+    out[:] = uniques
+    return out[codes]
+
+
+def object_texts(values: np.ndarray):
+    """An object array of texts (None: missing) as the column pandas infers from it: converted in
+    Arrow when pandas makes text columns so, else (or when a value is not a text) as it is."""
+    arrow = _arrow_text()
+    if arrow is None or not len(values):
+        return values
+    import pyarrow as pa
+
+    try:
+        arr = pa.array(values, type=arrow[1])
+    except (pa.ArrowInvalid, pa.ArrowTypeError):
+        return values
+    if arr.null_count == len(arr):
+        return values
+    return pd.array(arr, dtype=arrow[0])
+
+
+def series_text(col: pd.Series, blank_missing: bool = False, fill: str | None = None):
+    """A text column held in a pandas string dtype as the table column pandas infers from its
+    values as a list (``blank_missing``: "" read as missing; ``fill``: missing read as ``fill``),
+    or None when that is not an Arrow string column (then the caller builds it from the list)."""
+    arrow = _arrow_text()
+    if arrow is None or not isinstance(col.dtype, pd.StringDtype):
+        return None
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    arr = pa_array(col.astype(arrow[0]).array)
+    if blank_missing:
+        arr = pc.if_else(pc.equal(arr, ""), pa.scalar(None, arr.type), arr)
+    if fill is not None:
+        arr = pc.fill_null(arr, pa.scalar(fill, arr.type))
+    if arr.null_count == len(arr):
+        return None
+    return pd.array(arr, dtype=arrow[0])
 
 
 def _sorted_unique(values: np.ndarray) -> np.ndarray:
@@ -118,21 +197,51 @@ def row_cases(rows: CaseRows, case_index: dict) -> np.ndarray:
     """The case of every row of the history (-1 for a row in no case)."""
     if rows.case is not None:
         return rows.case
-    return pd.Series(np.asarray(rows.key, dtype=object)).map(case_index).fillna(-1).to_numpy(dtype=np.int64)
+    index = case_index if isinstance(case_index, dict) else dict(case_index)
+    return pd.Series(np.asarray(rows.key, dtype=object)).map(index).fillna(-1).to_numpy(dtype=np.int64)
 
 
-def codes_of(hist: pd.DataFrame, column: str) -> tuple[np.ndarray, np.ndarray]:
-    """(code per row, distinct values as an object array) of a column (-1 where missing or absent)."""
+class _CaseIndex(Mapping):
+    """key -> case of the assessed keys; the dict is made only when a stage reads it (the
+    stages mostly need the number of cases, with the case of every row already known)."""
+
+    def __init__(self, keys):
+        self._keys, self._dict = keys, None
+
+    def _get(self) -> dict:
+        if self._dict is None:
+            self._dict = {k: i for i, k in enumerate(self._keys)}
+        return self._dict
+
+    def __len__(self) -> int:
+        return len(self._keys)
+
+    def __getitem__(self, key):
+        return self._get()[key]
+
+    def __iter__(self):
+        return iter(self._get())
+
+
+def codes_of(hist: pd.DataFrame, column: str, cache: dict | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """(code per row, distinct values as an object array) of a column (-1 where missing or absent);
+    ``cache``: a dict of those already made for ``hist`` by column."""
+    if cache is not None and column in cache:
+        return cache[column]
     if column not in hist:
-        return np.full(len(hist), -1, dtype=np.int64), np.array([], dtype=object)
-    codes, uniq = pd.factorize(hist[column])
-    return codes.astype(np.int64), np.asarray(uniq, dtype=object)
+        got = np.full(len(hist), -1, dtype=np.int64), np.array([], dtype=object)
+    else:
+        codes, uniq = pd.factorize(hist[column])
+        got = codes.astype(np.int64), np.asarray(uniq, dtype=object)
+    if cache is not None:
+        cache[column] = got
+    return got
 
 
-def _baseline_groups(hist, row_case, roles: Roles, years):
+def _baseline_groups(hist, row_case, roles: Roles, years, cache: dict | None = None):
     """Baseline rows in (case, time, specimen) order, with the start of each specimen's group."""
     idx = np.flatnonzero(roles.baseline)
-    spec = codes_of(hist, "specimen")[0][idx]
+    spec = codes_of(hist, "specimen", cache)[0][idx]
     order = np.lexsort((spec, years[idx], row_case[idx]))
     idx, spec, case = idx[order], spec[order], row_case[idx][order]
     new = np.ones(len(idx), dtype=bool)
@@ -143,7 +252,7 @@ def _baseline_groups(hist, row_case, roles: Roles, years):
 def _joined_specimens(hist, idx_first: np.ndarray, gcase: np.ndarray, j: np.ndarray, C: int) -> np.ndarray:
     """"S1;S2" per case from its groups (in order, ``j``: position in the case), joined once per
     distinct sequence of specimens (the analytes of a patient mostly share one)."""
-    out = np.full(C, "", dtype=object)
+    out = texts_full(C, "")
     if not len(gcase):
         return out
     codes, uniq = pd.factorize(hist["specimen"].iloc[idx_first], use_na_sentinel=False)
@@ -156,22 +265,47 @@ def _joined_specimens(hist, idx_first: np.ndarray, gcase: np.ndarray, j: np.ndar
     for col in seq.T:
         key = np.unique(key * (len(names) + 1) + col + 1, return_inverse=True)[1].reshape(-1)
     rows = seq[np.unique(key, return_index=True)[1]]
-    joined = [";".join(names[c] for c in row if c >= 0) for row in rows.tolist()]
-    out[cases] = np.asarray(joined, dtype=object)[key]
+    out[cases] = _joined_rows(rows, names)[key]
     return out
 
 
+def _joined_rows(rows: np.ndarray, names: list) -> np.ndarray:
+    """";".join of the names of every row of codes (-1: none; a row's codes come first), column
+    by column over the rows (object arrays add their strings in numpy's loop)."""
+    table = np.empty(len(names), dtype=object)
+    table[:] = names
+    joined = texts_full(len(rows), "")
+    started = np.zeros(len(rows), dtype=bool)
+    for col in rows.T:
+        has = col >= 0
+        glue = has & started
+        joined[glue] = joined[glue] + ";"
+        joined[has] = joined[has] + table[col[has]]
+        started |= has
+    return joined
+
+
+def _censor_numbers(col: pd.Series) -> np.ndarray:
+    """-1 for "left", +1 for "right", 0 otherwise (missing too), per row."""
+    if isinstance(col.dtype, pd.StringDtype):
+        left, right = (col.eq(w).to_numpy(dtype=bool, na_value=False) for w in ("left", "right"))
+    else:
+        cen = col.fillna("").astype(str).to_numpy()
+        left, right = cen == "left", cen == "right"
+    return np.where(left, -1.0, np.where(right, 1.0, 0.0))
+
+
 def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, case_index: dict,
-                        years: np.ndarray) -> Baselines:
-    """Baseline rows per (case, specimen): mean log, replicates, extra variance, padded."""
+                        years: np.ndarray, cache: dict | None = None) -> Baselines:
+    """Baseline rows per (case, specimen): mean log, replicates, extra variance, padded
+    (``cache``: as for :func:`codes_of`)."""
     C = len(case_index)
     row_case = row_cases(rows, case_index)
-    idx, case, g, starts = _baseline_groups(hist, row_case, roles, years)
+    idx, case, g, starts = _baseline_groups(hist, row_case, roles, years, cache)
     G = len(starts)
     logv = np.log(hist["value"].to_numpy(dtype=float))
     extra = np.where(roles.kept, priors.column(lambda p: float(p.si), 0.0) ** 2, 0.0)
-    cen = hist["censor"].fillna("").astype(str).to_numpy()
-    cen_num = np.where(cen == "left", -1.0, np.where(cen == "right", 1.0, 0.0))
+    cen_num = _censor_numbers(hist["censor"])
     r = np.bincount(g, minlength=G).astype(float)
     gcase, first = case[starts], idx[starts]
     case_start = np.r_[True, gcase[1:] != gcase[:-1]] if G else np.zeros(0, dtype=bool)
@@ -183,8 +317,8 @@ def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, c
         a[gcase, j] = values
         return a
 
-    mcodes, mnames = codes_of(hist, "method")
-    ucodes, unames = codes_of(hist, "reported_unit")
+    mcodes, mnames = codes_of(hist, "method", cache)
+    ucodes, unames = codes_of(hist, "reported_unit", cache)
     mcode = np.full((C, J), -1, dtype=np.int64)
     mcode[gcase, j] = mcodes[first]
     return Baselines(
@@ -397,6 +531,14 @@ class CaseBatch:
             object.__setattr__(self, "prior_groups", distinct(self.prior))
         return per_object(self.prior, get, dtype, groups=self.prior_groups)
 
+    def prior_text(self, get):
+        """``get(prior)`` (a text or None) of every case as a table column (:func:`text_column`),
+        computed once per distinct prior."""
+        if self.prior_groups is None:
+            object.__setattr__(self, "prior_groups", distinct(self.prior))
+        uniq, index = self.prior_groups
+        return text_column(index, [get(p) for p in uniq])
+
     def case_arrays(self) -> CaseArrays:
         """The engine's input (DEVELOPERS.md, "Exact-engine input")."""
         S, b = self.scalars, self.baselines
@@ -469,18 +611,19 @@ def _case_keys(assessed: AssessedResults, patient: list, analyte: list) -> np.nd
 
 def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPriors, packs: dict,
                 opts: Options) -> CaseBatch:
-    case_index = {k: i for i, k in enumerate(rows.assessed_keys)}
-    if not case_index:
+    case_index = _CaseIndex(rows.assessed_keys)
+    if not len(case_index):
         raise BayesbaseError("the assessed specimen has no results")
     years = years_of(hist["collected_at"])
-    baselines = aggregate_baselines(hist, rows, roles, priors, case_index, years)
+    codes: dict = {}
+    baselines = aggregate_baselines(hist, rows, roles, priors, case_index, years, codes)
     assessed = assessed_results(hist, rows, case_index, years)
     species, analyte, patient = assessed.col("species"), assessed.col("analyte"), assessed.col("patient")
     prior, groups = _case_priors(priors, assessed, species, analyte)
     pack, pack_groups = _case_packs(packs, species)
     breed = _breeds(assessed)
     center = _centers(groups, breed)
-    mcodes = codes_of(hist, "method")[0][assessed.rows] if assessed.rows is not None else None
+    mcodes = codes_of(hist, "method", codes)[0][assessed.rows] if assessed.rows is not None else None
     method = method_changes(assessed, baselines, analyte, opts.method_bias, mcodes, priors=prior)
     if method.base_shift is not None and method.base_shift.any():
         baselines = replace(baselines, y=baselines.y - method.base_shift)

@@ -3,19 +3,17 @@ cases: it returns an object array with the flag's words where it applies and "" 
 :data:`CASE_FLAGS` gives the order in which a case lists its flags."""
 from __future__ import annotations
 
-import gc
 import math
-from contextlib import contextmanager
 from typing import Callable
 
 import numpy as np
 import pandas as pd
 
 from ..contract import HIL_INDICES
-from .cases import CaseBatch
-from .roles import is_feeding_sensitive
+from .cases import CaseBatch, text_column
+from .roles import is_feeding_sensitive, texts_full
 
-__all__ = ["CASE_FLAGS", "hil_over", "quality", "case_flags", "not_converged_flag", "hil_words",
+__all__ = ["CASE_FLAGS", "hil_over", "quality", "quality_column", "case_flags", "not_converged_flag", "hil_words",
            "YOUNG_YEARS", "CVA_RULE"]
 
 #: age (years) under which a pack's age rule (``age_dependent``: how the analyte differs in growing
@@ -51,7 +49,7 @@ _BIAS = {
 def _words(mask, make: Callable[[int], str]) -> np.ndarray:
     """``make(i)`` where ``mask`` holds, "" elsewhere."""
     mask = np.asarray(mask, dtype=bool)
-    out = np.full(len(mask), "", dtype=object)
+    out = texts_full(len(mask), "")
     idx = np.flatnonzero(mask)
     out[idx] = [make(int(i)) for i in idx]
     return out
@@ -61,7 +59,7 @@ def _words_by(mask, keys, make: Callable[[object], str]) -> np.ndarray:
     """``make(key)`` where ``mask`` holds, computed once per distinct key of the flagged cases
     ("" elsewhere): for flags whose words depend on a few values only."""
     mask = np.asarray(mask, dtype=bool)
-    out = np.full(len(mask), "", dtype=object)
+    out = texts_full(len(mask), "")
     idx = np.flatnonzero(mask)
     if len(idx):
         codes, uniq = pd.factorize(np.asarray(keys, dtype=object)[idx], use_na_sentinel=False)
@@ -107,7 +105,7 @@ def _hil_flag(idx: str) -> Callable[[CaseBatch], np.ndarray]:
     def flag(b: CaseBatch) -> np.ndarray:
         over, v, thr = hil_over(b, idx)
         if not over.any():
-            return np.full(len(b), "", dtype=object)
+            return texts_full(len(b), "")
         how = b.prior_attr(lambda p: p.interference.get(idx, "variable"), object)
         return _words(over, lambda i: hil_words(idx, v[i], thr[i], how[i]))
 
@@ -184,14 +182,20 @@ def cva_high(b: CaseBatch) -> np.ndarray:
 def young_animal(b: CaseBatch) -> np.ndarray:
     """The pack's age rule (``age_dependent``: how the analyte differs in growing animals), for an
     animal younger than :data:`YOUNG_YEARS` at the assessed specimen. Breed and sample notes are
-    other flags (:func:`breed_note`)."""
+    other flags (:func:`breed_note`). Worded once per distinct (age, prior)."""
     first = b.assessed.first
     age = (first["age_years"].to_numpy(dtype=float, na_value=np.nan) if "age_years" in first.columns
            else np.full(len(b), np.nan))
-    rule = b.prior_attr(lambda p: p.age_dependent, object)
     dependent = b.prior_attr(lambda p: bool(p.age_dependent), bool)
-    return _words(dependent & (age < YOUNG_YEARS), lambda i: (
-        f"young animal ({age[i]:.1f} years; age rule under {YOUNG_YEARS:g} years): {rule[i]}"))
+    priors, pindex = b.prior_groups
+    mask = dependent & (age < YOUNG_YEARS)
+    idx = np.flatnonzero(mask)
+    ages, acode = np.unique(age[idx], return_inverse=True)
+    keys = np.zeros(len(b), dtype=np.int64)
+    keys[idx] = acode.reshape(-1) * len(priors) + pindex[idx]
+    return _words_by(mask, keys, lambda k: (
+        f"young animal ({ages[k // len(priors)]:.1f} years; age rule under {YOUNG_YEARS:g} years): "
+        f"{priors[k % len(priors)].age_dependent}"))
 
 
 def _breed_key(breed: str) -> str:
@@ -200,15 +204,23 @@ def _breed_key(breed: str) -> str:
 
 def breed_note(b: CaseBatch) -> np.ndarray:
     """The pack's note for the animal's breed (``breed_notes``: breed -> text, a schema field with
-    its source in ``sources["breed_notes.<breed>"]``), whatever the animal's age."""
-    notes = b.prior_attr(lambda p: getattr(p, "breed_notes", None) or {}, object)
-    if not any(getattr(p, "breed_notes", None) for p in b.prior_groups[0]):
-        return np.full(len(b), "", dtype=object)
+    its source in ``sources["breed_notes.<breed>"]``), whatever the animal's age. Worded once per
+    distinct (prior, breed)."""
+    b.prior_attr(lambda p: None, object)  # the distinct priors
+    priors, pindex = b.prior_groups
+    if not any(getattr(p, "breed_notes", None) for p in priors):
+        return texts_full(len(b), "")
     bc, bnames = pd.factorize(np.asarray(b.breed, dtype=object))
-    names = np.asarray([_breed_key(x) for x in bnames] + [""], dtype=object)
-    keys = names[bc]
-    return _words([bool(k) and k in n for k, n in zip(keys, notes)],
-                  lambda i: f"breed note ({b.breed[i]}): {notes[i][keys[i]]}")
+    width = len(bnames) + 1
+    used, inv = np.unique(pindex * width + (bc + 1), return_inverse=True)
+
+    def words(pair: int) -> str:
+        k = pair % width
+        notes = getattr(priors[pair // width], "breed_notes", None) or {}
+        key = _breed_key(bnames[k - 1]) if k else ""
+        return f"breed note ({bnames[k - 1]}): {notes[key]}" if key and key in notes else ""
+
+    return np.asarray([words(pr) for pr in used.tolist()], dtype=object)[inv.reshape(-1)]
 
 
 def breed_centre(b: CaseBatch) -> np.ndarray:
@@ -224,40 +236,43 @@ CASE_FLAGS: tuple[Callable[[CaseBatch], np.ndarray], ...] = (
 )
 
 
-@contextmanager
-def _collector_paused():
-    """Pause Python's cycle collector while one list per case is made: the lists hold strings
-    only (no cycle to find), and a collection pass triggered by every few hundred new lists would
-    walk the whole heap again and again."""
-    was = gc.isenabled()
-    gc.disable()
-    try:
-        yield
-    finally:
-        if was:
-            gc.enable()
-
-
 def case_flags(b: CaseBatch, flags=CASE_FLAGS) -> list[list[str]]:
-    """The flags of every case (a list of words per case)."""
-    columns = np.stack([f(b) for f in flags], axis=1) if len(flags) else np.empty((len(b), 0), dtype=object)
-    on = columns != ""
-    words = columns[on].tolist()  # row by row, in flag order
-    ends = np.cumsum(on.sum(axis=1)).tolist()
-    starts = [0] + ends[:-1]
-    with _collector_paused():
-        return [words[a:e] for a, e in zip(starts, ends)]
+    """The flags of every case (a list of words per case), gathered column by column: the words
+    of each flag where it applies, ordered by case (stable: a case lists them in flag order)."""
+    n = len(b)
+    hits, words = [np.zeros(0, dtype=np.int64)], [np.zeros(0, dtype=object)]
+    for f in flags:
+        col = np.asarray(f(b), dtype=object)
+        on = np.flatnonzero(col != "")
+        hits.append(on)
+        words.append(col[on])
+    case = np.concatenate(hits)
+    order = np.argsort(case, kind="stable")
+    flat = np.concatenate(words)[order].tolist()
+    ends = np.cumsum(np.bincount(case, minlength=n)).tolist()
+    return [flat[a:e] for a, e in zip([0] + ends[:-1], ends)]
 
 
-def quality(b: CaseBatch) -> list[str]:
-    """Sample quality of each assessed result: ``ok``, or the H/L/I indices over the pack's
-    thresholds (``haemolysis,lipaemia``)."""
+def _quality_codes(b: CaseBatch) -> tuple[np.ndarray, list[str]]:
+    """(code per case, the texts of the codes) of :func:`quality`."""
     code = np.zeros(len(b), dtype=np.int64)
     for k, idx in enumerate(HIL_INDICES):
         code |= hil_over(b, idx)[0].astype(np.int64) << k
     names = [",".join(n for k, n in enumerate(HIL_INDICES) if c >> k & 1) or "ok"
              for c in range(1 << len(HIL_INDICES))]
+    return code, names
+
+
+def quality(b: CaseBatch) -> list[str]:
+    """Sample quality of each assessed result: ``ok``, or the H/L/I indices over the pack's
+    thresholds (``haemolysis,lipaemia``)."""
+    code, names = _quality_codes(b)
     return np.asarray(names, dtype=object)[code].tolist()
+
+
+def quality_column(b: CaseBatch):
+    """:func:`quality` as the results table's column (:func:`.cases.text_column`)."""
+    return text_column(*_quality_codes(b))
 
 
 def not_converged_flag(diagnostics: dict) -> str:

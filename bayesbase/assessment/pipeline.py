@@ -12,11 +12,15 @@ Decision support, not a diagnosis.
 """
 from __future__ import annotations
 
+import gc
+import threading
+from contextlib import contextmanager
+
 from ..constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DEFAULT_QUAD_NODES
-from .cases import build_cases
+from .cases import build_cases, object_texts
 from .comparisons import classical_comparisons, classical_cvs
 from .engine_step import run_engine
-from .flags import case_flags, not_converged_flag, quality
+from .flags import case_flags, not_converged_flag, quality_column
 from .frame import history_frame
 from .options import Options
 from .packs import packs_by_species, row_priors
@@ -72,16 +76,46 @@ def assess(
     return run(results, opts)
 
 
+_FROZEN_LOCK = threading.Lock()
+_FROZEN = [0]  # assessments running in the process with the heap frozen
+
+
+@contextmanager
+def _heap_frozen():
+    """Leave the objects that exist when an assessment starts out of Python's cycle collections
+    (:func:`gc.freeze`) until the last running assessment ends: the collections that the many
+    new objects of a large assessment trigger (one list of flags per case) then walk those new
+    objects only, not the whole heap again and again. The collector stays on, for every thread;
+    objects frozen meanwhile are collected as usual after :func:`gc.unfreeze`."""
+    with _FROZEN_LOCK:
+        _FROZEN[0] += 1
+        if _FROZEN[0] == 1:
+            gc.freeze()
+    try:
+        yield
+    finally:
+        with _FROZEN_LOCK:
+            _FROZEN[0] -= 1
+            if _FROZEN[0] == 0:
+                gc.unfreeze()
+
+
 def run(results, opts: Options) -> Assessment:
-    """The stages of :func:`assess` on checked options."""
+    """The stages of :func:`assess` on checked options (with the heap frozen: :func:`_heap_frozen`)."""
+    with _heap_frozen():
+        return _stages(results, opts)
+
+
+def _stages(results, opts: Options) -> Assessment:
+    """The stages in order."""
     hist = history_frame(results, opts.patients, now=opts.now)
     packs = packs_by_species(hist, opts.pack, opts.priors)
     targets = assessed_specimens(hist, opts.at)
     rows = case_rows(hist, targets)
     priors = row_priors(hist, rows.in_case, packs)
     roles = assign_roles(rows, rule_context(hist, rows, priors, opts.keep_compromised))
-    hist["role"] = roles.role
-    hist["reason"] = roles.reason
+    hist["role"] = object_texts(roles.role)
+    hist["reason"] = object_texts(roles.reason)
     batch = build_cases(hist, rows, roles, priors, packs, opts)
     flags = case_flags(batch)
     result = run_engine(batch.case_arrays(), opts, batch.patient, batch.analyte)
@@ -89,7 +123,7 @@ def run(results, opts: Options) -> Assessment:
         words = not_converged_flag(result.mcmc.diagnostics)
         flags = [f + [words] for f in flags]
     table = results_table(batch, targets, result, classical_comparisons(batch, opts.coverage),
-                          classical_cvs(batch), quality(batch), flags, opts)
+                          classical_cvs(batch), quality_column(batch), flags, opts)
     if opts.trend:
         result.settings["trend_rule"] = TREND_RULE
         for k, v in trend_columns(batch, opts.drift_prior, opts.nodes).items():

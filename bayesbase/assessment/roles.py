@@ -27,11 +27,19 @@ from .packs import RowPriors
 
 __all__ = ["FEEDING_SENSITIVE_DEFAULT", "Targets", "CaseRows", "RuleContext", "Roles",
            "BASELINE_RULES", "is_feeding_sensitive", "pick_assessed", "assessed_specimens",
-           "case_rows", "rule_context", "assign_roles"]
+           "case_rows", "rule_context", "assign_roles", "texts_full"]
 
 #: Analytes moved by feeding (fasting study of 100 healthy dogs, as summarised in the project's
 #: sample-quality notes: triglycerides, urea, phosphate, glucose); used when a pack is silent.
 FEEDING_SENSITIVE_DEFAULT = frozenset({"triglycerides", "urea", "phosphate", "glucose"})
+
+
+def texts_full(n: int, text: str) -> np.ndarray:
+    """An object array of ``n`` references to ``text`` (``np.full`` with a text makes ``n`` new
+    strings, one by one)."""
+    out = np.empty(n, dtype=object)
+    out.fill(text)
+    return out
 
 
 def is_feeding_sensitive(prior) -> bool:
@@ -179,7 +187,7 @@ def _quality_problems(hist: pd.DataFrame, priors: RowPriors, in_case: np.ndarray
     """Rows (in a case) with an H/L/I index above the pack's threshold, and the words."""
     n = len(hist)
     compromised = np.zeros(n, dtype=bool)
-    text = np.full(n, "", dtype=object)
+    text = texts_full(n, "")
     for idx in HIL_INDICES:
         if idx not in hist:
             continue
@@ -219,7 +227,7 @@ def unwell_rule(ctx: RuleContext, eligible: np.ndarray):
 def sample_quality_rule(ctx: RuleContext, eligible: np.ndarray):
     """An H/L/I index above the pack's threshold leaves the result out (unless kept)."""
     out = eligible & ctx.compromised & (not ctx.keep_compromised)
-    why = np.full(len(out), "", dtype=object)
+    why = texts_full(len(out), "")
     why[out] = ["sample quality: " + t for t in ctx.quality_text[out]]
     return out, why
 
@@ -253,8 +261,8 @@ class Roles:
 
 def assign_roles(rows: CaseRows, ctx: RuleContext, rules=BASELINE_RULES) -> Roles:
     n = len(rows.in_case)
-    role = np.full(n, ROLE_NOT_ASSESSED, dtype=object)
-    reason = np.full(n, "analyte not measured in the assessed specimen", dtype=object)
+    role = texts_full(n, ROLE_NOT_ASSESSED)
+    reason = texts_full(n, "analyte not measured in the assessed specimen")
     role[rows.is_assessed] = ROLE_ASSESSED
     reason[rows.is_assessed] = ""
     role[rows.later] = ROLE_LATER

@@ -5,7 +5,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from .cases import CaseBatch, per_object
+from .cases import CaseBatch, object_texts, per_object, series_text, text_column
 from .engine_step import EngineResult
 from .options import Options
 from .roles import Targets
@@ -24,29 +24,38 @@ def analyte_label(aid: str) -> str:
 
 def assessed_values(b: CaseBatch) -> np.ndarray:
     """Assessed value per case: the reported value, or the geometric mean of replicates."""
-    single = np.array(b.assessed.col("value"), dtype=float)
+    first = b.assessed.first
+    single = (first["value"].to_numpy(dtype=float) if "value" in first.columns
+              else np.array(b.assessed.col("value"), dtype=float))
     return np.where(b.assessed.n_rep > 1, np.exp(b.assessed.log_mean), single)
 
 
 def _per_patient(b: CaseBatch, targets: Targets):
     """(assessed specimen, its collection time) of every case, looked up once per patient."""
     codes, pids = pd.factorize(np.asarray(b.patient, dtype=object))
-    spec = np.asarray([targets.specimen[p] for p in pids], dtype=object)
+    spec = [targets.specimen[p] for p in pids]
     when = targets.collected_at.reindex(pd.Index(pids, dtype=object))
-    return spec[codes], when.iloc[codes].reset_index(drop=True)
+    return text_column(codes, spec), when.iloc[codes].reset_index(drop=True)
 
 
 def _identity(b: CaseBatch, targets: Targets, values: np.ndarray) -> dict:
     specimen, collected_at = _per_patient(b, targets)
     codes, analytes = pd.factorize(np.asarray(b.analyte, dtype=object))
+    first = b.assessed.first
+
+    def text(name, fallback, **how):
+        got = series_text(first[name], **how) if name in first.columns else None
+        return fallback() if got is None else got
+
     return {
-        "patient": b.patient, "species": b.species, "breed": b.breed, "analyte": b.analyte,
-        "label": np.asarray([analyte_label(a) for a in analytes], dtype=object)[codes],
-        "unit": b.prior_attr(lambda p: p.unit, object),
+        "patient": text("patient", lambda: b.patient), "species": text("species", lambda: b.species),
+        "breed": text("breed", lambda: b.breed, blank_missing=True), "analyte": text("analyte", lambda: b.analyte),
+        "label": text_column(codes, [analyte_label(a) for a in analytes]),
+        "unit": b.prior_text(lambda p: p.unit),
         "specimen": specimen, "collected_at": collected_at,
-        "value": values, "reported_value": b.assessed.col("reported_value"),
-        "reported_unit": b.assessed.col("reported_unit"), "censor": b.censor,
-        "n_baseline": b.baselines.n.astype(int), "baseline_specimens": b.baselines.specimens,
+        "value": values, "reported_value": text("reported_value", lambda: b.assessed.col("reported_value")),
+        "reported_unit": text("reported_unit", lambda: b.assessed.col("reported_unit")), "censor": text("censor", lambda: b.censor, fill=""),
+        "n_baseline": b.baselines.n.astype(int), "baseline_specimens": object_texts(b.baselines.specimens),
         "assumed_healthy": b.baselines.n_assumed,
     }
 
@@ -74,8 +83,26 @@ def _population(b: CaseBatch, values: np.ndarray, res: dict, cva: np.ndarray, cv
     }
 
 
+def _texts(values):
+    """A list of texts (or a column already built) as the table column pandas infers from it."""
+    if not isinstance(values, list):
+        return values
+    codes, uniq = pd.factorize(np.asarray(values, dtype=object), use_na_sentinel=False)
+    return text_column(codes, uniq.tolist())
+
+
+def _pack_ids(b: CaseBatch):
+    """The pack id of every case, looked up once per distinct pack."""
+    if b.pack_groups is None:
+        return per_object(b.pack, lambda pk: pk.id, object)
+    uniq, index = b.pack_groups
+    return text_column(index, [pk.id for pk in uniq])
+
+
 def _cells(flags) -> np.ndarray:
     """The flags column: an object array holding each case's list (a tuple becomes a list)."""
+    if all(type(f) is list for f in flags):
+        return np.fromiter(flags, dtype=object, count=len(flags))  # the lists themselves
     out = np.empty(len(flags), dtype=object)
     for i, f in enumerate(flags):
         out[i] = f if type(f) is list else list(f)
@@ -94,10 +121,10 @@ def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classica
     cols.update(classical_cols)
     cols.update(_population(b, values, engine.summary, cva, cvg))
     cols.update({
-        "retest_group": b.prior_attr(lambda p: p.group, object), "quality": quality,
+        "retest_group": b.prior_text(lambda p: p.group), "quality": _texts(quality),
         "comparable": (~b.method.changed | b.method.corrected).tolist(), "flags": _cells(flags),
-        "engine": opts.engine, "converged": engine.converged,
-        "pack": per_object(b.pack, lambda pk: pk.id, object, groups=b.pack_groups),
+        "engine": text_column(np.zeros(len(b), dtype=np.int64), [opts.engine]), "converged": engine.converged,
+        "pack": _pack_ids(b),
     })
     return pd.DataFrame(cols)
 

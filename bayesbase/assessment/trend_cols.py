@@ -7,7 +7,7 @@ import pandas as pd
 
 from ..constants import TREND_HORIZON_YEARS, TREND_MIN_SPAN_YEARS, TREND_MIN_SPECIMENS
 from ..model.trend import trend_exact
-from .cases import CaseBatch
+from .cases import CaseBatch, text_column
 from .frame import YEAR_DAYS
 
 __all__ = ["TREND_RULE", "trend_columns", "trend_notes"]
@@ -38,22 +38,40 @@ def _birth_years(b: CaseBatch) -> np.ndarray:
     return np.where(np.isnat(bd), np.nan, ns / 1e9 / 86400 / YEAR_DAYS)
 
 
-def trend_notes(b: CaseBatch, eligible: np.ndarray, years_to_limit: np.ndarray, first_t: np.ndarray) -> list[str]:
-    """Why a trend was not computed, or what to keep in mind when reading it."""
+def _note_codes(b: CaseBatch, eligible: np.ndarray, years_to_limit: np.ndarray, first_t: np.ndarray):
+    """(code per case, the distinct notes) of :func:`trend_notes`."""
     eligible = np.asarray(eligible, dtype=bool)
-    notes = np.full(len(b), f"trend not computed: needs {TREND_RULE}", dtype=object)
-    notes[eligible] = ""
-    no_limit = eligible & ~np.isfinite(np.asarray(years_to_limit, dtype=float))
-    notes[no_limit] = f"set point not projected to reach a population limit within {TREND_HORIZON_YEARS:g} years"
-    rule = b.prior_attr(lambda p: p.age_dependent, object)
+    codes = np.where(eligible, 1, 0)
+    codes[eligible & ~np.isfinite(np.asarray(years_to_limit, dtype=float))] = 2
+    uniques = [f"trend not computed: needs {TREND_RULE}", "",
+               f"set point not projected to reach a population limit within {TREND_HORIZON_YEARS:g} years"]
     dependent = b.prior_attr(lambda p: bool(p.age_dependent), bool)
     with np.errstate(invalid="ignore"):
         age0 = first_t - _birth_years(b)
     young = eligible & dependent & ~(age0 >= GROWING_YEARS)  # unknown age (NaN) counts as young
-    for i in np.flatnonzero(young).tolist():
-        notes[i] = ("young or unknown age: this analyte's set point is known to move with age "
-                    f"({rule[i]}); a drift may be growth, not disease")
-    return notes.tolist()
+    if young.any():
+        priors, index = b.prior_groups
+        codes[young] = len(uniques) + index[young]
+        uniques += ["young or unknown age: this analyte's set point is known to move with age "
+                    f"({p.age_dependent}); a drift may be growth, not disease" for p in priors]
+    return codes, uniques
+
+
+def trend_notes(b: CaseBatch, eligible: np.ndarray, years_to_limit: np.ndarray, first_t: np.ndarray) -> list[str]:
+    """Why a trend was not computed, or what to keep in mind when reading it."""
+    codes, uniques = _note_codes(b, eligible, years_to_limit, first_t)
+    return np.asarray(uniques, dtype=object)[codes].tolist()
+
+
+def _limit_sides(side, elig: np.ndarray):
+    """The ``trend_limit`` column: the side of the limit reached where the rule is met, "" elsewhere."""
+    side = np.asarray(side, dtype=object)
+    codes = np.ones(len(side), dtype=np.int64)
+    codes[side == "lower"] = 0
+    codes[side == "upper"] = 2
+    if not ((codes != 1) | (side == ""))[elig].all():  # a side other than these three
+        return [str(s) if e_ else "" for s, e_ in zip(side, elig)]
+    return text_column(np.where(elig, codes, 1), ["lower", "", "upper"])
 
 
 def trend_columns(b: CaseBatch, prior_drift: float, nodes: int) -> dict[str, object]:
@@ -75,7 +93,7 @@ def trend_columns(b: CaseBatch, prior_drift: float, nodes: int) -> dict[str, obj
         "trend_pct_per_year": col("pct_per_year_mean"), "trend_pct_lower": col("pct_per_year_lower"),
         "trend_pct_upper": col("pct_per_year_upper"), "trend_years_to_limit": col("years_to_limit"),
         "trend_years_lower": col("years_to_limit_lower"), "trend_years_upper": col("years_to_limit_upper"),
-        "trend_limit": [str(s) if e_ else "" for s, e_ in zip(out["limit_side"], elig)],
+        "trend_limit": _limit_sides(out["limit_side"], elig),
     }
-    res["trend_note"] = trend_notes(b, elig, res["trend_years_to_limit"], np.nanmin(t, axis=1))
+    res["trend_note"] = text_column(*_note_codes(b, elig, res["trend_years_to_limit"], np.nanmin(t, axis=1)))
     return res

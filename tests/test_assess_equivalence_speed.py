@@ -1,0 +1,111 @@
+"""The faster builders of the assessment give exactly what the plain forms they replace give:
+text columns against the column pandas itself infers from the same values as a list (the
+reference: pandas' DataFrame constructor), specimen lists against ``str.join``, the trend notes
+and limits against per-case loops, and the heap freeze of :func:`assess` leaves Python's cycle
+collector as it found it, from several threads at once (reference: the standard library's
+``gc.get_freeze_count``)."""
+from __future__ import annotations
+
+import gc
+import threading
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from bayesbase.assessment import cases, pipeline, trend_cols
+
+
+def _inferred(values: list) -> pd.Series:
+    """The column pandas builds from a list (the reference)."""
+    return pd.DataFrame({"x": values})["x"]
+
+
+def _as_column(built) -> pd.Series:
+    return pd.DataFrame({"x": built})["x"]
+
+
+TEXT_CASES = [
+    (["a", "b", "a"], [0, 1, 0, 2, -1]),
+    (["a", None], [1, 1, 0]),
+    ([None], [0, 0]),  # no text at all: pandas keeps objects
+    (["", "x"], [0, 0, 1]),
+    ([1.5, "x"], [0, 1]),  # not all texts
+]
+
+
+@pytest.mark.parametrize("uniques,codes", TEXT_CASES)
+def test_text_column_is_the_column_pandas_infers(uniques, codes):
+    codes = np.asarray(codes)
+    table = list(uniques) + [None]
+    want = _inferred([table[c] for c in codes])
+    pd.testing.assert_series_equal(_as_column(cases.text_column(codes, uniques)), want, check_exact=True)
+
+
+@pytest.mark.parametrize("storage", ["python", "pyarrow"])
+@pytest.mark.parametrize("values", [["a", None, "", "b"], [None, None], ["", ""]])
+def test_series_text_is_the_column_pandas_infers(storage, values):
+    col = pd.Series(pd.array(values, dtype=pd.StringDtype(storage)))
+    for how, plain in (({}, lambda v: v), ({"blank_missing": True}, lambda v: v if isinstance(v, str) and v else None),
+                       ({"fill": ""}, lambda v: "" if v is None or v is pd.NA else v)):
+        got = cases.series_text(col, **how)
+        want = _inferred([plain(None if v is pd.NA else v) for v in col.tolist()])
+        if got is None:  # the caller builds it from the list: only when pandas would not make text
+            assert want.dtype == object
+        else:
+            pd.testing.assert_series_equal(_as_column(got), want, check_exact=True)
+
+
+def test_object_texts_is_the_column_pandas_infers():
+    for values in (["x", "y", None], [None, None], ["x", 2.0], ["", "b"]):
+        arr = np.empty(len(values), dtype=object)
+        arr[:] = values
+        pd.testing.assert_series_equal(_as_column(cases.object_texts(arr)), _inferred(list(values)), check_exact=True)
+
+
+def test_joined_rows_match_str_join():
+    rng = np.random.default_rng(4)
+    names = ["S1", "S2", "", "a;b", "S5"]
+    rows = rng.integers(-1, len(names), size=(200, 5))
+    got = cases._joined_rows(rows, names)
+    assert got.tolist() == [";".join(names[c] for c in row if c >= 0) for row in rows.tolist()]
+
+
+def test_limit_sides_match_the_loop():
+    rng = np.random.default_rng(5)
+    side = np.asarray(rng.choice(["lower", "", "upper"], 300), dtype=object)
+    elig = rng.random(300) < 0.5
+    want = [str(s) if e else "" for s, e in zip(side, elig)]
+    assert list(trend_cols._limit_sides(side, elig)) == want
+    odd = side.copy()
+    odd[elig.argmax()] = "both"  # a side the fast path does not know: the loop's answer
+    assert list(trend_cols._limit_sides(odd, elig)) == [str(s) if e else "" for s, e in zip(odd, elig)]
+
+
+def test_heap_freeze_is_undone_after_nested_and_threaded_assessments():
+    gc.unfreeze()
+    assert gc.get_freeze_count() == 0
+    started, release = threading.Barrier(3), threading.Event()
+    inside = []
+
+    def work():
+        with pipeline._heap_frozen():
+            started.wait()
+            release.wait(5)
+            inside.append(gc.isenabled())
+
+    threads = [threading.Thread(target=work) for _ in range(2)]
+    for t in threads:
+        t.start()
+    started.wait()
+    frozen_meanwhile = gc.get_freeze_count()
+    release.set()
+    for t in threads:
+        t.join()
+    assert frozen_meanwhile > 0  # objects left out of collections while assessments ran
+    assert inside == [True, True]  # the collector stayed on for every thread
+    assert gc.get_freeze_count() == 0 and gc.isenabled()
+    with pytest.raises(ZeroDivisionError):
+        with pipeline._heap_frozen():
+            1 / 0
+    assert gc.get_freeze_count() == 0
