@@ -116,6 +116,8 @@ PLAN = (
     ("calibrate_large", "bench.calibrate", "bench_calibrate_large",
      {"n_animals": 1_000, "draws": 300, "tune": 300, "chains": 2}),
     ("scale", "bench.scale", "bench_scale", {"n_patients": 2_000, "n_partitions": 8}),
+    # issue 12: every row of the speed issue's table, with ratios to its floors, in one run
+    ("speed_issue", "bench.speed", "bench_speed_issue", {"quick": True}),
 )
 
 

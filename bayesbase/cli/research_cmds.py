@@ -53,5 +53,8 @@ def cmd_bench(args) -> int:
 
     only = args.only.split(",") if args.only else None
     for name, res in bench.run(quick=args.quick, only=only):
+        if "table" in res:  # a benchmark that brings its own text table (speed_issue)
+            print(f"{name}:\n{res['table']}", flush=True)
+            continue
         print(f"{name}: " + ", ".join(f"{k}={v}" for k, v in res.items()), flush=True)
     return 0

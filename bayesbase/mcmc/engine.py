@@ -101,8 +101,11 @@ with warnings.catch_warnings():
 
 # compiled-model cache: one PyMC model per structure, reused with pm.set_data
 _MODEL_CACHE: dict[tuple, pm.Model] = {}
-# nutpie compiled models, per structure and shape (nutpie fixes the parameter count at compile)
+# nutpie compiled models, per structure and parameter shape (patients x analytes)
 _NUTPIE_CACHE: dict[tuple, object] = {}
+# PyMC's compiled log density + gradient of a cached model, per structure and parameter shape
+# (pm.sample compiles it again on every call; the data stay in the model's shared containers)
+_LOGP_CACHE: dict[tuple, object] = {}
 SAMPLERS = ("pymc", "nutpie")
 
 
@@ -546,7 +549,9 @@ def mcmc_assess(
     global seed is touched. ``cores``: parallel chains (default min(chains, CPU count)).
     ``idata_path``: write the InferenceData to netCDF with attrs engine, seed, settings,
     bayesbase version and the caller's ``attrs`` (e.g. pack id and sha256).
-    ``reuse_model``: reuse a cached model of the same structure via ``pm.set_data``.
+    ``reuse_model``: reuse a cached model of the same structure via ``pm.set_data`` and, for
+    the same number of patients and analytes, its compiled log density and gradient (PyMC's
+    sampler: the same draws as without the cache, only the compile is skipped).
     ``sampler``: ``"pymc"`` (default, PyMC's NUTS) or ``"nutpie"`` (optional package
     ``nutpie``, numba backend: a long first compile, then much faster sampling; the compiled
     model is reused for panels of the same shape through ``with_data``).
@@ -587,11 +592,8 @@ def mcmc_assess(
                 idata = _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune,
                                        chains, cores, seed, target_accept, reuse_model)
             else:
-                idata = pm.sample(
-                    draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
-                    target_accept=target_accept, progressbar=False, model=model,
-                    compute_convergence_checks=False, return_inferencedata=True,
-                )
+                idata = _sample_pymc(model, coords, structure, robust, nu, draws, tune, chains,
+                                     cores, seed, target_accept, reuse_model)
             settings["seconds"] = time.perf_counter() - t0
             cvi_sd = cases.cvi_log_sd
             diagnostics = _diagnostics(idata, pidx, aidx, cvi_sd)
@@ -614,6 +616,58 @@ def mcmc_assess(
                       settings=settings, patient=patient, analyte=analyte)
 
 
+def _sample_pymc(model, coords, structure, robust, nu, draws, tune, chains, cores, seed,
+                 target_accept, reuse):
+    """PyMC's NUTS. With ``reuse``, PyMC's default start ("jitter+adapt_diag") is built here
+    with the model's compiled log density and gradient kept from an earlier call of the same
+    structure and shape (:func:`_nuts_start`); without it, :func:`pymc.sample` does it all."""
+    kw = dict(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
+              progressbar=False, model=model, compute_convergence_checks=False,
+              return_inferencedata=True)
+    if not reuse:
+        return pm.sample(target_accept=target_accept, **kw)
+    key = _model_key(structure, robust, nu) + (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))
+    start, step = _nuts_start(model, key, chains, seed, target_accept)
+    return pm.sample(step=step, initvals=start, **kw)
+
+
+def _nuts_start(model, key, chains, seed, target_accept, cache=None):
+    """What :func:`pymc.init_nuts` builds for ``init="jitter+adapt_diag"`` (the chains'
+    jittered starting points, a diagonal mass-matrix adaptation started at their mean, the NUTS
+    step) from the seeds :func:`pymc.sample` derives from ``seed``, but with the compiled log
+    density and gradient cached under ``key``: the same draws as ``pm.sample(random_seed=seed)``
+    without its compile (checked in ``tests/test_bench_speed_table.py``). The data are read
+    from the model's shared containers at each evaluation, so a cached function serves new
+    data.
+    ``cache``: the dict holding the compiled functions (default: this module's, for the models
+    of :data:`_MODEL_CACHE`); it must belong to ``model``."""
+    from pymc.blocking import DictToArrayBijection
+    from pymc.sampling.mcmc import _init_jitter
+    from pymc.step_methods.hmc import quadpotential
+    from pymc.util import get_random_generator
+
+    cache = _LOGP_CACHE if cache is None else cache
+    fn = cache.get(key)
+    if fn is None:
+        fn = model.logp_dlogp_function(ravel_inputs=True)
+        fn.trust_input = True
+        cache[key] = fn
+    seeds = [r.integers(2**30) for r in get_random_generator(seed).spawn(chains)]
+
+    def logp(point):
+        return fn([DictToArrayBijection.map(point).data], extra_vars={})[0]
+
+    points = _init_jitter(model, None, seeds=seeds, jitter=True, jitter_max_retries=10,
+                          logp_fn=logp)
+    mean = np.mean([DictToArrayBijection.map(p).data for p in points], axis=0)
+    potential = quadpotential.QuadPotentialDiagAdapt(len(mean), mean, np.ones_like(mean), 10,
+                                                     rng=seeds[0])
+    step = pm.NUTS(potential=potential, model=model, rng=seeds[0], initial_point=points[0],
+                   logp_dlogp_func=fn, target_accept=target_accept)
+    names = {v.name for v in model.value_vars}
+    return [{k: v for k, v in p.items() if k in names} for p in points], step
+
+
 def _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune, chains, cores,
                    seed, target_accept, reuse):
     try:
@@ -622,8 +676,9 @@ def _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune, chai
         from ..errors import MissingExtra
         raise MissingExtra("sampler='nutpie' needs the optional package nutpie "
                           "(pip install 'nutpie>=0.16,<0.17')") from exc
-    key = _model_key(structure, robust, nu) + (
-        len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]), len(coords[DIM_OBS]))
+    # the parameter count fixes the compile; the number of baseline results (dim obs) does not:
+    # with_data on another length samples as a fresh compile would (tests/test_bench_speed_table.py)
+    key = _model_key(structure, robust, nu) + (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))
     cm = _NUTPIE_CACHE.get(key) if reuse else None
     if cm is None:
         cm = nutpie.compile_pymc_model(model, backend="numba", freeze_model=False)

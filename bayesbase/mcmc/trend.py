@@ -141,20 +141,28 @@ def _series_data(p: dict, i: int) -> dict:
     }
 
 
-def _sample_series(model, data, draws, tune, chains, seed, target_accept):
+def _sample_series(model, data, draws, tune, chains, seed, target_accept, compiled=None):
     """Set one series on ``model`` and sample H1 by NUTS. Returns the posterior of theta0, z,
-    beta (dims chain, draw) and its diagnostics r_hat (max), ess (min bulk), divergences."""
+    beta (dims chain, draw) and its diagnostics r_hat (max), ess (min bulk), divergences.
+    ``compiled``: a dict kept across the series of one model, holding its compiled log density
+    and gradient (the parameters are scalars, so one compile serves every series; the draws are
+    those of ``pm.sample(random_seed=seed)``, see :func:`bayesbase.mcmc.engine._nuts_start`)."""
     pm.set_data({k: data[k] for k in _DATA_KEYS}, model=model,
                 coords={DIM_OBS: np.arange(data["tc"].size)})
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
         warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
         warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
-        idata = pm.sample(
-            draws=draws, tune=tune, chains=chains, cores=1, random_seed=seed,
-            target_accept=target_accept, progressbar=False, model=model,
-            compute_convergence_checks=False, return_inferencedata=True,
-        )
+        kw = dict(draws=draws, tune=tune, chains=chains, cores=1, random_seed=seed,
+                  progressbar=False, model=model, compute_convergence_checks=False,
+                  return_inferencedata=True)
+        if compiled is None:
+            idata = pm.sample(target_accept=target_accept, **kw)
+        else:
+            from .engine import _nuts_start
+
+            start, step = _nuts_start(model, "trend", chains, seed, target_accept, compiled)
+            idata = pm.sample(step=step, initvals=start, **kw)
         post = idata.posterior[["theta0", "z", "beta"]]
         rhat = float(az.rhat(post).to_array().max())
         ess = float(az.ess(post, method="bulk").to_array().min())
@@ -279,11 +287,12 @@ def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slop
     seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=c)
     if model is None and np.any(p["eligible"]):
         model = build_trend_model(int(p["n_used"].max()))
+    compiled: dict = {}  # the model's compiled log density, shared by its series
     with _quiet_pymc_logs():
         for i in np.nonzero(p["eligible"])[0]:
             data = _series_data(p, i)
             post, diag = _sample_series(model, data, draws, tune, chains, int(seeds[i]),
-                                        target_accept)
+                                        target_accept, compiled)
             row = _drift_summaries(post, data, pi[i], ci_prob)
             row.update(_limit_summaries(post, data["dt_last"], lu[i], ll[i], ci_prob, horizon))
             row.update(diag)
