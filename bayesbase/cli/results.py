@@ -8,12 +8,17 @@ from ..constants import CAUTIONS
 from .common import add_assess_options, add_chunk_option, err, load_frame, run_assess
 
 DEMO_DIR = "bayesbase-output"
+#: worker processes of ``bayesbase demo``: its cases are independent, and the machine it was
+#: measured on has 2 cores (the outputs are the same with any number)
+DEMO_JOBS = 2
 
 
 def add_parsers(sub) -> None:
     p = sub.add_parser("demo", help="assess every patient case of the built-in case library and write reports")
     p.add_argument("--out", default=DEMO_DIR, help=f"output folder (default: ./{DEMO_DIR})")
     p.add_argument("--no-pdf", action="store_true", help="HTML only")
+    p.add_argument("--jobs", type=int, default=DEMO_JOBS,
+                   help=f"worker processes, one case each at a time (default {DEMO_JOBS}; 1: this process only)")
     p.set_defaults(run=cmd_demo)
 
     p = sub.add_parser("check", help="validate a results file and print the normalised table or every problem")
@@ -206,16 +211,76 @@ def _demo_case(case: dict, frame, out: Path, pdf: bool):
     return a
 
 
-def cmd_demo(args) -> int:
+def _demo_one(case_dir: str, out: str, pdf: bool) -> str:
+    """One patient case of the demo from its folder on disk (read, assess, write its files);
+    its summary line. Runs in a worker process or in this one."""
     import tomllib
+
+    from ..io import read_results as load_results
+
+    d = Path(case_dir)
+    case = tomllib.loads((d / "case.toml").read_text(encoding="utf-8"))
+    a = _demo_case(case, load_results(d / "results.csv"), Path(out), pdf)
+    return f"{case['id']:<42} {_demo_summary(a.table)}"
+
+
+def _demo_in_process(case: dict, case_dir, out: Path, pdf: bool) -> str:
+    """:func:`_demo_one` in this process for a case folder that may not be a folder on disk
+    (a package read from an archive)."""
     from importlib import resources
 
     from ..io import read_results as load_results
 
+    with resources.as_file(case_dir / "results.csv") as csv_path:
+        frame = load_results(csv_path)
+    a = _demo_case(case, frame, out, pdf)
+    return f"{case['id']:<42} {_demo_summary(a.table)}"
+
+
+def _demo_pool(n: int):
+    """A pool of ``n`` worker processes forked from this one once the report's modules are
+    imported (each worker starts with them, so they are imported once), or None where this
+    system cannot fork."""
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+
+    if "fork" not in mp.get_all_start_methods():
+        return None
+    from .. import assessment, io, report  # noqa: F401  (imported before the fork)
+
+    return ProcessPoolExecutor(n, mp_context=mp.get_context("fork"))
+
+
+def _demo_lines(todo: list, out: Path, pdf: bool, jobs: int) -> list[str]:
+    """The summary line of each patient case ``(case, folder)``, in order: the cases in
+    ``jobs`` worker processes when there are several and their folders are on disk, else (or
+    when the workers cannot be started) one after the other in this process. The files are
+    the same either way (each case writes its own)."""
+    from concurrent.futures.process import BrokenProcessPool
+    from itertools import repeat
+
+    on_disk = all(isinstance(d, Path) for _, d in todo)
+    pool = _demo_pool(min(jobs, len(todo))) if jobs > 1 and len(todo) > 1 and on_disk else None
+    if pool is not None:
+        try:
+            with pool:
+                return list(pool.map(_demo_one, [str(d) for _, d in todo], repeat(str(out)),
+                                     repeat(pdf)))
+        except (OSError, BrokenProcessPool):
+            pass  # no worker could start or one died: every case again, in this process
+    return [_demo_in_process(case, d, out, pdf) for case, d in todo]
+
+
+def cmd_demo(args) -> int:
+    import tomllib
+    from importlib import resources
+
+    if args.jobs < 1:
+        return err("--jobs must be at least 1")
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     root = resources.files("bayesbase.case_library")
-    lines, skipped = [], []
+    todo, skipped = [], []
     for case_dir in sorted((p for p in root.iterdir() if p.is_dir() and (p / "case.toml").is_file()),
                            key=lambda p: p.name):
         case = tomllib.loads((case_dir / "case.toml").read_text(encoding="utf-8"))
@@ -223,10 +288,8 @@ def cmd_demo(args) -> int:
         if kind is not None:
             skipped.append(f"{case['id']} ({kind})")
             continue
-        with resources.as_file(case_dir / "results.csv") as csv_path:
-            frame = load_results(csv_path)
-        a = _demo_case(case, frame, out, not args.no_pdf)
-        lines.append(f"{case['id']:<42} {_demo_summary(a.table)}")
+        todo.append((case, case_dir))
+    lines = _demo_lines(todo, out, not args.no_pdf, args.jobs)
     print("\n".join(lines))
     if skipped:
         print(f"\nskipped the research cases (a population, not one patient's history): {', '.join(skipped)}")

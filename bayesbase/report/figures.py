@@ -37,6 +37,7 @@ from matplotlib.colors import to_hex, to_rgb
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
+from matplotlib.text import Text
 import matplotlib.dates as mdates
 
 from ..units import display_unit
@@ -331,17 +332,22 @@ def _draw_trend(ax, tr: dict | None, h: pd.DataFrame, xlo, xhi) -> None:
 
 def _draw_specimens(ax, h: pd.DataFrame, row, t_assessed, compact: bool) -> float | None:
     """Specimens by role, the assessed star and the censored chevrons; returns the assessed
-    value (None when missing)."""
-    for role, style in _ROLE_STYLE.items():
-        sub = h[h["role"] == role] if len(h) else h
-        if len(sub):
-            ax.scatter(sub["collected_at"], sub["value"], **style)
+    value (None when missing). The rows of each role are picked with numpy arrays (the same
+    values as the frame's columns, without a frame per role)."""
+    if len(h):
+        roles = h["role"].to_numpy(dtype=object)
+        when, values = h["collected_at"].to_numpy(), h["value"].to_numpy()
+        for role, style in _ROLE_STYLE.items():
+            pick = roles == role
+            if pick.any():
+                ax.scatter(when[pick], values[pick], **style)
     value = float(row["value"]) if _finite(row["value"]) else None
     if value is not None:
         ax.plot([t_assessed], [value], zorder=7,
                 **_star_style(row["p_change"], STAR_SIZE_COMPACT if compact else STAR_SIZE))
     if len(h):
-        for _, r in h[h["censor"].isin(["left", "right"])].iterrows():
+        censored = np.isin(h["censor"].to_numpy(dtype=object, na_value=""), ["left", "right"])
+        for _, r in (h[censored].iterrows() if censored.any() else ()):
             ax.annotate("v" if r["censor"] == "left" else "^", (r["collected_at"], r["value"]),
                         xytext=(6, -2), textcoords="offset points", fontsize=7, zorder=8)
     elif value is not None and row["censor"] in ("left", "right"):
@@ -419,6 +425,70 @@ def _ticks_in_view(axis) -> None:
     fixed = FixedFormatter([lab for lab, k in zip(labels, keep) if k])
     fixed.set_offset_string(offset)
     axis.set_major_formatter(fixed)
+
+
+class _OffsetUnderLabels(Text):
+    """An x axis's offset text (the year under month ticks, say) for ticks drawn by
+    :func:`_tick_artists`: placed at draw time under the tick labels as matplotlib's x axis
+    places its own (``XAxis._update_offset_text_position``, ticks at the bottom)."""
+
+    def __init__(self, source: Text, text: str, labels: list, pad_points: float):
+        super().__init__()
+        self.update_from(source)
+        self.set_position(source.get_position())
+        self.set_text(text)
+        self._labels, self._pad = labels, pad_points
+
+    def draw(self, renderer):
+        from matplotlib.transforms import Bbox
+
+        boxes = [t.get_window_extent(renderer) for t in self._labels
+                 if t.get_visible() and t.get_in_layout()]
+        bottom = Bbox.union(boxes).y0 if boxes else self.axes.bbox.ymin
+        x, _ = self.get_position()
+        self.set_position((x, bottom - self._pad * self.get_figure(root=True).dpi / 72))
+        super().draw(renderer)
+
+
+def _tick_artists(ax) -> None:
+    """Draw the panel's fixed ticks (see :func:`_ticks_in_view`) as one line of tick marks and
+    one text per label per axis, copies of the axis's own first tick, instead of one tick
+    object per tick that matplotlib builds at each draw (five artists each, most never drawn;
+    tick objects were the largest cost of the report's figure). The axes then locate no ticks;
+    the y axis still writes its offset text (its place does not depend on the labels) and the
+    x axis's offset text is placed under the labels by :class:`_OffsetUnderLabels`. The same
+    marks and texts at the same places (the report's figure is checked against panels drawn
+    with matplotlib's ticks, pixel by pixel, in the tests)."""
+    from matplotlib.ticker import FixedFormatter, NullLocator
+
+    for axis, is_x in ((ax.xaxis, True), (ax.yaxis, False)):
+        locs = np.asarray(axis.get_major_locator().locs, dtype=float)
+        fmt = axis.get_major_formatter()
+        texts, offset = list(fmt.seq), fmt.get_offset()
+        tick = axis.majorTicks[0]  # every tick matplotlib draws copies this one
+        zero = np.zeros(len(locs))
+        marks = Line2D(locs if is_x else zero, zero if is_x else locs)
+        marks.update_from(tick.tick1line)
+        marks.set_visible(tick.tick1line.get_visible())
+        labels = []
+        for loc, text in zip(locs, texts):
+            lab = Text()
+            lab.update_from(tick.label1)
+            lab.set_position((loc, 0.0) if is_x else (0.0, loc))
+            lab.set_text(text)
+            labels.append(lab)
+        extra = [marks, *labels]
+        if is_x and offset:
+            extra.append(_OffsetUnderLabels(axis.offsetText, offset, labels, axis.OFFSETTEXTPAD))
+        for artist in extra:
+            ax.add_artist(artist)
+            artist.set_clip_box(None)  # unclipped, as a tick's mark and label are
+            artist.set_clip_path(None)
+            artist.set_zorder(axis.get_zorder())
+        none = FixedFormatter([])
+        none.set_offset_string("" if is_x else offset)
+        axis.set_major_locator(NullLocator())
+        axis.set_major_formatter(none)
 
 
 def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
@@ -664,6 +734,7 @@ def panel_grid(history: pd.DataFrame, table: pd.DataFrame,
         h = histories.get(row["analyte"])
         _draw_panel(ax, history, row, paths.get(row["analyte"]), compact=True,
                     h=h if h is not None else empty)
+        _tick_artists(ax)
         boxes.append(tuple(round(v * dpi) for v in (x0, top, x0 + width, top + height)))
     return PanelGrid(fig, tuple(boxes), dpi)
 

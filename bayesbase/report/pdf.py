@@ -13,6 +13,7 @@ from . import figures
 from . import wording as w
 from .figures import tint
 from .content import ReportContent
+from .pdftext import quick_line_breaking
 
 __all__ = ["render"]
 
@@ -52,6 +53,8 @@ def _quick_width_class(base: type) -> type:
 
     class QuickWidths(base):
         __slots__ = ()
+        #: read by .pdftext: the widths are the integer sums of ``cw`` described above
+        bb_quick_widths = True
 
         def get_text_width(self, text, font_size_pt, text_shaping_params):
             if text_shaping_params or self.is_symbol:
@@ -329,14 +332,16 @@ class _Layout:
 
 
 def render(content: ReportContent, path) -> None:
-    """Write the report as a PDF at ``path``."""
-    lay = _Layout(content)
-    lay.header()
-    lay.summary()
-    lay.results()
-    lay.advice()
-    lay.figures()
-    lay.method()
-    lay.pdf.ln(2)
-    lay.cautions_box()
+    """Write the report as a PDF at ``path`` (text broken into lines by
+    :func:`.pdftext.quick_line_breaking`: fpdf2's lines, found faster)."""
+    with quick_line_breaking():
+        lay = _Layout(content)
+        lay.header()
+        lay.summary()
+        lay.results()
+        lay.advice()
+        lay.figures()
+        lay.method()
+        lay.pdf.ln(2)
+        lay.cautions_box()
     lay.pdf.output(str(path))
