@@ -294,8 +294,8 @@ def test_marginal_density_matches_scipy_multivariate_normal():
     sel = select_specimens(frame, "dog", pack)
     data = prepare(sel.usable, reference_methods(sel.usable))
     pri = M.prior_values(pack, data.analytes)
-    m = M.build_model(data, pri, likelihood="specimens")
-    m_stats = M.build_model(data, pri, likelihood="animal_stats")
+    m = M.build_model(data, pri, likelihood="specimens", cvi="latent")  # one latent CVI z per animal
+    m_stats = M.build_model(data, pri, likelihood="animal_stats", cvi="latent")
     rng = np.random.default_rng(1)
     point = {k: rng.normal(0, 0.3, np.shape(v)) + (v if k.startswith("mu") else 0)
              for k, v in m.initial_point().items()}

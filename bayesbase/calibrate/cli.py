@@ -45,6 +45,9 @@ def add_parser(sub) -> None:
     p.add_argument("--force", action="store_true",
                    help="write pack.toml even when the fit did not converge (marked as such; exit code stays 3)")
     p.add_argument("--no-figure", action="store_true", help="no PNG figure (faster)")
+    p.add_argument("--age-term", action="store_true",
+                   help="add a linear age term on the log scale for the analytes the pack marks age-dependent "
+                   "whose results carry birth dates (default: none; the pack's age marks describe young animals)")
     p.add_argument("--heldout-folds", type=int, default=0, metavar="K",
                    help="also run the held-out proof: K folds over animals (K >= 2), each calibrated on the others; "
                    "each held-out animal's last usable result assessed with the prior pack and the calibrated pack "
@@ -89,7 +92,7 @@ def run(args) -> int:
         cal = calibrate(args.db or args.file, species=args.species, analytes=analytes, pack=args.pack,
                         reference_method=args.reference_method, sampler=args.sampler, draws=args.draws,
                         tune=args.tune, chains=args.chains, seed=args.seed, keep_compromised=args.keep_compromised,
-                        heldout_folds=args.heldout_folds)
+                        heldout_folds=args.heldout_folds, age_term=bool(getattr(args, "age_term", False)))
         paths = write_outputs(cal, args.out, force=args.force, figure=not args.no_figure)
     except (BayesbaseError, OSError, ValueError, ImportError) as exc:
         return _err(str(exc))

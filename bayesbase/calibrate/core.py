@@ -21,6 +21,15 @@ replicate values, the number of replicates and their within-specimen sum of squa
 per (analyte, animal), one breed level per (analyte, breed) and one bias per (analyte,
 non-reference method). The reference method of an analyte is its most frequent method among the
 usable specimens (ties: the first in alphabetical order), or the one the caller names.
+
+Age (the optional age term of :mod:`bayesbase.calibrate.model`, for the analytes the caller
+names, by default those the pack marks ``age_dependent``): each specimen's age in years at its
+collection, (collected_at - birth_date) in whole days / 365.25 (as ``bayesbase assess`` computes it),
+centred on the analyte's reference age, the median age of its specimens with a birth date. A
+specimen without a birth date gets x = 0 (it is read at the reference age: the animal keeps its
+weight for every other parameter and tells nothing about the slope; the output counts such
+animals). An analyte whose specimens carry no birth date, or all the same age, gets no age term
+(:attr:`CalibrationData.age_notes` says why).
 """
 from __future__ import annotations
 
@@ -34,8 +43,8 @@ import pandas as pd
 from ..contract import CANONICAL_COLUMNS, ROLE_BASELINE
 from ..errors import BayesbaseError
 
-__all__ = ["UNKNOWN_BREED", "UNSTATED_METHOD", "Source", "Selection", "CalibrationData",
-           "load_input", "content_sha256", "select_specimens", "reference_methods", "prepare"]
+__all__ = ["UNKNOWN_BREED", "UNSTATED_METHOD", "YEAR_DAYS", "Source", "Selection", "CalibrationData",
+           "load_input", "content_sha256", "select_specimens", "reference_methods", "age_analytes", "prepare"]
 
 #: Breed level of animals whose breed is not recorded (never written into a pack).
 UNKNOWN_BREED = "(unknown)"
@@ -44,6 +53,8 @@ UNSTATED_METHOD = "(not stated)"
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 _HASH_COLUMNS = [c for c in CANONICAL_COLUMNS if c not in ("source_file", "source_row")]
 _SORT = ["patient", "collected_at", "specimen", "analyte", "replicate"]
+#: days in a year for ages (Julian year, as ``bayesbase.assessment.frame.YEAR_DAYS``)
+YEAR_DAYS = 365.25
 
 
 @dataclass(frozen=True)
@@ -198,6 +209,13 @@ class CalibrationData:
     df_within: np.ndarray  # (A,) its degrees of freedom
     log_n_rep: np.ndarray  # (A,) sum over specimens of ln(n replicates)
     counts: dict = field(default_factory=dict)  # (analyte, parameter, group) -> (animals, specimens)
+    # optional age term (module docstring): analytes that have it, per-specimen centred age x (N,)
+    # (0 for other analytes and for specimens without a birth date), reference age per analyte
+    age_analytes: list = field(default_factory=list)
+    age_x: np.ndarray | None = None
+    age_ref: dict = field(default_factory=dict)  # analyte -> reference (median) age, years
+    age_counts: dict = field(default_factory=dict)  # analyte -> (animals with, without a birth date, specimens with)
+    age_notes: dict = field(default_factory=dict)  # analyte -> why it has no age term
 
     @property
     def n_obs(self) -> int:
@@ -211,12 +229,56 @@ def _specimen_table(usable: pd.DataFrame) -> pd.DataFrame:
         breed_l=usable["breed"].fillna(UNKNOWN_BREED).astype(str).replace("", UNKNOWN_BREED),
         method_l=usable["method"].fillna(UNSTATED_METHOD).astype(str).replace("", UNSTATED_METHOD),
         patient_s=usable["patient"].astype(str), analyte_s=usable["analyte"].astype(str),
-        specimen_s=usable["specimen"].astype(str))
+        specimen_s=usable["specimen"].astype(str), age=_ages(usable))
     g = d.groupby(["analyte_s", "patient_s", "specimen_s"], sort=True)
-    spec = g.agg(y=("ly", "mean"), n=("ly", "size"), breed=("breed_l", "first"), method=("method_l", "first"))
+    spec = g.agg(y=("ly", "mean"), n=("ly", "size"), breed=("breed_l", "first"), method=("method_l", "first"),
+                 age=("age", "first"))
     spec["ss"] = g["ly"].agg(lambda x: float(((x - x.mean()) ** 2).sum())).to_numpy()
     return spec.reset_index().rename(columns={"analyte_s": "analyte", "patient_s": "patient",
                                               "specimen_s": "specimen"})
+
+
+def _ages(rows: pd.DataFrame) -> np.ndarray:
+    """Age in years at collection (NaN without a birth date, or with one after the collection)."""
+    if "birth_date" not in rows:
+        return np.full(len(rows), np.nan)
+    born = pd.to_datetime(rows["birth_date"]).to_numpy(dtype="datetime64[ns]")
+    at = pd.to_datetime(rows["collected_at"]).to_numpy(dtype="datetime64[ns]")
+    gap = at - born
+    # whole days, as bayesbase assess (pandas .dt.days); NaT -> NaN
+    days = np.where(np.isnat(gap), np.nan, np.floor(gap.astype("int64") / 86_400e9))
+    age = days / YEAR_DAYS
+    return np.where(np.isfinite(age) & (age >= 0), age, np.nan)
+
+
+def age_analytes(pack, analytes) -> list[str]:
+    """The analytes of ``analytes`` that ``pack`` marks age-dependent (``age_dependent`` set)."""
+    return [a for a in analytes if a in pack.analytes and pack.analytes[a].age_dependent]
+
+
+def _age_layout(spec: pd.DataFrame, wanted) -> dict:
+    """Centred ages x per specimen for the ``wanted`` analytes (module docstring)."""
+    x = np.zeros(len(spec))
+    out = dict(age_analytes=[], age_ref={}, age_counts={}, age_notes={})
+    for a in sorted(set(wanted)):
+        k = (spec["analyte"] == a).to_numpy()
+        if not k.any():
+            continue
+        age = spec["age"].to_numpy(float)[k]
+        known = np.isfinite(age)
+        pats = spec["patient"].to_numpy()[k]
+        with_bd = len(set(pats[known]))
+        out["age_counts"][a] = (with_bd, len(set(pats)) - with_bd, int(known.sum()))
+        if not known.any() or np.ptp(age[known]) == 0:
+            out["age_notes"][a] = ("no specimen has a birth date" if not known.any()
+                                   else "every specimen with a birth date has the same age")
+            continue
+        ref = float(np.median(age[known]))
+        x[k] = np.where(known, age - ref, 0.0)
+        out["age_analytes"].append(a)
+        out["age_ref"][a] = ref
+    out["age_x"] = x
+    return out
 
 
 def _counts(spec: pd.DataFrame) -> dict:
@@ -230,8 +292,9 @@ def _counts(spec: pd.DataFrame) -> dict:
     return out
 
 
-def prepare(usable: pd.DataFrame, reference: dict[str, str]) -> CalibrationData:
-    """The model's layout of the usable results (module docstring)."""
+def prepare(usable: pd.DataFrame, reference: dict[str, str], age_analytes=()) -> CalibrationData:
+    """The model's layout of the usable results (module docstring); ``age_analytes``: analytes
+    that get the age term when their specimens carry ages (module docstring)."""
     spec = _specimen_table(usable)
     analytes = sorted(spec["analyte"].unique())
     a_idx = {a: i for i, a in enumerate(analytes)}
@@ -255,4 +318,5 @@ def prepare(usable: pd.DataFrame, reference: dict[str, str]) -> CalibrationData:
         cell_analyte=np.array([a_idx[a] for a in cells["analyte"]], dtype=int),
         cell_breed=np.array([b_of[(a, b)] for a, b in zip(cells["analyte"], cells["breed"])], dtype=int),
         cell_animal=list(cells["patient"]), breed_pairs=breed_pairs, bias_pairs=bias_pairs,
-        reference=dict(reference), ss_within=ss, df_within=dfw, log_n_rep=lnn, counts=_counts(spec))
+        reference=dict(reference), ss_within=ss, df_within=dfw, log_n_rep=lnn, counts=_counts(spec),
+        **_age_layout(spec, age_analytes))

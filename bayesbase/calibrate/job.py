@@ -8,7 +8,10 @@ within a breed), ``cvi`` (the median animal's CVI), ``cvi_log_sd`` (SD of ln CVI
 method: a result of that method reads (1 + bias) times the reference method's; the reference
 method's row is 0). ``cvi_predictive_log_sd`` (in ``attrs``, per analyte) is the SD of ln CVI of a
 new animal over the posterior, sqrt(E[cvi_log_sd^2] + Var[ln CVI median]): the number a pack's
-``cvi_log_sd`` stands for.
+``cvi_log_sd`` stands for. ``age_slope`` (analytes with the optional age term only): the fraction
+by which the set point changes per year of age, exp(age_log_slope) - 1, group ``per year from
+age R y`` (R: the analyte's reference age, the median age of its specimens; prior value 0); not
+a pack key (the pack schema has none), so it stays in calibration.csv, the page and idata.
 """
 from __future__ import annotations
 
@@ -20,13 +23,14 @@ import pandas as pd
 
 from .. import __version__
 from ..constants import CI_BOUNDS, DIM_ANALYTE, DIM_CI
-from .core import UNKNOWN_BREED, CalibrationData, Selection, load_input, prepare, reference_methods, select_specimens
+from .core import (UNKNOWN_BREED, CalibrationData, Selection, age_analytes, load_input, prepare, reference_methods,
+                   select_specimens)
 
 __all__ = ["TABLE_COLUMNS", "PARAMETERS", "Calibration", "calibrate", "summary_table", "to_dataset"]
 
 TABLE_COLUMNS = ("analyte", "parameter", "group", "prior_value", "estimate", "lower", "upper", "n_animals",
                  "n_specimens")
-PARAMETERS = ("center", "cvg", "cvi", "cvi_log_sd", "breed_center", "method_bias", "cva")
+PARAMETERS = ("center", "cvg", "cvi", "cvi_log_sd", "breed_center", "method_bias", "cva", "age_slope")
 CI_PROB = 0.95
 
 
@@ -88,6 +92,10 @@ def _analyte_rows(post, data: CalibrationData, pack, i: int, a: str) -> list[dic
         if ma == a:
             rows.append(_row(a, "method_bias", m, 0.0, _q(_draws(post, "method_bias")[:, k]),
                              data.counts[(a, "method", m)]))
+    if a in getattr(data, "age_analytes", []):
+        k = data.age_analytes.index(a)
+        rows.append(_row(a, "age_slope", f"per year from age {data.age_ref[a]:.2f} y", 0.0,
+                         _q(_draws(post, "age_slope")[:, k]), (data.age_counts[a][0], data.age_counts[a][2])))
     return rows
 
 
@@ -171,7 +179,7 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
               reference_method: str | None = None, sampler: str = "pymc", draws: int = 1000,
               tune: int = 1000, chains: int = 4, seed: int = 0, cores: int | None = None,
               target_accept: float = 0.9, keep_compromised: bool = False, now=None,
-              heldout_folds: int = 0) -> Calibration:
+              heldout_folds: int = 0, age_term: bool = False) -> Calibration:
     """Fit the hierarchical calibration model (:mod:`bayesbase.calibrate.model`) to every usable
     result of ``species`` in a store (a ``Store`` or its file), a results file or a frame.
 
@@ -179,7 +187,11 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
     own). ``analytes``: ids to calibrate (default every analyte of the input the pack carries).
     ``reference_method``: the method whose bias is fixed at 0 (default: each analyte's most
     frequent). ``heldout_folds`` >= 2 adds the k-fold held-out proof of
-    :mod:`bayesbase.calibrate.heldout` (same settings; ``Calibration.heldout``). Returns a
+    :mod:`bayesbase.calibrate.heldout` (same settings; ``Calibration.heldout``). ``age_term``:
+    the model's optional age term for the analytes the pack marks ``age_dependent`` whose
+    specimens carry birth dates (:mod:`bayesbase.calibrate.core`; default False: none, because
+    the packs' age marks describe young animals, not a steady trend over adult life; ask for it
+    when the store spans ages and such a trend is plausible). Returns a
     :class:`Calibration`; never raises on poor convergence (it says so in ``diagnostics`` and
     ``converged``)."""
     from ..priors import Pack, load_pack
@@ -192,7 +204,8 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
 
         raise BayesbaseError(f"pack '{pk.id}' is for {pk.species}, not {species}")
     sel = select_specimens(frame, species, pk, analytes, keep_compromised=keep_compromised)
-    data = prepare(sel.usable, reference_methods(sel.usable, reference_method))
+    data = prepare(sel.usable, reference_methods(sel.usable, reference_method),
+                   age_analytes(pk, sel.analytes) if age_term else ())
     pri = _model.prior_values(pk, data.analytes)
     idata, diag, settings = _model.fit(data, pri, draws=draws, tune=tune, chains=chains, seed=seed,
                                        sampler=sampler, cores=cores, target_accept=target_accept)
@@ -200,6 +213,9 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
     attrs = _attrs(pk, source, data, settings, diag, data.analytes, _model.prior_text(pk, data.analytes),
                    predictive_log_sd(idata))
     attrs["pack_ref"] = _pack_ref(pack, pk)
+    attrs.update(age_term=bool(age_term), age_reference_years={a: round(r, 4) for a, r in data.age_ref.items()},
+                 age_animals_without_birth_date={a: data.age_counts[a][1] for a in data.age_analytes},
+                 age_notes=dict(data.age_notes))
     attrs["n_specimens"] = int(len(sel.usable[["patient", "specimen"]].drop_duplicates()))
     idata.posterior.attrs.update({k: str(v) if not isinstance(v, (int, float, str)) or isinstance(v, bool) else v
                                   for k, v in attrs.items()})

@@ -16,6 +16,12 @@ interval, the animals and specimens of that method and the date. ``bayesbase ass
 for a method change (:mod:`bayesbase.assessment.cases`). No biases are written for an analyte whose
 reference method is not stated, and no bias for results without a method.
 
+The optional age term (analytes the pack marks ``age_dependent``) is not a pack key: its slope
+(``age_slope`` rows of calibration.csv: fraction per year of age, from the analyte's reference
+age) is reported in calibration.html, with the reference age and the number of animals without a
+birth date (read at the reference age, x = 0), and kept in idata.nc (``age_log_slope``,
+``age_slope``).
+
 Never silent: a fit that failed a convergence check writes no fragment unless ``force=True``,
 and a forced fragment says so in its header and description. The fragment is checked by the
 pack schema (``bayesbase.priors.load_pack``) before it is put in place; a fragment the schema
@@ -118,7 +124,9 @@ def _analyte_lines(cal: Calibration, pack, analyte: str, src: str) -> list[str]:
     t = cal.table[cal.table["analyte"] == analyte]
     one = {p: r for p, r in zip(t["parameter"], t.itertuples()) if p not in ("breed_center", "method_bias")}
     lines = ["", f"[analytes.{analyte}]", f"unit = {_s(pack.analytes[analyte].unit)}"]
-    lines.append(f"center = {_cited(one['center'].estimate, src, _note(one['center'], pack, 'center', 'posterior median of exp(mu), the centre of the breeds on the reference method ' + cal.data.reference[analyte]))}")
+    at = cal.attrs.get("age_reference_years", {}).get(analyte)  # the age term's reference age, if any
+    age_words = "" if at is None else f", at age {at:.2f} years (age term: see calibration.html)"
+    lines.append(f"center = {_cited(one['center'].estimate, src, _note(one['center'], pack, 'center', 'posterior median of exp(mu), the centre of the breeds on the reference method ' + cal.data.reference[analyte] + age_words))}")
     lines.append(f"cvg = {_cited(one['cvg'].estimate, src, _note(one['cvg'], pack, 'cvg', 'posterior median; between animals within a breed'))}")
     lines.append(f"cvi = {_cited(one['cvi'].estimate, src, _note(one['cvi'], pack, 'cvi', 'posterior median of the median animal CVI'))}")
     pred = cal.attrs["cvi_predictive_log_sd"][analyte]
@@ -244,6 +252,35 @@ def _diag_html(cal: Calibration) -> str:
     return f"<table><tr><th>check</th><th>value</th><th>needed</th></tr>{body}</table>"
 
 
+def _age_html(cal: Calibration) -> str:
+    """The age term's section: per analyte the slope, its reference age and the animals without a
+    birth date; analytes marked age-dependent but fitted without the term, and why."""
+    a = cal.attrs
+    if "age_term" not in a:  # a calibration built without the age settings (e.g. by hand)
+        return ""
+    if not a["age_term"]:
+        return "<h2>Age term</h2><p>Off (the default; --age-term or age_term=True adds it): no analyte has an age term.</p>"
+    refs, notes = a.get("age_reference_years", {}), a.get("age_notes", {})
+    if not refs and not notes:
+        return ""
+    t = cal.table[cal.table["parameter"] == "age_slope"].set_index("analyte")
+    rows = []
+    for an, ref in refs.items():
+        r = t.loc[an]
+        rows.append(f'<tr><td class="l">{_e(an)}</td><td>{ref:.2f}</td><td>{100 * r["estimate"]:+.2f}</td>'
+                    f'<td>{100 * r["lower"]:+.2f} to {100 * r["upper"]:+.2f}</td><td>{r["n_animals"]}</td>'
+                    f'<td>{a["age_animals_without_birth_date"].get(an, 0)}</td></tr>')
+    body = ("<table><tr><th>analyte</th><th>reference age (years)</th><th>slope (% per year)</th><th>95 % CrI</th>"
+            "<th>animals with a birth date</th><th>animals without</th></tr>" + "".join(rows) + "</table>") if rows else ""
+    off = "".join(f"<li>{_e(an)}: no age term ({_e(why)})</li>" for an, why in notes.items())
+    return ("<h2>Age term</h2><p>For the analytes the pack marks age-dependent: ln value = set point at the reference "
+            "age (the median age of the analyte's specimens) + slope x (age at collection - reference age). "
+            "Specimens of an animal without a birth date are read at the reference age (x = 0): they count for every "
+            "other parameter and tell nothing about the slope. Not written into pack.toml (the pack has no such key); "
+            "centre, breed centres and CVG are those of animals at the reference age.</p>" + body
+            + (f"<ul>{off}</ul>" if off else ""))
+
+
 def calibration_html(cal: Calibration, png: bytes | None = None) -> str:
     """A self-contained page: cautions, convergence, prior vs posterior table, priors, figure."""
     a = cal.attrs
@@ -266,7 +303,7 @@ def calibration_html(cal: Calibration, png: bytes | None = None) -> str:
              "<p>CVs are fractions; method_bias is the fraction by which a method reads above the reference method "
              "(pack.toml carries each as the posterior mean and SD of its natural-log bias, method_biases, which "
              "bayesbase assess uses to correct a change of method).</p>",
-             _table_html(cal), "<h2>Priors</h2><ul>"
+             _table_html(cal), _age_html(cal), "<h2>Priors</h2><ul>"
              + "".join(f"<li><b>{_e(k)}</b>: {_e(v)}</li>" for k, v in a["priors"].items()) + "</ul>"]
     if png is not None:
         parts.append("<h2>CVI of the median animal: prior and posterior</h2><img alt='CVI prior and posterior' "

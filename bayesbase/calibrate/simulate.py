@@ -10,6 +10,13 @@ are demo numbers chosen here, not reference values.
 taken from the pack so the priors are well placed; CVI medians, spreads, breed offsets and
 method biases drawn at random, demo numbers), and ``breed_counts`` gives breeds of unequal
 sizes (:data:`BENCH_BREEDS`: three large breeds, a middling one and breeds of 3 animals).
+
+Age (optional): with ``age_years=(lo, hi)`` each animal's age at its first specimen is drawn
+uniformly in [lo, hi] and its birth date set accordingly (else every animal is born 2018-03-01);
+``age_log_slopes`` {analyte: ln change per year} shifts each specimen's ln value by slope x (age
+- the median age of the simulated specimens), so ``center`` stays the centre at that age (returned
+as ``truth["age_ref"][analyte]``); a share ``p_no_birth_date`` of the animals has no birth date
+recorded (their values still follow their true age).
 """
 from __future__ import annotations
 
@@ -97,7 +104,7 @@ def _sig(cv: float) -> float:
     return math.sqrt(math.log1p(cv * cv))
 
 
-def _one_analyte(rng, t: Truth, breeds, methods_of, n_specimens):
+def _one_analyte(rng, t: Truth, breeds, methods_of, n_specimens, age_shift=0.0):
     n = len(breeds)
     off = np.array([t.breed_log_offsets.get(b, 0.0) for b in breeds])
     theta = math.log(t.center) + off + _sig(t.cvg) * rng.standard_normal(n)
@@ -105,19 +112,21 @@ def _one_analyte(rng, t: Truth, breeds, methods_of, n_specimens):
     si = np.sqrt(np.log1p(cvi**2))
     bias = np.where(methods_of == 1, math.log1p(t.method_bias), 0.0)
     eps = si[:, None] * rng.standard_normal((n, n_specimens)) + _sig(t.cva) * rng.standard_normal((n, n_specimens))
-    return np.exp(theta[:, None] + bias + eps), cvi
+    return np.exp(theta[:, None] + bias + eps + age_shift), cvi
 
 
 def simulate_store(seed: int = 0, n_animals: int = 60, n_specimens: int = 4, analytes=("creatinine",),
                    truths: dict | None = None, p_method_b: float = 0.3, n_unwell: int = 0,
                    source: str = "simulated calibration store",
-                   breed_counts: dict | None = None) -> tuple[pd.DataFrame, dict]:
+                   breed_counts: dict | None = None, age_years: tuple | None = None,
+                   age_log_slopes: dict | None = None, p_no_birth_date: float = 0.0) -> tuple[pd.DataFrame, dict]:
     """(canonical frame, {analyte: Truth, "cvi_animal": {analyte: array}}) of an invented store.
 
     Breeds cycle through the truth's breeds, or follow ``breed_counts`` (:func:`breed_list`; a
     breed missing from a truth has offset 0); each specimen's method is B with probability
     ``p_method_b``. ``n_unwell`` extra specimens (state ``unwell``, values doubled) are added to
-    the first animals: usable-specimen selection must leave them out.
+    the first animals: usable-specimen selection must leave them out. ``age_years``,
+    ``age_log_slopes`` and ``p_no_birth_date``: the optional age effect (module docstring).
     """
     rng = np.random.default_rng(seed)
     truths = truths or DEMO_TRUTH
@@ -127,20 +136,47 @@ def simulate_store(seed: int = 0, n_animals: int = 60, n_specimens: int = 4, ana
     else:
         breeds = breed_list(n_animals, breed_counts)
     methods_of = (rng.random((n_animals, n_specimens)) < p_method_b).astype(int)
+    age, birth = _ages(rng, n_animals, n_specimens, age_years, p_no_birth_date)
+    ref = float(np.median(age))
     rows, cvis = [], {}
     for a in analytes:
         t = truths[a]
-        vals, cvis[a] = _one_analyte(rng, t, breeds, methods_of, n_specimens)
+        shift = (age_log_slopes or {}).get(a, 0.0) * (age - ref)
+        vals, cvis[a] = _one_analyte(rng, t, breeds, methods_of, n_specimens, shift)
         for i in range(n_animals):
             for j in range(n_specimens):
                 rows.append((i, j, a, t.unit, float(vals[i, j]), methods_of[i, j], ""))
             if i < n_unwell:
                 rows.append((i, n_specimens, a, t.unit, float(2.0 * vals[i, -1]), 0, "unwell"))
-    frame = _frame(rows, breeds, source)
-    return frame, {**{a: truths[a] for a in analytes}, "cvi_animal": cvis}
+    frame = _frame(rows, breeds, source, birth)
+    return frame, {**{a: truths[a] for a in analytes}, "cvi_animal": cvis, "age_ref": {a: ref for a in analytes},
+                   "age_log_slopes": dict(age_log_slopes or {})}
 
 
-def _frame(rows, breeds, source) -> pd.DataFrame:
+_FIRST = np.datetime64("2024-01-05T09:00:00", "ns")
+_DAY_NS = 86_400 * 10**9
+
+
+def _days(i, j):
+    """Days from the first collection date of the store to specimen j of animal i."""
+    return j * 30 + i % 11
+
+
+def _ages(rng, n_animals, n_specimens, age_years, p_no_birth_date):
+    """True age (years) at each specimen (n_animals x n_specimens) and each animal's recorded birth
+    date (NaT for the share without one)."""
+    i, j = np.meshgrid(np.arange(n_animals), np.arange(n_specimens), indexing="ij")
+    if age_years is None:
+        birth = np.full(n_animals, np.datetime64("2018-03-01", "ns"))
+    else:
+        age0 = rng.uniform(age_years[0], age_years[1], n_animals)  # age at the store's first date
+        birth = (_FIRST - (age0 * 365.25 * _DAY_NS).astype("timedelta64[ns]")).astype("datetime64[D]").astype("datetime64[ns]")
+    age = (_FIRST - birth[:, None] + (_days(i, j) * _DAY_NS).astype("timedelta64[ns]")).astype(float) / _DAY_NS / 365.25
+    missing = rng.random(n_animals) < p_no_birth_date if p_no_birth_date > 0 else np.zeros(n_animals, dtype=bool)
+    return age, np.where(missing, np.datetime64("NaT", "ns"), birth)
+
+
+def _frame(rows, breeds, source, birth) -> pd.DataFrame:
     i, j, a, unit, value, m, state = (np.array(c, dtype=object) for c in zip(*rows))
     i, j = i.astype(int), j.astype(int)
     value = np.round(value.astype(float), 4)
@@ -149,9 +185,9 @@ def _frame(rows, breeds, source) -> pd.DataFrame:
     df = pd.DataFrame({
         "patient": pat, "species": "dog",
         "breed": np.array([None if b == "(unknown)" else b for b in breeds], dtype=object)[i], "sex": "female_neutered",
-        "birth_date": np.datetime64("2018-03-01", "ns"),
+        "birth_date": birth[i],
         "specimen": [f"{p}-{k:02d}" for p, k in zip(pat, j)],
-        "collected_at": np.datetime64("2024-01-05T09:00:00", "ns") + (j * 30 + i % 11).astype("timedelta64[D]"),
+        "collected_at": _FIRST + _days(i, j).astype("timedelta64[D]"),
         "analyte": a, "value": value, "unit": unit, "reported_value": [f"{v:g}" for v in value],
         "reported_unit": unit, "censor": "",
         "method": np.where(m.astype(int) == 1, "demo analyser B", "demo analyser A"),
