@@ -15,7 +15,6 @@ files, with invented owners.
 """
 from __future__ import annotations
 
-import multiprocessing
 import sqlite3
 import struct
 import subprocess
@@ -30,6 +29,7 @@ from bayesbase.errors import ValidationError
 from bayesbase.io import chunked
 from bayesbase.store import ImportConflict, Store
 from bayesbase.store.importer import import_file_chunked
+from store_helpers import dump_lines, process_context, reader_child, run_children
 
 ROOT = Path(__file__).resolve().parents[1]
 BV = ROOT / "case_library" / "dog_bv_study_example" / "results.csv"  # 576 rows, 12 dogs
@@ -119,14 +119,6 @@ def _logical(db: Path) -> dict:
         con.close()
 
 
-def _dump(db: Path) -> list[str]:
-    con = sqlite3.connect(db)
-    try:
-        return list(con.iterdump())
-    finally:
-        con.close()
-
-
 def _cli(capsys, *args) -> tuple[int, str, str]:
     code = main([str(a) for a in args])
     out = capsys.readouterr()
@@ -171,13 +163,13 @@ def test_chunked_import_lists_the_conflicts_of_the_whole_file_import(tmp_path):
         db = tmp_path / f"{way}.sqlite"
         with Store(db) as s:
             s.import_file(earlier)
-            before = _dump(db)
+            before = dump_lines(db)
             with pytest.raises(ImportConflict) as exc:
                 if way == "whole":
                     s.import_file(src)
                 else:
                     import_file_chunked(s.connection, src, 41)
-        assert _dump(db) == before
+        assert dump_lines(db) == before
         found[way] = exc.value.conflicts
     assert sorted(map(str, found["chunked"])) == sorted(map(str, found["whole"]))
     assert len(found["whole"]) == 1
@@ -187,12 +179,12 @@ def test_chunked_dry_run_says_what_the_whole_file_dry_run_says(tmp_path, capsys)
     src, earlier = _messy(tmp_path), _earlier(tmp_path)
     db = tmp_path / "s.sqlite"
     _cli(capsys, "import", earlier, "--db", db)
-    before = _dump(db)
+    before = dump_lines(db)
     whole = _cli(capsys, "import", src, "--db", db, "--dry-run")
     chunk = _cli(capsys, "import", src, "--db", db, "--dry-run", "--chunk-rows", 29)
     assert whole[0] == chunk[0] == 0
     assert whole[1] == chunk[1] and "1 conflicts" in whole[1]
-    assert _dump(db) == before
+    assert dump_lines(db) == before
 
 
 def test_chunked_reimport_adds_nothing(tmp_path, capsys):
@@ -228,7 +220,7 @@ def test_one_bad_row_anywhere_stores_nothing(tmp_path, capsys, where, bad):
     path = _write(tmp_path / "bad.csv", COLS, rows)
     db = tmp_path / "s.sqlite"
     assert _cli(capsys, "import", OTHER, "--db", db)[0] == 0
-    before = _dump(db)
+    before = dump_lines(db)
     for extra in ([], ["--chunk-rows", 40], ["--chunk-rows", 40, "--replace"]):
         code, out, err = _cli(capsys, "import", path, "--db", db, *extra)
         assert code == 2 and out == ""
@@ -237,7 +229,7 @@ def test_one_bad_row_anywhere_stores_nothing(tmp_path, capsys, where, bad):
         else:
             assert f"bad.csv, row {at + 2}, column '{column}'" in err, err
         assert "Traceback" not in err
-        assert _dump(db) == before
+        assert dump_lines(db) == before
 
 
 def test_problems_of_reader_and_import_are_reported_together(tmp_path):
@@ -341,15 +333,6 @@ def test_two_chunked_cli_importers_into_one_store_both_land(tmp_path):
         assert s.integrity_check() == "ok"
 
 
-def _context():
-    # as in test_store_robustness: children fork from one clean forkserver process
-    if "forkserver" not in multiprocessing.get_all_start_methods():  # e.g. Windows
-        return multiprocessing.get_context("spawn")
-    ctx = multiprocessing.get_context("forkserver")
-    ctx.set_forkserver_preload(["pandas", "bayesbase.io", "bayesbase.store", __name__])
-    return ctx
-
-
 def _paused_chunked(db, path, midway, go, queue):
     def rows(tuples):  # pauses inside the second chunk's insert loop
         rows.calls += 1
@@ -368,29 +351,18 @@ def _paused_chunked(db, path, midway, go, queue):
         queue.put(("writer", "error", f"{type(exc).__name__}: {exc}"))
 
 
-def _reader(db, queue):
-    try:
-        with Store(db, timeout=1.0) as s:  # a reader that had to wait would fail here
-            queue.put(("reader", "ok", len(s.results())))
-    except BaseException as exc:
-        queue.put(("reader", "error", f"{type(exc).__name__}: {exc}"))
-
-
 def test_reader_process_not_blocked_by_a_chunked_import(tmp_path):
     db = tmp_path / "s.sqlite"
     with Store(db) as s:
         s.import_file(OTHER)
         n0 = len(s.results())
-    ctx = _context()
-    midway, go, wq, rq = ctx.Event(), ctx.Event(), ctx.Queue(), ctx.Queue()
+    ctx = process_context(__name__)
+    midway, go, wq = ctx.Event(), ctx.Event(), ctx.Queue()
     writer = ctx.Process(target=_paused_chunked, args=(str(db), str(BV), midway, go, wq))
     writer.start()
     try:
         assert midway.wait(timeout=300)  # the writer holds its one transaction open
-        reader = ctx.Process(target=_reader, args=(str(db), rq))
-        reader.start()
-        got = rq.get(timeout=300)
-        reader.join(timeout=60)
+        (got,) = run_children(ctx, reader_child, [(str(db),)])
         assert got == ("reader", "ok", n0)  # the last committed state, no half import
     finally:
         go.set()

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import codecs
 import csv
-import sqlite3
 from pathlib import Path
 
 import pandas as pd
@@ -23,6 +22,7 @@ from bayesbase.errors import ValidationError
 from bayesbase.io.chunked import iter_results, read_results_chunked
 from bayesbase.store import ImportConflict, Store
 from bayesbase.store.importer import file_sha256, import_chunks
+from store_helpers import dump_lines
 
 ROOT = Path(__file__).resolve().parents[1]
 CASES = sorted((ROOT / "case_library").glob("*/results.csv"))
@@ -37,14 +37,6 @@ def _lines(path: Path = BV) -> list[str]:
 def _write(path: Path, lines: list[str], encoding: str = "utf-8", newline: str = "\n") -> Path:
     path.write_bytes((newline.join(lines) + newline).encode(encoding))
     return path
-
-
-def _dump(db: Path) -> list[str]:
-    con = sqlite3.connect(db)
-    try:
-        return list(con.iterdump())
-    finally:
-        con.close()
 
 
 @pytest.mark.parametrize("case", CASES, ids=lambda p: p.parent.name)
@@ -177,7 +169,7 @@ def test_chunked_import_is_all_or_nothing(tmp_path, bad_at):
     db = tmp_path / "s.sqlite"
     with Store(db) as s:
         s.import_file(CASES[0])
-    before = _dump(db)
+    before = dump_lines(db)
     lines = _lines()
     cells = lines[bad_at - 1].split(",")
     cells[6] = "2023-02-29 08:30"  # no such day (Gregorian calendar)
@@ -186,7 +178,7 @@ def test_chunked_import_is_all_or_nothing(tmp_path, bad_at):
     with pytest.raises(ValidationError) as exc:
         _import_chunked(db, path, 40)
     assert any(p.row == bad_at and p.column == "collected_at" for p in exc.value.problems)
-    assert _dump(db) == before
+    assert dump_lines(db) == before
 
 
 def test_chunked_import_conflict_in_a_late_chunk_stores_nothing(tmp_path):
@@ -194,13 +186,13 @@ def test_chunked_import_conflict_in_a_late_chunk_stores_nothing(tmp_path):
     lines = _lines()
     with Store(db) as s:
         s.import_file(_write(tmp_path / "one.csv", [lines[0], lines[-1]]))
-    before = _dump(db)
+    before = dump_lines(db)
     cells = lines[-1].split(",")
     cells[8] = str(float(cells[8]) * 2)
     path = _write(tmp_path / "two.csv", lines[:-1] + [",".join(cells)])
     with pytest.raises(ImportConflict):
         _import_chunked(db, path, 40)
-    assert _dump(db) == before
+    assert dump_lines(db) == before
 
 
 # ------------------------------------------------------------------ to_tidy_csv and CR

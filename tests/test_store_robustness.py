@@ -18,7 +18,6 @@ from __future__ import annotations
 import csv
 import json
 import math
-import multiprocessing
 import sqlite3
 import struct
 import subprocess
@@ -34,6 +33,7 @@ from bayesbase import io as bio, store as st
 from bayesbase.errors import StoreError, ValidationError
 from bayesbase.store import ImportConflict, Store
 from bayesbase.testing import synthetic_canonical
+from store_helpers import dump_lines, process_context, reader_child, run_children
 
 REQUIRED = "patient,species,specimen,collected_at,analyte,value,unit"
 SENTINELS = ("NaT", "nan", "NaN", "None", "<NA>")  # texts pandas/Python print for a missing value
@@ -52,11 +52,7 @@ def _bare_pair(tmp_path):
 
 
 def _dump(db) -> str:
-    con = sqlite3.connect(db)
-    try:
-        return "\n".join(con.iterdump())
-    finally:
-        con.close()
+    return "\n".join(dump_lines(db))
 
 
 def _no_sentinel_text(db) -> None:
@@ -263,28 +259,6 @@ def _open_child(dbs, barrier, queue):
     queue.put(out)
 
 
-def _context():
-    # forkserver: children fork from one clean server process (not the pytest process) that
-    # has imported pandas, the store and this module once, so each child starts in milliseconds
-    if "forkserver" not in multiprocessing.get_all_start_methods():  # e.g. Windows
-        return multiprocessing.get_context("spawn")
-    ctx = multiprocessing.get_context("forkserver")
-    ctx.set_forkserver_preload(["pandas", "bayesbase.io", "bayesbase.store", __name__])
-    return ctx
-
-
-def _run_children(ctx, target, arglists):
-    queue = ctx.Queue()
-    procs = [ctx.Process(target=target, args=(*a, queue)) for a in arglists]
-    for p in procs:
-        p.start()
-    out = [queue.get(timeout=300) for _ in procs]
-    for p in procs:
-        p.join(timeout=60)
-    assert [p.exitcode for p in procs] == [0] * len(procs)
-    return out
-
-
 def test_twenty_concurrent_first_imports_into_a_new_store(tmp_path):
     n = 20
     frames = []
@@ -295,9 +269,9 @@ def test_twenty_concurrent_first_imports_into_a_new_store(tmp_path):
         frames.append((bio.read_results(f), f.name))
     db = tmp_path / "new" / "store.sqlite"
     assert not db.exists()
-    ctx = _context()
+    ctx = process_context(__name__)
     barrier = ctx.Barrier(n)
-    out = _run_children(ctx, _import_child, [(str(db), fr, name, barrier) for fr, name in frames])
+    out = run_children(ctx, _import_child, [(str(db), fr, name, barrier) for fr, name in frames])
     errors = [o for o in out if o[1] != "ok"]
     assert errors == []
     assert sorted(o[2] for o in out) == [2] * n
@@ -316,9 +290,9 @@ def test_simultaneous_creation_of_many_new_stores(tmp_path):
     # failed with "database is locked" in most runs (the deterministic form is
     # test_opening_waits_for_a_store_being_created); now none may fail.
     dbs = [str(tmp_path / f"n{i:02d}.sqlite") for i in range(80)]
-    ctx = _context()
+    ctx = process_context(__name__)
     barrier = ctx.Barrier(4)
-    out = _run_children(ctx, _open_child, [(dbs, barrier)] * 4)
+    out = run_children(ctx, _open_child, [(dbs, barrier)] * 4)
     errors = [e for o in out for e in o if e != "ok"]
     assert errors == []
     for db in dbs[:: 20]:
@@ -390,36 +364,25 @@ def _paused_writer(db, midway, go, queue):
         queue.put(("writer", "error", f"{type(exc).__name__}: {exc}"))
 
 
-def _reader(db, queue):
-    try:
-        # a short busy timeout: a reader that had to wait for the writer would fail here
-        with Store(db, timeout=1.0) as s:
-            n = len(s.results())
-            s.patients()
-        queue.put(("reader", "ok", n))
-    except BaseException as exc:
-        queue.put(("reader", "error", f"{type(exc).__name__}: {exc}"))
-
-
 def test_reader_process_not_blocked_by_writer_process(tmp_path):
     db = tmp_path / "s.sqlite"
     with Store(db) as s:
         s.import_frame(synthetic_canonical(1, 2, 2).assign(patient="KEEP"), "keep.csv")
-    ctx = _context()
+    ctx = process_context(__name__)
     midway, go = ctx.Event(), ctx.Event()
     wq = ctx.Queue()
     writer = ctx.Process(target=_paused_writer, args=(str(db), midway, go, wq))
     writer.start()
     try:
         assert midway.wait(timeout=120)  # the writer holds its write transaction open
-        (reader,) = _run_children(ctx, _reader, [(str(db),)])
+        (reader,) = run_children(ctx, reader_child, [(str(db),)])
         assert reader == ("reader", "ok", 4)  # the last committed state, not the half import
     finally:
         go.set()
         result = wq.get(timeout=120)
         writer.join(timeout=60)
     assert result == ("writer", "ok", 40) and writer.exitcode == 0
-    (reader,) = _run_children(ctx, _reader, [(str(db),)])
+    (reader,) = run_children(ctx, reader_child, [(str(db),)])
     assert reader == ("reader", "ok", 44)
 
 
@@ -615,3 +578,29 @@ def test_forget_leaves_no_byte_in_database_files_or_exports(tmp_path):
     assert _scan(files, gone) == set()  # and after the last connection closed
     assert json.loads((tmp_path / "all.json").read_text())["resourceType"] == "Bundle"
     assert "KEEP-ID-8830" in (tmp_path / "all.csv").read_text(encoding="utf-8")
+
+
+# ============================================================ the one transaction block
+def test_write_transaction_commits_rolls_back_and_always_cleans_up(tmp_path):
+    # bayesbase.store.connection.write_transaction, used by Store.import_frame and the chunked
+    # import: committed on a normal exit, rolled back on any exception (an interrupt too) or
+    # by the block itself (a dry run), and its cleanup runs in every case
+    from bayesbase.store.connection import write_transaction
+
+    con = sqlite3.connect(tmp_path / "t.sqlite", isolation_level=None)
+    con.execute("CREATE TABLE r (v)")
+    cleaned = []
+    with write_transaction(con, cleanup=lambda: cleaned.append("ok")):
+        con.execute("INSERT INTO r VALUES (1)")
+    for exc in (ValueError("bad row"), KeyboardInterrupt()):
+        with pytest.raises(type(exc)):
+            with write_transaction(con, cleanup=lambda: cleaned.append("error")):
+                con.execute("INSERT INTO r VALUES (2)")
+                raise exc
+    with write_transaction(con, immediate=False, cleanup=lambda: cleaned.append("dry")):
+        con.execute("INSERT INTO r VALUES (3)")
+        con.execute("ROLLBACK")
+    assert not con.in_transaction
+    assert con.execute("SELECT v FROM r").fetchall() == [(1,)]
+    assert cleaned == ["ok", "error", "error", "dry"]
+    con.close()

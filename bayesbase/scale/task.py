@@ -5,7 +5,6 @@ names the partition's path and what went wrong, so the other partitions go on.
 """
 from __future__ import annotations
 
-import functools
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -63,22 +62,19 @@ def count_table(table) -> dict:
             "probable": int((table["p_change"].to_numpy(dtype=float) >= PROBABLE_CHANGE).sum())}
 
 
-@functools.lru_cache(maxsize=16)
-def _own_pack(species: str):
-    """A species' own pack, loaded once per process (each partition would otherwise parse the
-    same TOML again)."""
-    from ..priors import load_pack
-
-    return load_pack(species)
-
-
 def _pack_for(task: PartitionTask, frame):
     """The pack to pass to ``assess``: the task's, else the one species' own pack (the pack
-    ``assess`` would load itself), else None (several species: ``assess`` loads each)."""
+    ``assess`` would load itself), else None (several species: ``assess`` loads each). A
+    species' own pack comes from the process-wide cache (:func:`bayesbase.priors.cached_pack`):
+    loaded once per process while its file is unchanged, not parsed again per partition."""
     if task.pack is not None:
         return task.pack
     species = frame["species"].dropna().unique()
-    return _own_pack(str(species[0])) if len(species) == 1 else None
+    if len(species) != 1:
+        return None
+    from ..priors import cached_pack
+
+    return cached_pack(str(species[0]))
 
 
 def _score(task: PartitionTask, t0: float) -> Outcome:

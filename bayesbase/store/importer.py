@@ -22,6 +22,7 @@ from ..contract import HIL_INDICES, is_canonical
 from ..errors import Problem, ValidationError
 from ..io.parquet import file_sha256  # one file hash for imports, datasets and scores
 from .checks import PATIENT_FIELDS, internal_problems, non_finite_problems
+from .connection import write_transaction
 from .frames import VALUE_RTOL, blank_to_none, col, differs, is_missing, now_utc, py, same
 from .summaries import Conflict, ImportConflict, ImportSummary
 
@@ -598,12 +599,14 @@ def import_chunks(conn, chunks, source: str, sha256: str, *, replace: bool = Fal
     the end as one :class:`~bayesbase.errors.ValidationError`) or a conflict with a stored
     value (:class:`ImportConflict`, every one listed, unless ``replace``) rolls every chunk
     back. With ``dry_run`` the chunks are written and then rolled back (the write lock is held
-    meanwhile): the summary says what the import would do and lists the conflicts."""
+    meanwhile: each chunk is planned against the rows the earlier chunks wrote to the store's
+    own tables, and in WAL mode a deferred ``BEGIN`` would take the lock at the first write
+    anyway, failing at once with SQLITE_BUSY_SNAPSHOT if another import committed after its
+    snapshot): the summary says what the import would do and lists the conflicts."""
     saved = conn.execute("PRAGMA temp_store").fetchone()[0]
     conn.execute("PRAGMA temp_store = FILE")  # what is staged across chunks stays on disk
     try:
-        conn.execute("BEGIN IMMEDIATE")
-        try:
+        with write_transaction(conn, cleanup=lambda: _drop_chunk_tables(conn)):
             for _, seen, _, _, ddl in _SEEN:
                 conn.execute(f"CREATE TEMP TABLE {seen} ({ddl})")
             state = _Chunked(conn, source, sha256, result_rows)
@@ -618,19 +621,16 @@ def import_chunks(conn, chunks, source: str, sha256: str, *, replace: bool = Fal
                 conn.execute("ROLLBACK")
                 if not dry_run:
                     raise ImportConflict(source, state.conflicts)
-            else:
-                conn.execute("COMMIT")
-        except BaseException:
-            if conn.in_transaction:
-                conn.execute("ROLLBACK")
-            raise
-        finally:
-            drop_staging(conn)
-            for _, seen, *_ in _SEEN:
-                conn.execute(f"DROP TABLE IF EXISTS temp.{seen}")
     finally:
         conn.execute(f"PRAGMA temp_store = {int(saved)}")
     return state.summary(dry_run)
+
+
+def _drop_chunk_tables(conn) -> None:
+    """Remove the staging tables and the across-chunk ``seen`` tables of :func:`import_chunks`."""
+    drop_staging(conn)
+    for _, seen, *_ in _SEEN:
+        conn.execute(f"DROP TABLE IF EXISTS temp.{seen}")
 
 
 def import_file_chunked(conn, path, chunksize: int, *, replace: bool = False,

@@ -9,7 +9,7 @@ from ..contract import CANONICAL_COLUMNS
 from ..errors import StoreError
 from ..privacy import patient_pseudonym, specimen_pseudonym
 from . import export, importer, queries
-from .connection import DEFAULT_TIMEOUT_S, default_db_path, open_connection
+from .connection import DEFAULT_TIMEOUT_S, default_db_path, open_connection, write_transaction
 from .forget import forget
 from .schema import stored_version
 from .summaries import ImportConflict, ImportSummary, Removed
@@ -122,8 +122,8 @@ class Store:
             sha256 = importer.frame_sha256(canon[list(CANONICAL_COLUMNS)])
         conn = self.connection
         # a dry run only reads (BEGIN DEFERRED: a snapshot, no write lock on the database)
-        conn.execute("BEGIN" if dry_run else "BEGIN IMMEDIATE")
-        try:
+        with write_transaction(conn, immediate=not dry_run,
+                               cleanup=lambda: importer.drop_staging(conn)):
             plan = importer.plan(conn, canon)
             if dry_run:
                 summary = plan.summary(source, dry_run=True)
@@ -133,14 +133,7 @@ class Store:
                 raise ImportConflict(source, list(plan.conflicts))
             summary = importer.apply(conn, plan, source, sha256, owners,
                                      result_rows=self._result_rows)
-            conn.execute("COMMIT")
-        except BaseException:
-            if conn.in_transaction:
-                conn.execute("ROLLBACK")
-            raise
-        finally:
-            importer.drop_staging(conn)
-        return summary
+        return summary  # committed on leaving the block
 
     def _result_rows(self, rows):
         """Iterator over the result tuples inserted by one import (kept as a method so a test can
