@@ -5,6 +5,8 @@ statistic under H0 (false-alarm rate), binomial bands for calibration, the class
 formula (Fraser CG, Clin Chem Lab Med 2012;50:807), and PyMC NUTS (slow)."""
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
 import statsmodels.api as sm
@@ -246,6 +248,37 @@ def test_padding_and_batching_do_not_change_a_series():
     both = trend_exact(t, y, r, None, np.log(90), 0.2, 0.1, 0.2, 0.03, 0.1)
     for k in ("p_drift", "slope_mean", "slope_lower", "pct_per_year_upper", "t_ref"):
         assert abs(both[k][0] - alone[k][0]) < 1e-12, k
+
+
+@pytest.mark.parametrize("width", [1, 3, 6, 7, 8, 12])
+@pytest.mark.parametrize("padded", [False, True])
+def test_prepare_series_summaries_match_numpy_nan_reductions(width, padded):
+    """The per-series summaries of the usable specimens (computed column by column) against
+    numpy's NaN-aware reductions (reference: numpy nanmin / nanmax / nanmean, count of finite
+    values) on invented padded series, with and without padding (the unpadded fast path)."""
+    from bayesbase.model.trend import prepare_series
+
+    rng = np.random.default_rng(7)
+    t = np.cumsum(rng.uniform(0.1, 1.5, (400, width)), axis=1) - 5.0
+    y = rng.normal(4.5, 0.1, t.shape)
+    r = np.ones(t.shape)
+    if padded:
+        t[rng.random(t.shape) < 0.2] = np.nan
+        y[rng.random(t.shape) < 0.1] = np.nan
+        r[rng.random(t.shape) < 0.1] = 0.0
+    p = prepare_series(t, y, None if not padded else r)
+    tu = np.where(np.isfinite(t) & np.isfinite(y) & (r > 0), t, np.nan)
+    n = np.sum(np.isfinite(tu), axis=1)
+    assert padded == bool(np.any(n < width))
+    np.testing.assert_array_equal(p["n_used"], n)
+    with warnings.catch_warnings():  # all-padding rows: numpy warns "empty slice"
+        warnings.simplefilter("ignore", RuntimeWarning)
+        np.testing.assert_allclose(p["t_ref"], np.nanmean(tu, axis=1), rtol=0, atol=1e-13)
+        np.testing.assert_array_equal(p["t_last"], np.nanmax(tu, axis=1))
+        span = np.where(n > 0, np.nanmax(tu, axis=1) - np.nanmin(tu, axis=1), 0.0)
+    np.testing.assert_array_equal(p["span_years"], span)
+    np.testing.assert_array_equal(p["r"], np.where(np.isfinite(tu), r, 0.0))
+    np.testing.assert_array_equal(p["extra_var"], np.zeros(t.shape))
 
 
 def test_bad_inputs_raise():

@@ -564,11 +564,10 @@ def _summaries(S, kn, out, c):
 
 
 @_jit
-def _slope_limits(S, kn, p_drift, f1_0, a, za, tol, max_iter, early, out, c):
+def _slope_limits(S, kn, p_drift, f1_0, a, za, tol, max_iter, early, out, c, mom):
     """Central interval of the slope under H1 and of the model-averaged slope (point mass
-    1 - P(drift) at 0 plus P(drift) x the H1 posterior), log units."""
+    1 - P(drift) at 0 plus P(drift) x the H1 posterior), log units. ``mom``: scratch (7,)."""
     w, mb, isb = S[_W], S[_MB], S[_ISB]
-    mom = np.empty(7)
     mix_moments(w, mb, S[_SB], kn, mom)
     out[6, c] = mix_quantile(a, -za, w, mb, mom, isb, kn, tol, max_iter, early)
     out[7, c] = mix_quantile(1.0 - a, za, w, mb, mom, isb, kn, tol, max_iter, early)
@@ -636,6 +635,7 @@ def trend_k(idx, times, y, r, ev_extra, mask, t_ref, t_last, pm, sg, sb, cvi, cv
     kk = x_nodes.size
     S = np.empty((N_SCRATCH, (kk + 3) // 4 * 4))
     gs = np.empty(6)
+    mom = np.empty(7)  # the slope mixture's moments (scratch, reused by every series)
     nj = times.shape[1]
     tj, yj, vj = np.empty(nj), np.empty(nj), np.empty(nj)
     last_cvi = np.nan
@@ -663,6 +663,7 @@ def trend_k(idx, times, y, r, ev_extra, mask, t_ref, t_last, pm, sg, sb, cvi, cv
         side[c] = 0
         if not intervals:
             continue
-        _slope_limits(S, kn, p_drift, f1_0, a, zq[2], 1e-9, 60, early[0], out, c)
+        _slope_limits(S, kn, p_drift, f1_0, a, zq[2], 1e-9, 60, early[0], out, c,
+                      mom)
         side[c] = _limit(S, kn, t_last[i] - t_ref[i], pm[i], lu[i], ll[i], zq, a, horizon,
                          1e-7, 80, early[1], out, c)
