@@ -12,6 +12,9 @@ Outside references named beside each check:
 * the data come from ``bayesbase.calibrate.simulate.simulate_store`` (written apart from the
   PyMC model), the prior draws from the PyMC model itself (``pm.sample_prior_predictive``).
 
+The reduced model is built with the CVI layer integrated out by quadrature
+(``cvi="quadrature"``), so its free parameters are exactly the four checked.
+
 Affordable: one model is compiled per test and reused for every replicate. Each replicate's
 layout is built into a fresh (uncompiled) model by ``model.build_model``, whose data containers
 (``pm.Data``) are copied into the compiled one with ``pm.set_data``; one NUTS step object (its
@@ -64,13 +67,13 @@ class Reused:
         from bayesbase.calibrate import model as M
 
         self.pri, self.M, self.pm = pri, M, pm
-        self.model = M.build_model(data, pri)
+        self.model = M.build_model(data, pri, cvi="quadrature")
         self.step = pm.NUTS(model=self.model, target_accept=0.9)
         self.logp = self.model.compile_logp()
         self.checked = False
 
     def set(self, data) -> None:
-        fresh = self.M.build_model(data, self.pri)  # graph only, not compiled
+        fresh = self.M.build_model(data, self.pri, cvi="quadrature")  # graph only, not compiled
         assert {k: list(v) for k, v in fresh.coords.items()} == {k: list(v) for k, v in self.model.coords.items()}
         values = {v.name: v.get_value() for v in fresh.data_vars}
         assert set(values) == {v.name for v in self.model.data_vars}
