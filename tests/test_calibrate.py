@@ -405,7 +405,9 @@ def test_recovers_a_simulated_store():
     from bayesbase.calibrate.job import calibrate
 
     frame, truth = simulate_store(seed=5, n_animals=60, n_specimens=4, analytes=("creatinine",), n_unwell=4)
-    cal = calibrate(frame, species="dog", draws=250, tune=300, chains=2, seed=3)
+    # target_accept 0.95: at 0.9 this 60-dog store gave 1 divergence in 500 draws after a change
+    # that moved the model's log density by ~1e-14 only (same density, other rounding)
+    cal = calibrate(frame, species="dog", draws=250, tune=300, chains=2, seed=3, target_accept=0.95)
     t = cal.table.set_index(["parameter", "group"])
     tr = truth["creatinine"]
 
