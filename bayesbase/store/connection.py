@@ -13,11 +13,11 @@ import os
 import sqlite3
 import sys
 import time
-from contextlib import contextmanager
 from pathlib import Path
 
 from ..errors import StoreError
 from .schema import migrate
+from .transaction import write_transaction
 
 __all__ = ["DEFAULT_TIMEOUT_S", "default_db_path", "open_connection", "is_busy", "retry_busy",
            "write_transaction"]
@@ -113,28 +113,3 @@ def open_connection(path: Path, timeout: float) -> sqlite3.Connection:
         if isinstance(exc, sqlite3.DatabaseError):
             raise StoreError(f"{path}: not a usable bayesbase database ({exc})") from exc
         raise
-
-
-@contextmanager
-def write_transaction(conn: sqlite3.Connection, *, immediate: bool = True, cleanup=None):
-    """One all-or-nothing transaction on an autocommit connection: ``BEGIN IMMEDIATE`` (the
-    write lock taken at once, waiting up to the busy timeout) or, with ``immediate=False``,
-    ``BEGIN`` (deferred: a read snapshot, no lock until the first write).
-
-    The block may end the transaction itself (``conn.execute("ROLLBACK")`` for a dry run, or
-    ``COMMIT``); when it leaves normally with the transaction still open, it is committed. Any
-    exception (``BaseException``: an interrupt too) rolls back what is still open and is
-    raised again. ``cleanup`` (a callable, e.g. dropping TEMP staging tables) runs last in
-    every case."""
-    conn.execute("BEGIN IMMEDIATE" if immediate else "BEGIN")
-    try:
-        yield conn
-        if conn.in_transaction:
-            conn.execute("COMMIT")
-    except BaseException:
-        if conn.in_transaction:
-            conn.execute("ROLLBACK")
-        raise
-    finally:
-        if cleanup is not None:
-            cleanup()

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 from .queries import require_patient
 from .summaries import Removed
+from .transaction import write_transaction
 
 __all__ = ["forget"]
 
@@ -57,14 +58,8 @@ def forget(conn, path, patient: str) -> Removed:
     byte of the database files. Returns the total rows removed; the returned int's ``by_table``
     gives the count per table and ``wal_cleared`` is False when another connection kept the WAL
     from being truncated (it is cleared at a later checkpoint)."""
-    conn.execute("BEGIN IMMEDIATE")
-    try:
+    with write_transaction(conn):
         counts = _delete(conn, require_patient(conn, path, patient))
-        conn.execute("COMMIT")
-    except BaseException:
-        if conn.in_transaction:
-            conn.execute("ROLLBACK")
-        raise
     removed = Removed(counts)
     busy = conn.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()[0]
     removed.wal_cleared = int(busy) == 0

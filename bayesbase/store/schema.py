@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from ..errors import StoreError
 from .frames import now_utc
+from .transaction import write_transaction
 
 __all__ = ["MIGRATIONS", "SCHEMA_VERSION", "MISSING_TEXTS", "migrate", "stored_version"]
 
@@ -122,8 +123,7 @@ def migrate(conn, path) -> None:
     _refuse_newer(path, current)
     if current == SCHEMA_VERSION:
         return
-    conn.execute("BEGIN IMMEDIATE")
-    try:
+    with write_transaction(conn):
         conn.execute("CREATE TABLE IF NOT EXISTS schema_version ("
                      "version INTEGER PRIMARY KEY, applied_at TEXT NOT NULL)")
         current = stored_version(conn)  # another process may have migrated meanwhile
@@ -133,8 +133,3 @@ def migrate(conn, path) -> None:
                 conn.execute(step)
             conn.execute("INSERT INTO schema_version (version, applied_at) VALUES (?, ?)",
                          (version, now_utc()))
-        conn.execute("COMMIT")
-    except BaseException:
-        if conn.in_transaction:
-            conn.execute("ROLLBACK")
-        raise
