@@ -673,6 +673,27 @@ def _compact(sc, kk, thr, var_row):
     return n, wp, vmin
 
 
+#: the quantile solves run over the compacted nodes padded with zero-weight copies of the first
+#: to a multiple of _PAD, so the compiler's vector loops leave less scalar remainder (8 looked
+#: best of 4, 8 and 16 in measurements on a loaded machine; the scores showed no gain and are
+#: not padded); the copies add exact zeros
+_PAD = 8
+
+
+@_jit_e
+def _pad(sc, n):
+    """Pad the compacted nodes (sc[_S_WC], sc[_S_MC], sc[_S_VC], sc[_S_ISD]) with zero-weight
+    copies of the first to a multiple of :data:`_PAD` (at most the row length); returns the
+    padded count."""
+    npad = min(-(-n // _PAD) * _PAD, sc.shape[1])
+    for j in range(n, npad):
+        sc[_S_WC, j] = 0.0
+        sc[_S_MC, j] = sc[_S_MC, 0]
+        sc[_S_VC, j] = sc[_S_VC, 0]
+        sc[_S_ISD, j] = sc[_S_ISD, 0]
+    return npad
+
+
 @_jit_e
 def _scores_case(i, y, tau2, delta, pchg, sc, kk, wmax, acc, out):
     """P(change), Bayes factor, percentile, P(increase), P(|D| > delta) of case i. Nodes below
@@ -704,20 +725,94 @@ def _scores_case(i, y, tau2, delta, pchg, sc, kk, wmax, acc, out):
     out[_O_PEX, i] = pc * ptail if np.isfinite(delta) else np.nan
 
 
+#: Taylor order of the quantile solve (derivatives of the mixture CDF up to F^(6)) and the
+#: bounds of its remainder: sup |z phi(z)| = phi(1) = exp(-1/2) / sqrt(2 pi) (exact), and
+#: Cramer's inequality |He_n(z)| exp(-z^2/4) <= K sqrt(n!), K = 1.086435 (Abramowitz & Stegun,
+#: Handbook of Mathematical Functions 22.14.17, for H_n; He_n(z) = 2^(-n/2) H_n(z / sqrt 2)),
+#: so sup |He_6(z) phi(z)| <= K sqrt(6!) / sqrt(2 pi) (K rounded up to 1.0865; checked on a
+#: grid against numpy's hermite_e in the tests)
+_QORD = 6
+_PHI1 = 0.24197072451914337
+_HE6PHI = 1.0865 * 26.832815729997478 / 2.5066282746310002  # sqrt(6!) = 26.83...
+_FACT7 = 5040.0
+
+
 @_jit_e_sum
+def _cdf_derivs(x, sc, n, d):
+    """d[0] = F(x) and d[j] = F^(j)(x) / j!, j = 1.._QORD, of the mixture over the n compacted
+    nodes (sc[_S_WC], sc[_S_MC], 1/s in sc[_S_ISD]):
+    F^(j+1) = sum w (-1)^j He_j(z) phi(z) / s^(j+1), He by its recurrence
+    He_(j+1) = z He_j - j He_(j-1)."""
+    wc, mc, isd, t2, e = sc[_S_WC], sc[_S_MC], sc[_S_ISD], sc[_S_T], sc[_S_E]
+    for j in range(n):
+        zz = (x - mc[j]) * isd[j]
+        t2[j] = -0.5 * zz * zz
+    vexp(t2, e, n, sc[_S_TMP])
+    f = d1 = d2 = d3 = d4 = d5 = d6 = 0.0
+    for j in range(n):
+        si = isd[j]
+        zz = (x - mc[j]) * si
+        f += wc[j] * phi(zz, e[j])
+        u = wc[j] * e[j] * si
+        d1 += u
+        u *= si
+        d2 -= u * zz
+        h2 = zz * zz - 1.0
+        u *= si
+        d3 += u * h2
+        h3 = zz * h2 - 2.0 * zz
+        u *= si
+        d4 -= u * h3
+        h4 = zz * h3 - 3.0 * h2
+        u *= si
+        d5 += u * h4
+        h5 = zz * h4 - 4.0 * h3
+        u *= si
+        d6 -= u * h5
+    c0 = 0.39894228040143267794  # 1 / sqrt(2 pi)
+    d[0] = f
+    d[1], d[2], d[3], d[4] = c0 * d1, c0 * d2 / 2.0, c0 * d3 / 6.0, c0 * d4 / 24.0
+    d[5], d[6] = c0 * d5 / 120.0, c0 * d6 / 720.0
+
+
+@_jit_e
+def _taylor_root(g, d):
+    """Root h of the Taylor polynomial P(h) = g + sum_j d[j] h^j (d[j] = F^(j) / j!) by Newton
+    from the Newton step t = -g / d[1] (five steps); t itself where that fails (h not finite or
+    more than t/2 away from t). Returns (h, t, P(h))."""
+    t = -g / max(d[1], 1e-300)
+    h = t
+    for _ in range(5):
+        p = d[_QORD]
+        dp = _QORD * d[_QORD]
+        for j in range(_QORD - 1, 0, -1):
+            p = p * h + d[j]
+            dp = dp * h + j * d[j]
+        p = p * h + g
+        h -= p / max(dp, 1e-300)
+    if not (abs(h - t) <= 0.5 * abs(t)):
+        h = t
+    p = d[_QORD]
+    for j in range(_QORD - 1, 0, -1):
+        p = p * h + d[j]
+    return h, t, p * h + g
+
+
+@_jit_e
 def _quantile(q, zq, sc, n, mom, tol, max_iter):
     """Quantile q (standard normal deviate zq) of the mixture sum w N(m, s^2) over the n
-    compacted nodes (sc[_S_WC], sc[_S_MC], 1/s in sc[_S_ISD]): Cornish-Fisher start from the
-    moments mom = (mean, var, m3, m4, lo, hi), fourth-order steps (:func:`step4`) inside the
-    bisection bracket [lo, hi]. Stops when the Newton step t is at most ``tol``, or when
-    L |t| <= 1e-3 for the scale L = (sum u_k ((|z_k| + 2) / s_k)^6 / sum u_k)^(1/6),
-    u_k = w_k phi(z_k) / s_k: the j-th derivative ratio F^(j+1) / F' of the mixture CDF is a
-    u-weighted mean of He_j(z_k) / s_k^j and |He_j(z)| <= (|z| + 2)^j, so (power means growing
-    with the order) |F^(j+1) / F'| <= L^j for j <= 6 and the series step's remainder is far
-    below 1e-9 |t|; that last step is applied."""
-    c0 = 0.39894228040143267794  # 1 / sqrt(2 pi)
-    wc, mc, isd, t2, e = sc[_S_WC], sc[_S_MC], sc[_S_ISD], sc[_S_T], sc[_S_E]
+    compacted nodes (sc[_S_WC], sc[_S_MC], 1/s in sc[_S_ISD]). Cornish-Fisher start from the
+    moments mom = (mean, var, m3, m4, lo, hi, M2, M7); at each point x the root h of the
+    order-6 Taylor polynomial P of F(x + h) - q, inside the bisection bracket [lo, hi].
+
+    Stop rule (a proof, not a heuristic): F(x + h) - q = P(h) + R, |R| <= M7 |h|^7 / 7! with
+    M7 >= sup |F^(7)| (mom[7]); on [x + h - eps, x + h + eps] (eps = tol / 10) the density is at
+    least D = F'(x) - M2 (|h| + eps), M2 >= sup |F''| (mom[6]). When |P(h)| + |R| + 1e-14 (the
+    rounding of F) <= D eps with D > 0, F - q changes sign on that interval, so the quantile is
+    within eps of x + h, which is returned. Also stops (as the previous solver) when the Newton
+    step is at most ``tol``."""
     a, b, c, ee, lo, hi = mom[0], mom[1], mom[2], mom[3], mom[4], mom[5]
+    d = mom[8:8 + _QORD + 1]
     sd = np.sqrt(max(b, 1e-300))
     z2 = zq * zq
     g1 = c / (b * sd)
@@ -726,41 +821,20 @@ def _quantile(q, zq, sc, n, mom, tol, max_iter):
                   - g1 * g1 / 36.0 * zq * (2.0 * z2 - 5.0))
     if not (x > lo and x < hi):
         x = a + sd * zq
+    eps = 0.1 * tol
     for _ in range(max_iter):
-        for j in range(n):
-            zz = (x - mc[j]) * isd[j]
-            t2[j] = -0.5 * zz * zz
-        vexp(t2, e, n, sc[_S_TMP])
-        f = 0.0
-        d1 = 0.0
-        d2 = 0.0
-        d3 = 0.0
-        d4 = 0.0
-        l6 = 0.0
-        for j in range(n):
-            si = isd[j]
-            zz = (x - mc[j]) * si
-            f += wc[j] * phi(zz, e[j])
-            u = wc[j] * e[j] * si
-            d1 += u
-            h2 = (abs(zz) + 2.0) * si
-            h2 *= h2
-            l6 += u * h2 * h2 * h2
-            u *= si
-            d2 -= u * zz
-            u *= si
-            d3 += u * (zz * zz - 1.0)
-            u *= si
-            d4 -= u * zz * (zz * zz - 3.0)
-        g = f - q
-        h, t = step4(g, c0 * d1, c0 * d2, c0 * d3, c0 * d4)
+        _cdf_derivs(x, sc, n, d)
+        g = d[0] - q
+        h, t, p = _taylor_root(g, d)
         if g < 0:
             lo = max(lo, x)
         if g > 0:
             hi = min(hi, x)
+        ah = abs(h)
+        rem = mom[7] * ah ** 7 / _FACT7
+        dens = d[1] - mom[6] * (ah + eps)
+        done = abs(t) <= tol or (dens > 0 and abs(p) + rem + 1e-14 <= dens * eps)
         xn = x + h
-        lsc = (l6 / d1) ** (1.0 / 6.0) if d1 > 0 else np.inf
-        done = abs(t) <= tol or (lsc * abs(t) <= 1e-3 and h != t)
         if not done and not (xn > lo and xn < hi):
             xn = 0.5 * (lo + hi)
         x = xn
@@ -772,7 +846,8 @@ def _quantile(q, zq, sc, n, mom, tol, max_iter):
 @_jit_e_sum
 def _moments(sc, n, mom):
     """Mean, variance, third and fourth central moments of the mixture over the n compacted
-    nodes and the bracket min(m - 12 s), max(m + 12 s) (mom[0:6]; s = 1 / sc[_S_ISD])."""
+    nodes, the bracket min(m - 12 s), max(m + 12 s) (mom[0:6]; s = 1 / sc[_S_ISD]) and the
+    bounds M2 >= sup |F''|, M7 >= sup |F^(7)| of its CDF (mom[6:8]; see :func:`_quantile`)."""
     wc, mc, isd = sc[_S_WC], sc[_S_MC], sc[_S_ISD]
     a = 0.0
     for j in range(n):
@@ -780,6 +855,8 @@ def _moments(sc, n, mom):
     b = 0.0
     c = 0.0
     e = 0.0
+    m2 = 0.0
+    m7 = 0.0
     mn = np.inf
     mx = -np.inf
     for j in range(n):
@@ -790,6 +867,10 @@ def _moments(sc, n, mom):
         b += wc[j] * (s2 + d2)
         c += wc[j] * d * (3.0 * s2 + d2)
         e += wc[j] * (d2 * d2 + 6.0 * d2 * s2 + 3.0 * s2 * s2)
+        i2 = isd[j] * isd[j]
+        i4 = i2 * i2
+        m2 += wc[j] * i2
+        m7 += wc[j] * i4 * i2 * isd[j]
         mn = min(mn, mc[j] - 12.0 * s)
         mx = max(mx, mc[j] + 12.0 * s)
     mom[0] = a
@@ -798,12 +879,15 @@ def _moments(sc, n, mom):
     mom[3] = e
     mom[4] = mn
     mom[5] = mx
+    mom[6] = _PHI1 * m2 * 1.000001  # rounded up against the sum's rounding
+    mom[7] = _HE6PHI * m7 * 1.000001
 
 
 @_jit_e
 def _intervals_case(i, levels, zl, sc, kk, wmax, prune, tol, max_iter, mom, out):
     """Set-point credible limits and personal-interval limits of case i from the nodes whose
-    weight is at least ``prune`` times the largest (weights renormalised over them)."""
+    weight is at least ``prune`` times the largest (weights renormalised over them; padded by
+    :func:`_pad` after the moments)."""
     for part in range(2):
         n, wp, _ = _compact(sc, kk, prune * wmax, _S_PV if part == 0 else _S_NV)
         wc, vc, isd = sc[_S_WC], sc[_S_VC], sc[_S_ISD]
@@ -812,6 +896,7 @@ def _intervals_case(i, levels, zl, sc, kk, wmax, prune, tol, max_iter, mom, out)
             wc[j] /= tot
             isd[j] = 1.0 / np.sqrt(vc[j])
         _moments(sc, n, mom)
+        n = _pad(sc, n)
         for side in range(2):
             lv = 2 * part + side
             x = _quantile(levels[lv], zl[lv], sc, n, mom, tol, max_iter)
@@ -826,9 +911,9 @@ def engine_cases_k(start, stop, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, ny, n
     of ``out`` follow ``OUTPUT_KEYS``): node posteriors and weights, the scores, and with
     ``intervals`` the four mixture quantiles (levels, with their normal deviates zl). Scratch
     (one set per thread, see :func:`engine_scratch`): key, ck, si2 the (CVI, uncertainty)
-    table, sc (_S_N_SCRATCH, nodes), acc (11,)."""
+    table, sc (_S_N_SCRATCH, nodes), acc (22,)."""
     kk = xn.size
-    mom = acc[5:11]
+    mom = acc[5:22]
     for i in range(start, stop):
         slot = _cvi_slot(cvi[i], cs[i], xn, key, ck, si2)
         nb = _case_posterior(i, pm, sg, sa, by, br, bev, si2[slot], lwn, sc)
@@ -859,4 +944,4 @@ def engine_cases_k(start, stop, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, ny, n
 def engine_scratch(nodes):
     """Scratch arrays for one thread of :func:`engine_cases_k` (key, ck, si2, sc, acc)."""
     return (np.full((_CACHE, 2), np.nan), np.empty((_CACHE, nodes)), np.empty((_CACHE, nodes)),
-            np.empty((_S_N_SCRATCH, nodes)), np.empty(11))
+            np.empty((_S_N_SCRATCH, -(-nodes // _PAD) * _PAD)), np.empty(22))

@@ -13,7 +13,10 @@ Model (one animal, one analyte, natural-log scale)::
 Given sI the set point posterior is normal (McIntosh & Urban, Biostatistics 2003;4:27-40, the
 normal-normal empirical-Bayes algebra); the marginal likelihood of the baselines weights the
 quadrature nodes, so every predictive quantity is a finite normal mixture. Mixture quantiles
-are found by safeguarded fourth-order iterations (bisection fallback; :mod:`.normal`).
+are found by safeguarded fourth-order iterations (bisection fallback; :mod:`.normal`); the
+compiled pass takes the root of the mixture CDF's order-6 Taylor polynomial and stops when a
+bound on the remainder proves the quantile within tol / 10 (:func:`._jit._quantile`; one
+evaluation per quantile in the usual case).
 
 Large jobs run one compiled pass per case (:func:`._jit.engine_cases_k`: node posteriors and
 weights, the scores, then the four quantiles, with the nodes of negligible weight left out per
