@@ -109,3 +109,40 @@ def test_heap_freeze_is_undone_after_nested_and_threaded_assessments():
         with pipeline._heap_frozen():
             1 / 0
     assert gc.get_freeze_count() == 0
+
+
+def _sort_frames():
+    """Invented canonical frames: in order, shuffled, with a repeated key, with texts beyond
+    ASCII (ordered by code point), with a missing key."""
+    from bayesbase.testing import synthetic_canonical
+
+    base = synthetic_canonical(6, 3, 4)
+    rng = np.random.default_rng(7)
+    names = pd.Series(["Z-1", "a-1", "é-1", "Ä-1", "z-1", "\U0001f415-1"], dtype=base["patient"].dtype)
+    beyond = base.assign(patient=names.iloc[base["patient"].factorize()[0]].to_numpy())
+    beyond = beyond.sort_values(pipeline_sort()).reset_index(drop=True)
+    repeated = pd.concat([base, base.iloc[[5]]]).sort_values(pipeline_sort()).reset_index(drop=True)
+    missing = base.copy()
+    missing.loc[3, "replicate"] = pd.NA
+    return {"in order": base, "shuffled": base.iloc[rng.permutation(len(base))], "beyond ascii": beyond,
+            "repeated key": repeated, "missing key": missing, "one row": base.iloc[:1]}
+
+
+def pipeline_sort():
+    from bayesbase.assessment.frame import SORT_COLUMNS
+
+    return SORT_COLUMNS
+
+
+@pytest.mark.parametrize("name", ["in order", "shuffled", "beyond ascii", "repeated key", "missing key",
+                                  "one row"])
+def test_history_rows_in_order_are_what_sorting_gives(name):
+    """Rows found in order are not sorted again: the history is what pandas' own
+    ``sort_values`` gives (the reference), and only strictly ordered rows are found in order."""
+    from bayesbase.assessment.frame import history_frame, in_sort_order
+
+    frame = _sort_frames()[name]
+    want = frame.sort_values(pipeline_sort()).reset_index(drop=True)
+    got = history_frame(frame)
+    pd.testing.assert_frame_equal(got.drop(columns="age_years"), want, check_exact=True)
+    assert in_sort_order(frame) == (name in ("in order", "beyond ascii"))

@@ -38,6 +38,8 @@ class Options:
     prior_drift: float | None = None
     mcmc_options: Mapping[str, Any] = field(default_factory=dict)
     now: Any = None
+    #: worker processes for a large history (:mod:`bayesbase.assessment.pool`)
+    jobs: int = 1
 
     def __post_init__(self):
         if self.engine not in ENGINES:
@@ -46,6 +48,8 @@ class Options:
             raise BayesbaseError("coverage must lie between 0 and 1")
         if self.prior_change is not None and not 0 < self.prior_change < 1:
             raise BayesbaseError("prior probability of change must lie between 0 and 1")
+        if isinstance(self.jobs, bool) or not isinstance(self.jobs, int) or self.jobs < 1:
+            raise BayesbaseError(f"jobs must be a whole number of at least 1, got {self.jobs!r}")
         object.__setattr__(self, "method_bias", dict(self.method_bias or {}))
         for analyte, pair in self.method_bias.items():
             try:

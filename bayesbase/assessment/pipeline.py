@@ -37,7 +37,7 @@ def assess(
     prior_change: float | None = None, shift_scale: float | None = None, at=None, patient=None,
     keep_compromised: bool = False, method_bias: dict | None = None, seed: int = 0,
     ci_prob: float = DEFAULT_CI_PROB, nodes: int = DEFAULT_QUAD_NODES, trend: bool = True,
-    prior_drift: float | None = None, mcmc_options: dict | None = None, now=None,
+    prior_drift: float | None = None, mcmc_options: dict | None = None, now=None, jobs: int = 1,
 ) -> Assessment:
     """Assess the latest (or ``at``) specimen of every patient against its own history.
 
@@ -68,11 +68,15 @@ def assess(
     whose H/L/I index exceeds the pack's threshold for the analyte is left out (unless
     ``keep_compromised``); for feeding-sensitive analytes a non-fasted specimen is left out when
     fasted ones exist. Vectorised over patients: a clinic database is scored in one call.
+
+    jobs : worker processes for a large history (exact engine, no ``at``): the patients split
+        into parts assessed in forked processes, the same numbers as one process
+        (:mod:`bayesbase.assessment.pool`); 1 (default) or where it does not apply: this process.
     """
     opts = Options(pack=pack, priors=priors, engine=engine, coverage=coverage, prior_change=prior_change,
                    shift_scale=shift_scale, at=at, patient=patient, keep_compromised=keep_compromised,
                    method_bias=method_bias, seed=seed, ci_prob=ci_prob, nodes=nodes, trend=trend,
-                   prior_drift=prior_drift, mcmc_options=mcmc_options, now=now)
+                   prior_drift=prior_drift, mcmc_options=mcmc_options, now=now, jobs=jobs)
     return run(results, opts)
 
 
@@ -101,14 +105,22 @@ def _heap_frozen():
 
 
 def run(results, opts: Options) -> Assessment:
-    """The stages of :func:`assess` on checked options (with the heap frozen: :func:`_heap_frozen`)."""
+    """The stages of :func:`assess` on checked options (with the heap frozen: :func:`_heap_frozen`),
+    in ``opts.jobs`` worker processes where that applies (:func:`.pool.pooled`)."""
     with _heap_frozen():
-        return _stages(results, opts)
+        hist = history_frame(results, opts.patients, now=opts.now)
+        if opts.jobs > 1:
+            from .pool import pooled
+
+            out = pooled(hist, opts)
+            if out is not None:
+                return out
+        return _stages_on(hist, opts)
 
 
-def _stages(results, opts: Options) -> Assessment:
-    """The stages in order."""
-    hist = history_frame(results, opts.patients, now=opts.now)
+def _stages_on(hist, opts: Options) -> Assessment:
+    """The stages after the history (:func:`.frame.history_frame`), in order; ``hist`` gets the
+    role and reason of every row."""
     packs = packs_by_species(hist, opts.pack, opts.priors)
     targets = assessed_specimens(hist, opts.at)
     rows = case_rows(hist, targets)

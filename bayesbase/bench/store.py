@@ -68,11 +68,14 @@ def bench_history(n_specimens: int = 240, n_analytes: int = 25, repeats: int = 2
 
 
 def bench_assess_store(n_patients: int = 10_000, n_specimens: int = 3, n_analytes: int = 20,
-                       repeat: int = 1, at: str | None = None) -> dict:
+                       repeat: int = 1, at: str | None = None, jobs: int = 1) -> dict:
     """Assess every patient of an invented store (exact engine): import, read back, assess.
     The read and the assessment are timed apart (best of ``repeat``), with their CPU time and
     the 1-minute load average (the machine may be shared). With ``at`` (a date or specimen id)
-    the assessment is timed again with ``at=`` (``assess_at_s``, ``assess_at_cpu_s``)."""
+    the assessment is timed again with ``at=`` (``assess_at_s``, ``assess_at_cpu_s``). With
+    ``jobs`` above 1 it is timed again in that many worker processes (``assess_jobs_s``,
+    ``assess_jobs_cpu_s``: this process and its workers), and ``jobs_same`` says whether the
+    table is exactly the one-process table."""
     from ..assessment import assess
     from ..priors import load_pack
     from .pipeline import load_average
@@ -96,6 +99,23 @@ def bench_assess_store(n_patients: int = 10_000, n_specimens: int = 3, n_analyte
     out = {"patients": n_patients, "cases": len(a.table), "read_s": round(t_read, 2),
            "read_cpu_s": round(c_read, 2), "assess_s": round(t_assess, 2), "assess_cpu_s": round(c_assess, 2),
            "cases_per_s": round(len(a.table) / t_assess), "load_average_1min": load_average()}
+    if jobs > 1:
+        import resource
+
+        import pandas as pd
+
+        def cpu():
+            kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+            return time.process_time() + kids.ru_utime + kids.ru_stime
+
+        t, c = time.perf_counter(), cpu()
+        aj = assess(res, jobs=jobs)
+        out.update(jobs=jobs, assess_jobs_s=round(time.perf_counter() - t, 2), assess_jobs_cpu_s=round(cpu() - c, 2))
+        try:
+            pd.testing.assert_frame_equal(aj.table, a.table, check_exact=True)
+            out["jobs_same"] = True
+        except AssertionError:
+            out["jobs_same"] = False
     if at is not None:
         t, c = time.perf_counter(), time.process_time()
         assess(res, at=at)

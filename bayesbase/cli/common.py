@@ -64,6 +64,7 @@ def run_assess(args, frame, patient=None):
         prior_change=args.prior_change, at=args.at, patient=patient or args.patient,
         keep_compromised=args.keep_compromised, seed=args.seed,
         mcmc_options={"idata_path": args.idata} if getattr(args, "idata", None) else None,
+        jobs=getattr(args, "jobs", 1),
     )
 
 

@@ -33,6 +33,9 @@ def add_parsers(sub) -> None:
     p.add_argument("--format", choices=["table", "csv", "json"], default="table")
     p.add_argument("--out", help="write the output to this file instead of stdout")
     p.add_argument("--idata", help="mcmc engine: save the InferenceData to this netCDF file")
+    p.add_argument("--jobs", type=int, default=1,
+                   help="worker processes for a large store or file (exact engine, no --at; the same "
+                   "numbers as one process; default 1)")
     p.set_defaults(run=cmd_assess)
 
     p = sub.add_parser("report", help="write the clinician's report (HTML, optional PDF) for one patient")
@@ -118,6 +121,8 @@ def _table_text(a) -> str:
 
 
 def cmd_assess(args) -> int:
+    if args.jobs < 1:
+        return err("--jobs must be at least 1")
     frame = load_frame(args)
     a = run_assess(args, frame)
     if args.format == "json":
