@@ -44,7 +44,11 @@ CASES = sorted((ROOT / "case_library").glob("*/results.csv"))
 SMALL = [p for p in CASES if p.read_bytes().count(b"\n") <= 40]
 SEED = 20261203
 N_TEXT, N_XLSX, N_FHIR = 240, 30, 40  # in-process corpus: 310 mutants
-N_SUBPROCESS, N_SUBPROCESS_SLOW = 12, 80
+#: subprocess samples: 12 spread evenly over the corpus, and (slow) at least 24 chosen with a
+#: seeded rng so that together they carry every kind of mutation in MUTATION_KINDS (80 evenly
+#: spread before: each mutant costs two or three interpreter start-ups; the 310 mutants all run
+#: in process above, so the subprocess tier checks the real process boundary, kind by kind)
+N_SUBPROCESS, N_SUBPROCESS_SLOW = 12, 24
 ERROR_CODE = 2  # documented: every input problem exits 2 (bayesbase.cli.common.err)
 
 # ------------------------------------------------------------------ values a mutation writes
@@ -628,6 +632,56 @@ def _subprocess_sample(n: int, offset: int):
     return [CORPUS[(offset + k * step) % len(CORPUS)] for k in range(n)]
 
 
+#: The kinds of damage of the corpus: every row and byte mutation (text mutants; row mutations
+#: also in XLSX mutants), the XLSX archive damage and odd cell values, the FHIR edits and the
+#: JSON text damage (xlsx_mutant and fhir_mutant above).
+XLSX_KINDS = ("xlsx:cell", "xlsx:zip-truncated", "xlsx:zip-bytes", "xlsx:zip-without", "xlsx:not-zip",
+              "xlsx:zip-intact")
+FHIR_KINDS = ("fhir:del", "fhir:dup", "fhir:set", "fhir:truncated", "fhir:NaN and duplicate key",
+              "fhir:deep nesting", "fhir:bytes", "fhir:encoding", "fhir:bom", "fhir:text-intact")
+MUTATION_KINDS = frozenset([m.__name__ for m in ROW_MUTATIONS + BYTE_MUTATIONS] + list(XLSX_KINDS)
+                           + list(FHIR_KINDS))
+
+
+def mutation_kinds(kind: str, i: int, tmp: Path) -> set[str]:
+    """The kinds of mutation corpus item (kind, i) carries, read from its description."""
+    names = {m.__name__ for m in ROW_MUTATIONS + BYTE_MUTATIONS}
+    if kind == "text":
+        return set(text_mutant(i)[2].split()[1:]) & names
+    if kind == "xlsx":
+        words = xlsx_mutant(i, tmp)[2].split()[1:]
+        (tmp / f"x{i}.xlsx").unlink()
+        out = set(words) & names
+        out |= {"xlsx:cell"} if "cell" in words else set()
+        zipped = [w for w in words if w.startswith(("zip-", "not-zip"))]
+        out |= {"xlsx:" + ("zip-without" if zipped[0].startswith("zip-without-") else zipped[0])
+                if zipped else "xlsx:zip-intact"}
+        return out
+    what = fhir_mutant(i)[2]
+    out = {f"fhir:{e}" for e in ("del", "dup", "set") if re.search(rf"(^| ){e} \(", what)}
+    last = [k for k in FHIR_KINDS[3:-1] if what.endswith(" " + k.split(":", 1)[1])]
+    return out | set(last or ["fhir:text-intact"])
+
+
+def covering_sample(n: int, exclude, tmp: Path) -> list[tuple[str, int]]:
+    """``n`` corpus items that together carry every kind of mutation: a greedy set cover (each
+    step the item carrying the most kinds not yet carried, ties to the earlier item of a seeded
+    random order), then the next items of that order up to ``n``."""
+    rng = np.random.default_rng([SEED, 30_000])
+    order = [CORPUS[k] for k in rng.permutation(len(CORPUS)) if CORPUS[k] not in set(exclude)]
+    kinds = {item: mutation_kinds(*item, tmp) for item in order}
+    picked, covered = [], set()
+    while True:
+        best = max(order, key=lambda item: len(kinds[item] - covered))  # max: the first of equals
+        if not kinds[best] - covered:
+            break
+        picked.append(best)
+        covered |= kinds[best]
+    assert covered == MUTATION_KINDS, sorted(MUTATION_KINDS - covered)  # the corpus carries every kind
+    assert len(picked) <= n, len(picked)
+    return picked + [item for item in order if item not in picked][:n - len(picked)]
+
+
 def test_corpus_sample_in_subprocesses(tmp_path, db_template):
     def runner(argv):
         return run_subprocess(argv, tmp_path)
@@ -642,9 +696,9 @@ def test_larger_corpus_in_subprocesses(tmp_path, db_template):
     def runner(argv):
         return run_subprocess(argv, tmp_path)
 
-    problems, n = _run_corpus(_subprocess_sample(N_SUBPROCESS_SLOW, 5), tmp_path, db_template,
-                              runner)
-    assert n == N_SUBPROCESS_SLOW
+    sample = covering_sample(N_SUBPROCESS_SLOW, _subprocess_sample(N_SUBPROCESS, 3), tmp_path)
+    problems, n = _run_corpus(sample, tmp_path, db_template, runner)
+    assert n == N_SUBPROCESS_SLOW == len(set(sample))
     assert not problems, "\n".join(problems[:20])
 
 

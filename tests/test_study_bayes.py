@@ -451,12 +451,14 @@ def test_batched_fit_agrees_with_one_analyte_fits_within_monte_carlo_error():
               for k, (cva, cvi, cvg) in enumerate([(0.02, 0.05, 0.3), (0.04, 0.15, 0.2),
                                                    (0.03, 0.10, 0.1)])}
     bad = frames["an0"].assign(y=1.0)
-    fits = bayes.fit_many(dict(frames, bad=bad), draws=600, tune=400, chains=2, cores=1,
+    # 300 draws (600 before): the tolerance below is built from each run's own ArviZ MCSE, so
+    # it widens with fewer draws by about sqrt(2) and the check stays a Monte Carlo-error check
+    fits = bayes.fit_many(dict(frames, bad=bad), draws=300, tune=400, chains=2, cores=1,
                           seed=11, sampler="pymc")
     assert isinstance(fits["bad"], ValidationError)
     for k, (key, frame) in enumerate(frames.items()):
         many = fits[key]
-        one = bayes.fit_bayes(frame, draws=600, tune=400, chains=2, cores=1, seed=20 + k)
+        one = bayes.fit_bayes(frame, draws=300, tune=400, chains=2, cores=1, seed=20 + k)
         # short runs (CI time): the Monte Carlo error below carries the ESS; the chains must mix
         for f in (many, one):
             assert f.diagnostics["divergences"] == 0 and f.diagnostics["max_r_hat"] < 1.02, f.diagnostics
