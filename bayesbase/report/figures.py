@@ -230,8 +230,19 @@ def _path_for(interval_path, patient, analyte) -> pd.DataFrame | None:
     if interval_path is None or len(interval_path) == 0:
         return None
     p = interval_path[(interval_path["patient"] == patient) & (interval_path["analyte"] == analyte)]
-    p = p.dropna(subset=["pi_lower", "pi_upper"]).sort_values("collected_at")
+    p = p.dropna(subset=["pi_lower", "pi_upper"]).sort_values("collected_at", kind="stable")
     return p if len(p) else None
+
+
+def _path_points(interval_path) -> dict:
+    """(patient, analyte) -> (times, lower, upper) lists: the rows :func:`_path_for` picks for
+    each, in the same order, from one sort and one grouping for a whole report."""
+    if interval_path is None or len(interval_path) == 0:
+        return {}
+    p = (interval_path.dropna(subset=["pi_lower", "pi_upper"])
+         .sort_values("collected_at", kind="stable"))
+    return {key: (list(g["collected_at"]), list(g["pi_lower"]), list(g["pi_upper"]))
+            for key, g in p.groupby(["patient", "analyte"], sort=False, observed=True)}
 
 
 def _window(times: list, t_assessed: pd.Timestamp):
@@ -260,13 +271,16 @@ def _draw_population(ax, row, xlo, xhi) -> tuple:
 
 
 def _interval_steps(interval_path, row, t_assessed) -> list[tuple]:
-    """(time, lower, upper) of the personal interval at each earlier specimen and now."""
-    path = _path_for(interval_path, row["patient"], row["analyte"])
-    steps = []
-    if path is not None:
-        steps = [(pd.Timestamp(t), lo, hi) for t, lo, hi in
-                 zip(path["collected_at"], path["pi_lower"], path["pi_upper"])
-                 if pd.Timestamp(t) < t_assessed]
+    """(time, lower, upper) of the personal interval at each earlier specimen and now.
+    ``interval_path``: a frame, or this row's entry of :func:`_path_points`."""
+    if isinstance(interval_path, tuple):
+        points = interval_path
+    else:
+        path = _path_for(interval_path, row["patient"], row["analyte"])
+        points = ((path["collected_at"], path["pi_lower"], path["pi_upper"])
+                  if path is not None else ((), (), ()))
+    steps = [(pd.Timestamp(t), lo, hi) for t, lo, hi in zip(*points)
+             if pd.Timestamp(t) < t_assessed]
     if _finite(row["pi_lower"]) and _finite(row["pi_upper"]):
         steps.append((t_assessed, float(row["pi_lower"]), float(row["pi_upper"])))
     steps.sort(key=lambda s: s[0])
@@ -459,8 +473,11 @@ def _tick_artists(ax) -> None:
     x axis's offset text is placed under the labels by :class:`_OffsetUnderLabels`. The same
     marks and texts at the same places (the report's figure is checked against panels drawn
     with matplotlib's ticks, pixel by pixel, in the tests)."""
+    from matplotlib.path import Path as MplPath
     from matplotlib.ticker import FixedFormatter, NullLocator
+    from matplotlib.transforms import IdentityTransform, TransformedPath
 
+    unclipped = TransformedPath(MplPath.unit_rectangle(), IdentityTransform())
     for axis, is_x in ((ax.xaxis, True), (ax.yaxis, False)):
         locs = np.asarray(axis.get_major_locator().locs, dtype=float)
         fmt = axis.get_major_formatter()
@@ -481,6 +498,9 @@ def _tick_artists(ax) -> None:
         if is_x and offset:
             extra.append(_OffsetUnderLabels(axis.offsetText, offset, labels, axis.OFFSETTEXTPAD))
         for artist in extra:
+            # a clip path already set keeps add_artist from building the axes' clip box for
+            # each (a visible share of the figure's time in a profile); it is removed next
+            artist.set_clip_path(unclipped)
             ax.add_artist(artist)
             artist.set_clip_box(None)  # unclipped, as a tick's mark and label are
             artist.set_clip_path(None)
@@ -722,8 +742,7 @@ def panel_grid(history: pd.DataFrame, table: pd.DataFrame,
         histories = analyte_histories(history, table["patient"].iloc[0])
     empty = history.iloc[0:0]
     # each panel reads its own analyte's rows of the path (the same rows, split once)
-    paths = ({} if interval_path is None or len(interval_path) == 0 else
-             dict(iter(interval_path.groupby("analyte", sort=False, observed=True))))
+    paths = _path_points(interval_path)
     boxes = []
     for i, (_, row) in enumerate(table.iterrows()):
         r, c = divmod(i, ncols)
@@ -732,7 +751,7 @@ def panel_grid(history: pd.DataFrame, table: pd.DataFrame,
         ax = fig.add_axes(((x0 + 0.5) / W, 1 - (top + height - 0.28) / H,
                            (width - 0.6) / W, (height - 0.6) / H))
         h = histories.get(row["analyte"])
-        _draw_panel(ax, history, row, paths.get(row["analyte"]), compact=True,
+        _draw_panel(ax, history, row, paths.get((row["patient"], row["analyte"])), compact=True,
                     h=h if h is not None else empty)
         _tick_artists(ax)
         boxes.append(tuple(round(v * dpi) for v in (x0, top, x0 + width, top + height)))

@@ -2,6 +2,8 @@
 The cautions open and close the document and run in the footer of every page."""
 from __future__ import annotations
 
+import threading
+from contextlib import contextmanager
 from functools import lru_cache
 from io import BytesIO
 from pathlib import Path
@@ -27,6 +29,9 @@ _CV_WIDTHS = (40, 30, 30, 30, 60)
 _BAND_TINTS = {band: tuple(round(255 * c) for c in to_rgb(tint(figures.PALETTE["change"], share)))
                for band, share in (("uncertain", 0.8), ("probable", 0.55))}
 _HEADING_FILL = (232, 244, 240)
+#: one document at a time has fpdf2's output module see the subset cache (see
+#: :func:`_cached_subsetting`)
+_SWAP_LOCK = threading.Lock()
 
 
 def _font_paths() -> tuple[Path, Path] | None:
@@ -122,6 +127,160 @@ def _add_font(doc, family: str, style: str, path: str) -> None:
     doc.fonts[template.fontkey] = font
 
 
+#: subset fonts already made in this process: (font file, font number, glyph names) -> (glyph id
+#: by name, tables present, the subset font file's bytes); oldest dropped beyond the limit
+_SUBSETS: dict = {}
+_SUBSETS_MAX = 16
+_SUBSET_LOCK = threading.Lock()
+
+
+class _SubsetFont:
+    """What fpdf2's output reads of a document's TrueType font (``font.ttfont``) while it embeds
+    the font: it subsets the font with fontTools, then asks the subset for glyph ids and its
+    file. Stands in for the font during :func:`_cached_subsetting`: a subset made before in this
+    process for the same font file and the same glyphs is answered from :data:`_SUBSETS`
+    (fontTools makes the same bytes from the same font and glyphs: the head table's time stamp
+    is not recalculated), else the font itself is subset and the result kept."""
+
+    def __init__(self, real, key):
+        self.real, self.key, self.done = real, key, None
+
+    def subset_with(self, options, glyphs) -> None:
+        key = (*self.key, frozenset(glyphs))
+        with _SUBSET_LOCK:
+            self.done = _SUBSETS.get(key)
+        if self.done is not None:
+            return
+        from fontTools import subset as ftsubset
+
+        subsetter = ftsubset.Subsetter(options)
+        subsetter.populate(glyphs=glyphs)
+        subsetter.subset(self.real)
+        buf = BytesIO()
+        self.real.save(buf)
+        ids = {name: i for i, name in enumerate(self.real.getGlyphOrder())}
+        self.done = (ids, frozenset(self.real.keys()), buf.getvalue())
+        with _SUBSET_LOCK:
+            _SUBSETS[key] = self.done
+            while len(_SUBSETS) > _SUBSETS_MAX:
+                del _SUBSETS[next(iter(_SUBSETS))]
+
+    def getGlyphID(self, name: str) -> int:  # noqa: N802 (fontTools' name)
+        return self.done[0][name]
+
+    def __contains__(self, tag) -> bool:
+        return tag in self.done[1]
+
+    def __getitem__(self, tag):
+        return self.real[tag]
+
+    def save(self, file) -> None:
+        file.write(self.done[2])
+
+    def close(self) -> None:
+        self.real.close()
+
+
+class _CachingSubsetter:
+    """fontTools' ``Subsetter`` as fpdf2's output calls it (``populate(glyphs=...)``, then
+    ``subset(font)``), for :class:`_SubsetFont` stand-ins."""
+
+    def __init__(self, options):
+        self.options, self.glyphs = options, ()
+
+    def populate(self, glyphs=(), **kw) -> None:
+        if kw:
+            raise TypeError(f"unexpected populate arguments {sorted(kw)}")
+        self.glyphs = tuple(glyphs)
+
+    def subset(self, font) -> None:
+        if isinstance(font, _SubsetFont):
+            font.subset_with(self.options, self.glyphs)
+            return
+        # another document's font written out meanwhile (another thread): fontTools' own way
+        from fontTools import subset as ftsubset
+
+        real = ftsubset.Subsetter(self.options)
+        real.populate(glyphs=self.glyphs)
+        real.subset(font)
+
+
+@contextmanager
+def _cached_subsetting(doc):
+    """While ``doc`` is written out: its TrueType fonts are subset through :data:`_SUBSETS`
+    (the same subset font file as fpdf2 makes, made once per process for a font and a glyph
+    set: subsetting read the whole font, about a tenth of a report's time). fpdf2's output
+    module sees a fontTools ``subset`` module whose Subsetter is :class:`_CachingSubsetter`
+    only inside this block, one report at a time (the shim subsets any other font as fontTools
+    does); fonts of other kinds, or an
+    fpdf2 whose output does not import ``fontTools.subset`` as ``ftsubset``, are left alone."""
+    import types
+
+    from fpdf import output as fpdf_output
+    from fpdf.fonts import TTFFont
+
+    real_module = getattr(fpdf_output, "ftsubset", None)
+    fonts = [f for f in doc.fonts.values() if isinstance(f, TTFFont)
+             and getattr(f, "color_font", None) is None and not getattr(f, "is_cff", False)]
+    if real_module is None or not hasattr(real_module, "Subsetter") or not fonts:
+        yield
+        return
+    shim = types.SimpleNamespace(Options=real_module.Options, Subsetter=_CachingSubsetter)
+    with _SWAP_LOCK:
+        saved = [(f, f.ttfont) for f in fonts]
+        for f in fonts:
+            f.ttfont = _SubsetFont(f.ttfont, (str(f.ttffile), f.collection_font_number))
+        fpdf_output.ftsubset = shim
+        try:
+            yield
+        finally:
+            fpdf_output.ftsubset = real_module
+            for f, real in saved:
+                f.ttfont = real
+
+
+#: parsed SVGs of the documents being laid out (id of the document's image cache -> SVG bytes ->
+#: what fpdf2's ``get_svg_info`` returned), and the function it replaces while any is
+_SVG_DOCS: dict = {}
+_SVG_SWAP: list = []
+
+
+def _parse_svg_once(filename, img, image_cache, *args, **kw):
+    """fpdf2's ``image_parsing.get_svg_info``, parsing each SVG of a report's document once: the
+    results table places the same P(change) star (one per band) in every row, twice (fpdf2
+    measures a row, then writes it), and each parse read the SVG's XML again (a fifth of the
+    PDF's time). The parsed SVG holds no state between placings (fpdf2 sets its viewport
+    transform afresh each time). Other documents' SVGs are parsed as before."""
+    parsed = _SVG_DOCS.get(id(image_cache))
+    if parsed is None:
+        return _SVG_SWAP[0](filename, img, image_cache, *args, **kw)
+    img.seek(0)
+    key = (filename, img.read(), args, tuple(sorted(kw.items())))
+    if key not in parsed:
+        parsed[key] = _SVG_SWAP[0](filename, img, image_cache, *args, **kw)
+    return parsed[key]
+
+
+@contextmanager
+def _svg_parsed_once(doc):
+    """Inside the block, fpdf2 parses each SVG placed on ``doc`` once (see
+    :func:`_parse_svg_once`)."""
+    from fpdf import image_parsing
+
+    with _SWAP_LOCK:
+        if not _SVG_DOCS:
+            _SVG_SWAP[:] = [image_parsing.get_svg_info]
+            image_parsing.get_svg_info = _parse_svg_once
+        _SVG_DOCS[id(doc.image_cache)] = {}
+    try:
+        yield
+    finally:
+        with _SWAP_LOCK:
+            del _SVG_DOCS[id(doc.image_cache)]
+            if not _SVG_DOCS:
+                image_parsing.get_svg_info = _SVG_SWAP.pop()
+
+
 def _document(title: str):
     """An fpdf2 document with the cautions in its footer, and its font family."""
     from fpdf import FPDF
@@ -210,6 +369,17 @@ class _Layout:
         pdf.set_y(max(pdf.get_y(), y0) + 1.5)
 
     # -- sections
+    def body(self) -> None:
+        """Every section, in order, the cautions box last."""
+        self.header()
+        self.summary()
+        self.results()
+        self.advice()
+        self.figures()
+        self.method()
+        self.pdf.ln(2)
+        self.cautions_box()
+
     def header(self) -> None:
         self.cautions_box()
         self.pdf.set_font(self.ff, "B", 14)
@@ -333,15 +503,11 @@ class _Layout:
 
 def render(content: ReportContent, path) -> None:
     """Write the report as a PDF at ``path`` (text broken into lines by
-    :func:`.pdftext.quick_line_breaking`: fpdf2's lines, found faster)."""
+    :func:`.pdftext.quick_line_breaking`: fpdf2's lines, found faster; each SVG parsed once,
+    :func:`_svg_parsed_once`; fonts subset once per process, :func:`_cached_subsetting`)."""
     with quick_line_breaking():
         lay = _Layout(content)
-        lay.header()
-        lay.summary()
-        lay.results()
-        lay.advice()
-        lay.figures()
-        lay.method()
-        lay.pdf.ln(2)
-        lay.cautions_box()
-    lay.pdf.output(str(path))
+        with _svg_parsed_once(lay.pdf):
+            lay.body()
+    with _cached_subsetting(lay.pdf):
+        lay.pdf.output(str(path))
