@@ -28,6 +28,8 @@ ISSUE_ROWS = [
     ("PyMC engine, one 25-analyte panel, compile cache warm", "s", 5.0, 1.0),
 ]
 
+ENGINE_NAMES = [r[0] for r in ISSUE_ROWS[:2]]
+
 STAND_INS = {  # invented figures for the slow measurements
     "bench_report_best": {"analytes": 25, "report_html_pdf_s": 2.5},
     "bench_demo": {"cases": 8, "demo_wall_s": 12.5},
@@ -107,6 +109,17 @@ def test_figures_and_ratios_follow_the_stated_convention(quick_result):
     # the PyMC reference fits the first of the engine rows' cases (same count), same sampler
     assert m["calls"]["bench_mcmc_case"]["n_cases"] == m["engine"]["cases"] == 2_000
     assert m["calls"]["bench_mcmc_case"]["sampler"] == m["calls"]["bench_mcmc_panel"]["sampler"]
+    # the engine rows' figure is one thread; every CPU's threads are given beside it, in the
+    # "measured on" text, from the same measurement
+    nt = speed.engine_threads()[-1]
+    for name, key in zip(ENGINE_NAMES, ("scores", "full")):
+        on = rows[name]["measured_on"]
+        assert on.startswith("2,000 cases, 1 thread"), on
+        if nt > 1:
+            assert f"{key}_cases_per_s_{nt}threads" in m["engine"]
+            assert f"; {nt} threads: {speed._fmt(m['engine'][f'{key}_cases_per_s_{nt}threads'])}" \
+                f" cases/s" in on
+            assert on in res["table"]
     # the real tiny store: 5 patients were measured, and the table says so
     assert m["store"]["patients"] == 5 and "5 patients" in res["table"]
 

@@ -156,6 +156,28 @@ def test_under_run_fit_is_reported_not_converged(tmp_path):
     with xr.open_dataset(path, group="posterior", engine="h5netcdf") as ds:
         assert ds.attrs["engine"] == "mcmc" and ds.attrs["pack_id"] == "demo_dog"
         assert int(ds.attrs["setting_draws"]) == 20 and ds.sizes["draw"] == 20
+    # target_accept not given: the plain normal model's default (DEFAULTS_NORMAL)
+    assert r.settings["target_accept"] == mcmc.DEFAULTS_NORMAL["target_accept"]
+
+
+@pytest.mark.slow
+def test_sampler_defaults_follow_the_model_kind():
+    """Settings not given take the model kind's default (a robust or censored model keeps
+    DEFAULTS_CENSORED_OR_ROBUST, a plain normal one DEFAULTS_NORMAL); settings given are used
+    as given. Tiny under-run fits: only the recorded settings and the draw count are checked."""
+    assert mcmc.sampler_defaults(False, False) == mcmc.DEFAULTS_NORMAL
+    for censored, robust in ((True, False), (False, True), (True, True)):
+        assert mcmc.sampler_defaults(censored, robust) == mcmc.DEFAULTS_CENSORED_OR_ROBUST
+    assert mcmc.DEFAULTS_NORMAL["target_accept"] < mcmc.DEFAULTS_CENSORED_OR_ROBUST["target_accept"]
+    r = mcmc.mcmc_assess(_panel(), draws=15, tune=5, chains=1, cores=1, seed=4, robust=True,
+                         patient=PATIENTS, analyte=ANALYTES)
+    assert r.settings["target_accept"] == mcmc.DEFAULTS_CENSORED_OR_ROBUST["target_accept"]
+    assert r.settings["tune"] == 5 and r.idata.posterior.sizes["draw"] == 15
+    r = mcmc.mcmc_assess(_panel(), draws=15, tune=5, chains=1, cores=1, seed=4,
+                         target_accept=0.85, patient=PATIENTS, analyte=ANALYTES)
+    assert r.settings["target_accept"] == 0.85
+    with pytest.raises(ValueError, match="target_accept"):
+        mcmc.mcmc_assess(_panel(), draws=15, tune=5, target_accept=1.0)
 
 
 @pytest.mark.slow

@@ -6,7 +6,8 @@ Ratio convention: above 1 is better than the floor (throughput rows: figure / fl
 rows: floor / figure). The two exact-engine rows also give their ratio to one warm per-case
 PyMC fit of the same case (the first case of those rows' invented cases, fitted in this run
 after a warm-up fit): PyMC seconds per case x exact-engine cases per second, i.e. how many
-times faster the exact engine is per case.
+times faster the exact engine is per case. Their figure is one thread; the same job over
+``os.cpu_count()`` threads of the one process is given beside it, in the ``measured on`` text.
 
 The measurements are the other benchmarks of ``bayesbase bench``, called here (sizes: theirs;
 ``quick``: the quick sizes of their ``PLAN`` entries, so the figures of a quick table are not
@@ -38,7 +39,7 @@ ENGINE_ROWS = ROWS[0][0], ROWS[1][0]
 #: keyword arguments of each measurement, full and quick (quick: the sizes of the PLAN entries)
 SIZES = {
     "engine": ({"n_cases": 400_000}, {"n_cases": 100_000, "repeat": 1}),
-    "store": ({"n_patients": 10_000}, {"n_patients": 1_000}),
+    "store": ({"n_patients": 10_000, "jobs": 2}, {"n_patients": 1_000}),
     "trend": ({"n_series": 100_000}, {"n_series": 20_000}),
     "report": ({}, {"repeat": 1}),
     "demo": ({}, {}),
@@ -84,12 +85,29 @@ def measure(quick: bool = False, sampler: str = "pymc") -> dict:
         "trend": ("bench.model", "bench_trend"), "report": ("bench.pipeline", "bench_report_best"),
         "demo": ("bench.pipeline", "bench_demo"), "mcmc": ("bench.mcmc", "bench_mcmc_panel"),
     }
-    out = {key: resolve(mod, fn)(**SIZES[key][k], **({"sampler": sampler} if key == "mcmc" else {}))
+    extra = {"mcmc": {"sampler": sampler}, "engine": {"threads": engine_threads()}}
+    out = {key: resolve(mod, fn)(**SIZES[key][k], **extra.get(key, {}))
            for key, (mod, fn) in calls.items()}
     # the same case: the first of the exact engine rows' cases (same count, same seed)
     out["pymc_case"] = resolve("bench.mcmc", "bench_mcmc_case")(
         n_cases=SIZES["engine"][k]["n_cases"], sampler=sampler, **SIZES["mcmc"][k])
     return out
+
+
+def engine_threads() -> tuple:
+    """Thread counts of the exact-engine rows: one (the rows' figure) and, beside it in the
+    ``measured on`` text, every CPU of the machine (threads of the same process)."""
+    n = os.cpu_count() or 1
+    return (1, n) if n > 1 else (1,)
+
+
+def _engine_on(e: dict, key: str) -> str:
+    """``measured on`` text of an exact-engine row: the cases, and the same job over every
+    CPU's thread when measured (``key``: scores or full)."""
+    on = f"{e['cases']:,} cases, 1 thread"
+    more = sorted((int(k.rsplit("_", 1)[1][:-7]), v) for k, v in e.items()
+                  if k.startswith(f"{key}_cases_per_s_") and k.endswith("threads"))
+    return on + "".join(f"; {n} threads: {_fmt(float(v))} cases/s" for n, v in more)
 
 
 def rows_from(m: dict) -> list[Row]:
@@ -98,14 +116,18 @@ def rows_from(m: dict) -> list[Row]:
     nan = float("nan")
     pymc_s = float(m["pymc_case"]["warm_seconds"])
     figures = (
-        (e["scores_cases_per_s"], f"{e['cases']:,} cases"),
-        (e["full_cases_per_s"], f"{e['cases']:,} cases"),
-        (s["assess_s"], f"{s['patients']:,} patients, {s['cases']:,} cases"),
+        (e["scores_cases_per_s"], _engine_on(e, "scores")),
+        (e["full_cases_per_s"], _engine_on(e, "full")),
+        (s["assess_s"], f"{s['patients']:,} patients, {s['cases']:,} cases"
+                        + (f"; {s['jobs']} workers (--jobs): {s['assess_jobs_s']} s, same table: "
+                           f"{s['jobs_same']}" if "assess_jobs_s" in s else "")),
         (s["read_s"], f"{s['patients']:,} patients"),
         (t["full_series_per_second"], f"{t['n_series']:,} series x {t['n_specimens']}"),
         (m["report"]["report_html_pdf_s"], f"{m['report']['analytes']} analytes, best run"),
         (m["demo"]["demo_wall_s"], f"{m['demo']['cases']} cases, wall"),
-        (mc["warm_seconds"], f"{mc['sampler']}, {mc['chains']}x{mc['draws']} draws, cold "
+        (mc["warm_seconds"], f"{mc['sampler']}, {mc['chains']}x{mc['draws']} draws"
+                             f" (tune {mc.get('tune', '?')}, target_accept"
+                             f" {mc.get('target_accept', '?')}), cold "
                              f"{mc['cold_seconds']:.1f} s, warm CPU "
                              f"{mc.get('warm_cpu_seconds', nan):.1f} s"),
     )
