@@ -13,7 +13,8 @@ calibration.html, cvi_prior_posterior.png
 shift, built-in pack vs calibrated pack
 
 Modules: ``core`` (input, usable results by the assessment's baseline rules, layout), ``model``
-(the only PyMC importer), ``job`` (calibrate, summaries), ``output`` (files; the only matplotlib
+(the PyMC model), ``split`` (the same model fitted one analyte at a time, one compile reused;
+with ``model`` the only PyMC importers), ``job`` (calibrate, summaries), ``output`` (files; the only matplotlib
 importer), ``simulate`` (invented data), ``cli`` (argparse; the only printer).
 """
 from __future__ import annotations

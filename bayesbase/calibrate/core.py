@@ -216,6 +216,9 @@ class CalibrationData:
     age_ref: dict = field(default_factory=dict)  # analyte -> reference (median) age, years
     age_counts: dict = field(default_factory=dict)  # analyte -> (animals with, without a birth date, specimens with)
     age_notes: dict = field(default_factory=dict)  # analyte -> why it has no age term
+    # the breed levels of the model's breed grid when not those of ``breed_pairs`` (a one-analyte
+    # part of a store keeps every breed level of the whole store: :mod:`bayesbase.calibrate.split`)
+    breed_levels: list | None = None
 
     @property
     def n_obs(self) -> int:

@@ -26,12 +26,14 @@ from ..constants import CI_BOUNDS, DIM_ANALYTE, DIM_CI
 from .core import (UNKNOWN_BREED, CalibrationData, Selection, age_analytes, load_input, prepare, reference_methods,
                    select_specimens)
 
-__all__ = ["TABLE_COLUMNS", "PARAMETERS", "Calibration", "calibrate", "summary_table", "to_dataset"]
+__all__ = ["TABLE_COLUMNS", "PARAMETERS", "FIT_FORMS", "Calibration", "calibrate", "summary_table", "to_dataset"]
 
 TABLE_COLUMNS = ("analyte", "parameter", "group", "prior_value", "estimate", "lower", "upper", "n_animals",
                  "n_specimens")
 PARAMETERS = ("center", "cvg", "cvi", "cvi_log_sd", "breed_center", "method_bias", "cva", "age_slope")
 CI_PROB = 0.95
+#: How the model is fitted: per analyte where it applies (auto), or every analyte in one graph.
+FIT_FORMS = ("auto", "joint")
 
 
 @dataclass
@@ -168,6 +170,7 @@ def _attrs(pack, source, data, settings, diag, analytes, pri_text, pred_sd) -> d
         pack_id=pack.id, pack_sha256=pack.sha256, species=pack.species, engine="mcmc-calibrate",
         seed=int(settings["seed"]), sampler=settings["sampler"], draws=settings["draws"],
         tune=settings["tune"], chains=settings["chains"], seconds=round(settings.get("seconds", float("nan")), 2),
+        fit_form=settings.get("fit_form", "joint"),
         source_kind=source.kind, source_label=source.label, source_sha256=source.sha256,
         n_animals=len(set(data.cell_animal)), n_results=int(data.n_obs), n_cells=len(data.cell_animal),
         analytes=list(analytes), reference_methods=dict(data.reference), converged=bool(diag["converged"]),
@@ -179,7 +182,7 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
               reference_method: str | None = None, sampler: str = "pymc", draws: int = 1000,
               tune: int = 1000, chains: int = 4, seed: int = 0, cores: int | None = None,
               target_accept: float = 0.9, keep_compromised: bool = False, now=None,
-              heldout_folds: int = 0, age_term: bool = False) -> Calibration:
+              heldout_folds: int = 0, age_term: bool = False, fit_form: str = "auto") -> Calibration:
     """Fit the hierarchical calibration model (:mod:`bayesbase.calibrate.model`) to every usable
     result of ``species`` in a store (a ``Store`` or its file), a results file or a frame.
 
@@ -191,7 +194,9 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
     the model's optional age term for the analytes the pack marks ``age_dependent`` whose
     specimens carry birth dates (:mod:`bayesbase.calibrate.core`; default False: none, because
     the packs' age marks describe young animals, not a steady trend over adult life; ask for it
-    when the store spans ages and such a trend is plausible). Returns a
+    when the store spans ages and such a trend is plausible). ``fit_form``: ``auto`` (default)
+    fits one analyte at a time where that applies (:mod:`bayesbase.calibrate.split`: the same
+    posterior, exactly), ``joint`` every analyte in one graph. Returns a
     :class:`Calibration`; never raises on poor convergence (it says so in ``diagnostics`` and
     ``converged``)."""
     from ..priors import Pack, load_pack
@@ -207,8 +212,13 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
     data = prepare(sel.usable, reference_methods(sel.usable, reference_method),
                    age_analytes(pk, sel.analytes) if age_term else ())
     pri = _model.prior_values(pk, data.analytes)
-    idata, diag, settings = _model.fit(data, pri, draws=draws, tune=tune, chains=chains, seed=seed,
-                                       sampler=sampler, cores=cores, target_accept=target_accept)
+    if fit_form not in FIT_FORMS:
+        raise ValueError(f"fit_form must be one of {FIT_FORMS}, got {fit_form!r}")
+    from .split import fit_split
+
+    fitter = fit_split if fit_form == "auto" else _model.fit
+    idata, diag, settings = fitter(data, pri, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler,
+                                   cores=cores, target_accept=target_accept)
     table = summary_table(idata, data, pk)
     attrs = _attrs(pk, source, data, settings, diag, data.analytes, _model.prior_text(pk, data.analytes),
                    predictive_log_sd(idata))

@@ -65,7 +65,11 @@ reported by either form.
 Parameterisation (benchmarks: ``bayesbase bench`` entries ``calibrate`` and ``calibrate_large``).
 In the latent form the CVI layer is non-centred: each animal's 3-4 specimens say little about
 its own CVI, the regime in which a non-centred layer has no funnel (but the 10,000 latent z's of
-500 animals x 20 analytes made the sampler slow: the benchmark did not finish in 50 min). The
+500 animals x 20 analytes made the sampler slow: the benchmark did not finish in 50 min as one
+graph; no parameter is shared by two analytes, so :mod:`bayesbase.calibrate.split` fits the same
+posterior one analyte at a time, by default, with one compiled graph per structure). Every
+value of the graph (data, prior constants, breed flags, method levels, sufficient statistics)
+is a data container (:func:`model_values`), so one compiled graph serves every analyte. The
 breed layer is chosen per (analyte,
 breed) level: a level with at least CENTRED_MIN_ANIMALS animals is centred (its ln centre is the
 free parameter; the data pin it down, and a non-centred z = offset / breed_sd would lie on a
@@ -101,6 +105,7 @@ returned with ``diagnostics["converged"] = False``; the caller writes no pack fr
 """
 from __future__ import annotations
 
+import contextlib
 import logging
 import math
 import os
@@ -114,7 +119,7 @@ from .core import CalibrationData
 __all__ = ["WIDEN", "SCALE_LOG_SD", "METHOD_SD_SCALE", "SAMPLERS", "LIKELIHOODS", "CENTRED_MIN_ANIMALS",
            "SD_GAMMA_SHAPE", "METHOD_SD_PRIOR_TEXT", "AGE_SLOPE_YEARS", "prior_values", "prior_text", "centred_breeds",
            "animal_stats", "build_model", "fit", "diagnostics", "FREE_NAMES", "CVI_FORMS", "CVI_NODES",
-           "cvi_nodes", "cvi_node_design"]
+           "cvi_nodes", "cvi_node_design", "model_values", "quiet", "fit_settings", "stamp"]
 
 #: Factor by which the pack's stated uncertainty is widened (bayesbase modelling choice).
 WIDEN = 2.0
@@ -192,23 +197,70 @@ def _labels(pairs) -> list[str]:
 
 
 def _breed_grid(data: CalibrationData):
-    """Breeds (every breed level of the data) and the cell -> breed index."""
-    breeds = sorted({b for _, b in data.breed_pairs})
+    """Breeds (every breed level of the data, or ``data.breed_levels`` when set) and the cell ->
+    breed index."""
+    breeds = list(data.breed_levels) if data.breed_levels is not None else sorted({b for _, b in data.breed_pairs})
     b_of = {b: i for i, b in enumerate(breeds)}
     return breeds, np.array([b_of[data.breed_pairs[j][1]] for j in data.cell_breed], dtype=int)
 
 
-def _data_values(data: CalibrationData) -> dict:
-    """The data arrays of the model (``pm.Data``: one compiled structure serves any store)."""
-    _, cell_breed = _breed_grid(data)
-    has_rep = data.df_within > 0
-    ridx = np.flatnonzero(has_rep)
+#: Data containers that :func:`model_values` pads (``pad``) along the named model dims, with
+#: entries that add nothing to the density (:mod:`bayesbase.calibrate.split`): 0, but a
+#: replicate count of 1.
+_PAD_DIMS = {"cell_analyte": ("cell",), "cell_breed": ("cell",), "stat_m": ("cell",), "stat_ybar": ("cell",),
+             "stat_ss": ("cell",), "stat_sx": ("cell",), "stat_sxx": ("cell",), "stat_sxd": ("cell",),
+             "stat_n_rep": ("cell",), "stat_nk": ("cell", "method_level"), "stat_tk": ("cell", "method_level"),
+             "stat_xk": ("cell", "method_level"), "cvi_u_hat": ("cell",), "cvi_prec_hat": ("cell",),
+             "method_analyte": ("method_level",), "method_real": ("method_level",),
+             "bc_analyte": ("breed_pair",), "bc_breed": ("breed_pair",)}
+
+
+def _pad(name, v, pad):
+    dims = _PAD_DIMS.get(name)
+    if not pad or dims is None:
+        return v
+    v = np.asarray(v)
+    widths = [(0, pad[d] - v.shape[k]) for k, d in enumerate(dims)]
+    if any(w < 0 for _, w in widths):
+        raise ValueError(f"{name}: cannot pad shape {v.shape} to {[pad[d] for d in dims]}")
+    return np.pad(v, widths, constant_values=1 if name == "stat_n_rep" else 0)
+
+
+def model_values(data: CalibrationData, pri: dict, breed_param: str = "auto", likelihood: str = "auto",
+                 cvi: str = "latent", pad: dict | None = None) -> dict:
+    """Every data container (``pm.Data``) of :func:`build_model`'s graph by name: the data, the
+    prior constants (``prior_<key>``), the breed levels' parameterisation flags, the method
+    levels and the sufficient statistics, so one compiled graph serves any data of the same
+    structure. ``pad`` ({"cell": C, "method_level": K, "breed_pair": P}) pads the containers to
+    those sizes with entries that add nothing to the density (:mod:`bayesbase.calibrate.split`)."""
+    breeds, cell_breed = _breed_grid(data)
+    a_of = {a: i for i, a in enumerate(data.analytes)}
+    b_of = {b: i for i, b in enumerate(breeds)}
+    ridx = np.flatnonzero(data.df_within > 0)
     age_x = getattr(data, "age_x", None)
-    return dict(y=data.y, n_rep=data.n_rep, obs_cell=data.obs_cell, obs_bias=data.obs_bias,
-                age_x=np.zeros(len(data.y)) if age_x is None else age_x,
-                cell_analyte=data.cell_analyte, cell_breed=cell_breed,
-                ss_within=data.ss_within[ridx], df_within=data.df_within[ridx],
-                within_const=-0.5 * data.log_n_rep[ridx] - 0.5 * data.df_within[ridx] * _LOG_2PI)
+    out = dict(y=data.y, n_rep=data.n_rep, obs_cell=data.obs_cell, obs_bias=data.obs_bias,
+               age_x=np.zeros(len(data.y)) if age_x is None else age_x,
+               cell_analyte=data.cell_analyte, cell_breed=cell_breed,
+               ss_within=data.ss_within[ridx], df_within=data.df_within[ridx],
+               within_const=-0.5 * data.log_n_rep[ridx] - 0.5 * data.df_within[ridx] * _LOG_2PI,
+               bc_analyte=[a_of[a] for a, _ in data.breed_pairs], bc_breed=[b_of[b] for _, b in data.breed_pairs])
+    out.update({f"prior_{k}": np.asarray(v, dtype=float) for k, v in pri.items()})
+    if len(breeds) > 1:
+        out["breed_centred"] = centred_breeds(data, breeds, breed_param).astype(float)
+    if data.bias_pairs or (pad or {}).get("method_level"):
+        out["method_analyte"] = [a_of[a] for a, _ in data.bias_pairs]
+        out["method_real"] = np.ones(len(data.bias_pairs))
+    st = animal_stats(data) if likelihood != "specimens" else None
+    if likelihood == "animal_stats" and st is None:
+        raise ValueError("likelihood='animal_stats' needs equal replicate counts within each animal")
+    if st is not None:
+        out.update({f"stat_{k}": v for k, v in st.items()})
+    if cvi == "quadrature":
+        out["cvi_u_hat"], out["cvi_prec_hat"] = cvi_node_design(data, pri["sa"])
+    for k in ("bc_analyte", "bc_breed", "method_analyte", "obs_cell", "obs_bias", "cell_analyte", "cell_breed"):
+        if k in out:
+            out[k] = np.asarray(out[k], dtype=int).reshape(-1)
+    return {k: _pad(k, v, pad) for k, v in out.items()}
 
 
 def centred_breeds(data: CalibrationData, breeds, breed_param: str = "auto") -> np.ndarray:
@@ -226,11 +278,12 @@ def centred_breeds(data: CalibrationData, breeds, breed_param: str = "auto") -> 
     return flags
 
 
-def _breed_layer(pm, pt, data, breeds, mu, pri, breed_param):
-    """Breed offsets (analyte x breed) with a per-level choice of parameterisation: a centred level
-    samples its ln centre c ~ Normal(mu, breed_sd); a non-centred level samples z ~ Normal(0, 1)
-    with c = mu + breed_sd z. ``breed_raw`` holds c or z accordingly."""
-    flag = centred_breeds(data, breeds, breed_param).astype(float)
+def _breed_layer(pm, pt, d, mu, pri):
+    """Breed offsets (analyte x breed) with a per-level choice of parameterisation (data
+    ``breed_centred``, :func:`centred_breeds`): a centred level samples its ln centre c ~
+    Normal(mu, breed_sd); a non-centred level samples z ~ Normal(0, 1) with c = mu + breed_sd z.
+    ``breed_raw`` holds c or z accordingly."""
+    flag = d["breed_centred"]
     breed_sd = pm.Gamma("breed_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / pri["breed_sd_scale"], dims="analyte")
     sd, m = breed_sd[:, None], mu[:, None]
     raw = pm.Normal("breed_raw", m * flag, flag * sd + (1.0 - flag), dims=("analyte", "breed"))
@@ -238,73 +291,84 @@ def _breed_layer(pm, pt, data, breeds, mu, pri, breed_param):
     return pm.Deterministic("breed_offset", centre - m, dims=("analyte", "breed"))
 
 
+def _coords(data: CalibrationData, breeds, pad):
+    """The model's coords; ``pad`` (:func:`model_values`) lengthens cell and method_level."""
+    pad = pad or {}
+    ridx = np.flatnonzero(data.df_within > 0)
+    levels = _labels(data.bias_pairs)
+    levels += [f"(padding {k})" for k in range(pad.get("method_level", len(levels)) - len(levels))]
+    return {"analyte": data.analytes, "cell": np.arange(pad.get("cell", len(data.cell_analyte))), "breed": breeds,
+            "method_level": levels, "rep_analyte": [data.analytes[i] for i in ridx],
+            "age_analyte": list(getattr(data, "age_analytes", []))}
+
+
+def _method_bias(pm, pt, d, pri, n_levels):
+    """Method biases (centred), a padded level (``method_real`` 0) with a unit prior of its own."""
+    if not n_levels:
+        return pt.zeros(1)
+    method_sd = pm.Gamma("method_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / pri["method_sd_scale"],
+                         dims="analyte")
+    real = d["method_real"]
+    b = pm.Normal("method_log_bias", 0.0, real * method_sd[d["method_analyte"]] + (1.0 - real), dims="method_level")
+    return pt.concatenate([b, pt.zeros(1)])
+
+
 def build_model(data: CalibrationData, pri: dict, breed_param: str = "auto", likelihood: str = "auto",
-                cvi: str = "latent", nodes: int | None = None):
+                cvi: str = "latent", nodes: int | None = None, pad: dict | None = None):
     """The PyMC model of the module docstring for ``data`` with prior constants ``pri``;
     ``breed_param`` (auto, centred, noncentred) chooses the breed layer's parameterisation;
     ``likelihood`` (auto, specimens, animal_stats) how the specimen means enter: one term per
     specimen, or per animal through its sufficient statistics (:func:`animal_stats`; ``auto``
-    takes them when every animal's specimens have equal replicate counts). Same density."""
+    takes them when every animal's specimens have equal replicate counts). Same density. Every
+    value is a data container (:func:`model_values`; ``pad`` pads them)."""
     if likelihood not in LIKELIHOODS:
         raise ValueError(f"likelihood must be one of {LIKELIHOODS}, got {likelihood!r}")
     import pymc as pm
     import pytensor.tensor as pt
 
-    A, C = len(data.analytes), len(data.cell_analyte)
-    a_of = {a: i for i, a in enumerate(data.analytes)}
+    A = len(data.analytes)
     breeds, _ = _breed_grid(data)
-    has_rep = data.df_within > 0
-    ridx = np.flatnonzero(has_rep)
-    coords = {"analyte": data.analytes, "cell": np.arange(C), "breed": breeds,
-              "method_level": _labels(data.bias_pairs), "rep_analyte": [data.analytes[i] for i in ridx],
-              "age_analyte": list(getattr(data, "age_analytes", []))}
+    coords = _coords(data, breeds, pad)
     with pm.Model(coords=coords) as model:
-        d = {k: pm.Data(k, v) for k, v in _data_values(data).items()}
+        d = {k: pm.Data(k, v) if np.size(v) or not k.startswith("stat_") else v
+             for k, v in model_values(data, pri, breed_param, likelihood, cvi, pad).items()}
+        p = {k[6:]: v for k, v in d.items() if k.startswith("prior_")}
         ca = d["cell_analyte"]
         oa = ca[d["obs_cell"]]
-        mu = pm.Normal("mu", pri["mu_loc"], pri["mu_sd"], dims="analyte")
-        sigma_g = pm.LogNormal("sigma_g", np.log(pri["sg"]), SCALE_LOG_SD, dims="analyte")
-        ln_med = pm.Normal("ln_cvi_median", pri["ln_cvi"], pri["ln_cvi_sd"], dims="analyte")
-        spread = pm.HalfNormal("cvi_log_sd", pri["spread_scale"], dims="analyte")
-        offset = _breed_layer(pm, pt, data, breeds, mu, pri, breed_param) if len(breeds) > 1 else pt.zeros((A, 1))
-        bias = pt.zeros(1)
-        if data.bias_pairs:
-            ma = np.array([a_of[a] for a, _ in data.bias_pairs])
-            method_sd = pm.Gamma("method_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / pri["method_sd_scale"],
-                                 dims="analyte")
-            b = pm.Normal("method_log_bias", 0.0, method_sd[ma], dims="method_level")
-            bias = pt.concatenate([b, pt.zeros(1)])
+        mu = pm.Normal("mu", p["mu_loc"], p["mu_sd"], dims="analyte")
+        sigma_g = pm.LogNormal("sigma_g", pt.log(p["sg"]), SCALE_LOG_SD, dims="analyte")
+        ln_med = pm.Normal("ln_cvi_median", p["ln_cvi"], p["ln_cvi_sd"], dims="analyte")
+        spread = pm.HalfNormal("cvi_log_sd", p["spread_scale"], dims="analyte")
+        offset = _breed_layer(pm, pt, d, mu, p) if len(breeds) > 1 else pt.zeros((A, 1))
+        bias = _method_bias(pm, pt, d, p, len(coords["method_level"]))
         age = None  # optional age term: ln slope per year of each analyte (0 without the term)
         if coords["age_analyte"]:
-            ai = np.array([a_of[a] for a in coords["age_analyte"]])
-            slope = pm.Normal("age_log_slope", 0.0, pri["sg"][ai] / AGE_SLOPE_YEARS, dims="age_analyte")
+            ai = np.array([data.analytes.index(a) for a in coords["age_analyte"]])
+            slope = pm.Normal("age_log_slope", 0.0, p["sg"][ai] / AGE_SLOPE_YEARS, dims="age_analyte")
             pm.Deterministic("age_slope", pt.expm1(slope), dims="age_analyte")
             age = pt.set_subtensor(pt.zeros(A)[ai], slope)
-        sa = pt.as_tensor_variable(pri["sa"])
+        sa = p["sa"]
+        ridx = np.flatnonzero(data.df_within > 0)
         if len(ridx):
-            sa_free = pm.LogNormal("sigma_a", np.log(pri["sa"][ridx]), SCALE_LOG_SD, dims="rep_analyte")
+            sa_free = pm.LogNormal("sigma_a", pt.log(p["sa"][ridx]), SCALE_LOG_SD, dims="rep_analyte")
             sa = pt.set_subtensor(sa[ridx], sa_free)
             pm.Potential("within_specimen", pt.sum(d["within_const"] - d["df_within"] * pt.log(sa_free)
                                                    - d["ss_within"] / (2.0 * sa_free**2)))
         # sigma_i^2 of each cell (latent) or of each (cell, node) with the nodes' log weights
-        si2, log_w = _cvi_layer(pm, pt, data, pri, ln_med[ca], spread[ca], cvi, nodes)
+        si2, log_w = _cvi_layer(pm, pt, d, ln_med[ca], spread[ca], cvi, nodes)
         cell_mean = mu[ca] + (offset[ca, d["cell_breed"]] if len(breeds) > 1 else 0.0)
         sg2 = (sigma_g**2)[ca]
-        st = animal_stats(data) if likelihood != "specimens" else None
-        if st is not None:  # data containers, so pm.set_data / with_data reach the compiled density
-            st = {k: pm.Data(f"stat_{k}", v) if np.size(v) else v for k, v in st.items()}
-        if likelihood == "animal_stats" and st is None:
-            raise ValueError("likelihood='animal_stats' needs equal replicate counts within each animal")
+        st = {k[5:]: v for k, v in d.items() if k.startswith("stat_")} or None
         if st is None:
             v = si2[d["obs_cell"]] + _node_axis(sa[oa] ** 2 / d["n_rep"], log_w)
             r = d["y"] - cell_mean[d["obs_cell"]] - bias[d["obs_bias"]]
             r = r if age is None else r - age[oa] * d["age_x"]
-            pm.Potential("specimen_means", _cell_logp(r, v, sg2, d["obs_cell"], C, log_w))
+            pm.Potential("specimen_means", _cell_logp(r, v, sg2, d["obs_cell"], len(coords["cell"]), log_w))
         else:
             v = si2 + _node_axis(sa[ca] ** 2 / st["n_rep"], log_w)
             pm.Potential("specimen_means", _stats_logp(st, cell_mean, bias[:-1], v, sg2,
                                                        None if age is None else age[ca], log_w))
-        _deterministics(pm, pt, data, breeds, mu, sigma_g, ln_med, sa, offset, bias)
+        _deterministics(pm, pt, d, len(breeds), mu, sigma_g, ln_med, sa, offset, bias)
     return model
 
 
@@ -341,7 +405,7 @@ def cvi_node_design(data: CalibrationData, sa) -> tuple[np.ndarray, np.ndarray]:
     return np.where(ok, 0.5 * np.log(e), 0.0), np.where(ok, 0.5 * df * g * g, 0.0)
 
 
-def _cvi_layer(pm, pt, data, pri, lm, s, cvi, nodes):
+def _cvi_layer(pm, pt, d, lm, s, cvi, nodes):
     """sigma_i^2 = ln(1 + CVI^2) of each cell with ln CVI ~ Normal(lm, s) (``lm``, ``s`` per
     cell). ``latent``: one free cvi_z per cell, ln CVI = lm + s cvi_z; returns (sigma_i^2, None).
     ``quadrature``: CVI integrated out per cell by adaptive Gauss-Hermite quadrature (module
@@ -353,7 +417,7 @@ def _cvi_layer(pm, pt, data, pri, lm, s, cvi, nodes):
         eta = pm.Normal("cvi_z", 0.0, 1.0, dims="cell")
         return pt.softplus(2.0 * (lm + s * eta)), None
     x, lw = cvi_nodes(nodes)
-    u_hat, p_hat = (pm.Data(k, v) for k, v in zip(("cvi_u_hat", "cvi_prec_hat"), cvi_node_design(data, pri["sa"])))
+    u_hat, p_hat = d["cvi_u_hat"], d["cvi_prec_hat"]  # data (cvi_node_design)
     prec = 1.0 / s**2 + p_hat
     tau = 1.0 / pt.sqrt(prec)
     centre = (lm / s**2 + u_hat * p_hat) / prec
@@ -451,39 +515,23 @@ def _cell_density(m, rsum, q, v, sg2, log_w=None):
     return pt.sum(lp) if log_w is None else pt.sum(pt.logsumexp(lp + log_w, axis=-1))
 
 
-def _deterministics(pm, pt, data, breeds, mu, sigma_g, ln_med, sa, offset, bias):
+def _deterministics(pm, pt, d, n_breeds, mu, sigma_g, ln_med, sa, offset, bias):
     """The reported quantities on the natural scale."""
-    a_of = {a: i for i, a in enumerate(data.analytes)}
-    b_of = {b: i for i, b in enumerate(breeds)}
     pm.Deterministic("center", pt.exp(mu), dims="analyte")
     pm.Deterministic("cvg", pt.sqrt(pt.expm1(sigma_g**2)), dims="analyte")
     pm.Deterministic("cvi", pt.exp(ln_med), dims="analyte")
     pm.Deterministic("cva", pt.sqrt(pt.expm1(sa**2)), dims="analyte")
-    ba = np.array([a_of[a] for a, _ in data.breed_pairs], dtype=int)
-    bi = np.array([b_of[b] for _, b in data.breed_pairs], dtype=int)
-    off = offset[ba, bi] if len(breeds) > 1 else 0.0
+    ba, bi = d["bc_analyte"], d["bc_breed"]
+    off = offset[ba, bi] if n_breeds > 1 else 0.0
     pm.Deterministic("breed_center_all", pt.exp(mu[ba] + off))
-    if data.bias_pairs:
+    if "method_real" in d:
         pm.Deterministic("method_bias", pt.expm1(bias[:-1]), dims="method_level")
 
 
 # ----------------------------------------------------------------------------- fitting
-def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
-        seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9,
-        breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None):
-    """Sample the model; returns (idata, diagnostics, settings). ``cvi``: the animals' CVIs
-    latent (default) or integrated out by quadrature over ``nodes`` nodes (default
-    :data:`CVI_NODES`; module docstring). Never raises on poor convergence: ``diagnostics["converged"]`` says so."""
-    if draws < 1 or tune < 0 or chains < 1:
-        raise ValueError("draws >= 1, tune >= 0 and chains >= 1 are required")
-    if sampler not in SAMPLERS:
-        raise ValueError(f"sampler must be one of {SAMPLERS}, got {sampler!r}")
-    from ..mcmc.engine import ESS_MIN, RHAT_MAX  # also loads PyMC and ArviZ (notice handled there)
-
-    cores = max(1, min(chains, os.cpu_count() or 1)) if cores is None else int(cores)
-    settings = dict(sampler=sampler, draws=int(draws), tune=int(tune), chains=int(chains), cores=cores,
-                    seed=int(seed), target_accept=float(target_accept), breed_param=breed_param,
-                    likelihood=likelihood, cvi=cvi, cvi_nodes=0 if cvi == "latent" else int(nodes or CVI_NODES))
+@contextlib.contextmanager
+def quiet():
+    """PyMC's and PyTensor's chatter and ArviZ's small-sample warnings silenced while sampling."""
     loggers = [logging.getLogger(n) for n in ("pymc", "pymc.sampling.mcmc", "pytensor")]
     levels = [lg.level for lg in loggers]
     for lg in loggers:
@@ -500,25 +548,60 @@ def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000
             warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
             warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
             warnings.filterwarnings("ignore", category=FutureWarning, module="arviz")
-            t0 = time.perf_counter()
-            model = build_model(data, pri, breed_param, likelihood, cvi, nodes)
-            settings["likelihood_used"] = "specimens" if likelihood == "specimens" or animal_stats(data) is None \
-                else "animal_stats"
-            breeds = _breed_grid(data)[0]
-            n_centred = int(centred_breeds(data, breeds, breed_param).sum())
-            settings["centred_breed_levels"] = n_centred if len(breeds) > 1 else 0
-            idata = _sample(model, sampler, draws, tune, chains, cores, seed, target_accept, settings)
-            idata.posterior.attrs.update(likelihood=settings["likelihood_used"], breed_param=breed_param,
-                                         cvi=cvi, cvi_nodes=settings["cvi_nodes"],
-                                         centred_breed_levels=settings["centred_breed_levels"])
-            for k in ("sample_seconds", "compile_seconds"):
-                if k in settings:
-                    idata.posterior.attrs[k] = settings[k]
-            settings["seconds"] = time.perf_counter() - t0
-            diag = diagnostics(idata, RHAT_MAX, ESS_MIN)
+            yield
     finally:
         for lg, lv in zip(loggers, levels):
             lg.setLevel(lv)
+
+
+def fit_settings(data: CalibrationData, *, draws, tune, chains, seed, sampler, cores, target_accept, breed_param,
+                 likelihood, cvi, nodes) -> dict:
+    """The settings of a fit (checked), stamped on its result."""
+    if draws < 1 or tune < 0 or chains < 1:
+        raise ValueError("draws >= 1, tune >= 0 and chains >= 1 are required")
+    if sampler not in SAMPLERS:
+        raise ValueError(f"sampler must be one of {SAMPLERS}, got {sampler!r}")
+    cores = max(1, min(chains, os.cpu_count() or 1)) if cores is None else int(cores)
+    breeds = _breed_grid(data)[0]
+    n_centred = int(centred_breeds(data, breeds, breed_param).sum())
+    return dict(sampler=sampler, draws=int(draws), tune=int(tune), chains=int(chains), cores=cores,
+                seed=int(seed), target_accept=float(target_accept), breed_param=breed_param,
+                likelihood=likelihood, cvi=cvi, cvi_nodes=0 if cvi == "latent" else int(nodes or CVI_NODES),
+                likelihood_used="specimens" if likelihood == "specimens" or animal_stats(data) is None
+                else "animal_stats", centred_breed_levels=n_centred if len(breeds) > 1 else 0)
+
+
+def stamp(idata, settings: dict) -> None:
+    """The fit's form and timings on the posterior's attrs."""
+    idata.posterior.attrs.update(likelihood=settings["likelihood_used"], breed_param=settings["breed_param"],
+                                 cvi=settings["cvi"], cvi_nodes=settings["cvi_nodes"],
+                                 centred_breed_levels=settings["centred_breed_levels"])
+    for k in ("sample_seconds", "compile_seconds", "fit_form"):
+        if k in settings:
+            idata.posterior.attrs[k] = settings[k]
+
+
+def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
+        seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9,
+        breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None):
+    """Sample the model (every analyte in one graph); returns (idata, diagnostics, settings).
+    ``cvi``: the animals' CVIs latent (default) or integrated out by quadrature over ``nodes``
+    nodes (default :data:`CVI_NODES`; module docstring). Never raises on poor convergence:
+    ``diagnostics["converged"]`` says so. :func:`bayesbase.calibrate.split.fit_split` fits the
+    same posterior one analyte at a time."""
+    settings = fit_settings(data, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler, cores=cores,
+                            target_accept=target_accept, breed_param=breed_param, likelihood=likelihood, cvi=cvi,
+                            nodes=nodes)
+    from ..mcmc.engine import ESS_MIN, RHAT_MAX  # also loads PyMC and ArviZ (notice handled there)
+
+    with quiet():
+        t0 = time.perf_counter()
+        model = build_model(data, pri, breed_param, likelihood, cvi, nodes)
+        idata = _sample(model, sampler, draws, tune, chains, settings["cores"], seed, target_accept, settings)
+        settings["fit_form"] = "joint"
+        stamp(idata, settings)
+        settings["seconds"] = time.perf_counter() - t0
+        diag = diagnostics(idata, RHAT_MAX, ESS_MIN)
     return idata, diag, settings
 
 
