@@ -430,3 +430,18 @@ def test_recovers_a_simulated_store():
     for b, lb in breed_log.items():
         covers("breed_center", b, math.exp(lb))
     covers("center", "", math.exp(np.mean(list(breed_log.values()))))
+
+
+def test_printed_intervals_stay_readable_when_bounds_are_negative(capsys):
+    """A method bias's 95 % CrI often has negative bounds: "-0.08 to -0.02", never "-0.08--0.02"."""
+    import types
+
+    import pandas as pd
+
+    from bayesbase.calibrate import cli as ccli
+
+    table = pd.DataFrame([{"analyte": "creatinine", "parameter": "method_bias", "group": "analyser B",
+                           "prior_value": 0.0, "estimate": -0.05, "lower": -0.08108, "upper": -0.01832}])
+    ccli._print_table(types.SimpleNamespace(table=table))
+    out = capsys.readouterr().out
+    assert "-0.08108 to -0.01832" in out and "--" not in out

@@ -57,7 +57,7 @@ def add_parser(sub) -> None:
 def _print_table(cal) -> None:
     print(f"{'analyte':<14}{'parameter':<14}{'group':<22}{'prior':>10}{'estimate':>11}  95 % CrI")
     for r in cal.table.itertuples(index=False):
-        ci = "" if r.lower != r.lower else f"{r.lower:.4g}-{r.upper:.4g}"
+        ci = "" if r.lower != r.lower else f"{r.lower:.4g} to {r.upper:.4g}"
         print(f"{r.analyte:<14}{r.parameter:<14}{str(r.group)[:21]:<22}{r.prior_value:>10.4g}{r.estimate:>11.4g}  {ci}")
 
 
@@ -71,8 +71,8 @@ def _print_heldout(ho) -> None:
     for an, m in dict.fromkeys(zip(ho.table["analyte"], ho.table["measure"])):
         b, c = t.loc[(an, m, "builtin")], t.loc[(an, m, "calibrated")]
         nom = "" if b["nominal"] != b["nominal"] else f"nominal {100 * b['nominal']:.1f}"
-        print(f"  {an:<14}{m:<18}{nom:<14}{100 * b['estimate']:6.1f} ({100 * b['lower']:.1f}-{100 * b['upper']:.1f})"
-              f"   {100 * c['estimate']:6.1f} ({100 * c['lower']:.1f}-{100 * c['upper']:.1f})")
+        print(f"  {an:<14}{m:<18}{nom:<14}{100 * b['estimate']:6.1f} ({100 * b['lower']:.1f} to {100 * b['upper']:.1f})"
+              f"   {100 * c['estimate']:6.1f} ({100 * c['lower']:.1f} to {100 * c['upper']:.1f})")
     if not ho.converged:
         print("WARNING: at least one held-out fold's fit did not converge; its figures are not to be trusted.",
               file=sys.stderr)

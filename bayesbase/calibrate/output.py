@@ -81,7 +81,7 @@ def _note(r, pack, field: str, what: str) -> str:
     prior = pack.cited.get(r.analyte, {}).get(field)
     was = (f"prior: pack {pack.id} value {r.prior_value:.4g}"
            + (f" ({prior.provenance}: {prior.source[:120]})" if prior is not None else ""))
-    ci = "" if not np.isfinite(r.lower) else f", 95 % CrI {r.lower:.4g}-{r.upper:.4g}"
+    ci = "" if not np.isfinite(r.lower) else f", 95 % CrI {r.lower:.4g} to {r.upper:.4g}"
     return f"{what}{ci}; {r.n_animals} animals, {r.n_specimens} specimens; {was}"
 
 
@@ -297,7 +297,8 @@ def calibration_html(cal: Calibration, png: bytes | None = None) -> str:
              f"{_e(a['species'])}; {a['n_animals']} animals, {a['n_specimens']} usable specimens ({a['n_results']} specimen-analyte results); rows by role: "
              f"{_e(roles)}. Priors from pack {_e(a['pack_id'])} (sha256 {_e(a['pack_sha256'])}). Reference methods: "
              f"{_e(a['reference_methods'])}. Sampler {_e(a['sampler'])}, {a['chains']} chains x {a['draws']} draws "
-             f"(tune {a['tune']}), seed {a['seed']}, {a['seconds']} s; bayesbase {_e(__version__)}, {_e(a['date'])}.</p>",
+             f"(tune {a['tune']}), fit form {_e(a.get('fit_form', 'joint'))}, seed {a['seed']}, "
+             f"{a['seconds']} s; bayesbase {_e(__version__)}, {_e(a['date'])}.</p>",
              "<h2>Convergence</h2>", _diag_html(cal),
              "<h2>Prior (pack value) and posterior (median, 95 % credible interval)</h2>",
              "<p>CVs are fractions; method_bias is the fraction by which a method reads above the reference method "
