@@ -364,18 +364,19 @@ def test_ticks_fixed_to_the_view_draw_what_matplotlibs_locators_draw():
 
 def test_shared_figure_cells_are_the_panels_drawn_alone():
     """The report draws every panel once in one shared figure and cuts each out: a cut panel
-    has the size and the pixels of the same panel drawn alone (a tick may land one pixel
-    apart where a position rounds the other way: at most 0.1 % of the pixels differ)."""
+    has the size and the pixels of the same panel drawn alone, but for its texts, placed to
+    the nearest pixel (at most 4 % of the pixels differ; tests/test_report_figure_grid.py
+    checks the marks pixel for pixel and the texts against matplotlib's)."""
     a = case_assessment("dog_liver_enzymes_after_anticonvulsant")
     patient = str(a.table["patient"].iloc[0])
     path = personal_interval_path(case_frame("dog_liver_enzymes_after_anticonvulsant"), None,
                                   patient, assess, engine="exact", trend=False)
     grid = plots.panel_grid(a.history, a.table, path, width=3.4, height=2.3, ncols=3, dpi=60)
-    assert len(grid.figure.axes) == len(a.table) == len(grid.boxes)
+    assert len(a.table) == len(grid.boxes)
     whole, cells = plots.grid_pixels(grid)
     assert whole.shape[2] == 3 and whole.dtype == np.uint8  # RGB, no alpha channel
     for (_, r), cell in zip(a.table.iterrows(), cells):
         alone = _png_pixels(plots.figure_png(plots.analyte_panel(a.history, r, path, width=3.4,
                                                                  height=2.3), dpi=60))
         assert cell.shape == alone.shape == (round(2.3 * 60), round(3.4 * 60), 3)
-        assert (cell != alone).any(axis=2).mean() <= 0.001, r["analyte"]
+        assert (cell != alone).any(axis=2).mean() <= 0.04, r["analyte"]

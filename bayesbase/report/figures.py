@@ -2,6 +2,10 @@
 
 Figures are built with :class:`matplotlib.figure.Figure` directly, never through ``pyplot``, so
 nothing global (the backend, the current figure, rcParams) changes when a report is drawn.
+:func:`analyte_panel` draws one panel on a matplotlib Axes (the web page, SVGs, the reference
+in the tests); a report's panels are drawn together by :func:`panel_grid` without an Axes,
+the same marks placed by each panel's own data-to-pixel transform, one artist per kind of mark
+for all panels, and each text drawn once per process as a stamp (see there).
 
 Visual language (described to the reader by :data:`LEGEND_TEXT`, written in
 :mod:`.wording`; colours from the Okabe-Ito colour-blind-safe palette, Okabe M & Ito K, "Color
@@ -37,6 +41,7 @@ from matplotlib.colors import to_hex, to_rgb
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
+from matplotlib.artist import Artist
 from matplotlib.text import Text
 import matplotlib.dates as mdates
 
@@ -46,6 +51,10 @@ from .panel import DRIFT_DRAW_P, change_band
 
 #: marker size (points) of the assessed star: sqrt of the former scatter areas 140 and 170
 STAR_SIZE_COMPACT, STAR_SIZE = 11.8, 13.0
+#: tick marks and labels of a panel (compact panels' tick_params; points)
+_TICK_LEN, _TICK_PAD, _TICK_LABEL_SIZE = 2.5, 1.5, 6.5
+#: title, P(change) line and censoring chevrons of a panel (compact panels'; points)
+_TITLE_SIZE, _TITLE_PAD, _PTEXT_SIZE, _CHEVRON_SIZE = 8.5, 3.0, 7.2, 7.0
 
 __all__ = [
     "PALETTE",
@@ -219,10 +228,17 @@ def analyte_histories(history: pd.DataFrame, patient) -> dict:
     if h.empty:
         return {}
     agg = _per_specimen(h, ["analyte", "specimen", "collected_at", "role"])
+    keys = agg["analyte"].to_numpy(dtype=object)
+    base = agg.drop(columns="analyte")
+    when = base["collected_at"].to_numpy()
     out = {}
-    for analyte, g in agg.groupby("analyte", sort=False):
-        g = g.drop(columns="analyte").reset_index(drop=True)
-        out[analyte] = g.sort_values("collected_at").reset_index(drop=True)
+    for analyte in pd.unique(keys):  # first appearance order, as groupby(sort=False)
+        if analyte is pd.NA or analyte is None:
+            continue
+        rows = np.flatnonzero(keys == analyte)
+        # sort_values' own sort of one column (numpy's quicksort; NaT last)
+        rows = rows[np.argsort(when[rows], kind="quicksort")]
+        out[analyte] = base.iloc[rows].reset_index(drop=True)
     return out
 
 
@@ -234,24 +250,14 @@ def _path_for(interval_path, patient, analyte) -> pd.DataFrame | None:
     return p if len(p) else None
 
 
-def _path_points(interval_path) -> dict:
-    """(patient, analyte) -> (times, lower, upper) lists: the rows :func:`_path_for` picks for
-    each, in the same order, from one sort and one grouping for a whole report."""
-    if interval_path is None or len(interval_path) == 0:
-        return {}
-    p = (interval_path.dropna(subset=["pi_lower", "pi_upper"])
-         .sort_values("collected_at", kind="stable"))
-    return {key: (list(g["collected_at"]), list(g["pi_lower"]), list(g["pi_upper"]))
-            for key, g in p.groupby(["patient", "analyte"], sort=False, observed=True)}
-
-
-def _window(times: list, t_assessed: pd.Timestamp):
-    """x range of a panel: every specimen with 6 % room, at least a month."""
+def _window(times: list, t_assessed, day=pd.Timedelta(days=1)):
+    """x range of a panel: every specimen with 6 % room, at least a month (times as
+    Timestamps, or as date numbers with ``day=1.0``)."""
     t0, t1 = min(times + [t_assessed]), max(times + [t_assessed])
     span = t1 - t0
-    if span < pd.Timedelta(days=30):  # one specimen or a few within days: show a month
+    if span < 30 * day:  # one specimen or a few within days: show a month
         mid = t0 + span / 2
-        t0, t1 = mid - pd.Timedelta(days=15), mid + pd.Timedelta(days=15)
+        t0, t1 = mid - 15 * day, mid + 15 * day
         span = t1 - t0
     pad = span * 0.06
     return t0 - pad, t1 + pad, span
@@ -271,14 +277,10 @@ def _draw_population(ax, row, xlo, xhi) -> tuple:
 
 
 def _interval_steps(interval_path, row, t_assessed) -> list[tuple]:
-    """(time, lower, upper) of the personal interval at each earlier specimen and now.
-    ``interval_path``: a frame, or this row's entry of :func:`_path_points`."""
-    if isinstance(interval_path, tuple):
-        points = interval_path
-    else:
-        path = _path_for(interval_path, row["patient"], row["analyte"])
-        points = ((path["collected_at"], path["pi_lower"], path["pi_upper"])
-                  if path is not None else ((), (), ()))
+    """(time, lower, upper) of the personal interval at each earlier specimen and now."""
+    path = _path_for(interval_path, row["patient"], row["analyte"])
+    points = ((path["collected_at"], path["pi_lower"], path["pi_upper"])
+              if path is not None else ((), (), ()))
     steps = [(pd.Timestamp(t), lo, hi) for t, lo, hi in zip(*points)
              if pd.Timestamp(t) < t_assessed]
     if _finite(row["pi_lower"]) and _finite(row["pi_upper"]):
@@ -287,11 +289,10 @@ def _interval_steps(interval_path, row, t_assessed) -> list[tuple]:
     return steps
 
 
-def _draw_personal(ax, steps, times, span) -> None:
-    """Personal interval: a stepped ribbon, each step from the previous draw to this one; the
-    last reaches a little past the assessed result so that the star sits inside its own band."""
-    if not steps:
-        return
+def _step_path(steps, times, span) -> tuple[list, list, list]:
+    """The stepped personal interval as (times, lower, upper): each step from the previous draw
+    to this one; the last reaches a little past the assessed result so that the star sits
+    inside its own band."""
     spec_times = sorted(set(times))
     xs, los, his = [], [], []
     for i, (t, lo, hi) in enumerate(steps):
@@ -303,6 +304,14 @@ def _draw_personal(ax, steps, times, span) -> None:
         xs += [start, end]
         los += [lo, lo]
         his += [hi, hi]
+    return xs, los, his
+
+
+def _draw_personal(ax, steps, times, span) -> None:
+    """Personal interval: a stepped ribbon (:func:`_step_path`) with its two edges."""
+    if not steps:
+        return
+    xs, los, his = _step_path(steps, times, span)
     ax.fill_between(xs, los, his, facecolor=PALETTE["personal"], alpha=0.26,
                     edgecolor="none", zorder=2)
     for ys in (los, his):
@@ -322,11 +331,14 @@ def _trend_of(row, trend: dict | None) -> dict | None:
     return None
 
 
-def _draw_trend(ax, tr: dict | None, h: pd.DataFrame, xlo, xhi) -> None:
-    """Drift line through the geometric mean of the specimens used, with its credible band."""
+def _trend_curves(tr: dict | None, h: pd.DataFrame, xlo, xhi):
+    """The drift line through the geometric mean of the specimens used, as (times, line,
+    (band low, band high) or None), or None when no drift is drawn."""
+    if not tr:
+        return None
     used = h[h["role"].isin(["baseline", "assessed"])] if len(h) else h
-    if not tr or len(used) < 2:
-        return
+    if len(used) < 2:
+        return None
     ct = pd.to_datetime(used["collected_at"])
     anchor_t = ct.min() + (ct - ct.min()).mean()  # resolution-safe mean time
     anchor = float(np.exp(np.log(used["value"]).mean()))
@@ -336,12 +348,23 @@ def _draw_trend(ax, tr: dict | None, h: pd.DataFrame, xlo, xhi) -> None:
     def line(pct):
         return anchor * (1.0 + float(pct) / 100.0) ** yrs
 
+    band = None
     if _finite(tr.get("pct_lower")) and _finite(tr.get("pct_upper")):
         a, b = line(tr["pct_lower"]), line(tr["pct_upper"])
-        ax.fill_between(tt, np.minimum(a, b), np.maximum(a, b), facecolor=PALETTE["trend_band"],
-                        alpha=0.45, edgecolor="none", zorder=1.5)
-    ax.plot(tt, line(tr["pct_per_year"]), color=PALETTE["trend"], linestyle="-.",
-            linewidth=1.0, zorder=3.5)
+        band = (np.minimum(a, b), np.maximum(a, b))
+    return tt, line(tr["pct_per_year"]), band
+
+
+def _draw_trend(ax, tr: dict | None, h: pd.DataFrame, xlo, xhi) -> None:
+    """Drift line through the geometric mean of the specimens used, with its credible band."""
+    curves = _trend_curves(tr, h, xlo, xhi)
+    if curves is None:
+        return
+    tt, mid, band = curves
+    if band is not None:
+        ax.fill_between(tt, *band, facecolor=PALETTE["trend_band"], alpha=0.45,
+                        edgecolor="none", zorder=1.5)
+    ax.plot(tt, mid, color=PALETTE["trend"], linestyle="-.", linewidth=1.0, zorder=3.5)
 
 
 def _draw_specimens(ax, h: pd.DataFrame, row, t_assessed, compact: bool) -> float | None:
@@ -363,23 +386,33 @@ def _draw_specimens(ax, h: pd.DataFrame, row, t_assessed, compact: bool) -> floa
         censored = np.isin(h["censor"].to_numpy(dtype=object, na_value=""), ["left", "right"])
         for _, r in (h[censored].iterrows() if censored.any() else ()):
             ax.annotate("v" if r["censor"] == "left" else "^", (r["collected_at"], r["value"]),
-                        xytext=(6, -2), textcoords="offset points", fontsize=7, zorder=8)
+                        xytext=(6, -2), textcoords="offset points", fontsize=_CHEVRON_SIZE,
+                        zorder=8)
     elif value is not None and row["censor"] in ("left", "right"):
         ax.annotate("v" if row["censor"] == "left" else "^", (t_assessed, value),
-                    xytext=(6, -2), textcoords="offset points", fontsize=7)
+                    xytext=(6, -2), textcoords="offset points", fontsize=_CHEVRON_SIZE)
     return value
 
 
-def _set_ylim(ax, h: pd.DataFrame, values, steps) -> None:
-    """y range: everything drawn, with room."""
-    ys = [v for v in list(h["value"]) if _finite(v)] if len(h) else []
+def _y_view(specimens, values, steps) -> tuple[float, float] | None:
+    """y range of a panel: everything drawn (the specimens' values, the other ``values``, the
+    interval ``steps``), with room (None: nothing to show)."""
+    ys = [v for v in specimens if _finite(v)]
     ys += [v for v in values if _finite(v)]
     for _, lo, hi in steps:
         ys += [lo, hi]
-    if ys:
-        lo, hi = min(ys), max(ys)
-        r = (hi - lo) or abs(hi) * 0.1 or 1.0
-        ax.set_ylim(max(lo - 0.12 * r, 0.0) if lo >= 0 else lo - 0.12 * r, hi + 0.12 * r)
+    if not ys:
+        return None
+    lo, hi = min(ys), max(ys)
+    r = (hi - lo) or abs(hi) * 0.1 or 1.0
+    return (max(lo - 0.12 * r, 0.0) if lo >= 0 else lo - 0.12 * r, hi + 0.12 * r)
+
+
+def _set_ylim(ax, h: pd.DataFrame, values, steps) -> None:
+    """y range: everything drawn, with room (:func:`_y_view`)."""
+    view = _y_view(list(h["value"]) if len(h) else [], values, steps)
+    if view is not None:
+        ax.set_ylim(*view)
 
 
 def _y_offset_shown(ax) -> bool:
@@ -399,7 +432,7 @@ def _style_axes(ax, row, compact: bool) -> None:
     locator = mdates.AutoDateLocator(minticks=2, maxticks=5 if compact else 7)
     ax.xaxis.set_major_locator(locator)
     ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
-    ax.tick_params(labelsize=6.5 if compact else 8, length=2.5, pad=1.5)
+    ax.tick_params(labelsize=_TICK_LABEL_SIZE if compact else 8, length=_TICK_LEN, pad=_TICK_PAD)
     for side in ("top", "right"):
         ax.spines[side].set_visible(False)
     ax.spines["left"].set_linewidth(0.6)
@@ -409,13 +442,13 @@ def _style_axes(ax, row, compact: bool) -> None:
     # push it up: place it there directly then, which spares matplotlib measuring every tick
     # label for it at each draw (the same pixels)
     ax.set_title(f"{row['label']}  [{display_unit(str(row['analyte']))}]",
-                 fontsize=8.5 if compact else 10, loc="left", pad=3, fontweight="bold",
-                 y=None if _y_offset_shown(ax) else 1.0)
+                 fontsize=_TITLE_SIZE if compact else 10, loc="left", pad=_TITLE_PAD,
+                 fontweight="bold", y=None if _y_offset_shown(ax) else 1.0)
     # the axis labels are empty: fixed positions spare matplotlib placing them at each draw
     ax.xaxis.set_label_coords(0.5, -0.1)
     ax.yaxis.set_label_coords(-0.1, 0.5)
     ax.text(1.0, 1.01, ptxt, transform=ax.transAxes, ha="right", va="bottom",
-            fontsize=7.2 if compact else 8, color="#333333")
+            fontsize=_PTEXT_SIZE if compact else 8, color="#333333")
     _ticks_in_view(ax.xaxis)
     _ticks_in_view(ax.yaxis)
 
@@ -439,76 +472,6 @@ def _ticks_in_view(axis) -> None:
     fixed = FixedFormatter([lab for lab, k in zip(labels, keep) if k])
     fixed.set_offset_string(offset)
     axis.set_major_formatter(fixed)
-
-
-class _OffsetUnderLabels(Text):
-    """An x axis's offset text (the year under month ticks, say) for ticks drawn by
-    :func:`_tick_artists`: placed at draw time under the tick labels as matplotlib's x axis
-    places its own (``XAxis._update_offset_text_position``, ticks at the bottom)."""
-
-    def __init__(self, source: Text, text: str, labels: list, pad_points: float):
-        super().__init__()
-        self.update_from(source)
-        self.set_position(source.get_position())
-        self.set_text(text)
-        self._labels, self._pad = labels, pad_points
-
-    def draw(self, renderer):
-        from matplotlib.transforms import Bbox
-
-        boxes = [t.get_window_extent(renderer) for t in self._labels
-                 if t.get_visible() and t.get_in_layout()]
-        bottom = Bbox.union(boxes).y0 if boxes else self.axes.bbox.ymin
-        x, _ = self.get_position()
-        self.set_position((x, bottom - self._pad * self.get_figure(root=True).dpi / 72))
-        super().draw(renderer)
-
-
-def _tick_artists(ax) -> None:
-    """Draw the panel's fixed ticks (see :func:`_ticks_in_view`) as one line of tick marks and
-    one text per label per axis, copies of the axis's own first tick, instead of one tick
-    object per tick that matplotlib builds at each draw (five artists each, most never drawn;
-    tick objects were the largest cost of the report's figure). The axes then locate no ticks;
-    the y axis still writes its offset text (its place does not depend on the labels) and the
-    x axis's offset text is placed under the labels by :class:`_OffsetUnderLabels`. The same
-    marks and texts at the same places (the report's figure is checked against panels drawn
-    with matplotlib's ticks, pixel by pixel, in the tests)."""
-    from matplotlib.path import Path as MplPath
-    from matplotlib.ticker import FixedFormatter, NullLocator
-    from matplotlib.transforms import IdentityTransform, TransformedPath
-
-    unclipped = TransformedPath(MplPath.unit_rectangle(), IdentityTransform())
-    for axis, is_x in ((ax.xaxis, True), (ax.yaxis, False)):
-        locs = np.asarray(axis.get_major_locator().locs, dtype=float)
-        fmt = axis.get_major_formatter()
-        texts, offset = list(fmt.seq), fmt.get_offset()
-        tick = axis.majorTicks[0]  # every tick matplotlib draws copies this one
-        zero = np.zeros(len(locs))
-        marks = Line2D(locs if is_x else zero, zero if is_x else locs)
-        marks.update_from(tick.tick1line)
-        marks.set_visible(tick.tick1line.get_visible())
-        labels = []
-        for loc, text in zip(locs, texts):
-            lab = Text()
-            lab.update_from(tick.label1)
-            lab.set_position((loc, 0.0) if is_x else (0.0, loc))
-            lab.set_text(text)
-            labels.append(lab)
-        extra = [marks, *labels]
-        if is_x and offset:
-            extra.append(_OffsetUnderLabels(axis.offsetText, offset, labels, axis.OFFSETTEXTPAD))
-        for artist in extra:
-            # a clip path already set keeps add_artist from building the axes' clip box for
-            # each (a visible share of the figure's time in a profile); it is removed next
-            artist.set_clip_path(unclipped)
-            ax.add_artist(artist)
-            artist.set_clip_box(None)  # unclipped, as a tick's mark and label are
-            artist.set_clip_path(None)
-            artist.set_zorder(axis.get_zorder())
-        none = FixedFormatter([])
-        none.set_offset_string("" if is_x else offset)
-        axis.set_major_locator(NullLocator())
-        axis.set_major_formatter(none)
 
 
 def _draw_panel(ax, history: pd.DataFrame, row, interval_path=None, trend=None,
@@ -628,22 +591,38 @@ def small_multiples(history: pd.DataFrame, table: pd.DataFrame,
     return fig
 
 
-#: zlib level of the PNGs: 3 is faster than the usual 6 and, without an alpha channel, the
-#: files are still smaller than the former RGBA ones at 6 (measured on the report's panels)
-PNG_COMPRESS_LEVEL = 3
+#: zlib level of the PNGs and their row filter: no filter at level 1 is about three times faster
+#: than Pillow's encoder at level 3 (which tries every filter on every row) and, on the report's
+#: panels (mostly flat colour), the files are no larger (measured on the 25 bench panels)
+PNG_COMPRESS_LEVEL = 1
+
+
+def _png_chunk(kind: bytes, data: bytes) -> bytes:
+    import zlib
+
+    return (len(data).to_bytes(4, "big") + kind + data
+            + (zlib.crc32(kind + data) & 0xFFFFFFFF).to_bytes(4, "big"))
 
 
 def png_bytes(rgb: np.ndarray, dpi: float | None = None) -> bytes:
-    """PNG bytes of an RGB pixel array (height x width x 3, uint8), no alpha channel."""
-    import io
+    """PNG bytes of an RGB pixel array (height x width x 3, uint8), no alpha channel: 8-bit
+    truecolour, filter type 0 on every row, and the pixel density when ``dpi`` is given (as
+    Pillow writes it), per the PNG specification (W3C / ISO/IEC 15948)."""
+    import zlib
 
-    from PIL import Image
-
-    buf = io.BytesIO()
-    kw = {"dpi": (dpi, dpi)} if dpi else {}
-    Image.fromarray(np.ascontiguousarray(rgb[..., :3])).save(
-        buf, format="PNG", compress_level=PNG_COMPRESS_LEVEL, **kw)
-    return buf.getvalue()
+    rgb = np.asarray(rgb)[..., :3]
+    height, width = rgb.shape[:2]
+    raw = np.zeros((height, 1 + 3 * width), dtype=np.uint8)  # each row: filter byte 0, pixels
+    raw[:, 1:] = rgb.reshape(height, 3 * width)
+    out = [b"\x89PNG\r\n\x1a\n",
+           _png_chunk(b"IHDR", width.to_bytes(4, "big") + height.to_bytes(4, "big")
+                      + bytes((8, 2, 0, 0, 0)))]
+    if dpi:
+        ppm = int(dpi / 0.0254 + 0.5).to_bytes(4, "big")  # pixels per metre
+        out.append(_png_chunk(b"pHYs", ppm + ppm + b"\x01"))
+    out.append(_png_chunk(b"IDAT", zlib.compress(raw.tobytes(), PNG_COMPRESS_LEVEL)))
+    out.append(_png_chunk(b"IEND", b""))
+    return b"".join(out)
 
 
 def _rgb(fig: Figure, dpi: float) -> np.ndarray:
@@ -709,13 +688,401 @@ def _pitch(size: float, gutter: float) -> float:
 
 @dataclass(frozen=True)
 class PanelGrid:
-    """One figure holding every panel of a report (one axes per analyte, each in a cell of the
-    size of an :func:`analyte_panel` figure, with the same margins), and the pixel box
-    ``(left, top, right, bottom)`` of each cell when drawn at ``dpi``."""
+    """One figure holding every panel of a report, each in a cell of the size of an
+    :func:`analyte_panel` figure with the same margins, marks, fonts and ticks, and the pixel
+    box ``(left, top, right, bottom)`` of each cell. The figure has no axes: its marks are
+    placed in pixels for ``dpi`` (draw it at that dpi, as :func:`grid_pixels` does)."""
 
     figure: Figure
     boxes: tuple[tuple[int, int, int, int], ...]
     dpi: float
+
+
+# The report's figure draws what analyte_panel draws (same marks, sizes, colours, z-order,
+# tick positions and labels), but with one artist per kind of mark for all panels together
+# instead of one matplotlib Axes per panel (an Axes, its tick objects and its ~13 texts were
+# most of a report's time): the marks are placed in figure pixels through each panel's own
+# data-to-pixel transform, built as matplotlib builds an Axes' transData; the ticks come from
+# the same locators and formatters the panel's axes use; every text is drawn once by
+# matplotlib into a small image (a "stamp", kept per process) and placed at its anchor.
+
+
+class _Marks:
+    """Every panel's marks gathered by kind, in figure pixels (y up)."""
+
+    def __init__(self):
+        self.hatch, self.pop, self.fill, self.edges, self.spines = [], [], [], [], []
+        self.xticks, self.yticks = [], []
+        self.roles = {role: [] for role in _ROLE_STYLE}
+        self.stars = {}  # the star's Line2D keywords (sorted items) -> list of points
+        self.texts = []  # (text, size, weight, colour, x, y, ha, va)
+        self.clipped = []  # artists of one panel clipped to its axes box (the drift line, band)
+
+
+#: the matplotlib settings the kept ticks, stamps and layouts depend on (fonts, text
+#: rendering, date and number formatting), and the settings they were made under
+_RC_PREFIXES = ("font.", "text.", "mathtext.", "date.", "axes.formatter.", "axes.unicode_minus",
+                "timezone", "xtick.labelsize", "ytick.labelsize")
+_RC_SEEN: list = [None]
+
+
+def _caches_for_settings() -> None:
+    """Empty the kept ticks, stamps and layouts when matplotlib's settings that shape them
+    changed since they were made (a style applied between two reports, say)."""
+    import matplotlib as mpl
+
+    key = tuple((k, repr(v)) for k, v in mpl.rcParams.items() if k.startswith(_RC_PREFIXES))
+    if key != _RC_SEEN[0]:
+        for cached in (_date_ticks, _value_ticks, _ink, _stamp, _layout):
+            cached.cache_clear()
+        _RC_SEEN[0] = key
+
+
+@lru_cache(maxsize=1024)
+def _date_ticks(lo: float, hi: float, maxticks: int = 5) -> tuple[tuple, tuple, str]:
+    """(locations, labels, offset text) of a panel's date axis over the view ``lo``-``hi``
+    (date numbers): what ``_style_axes`` and :func:`_ticks_in_view` give an axes, from the same
+    locator and formatter on matplotlib's stand-in axis."""
+    locator = mdates.AutoDateLocator(minticks=2, maxticks=maxticks)
+    locator.create_dummy_axis()
+    locator.axis.set_view_interval(lo, hi)
+    return _in_view(locator, mdates.ConciseDateFormatter(locator), lo, hi)
+
+
+@lru_cache(maxsize=1024)
+def _value_ticks(lo: float, hi: float, tick_space: int) -> tuple[tuple, tuple, str]:
+    """(locations, labels, offset text) of a panel's value axis: matplotlib's default locator
+    and formatter of a y axis with room for ``tick_space`` labels (``YAxis.get_tick_space``)."""
+    from matplotlib.ticker import AutoLocator, ScalarFormatter
+
+    locator = AutoLocator()
+    locator.set_params(nbins=int(np.clip(tick_space, 1, 9)))  # MaxNLocator's nbins='auto'
+    locator.create_dummy_axis()
+    locator.axis.set_view_interval(lo, hi)
+    formatter = ScalarFormatter()
+    formatter.create_dummy_axis()
+    formatter.axis.set_view_interval(lo, hi)
+    return _in_view(locator, formatter, lo, hi)
+
+
+def _in_view(locator, formatter, lo, hi) -> tuple[tuple, tuple, str]:
+    """The locator's ticks inside the view, labelled as the formatter labels all of them."""
+    locs = np.asarray(locator(), dtype=float)
+    labels = formatter.format_ticks(locs)
+    lo, hi = sorted((lo, hi))
+    tol = (hi - lo) * 1e-10  # matplotlib's own test of a tick inside the view (linear scale)
+    keep = (locs >= lo - tol) & (locs <= hi + tol)
+    return (tuple(locs[keep]), tuple(lab for lab, k in zip(labels, keep) if k),
+            formatter.get_offset())
+
+
+@lru_cache(maxsize=2)
+def _scratch_figure(dpi: float) -> Figure:
+    return Figure(dpi=dpi)
+
+
+@lru_cache(maxsize=1024)
+def _ink(text: str, size: float, weight: str, ha: str, va: str, dpi: float):
+    """A text drawn once by matplotlib (a :class:`~matplotlib.text.Text` with this font size,
+    weight and alignment, at ``dpi``): its coverage (alpha) cropped to the ink, bottom row
+    first, and the offset of that image's lower left corner from the text's anchor (whole
+    pixels, y up); None for a text with no ink."""
+    from matplotlib.backends.backend_agg import RendererAgg
+
+    em = size * dpi / 72
+    w, h = int(em * (2 * len(text) + 6)), int(em * 6)
+    anchor = (w // 2, h // 2)
+    t = _scratch_text(text, size, weight, ha, va, dpi, anchor)
+    renderer = RendererAgg(w, h, dpi)
+    t.draw(renderer)
+    alpha = np.asarray(renderer.buffer_rgba())[..., 3]
+    rows, cols = np.flatnonzero(alpha.any(axis=1)), np.flatnonzero(alpha.any(axis=0))
+    if not rows.size:
+        return None
+    r0, r1, c0, c1 = rows[0], rows[-1] + 1, cols[0], cols[-1] + 1
+    return alpha[r0:r1, c0:c1][::-1].copy(), int(c0 - anchor[0]), int(h - r1 - anchor[1])
+
+
+@lru_cache(maxsize=1024)
+def _stamp(text: str, size: float, weight: str, colour: str, ha: str, va: str, dpi: float):
+    """:func:`_ink` in ``colour``: (RGBA image, offset x, offset y), None for no ink. The image
+    is shared by every use: not to be written to (the renderer takes it writeable)."""
+    ink = _ink(text, size, weight, ha, va, dpi)
+    if ink is None:
+        return None
+    alpha, dx, dy = ink
+    rgba = np.empty(alpha.shape + (4,), dtype=np.uint8)
+    rgba[..., :3] = np.round(np.array(to_rgb(colour)) * 255)
+    rgba[..., 3] = alpha
+    return rgba, dx, dy
+
+
+class _Stamps(Artist):
+    """Texts placed as their :func:`_stamp` (matplotlib draws each distinct text once per
+    process; a text's anchor rounds to the nearest pixel)."""
+
+    def __init__(self, items: list, dpi: float):
+        super().__init__()
+        self._items, self._dpi = items, dpi
+        self.set_zorder(9)
+
+    def draw(self, renderer):
+        if not self.get_visible():
+            return
+        gc = renderer.new_gc()
+        try:
+            for text, size, weight, colour, x, y, ha, va in self._items:
+                stamp = _stamp(text, size, weight, colour, ha, va, self._dpi)
+                if stamp is not None:
+                    rgba, dx, dy = stamp
+                    renderer.draw_image(gc, round(x) + dx, round(y) + dy, rgba)
+        finally:
+            gc.restore()
+
+
+def _scratch_text(text: str, size: float, weight: str, ha: str, va: str, dpi: float,
+                  anchor=(0, 0)) -> Text:
+    """A text as the panels write it, anchored at ``anchor`` (pixels) of a figure at ``dpi``."""
+    from matplotlib.transforms import IdentityTransform
+
+    t = Text(*anchor, text, fontsize=size, fontweight=weight, color="#000000", ha=ha, va=va)
+    t.set_figure(_scratch_figure(dpi))
+    t.set_transform(IdentityTransform())
+    return t
+
+
+@lru_cache(maxsize=1024)
+def _layout(text: str, size: float, ha: str, va: str, dpi: float, weight: str = "normal"):
+    """Layout box ``(x0, y0, x1, y1)`` of a text about its anchor (pixels, y up), as
+    matplotlib measures it (``Text.get_window_extent``); None for an empty text."""
+    from matplotlib.backends.backend_agg import RendererAgg
+
+    if not text:
+        return None
+    box = _scratch_text(text, size, weight, ha, va, dpi).get_window_extent(RendererAgg(1, 1, dpi))
+    return box.x0, box.y0, box.x1, box.y1
+
+
+def _cell_axes(box, xlo: float, xhi: float, ylo: float, yhi: float):
+    """The data-to-pixel transform of an axes at pixel ``box`` viewing x ``xlo``-``xhi`` and y
+    ``ylo``-``yhi``: transLimits then transAxes, as ``Axes.transData`` (linear scales)."""
+    from matplotlib.transforms import Bbox, BboxTransformFrom, BboxTransformTo
+
+    return BboxTransformFrom(Bbox([[xlo, ylo], [xhi, yhi]])) + BboxTransformTo(box)
+
+
+@dataclass(frozen=True)
+class _Specimens:
+    """One panel's specimens (an :func:`analyte_histories` frame) as arrays: date numbers,
+    values, roles, censoring marks ("" when none)."""
+
+    days: np.ndarray
+    values: np.ndarray
+    roles: np.ndarray
+    censor: np.ndarray
+
+    @classmethod
+    def of(cls, h: pd.DataFrame | None) -> "_Specimens":
+        if h is None or not len(h):
+            return cls(np.zeros(0), np.zeros(0), np.zeros(0, dtype=object),
+                       np.zeros(0, dtype=object))
+        return cls(mdates.date2num(h["collected_at"].to_numpy()),
+                   h["value"].to_numpy(dtype=float), h["role"].to_numpy(dtype=object),
+                   h["censor"].to_numpy(dtype=object, na_value=""))
+
+
+def _path_days(interval_path) -> dict:
+    """(patient, analyte) -> (date numbers, lower, upper) of the personal-interval path: the
+    rows :func:`_path_for` picks for each, in the same order, from one sort for a whole
+    report, as arrays."""
+    if interval_path is None or len(interval_path) == 0:
+        return {}
+    p = (interval_path.dropna(subset=["pi_lower", "pi_upper"])
+         .sort_values("collected_at", kind="stable"))
+    days = mdates.date2num(p["collected_at"].to_numpy())
+    cols = [p[c].to_numpy(dtype=object) for c in ("patient", "analyte")]
+    lo, hi = p["pi_lower"].to_numpy(dtype=float), p["pi_upper"].to_numpy(dtype=float)
+    rows: dict = {}
+    for i, key in enumerate(zip(*cols)):
+        rows.setdefault(key, []).append(i)
+    return {key: (days[r], lo[r], hi[r]) for key, r in rows.items()}
+
+
+def _steps_days(points, row, t_days: float) -> list[tuple]:
+    """:func:`_interval_steps` in date numbers, from this row's entry of :func:`_path_days`."""
+    steps = [(t, lo, hi) for t, lo, hi in zip(*points) if t < t_days] if points else []
+    if _finite(row["pi_lower"]) and _finite(row["pi_upper"]):
+        steps.append((t_days, float(row["pi_lower"]), float(row["pi_upper"])))
+    steps.sort(key=lambda s: s[0])
+    return steps
+
+
+def _panel_marks(m: _Marks, box, row, sp: _Specimens, path_points, dpi: float) -> None:
+    """What :func:`_draw_panel` draws for ``row`` (compact), added to ``m`` for the axes at
+    pixel ``box`` (a Bbox, y up); times in date numbers."""
+    t_days = float(mdates.date2num(pd.Timestamp(row["collected_at"])))
+    times = list(sp.days) if len(sp.days) else [t_days]
+    x0, x1, span = _window(times, t_days, day=1.0)
+    plo, phi = row["pop_lower"], row["pop_upper"]
+    steps = _steps_days(path_points, row, t_days)
+    value = float(row["value"]) if _finite(row["value"]) else None
+    y0, y1 = _y_view(sp.values, (plo, phi, value), steps) or (0.0, 1.0)
+    to_px = _cell_axes(box, x0, x1, y0, y1).transform
+    if _finite(plo) and _finite(phi):  # fill_between's polygon, then the two axhlines
+        m.hatch.append(to_px([(x0, phi), (x0, plo), (x1, plo), (x1, phi), (x1, phi), (x0, phi)]))
+        for v in (plo, phi):
+            y = to_px([(x0, v)])[0, 1]
+            m.pop.append([(box.x0, y), (box.x1, y)])
+    if steps:
+        xs, los, his = _step_path(steps, times, span)
+        lower, upper = to_px(np.column_stack([xs, los])), to_px(np.column_stack([xs, his]))
+        m.fill.append(np.vstack([upper[:1], lower, upper[-1:], upper[::-1]]))
+        m.edges += [lower, upper]
+    _panel_trend(m, box, _trend_of(row, None), sp, (x0, x1), to_px)
+    _panel_points(m, row, sp, t_days, value, to_px, dpi)
+    m.spines += [[(box.x0, box.y0), (box.x0, box.y1)], [(box.x0, box.y0), (box.x1, box.y0)]]
+    _panel_texts(m, box, row, (x0, x1), (y0, y1), to_px, dpi)
+
+
+def _panel_trend(m: _Marks, box, tr, sp: _Specimens, xview, to_px) -> None:
+    """The drift line and band of one panel (:func:`_trend_curves` in date numbers), clipped
+    to its axes box as in the axes."""
+    from matplotlib.collections import PolyCollection
+
+    used = np.isin(sp.roles, ["baseline", "assessed"])
+    if not tr or used.sum() < 2:
+        return
+    anchor_t = float(sp.days[used].mean())
+    anchor = float(np.exp(np.log(sp.values[used]).mean()))
+    tt = np.linspace(*xview, 40)
+    yrs = (tt - anchor_t) / 365.25
+
+    def line(pct):
+        return to_px(np.column_stack([tt, anchor * (1.0 + float(pct) / 100.0) ** yrs]))
+
+    artists = []
+    if _finite(tr.get("pct_lower")) and _finite(tr.get("pct_upper")):
+        a, b = line(tr["pct_lower"]), line(tr["pct_upper"])
+        lo, hi = np.minimum(a, b), np.maximum(a, b)  # x equal; y (pixels) ordered as values
+        poly = np.vstack([hi[:1], lo, hi[-1:], hi[::-1]])
+        artists.append(PolyCollection([poly], facecolor=PALETTE["trend_band"], alpha=0.45,
+                                      edgecolor="none", zorder=1.5))
+    mid = line(tr["pct_per_year"])
+    artists.append(Line2D(mid[:, 0], mid[:, 1], color=PALETTE["trend"], linestyle="-.",
+                          linewidth=1.0, zorder=3.5))
+    for artist in artists:
+        artist.set_clip_box(box)
+    m.clipped += artists
+
+
+def _panel_points(m: _Marks, row, sp: _Specimens, t_days, value, to_px, dpi) -> None:
+    """Specimens by role, the assessed star and the censoring chevrons of one panel."""
+    chevrons = []
+    if len(sp.days):
+        xy = to_px(np.column_stack([sp.days, sp.values]))
+        for role in _ROLE_STYLE:
+            pick = sp.roles == role
+            if pick.any():
+                m.roles[role].append(xy[pick])
+        chevrons = [(xy[i], sp.censor[i])
+                    for i in np.flatnonzero(np.isin(sp.censor, ["left", "right"]))]
+    if value is not None:
+        at = to_px([(t_days, value)])[0]
+        style = _star_style(row["p_change"], STAR_SIZE_COMPACT)
+        m.stars.setdefault(tuple(sorted(style.items())), []).append(at)
+        if not len(sp.days) and row["censor"] in ("left", "right"):
+            chevrons = [(at, row["censor"])]
+    for (x, y), side in chevrons:  # annotate(..., xytext=(6, -2), textcoords="offset points")
+        m.texts.append(("v" if side == "left" else "^", _CHEVRON_SIZE, "normal", "#000000",
+                        x + 6 * dpi / 72, y - 2 * dpi / 72, "left", "baseline"))
+
+
+def _panel_texts(m: _Marks, box, row, xview, yview, to_px, dpi) -> None:
+    """Tick marks and labels, offset texts, title and P(change) line of one panel."""
+    import matplotlib as mpl
+    from matplotlib.font_manager import FontProperties
+
+    pt = dpi / 72
+    colour = mpl.rcParams["xtick.color"]
+    xlocs, xlabels, xoff = _date_ticks(*xview)
+    space = math.floor(box.height / dpi * 72 / (2 * _TICK_LABEL_SIZE))  # YAxis.get_tick_space
+    ylocs, ylabels, yoff = _value_ticks(*yview, space)
+    xs = to_px(np.column_stack([xlocs, np.full(len(xlocs), yview[0])]))[:, 0]
+    ys = to_px(np.column_stack([np.full(len(ylocs), xview[0]), ylocs]))[:, 1]
+    pad = (_TICK_LEN + _TICK_PAD) * pt
+    m.xticks += [(x, box.y0) for x in xs]
+    m.yticks += [(box.x0, y) for y in ys]
+    for x, lab in zip(xs, xlabels):
+        m.texts.append((lab, _TICK_LABEL_SIZE, "normal", colour, x, box.y0 - pad, "center", "top"))
+    for y, lab in zip(ys, ylabels):
+        m.texts.append((lab, _TICK_LABEL_SIZE, "normal", colour, box.x0 - pad, y, "right",
+                        "center_baseline"))
+    title_y = box.y1
+    if xoff:  # under the tick labels, as XAxis._update_offset_text_position
+        size = FontProperties(size=mpl.rcParams["xtick.labelsize"]).get_size_in_points()
+        lays = [_layout(lab, _TICK_LABEL_SIZE, "center", "top", dpi) for lab in xlabels]
+        # an empty label's box is its anchor (Text.get_window_extent)
+        bottoms = [box.y0 - pad + (lay[1] if lay is not None else 0.0) for lay in lays]
+        y = (min(bottoms) if bottoms else box.y0) - 3 * pt
+        m.texts.append((xoff, size, "normal", colour, box.x1, y, "right", "top"))
+    if yoff:  # above the axes, and the title above it (Axes._update_title_position)
+        size = FontProperties(size=mpl.rcParams["ytick.labelsize"]).get_size_in_points()
+        m.texts.append((yoff, size, "normal", colour, box.x0, box.y1 + 3 * pt, "left", "baseline"))
+        lay = _layout(yoff, size, "left", "baseline", dpi)
+        title_y = max(title_y, box.y1 + 3 * pt + lay[3]) if lay else title_y
+    title = f"{row['label']}  [{display_unit(str(row['analyte']))}]"
+    text_colour = mpl.rcParams["text.color"]
+    m.texts.append((title, _TITLE_SIZE, "bold", text_colour, box.x0, title_y + _TITLE_PAD * pt,
+                    "left", "baseline"))
+    ptxt = w.panel_p_text(row["p_change"] if _finite(row["p_change"]) else None)
+    m.texts.append((ptxt, _PTEXT_SIZE, "normal", "#333333", box.x1, box.y0 + 1.01 * box.height,
+                    "right", "bottom"))
+
+
+def _marks_artists(m: _Marks, dpi: float) -> list:
+    """One artist per kind of mark for every panel (keywords as the panels' axes draw them)."""
+    import matplotlib as mpl
+    from matplotlib.collections import LineCollection, PathCollection, PolyCollection
+    from matplotlib.markers import TICKDOWN, TICKLEFT, MarkerStyle
+    from matplotlib.transforms import IdentityTransform
+
+    out = []
+    if m.hatch:
+        out.append(PolyCollection(m.hatch, facecolor="none", edgecolor=PALETTE["population"],
+                                  hatch="////", linewidth=0, alpha=0.22, zorder=1))
+    if m.pop:
+        out.append(LineCollection(m.pop, colors=PALETTE["population"], linestyles=[(0, (4, 3))],
+                                  linewidths=0.9, zorder=2))
+    if m.fill:
+        out.append(PolyCollection(m.fill, facecolor=PALETTE["personal"], alpha=0.26,
+                                  edgecolor="none", zorder=2))
+    if m.edges:
+        out.append(LineCollection(m.edges, colors=PALETTE["personal"], linewidths=1.0, zorder=3,
+                                  capstyle="projecting", joinstyle="round"))
+    out.append(LineCollection(m.spines, colors=mpl.rcParams["axes.edgecolor"], linewidths=0.6,
+                              capstyle="projecting", joinstyle="miter", zorder=2.5))
+    for points, marker, axis in ((m.xticks, TICKDOWN, "x"), (m.yticks, TICKLEFT, "y")):
+        if points:
+            c = mpl.rcParams[f"{axis}tick.color"]
+            xy = np.asarray(points, dtype=float)
+            out.append(Line2D(xy[:, 0], xy[:, 1], linestyle="none", marker=marker, color=c,
+                              markeredgecolor=c, markersize=_TICK_LEN, zorder=1.5,
+                              markeredgewidth=mpl.rcParams[f"{axis}tick.major.width"]))
+    for role, style in _ROLE_STYLE.items():  # as Axes.scatter builds its collection
+        if m.roles[role]:
+            style = dict(style)
+            marker = MarkerStyle(style.pop("marker"))
+            path = marker.get_path().transformed(marker.get_transform())
+            out.append(PathCollection((path,), [style.pop("s")], offsets=np.vstack(m.roles[role]),
+                                      offset_transform=IdentityTransform(), **style))
+    for style, points in m.stars.items():
+        xy = np.asarray(points, dtype=float)
+        out.append(Line2D(xy[:, 0], xy[:, 1], zorder=7, **dict(style)))
+    out += m.clipped
+    for artist in out:  # every mark is in figure pixels
+        artist.set_transform(IdentityTransform())
+    out.append(_Stamps(m.texts, dpi))
+    return out
 
 
 def panel_grid(history: pd.DataFrame, table: pd.DataFrame,
@@ -725,11 +1092,13 @@ def panel_grid(history: pd.DataFrame, table: pd.DataFrame,
     """Every row of ``table`` (one patient) as a panel of one shared figure, in table order.
 
     Each cell holds what :func:`analyte_panel` draws for the row at ``width`` x ``height``
-    inches (same margins, fonts and marks); cells are at least ``GRID_GUTTER`` apart (see
-    there), ``ncols`` to a row. Draw it once with
-    :func:`grid_pixels` and cut each panel out by its box. ``histories``: the patient's
-    :func:`analyte_histories` when already computed.
+    inches (same margins, fonts, marks and ticks), drawn by kind for all panels at once (see
+    :class:`PanelGrid`); cells are at least ``GRID_GUTTER`` apart (see there), ``ncols`` to a
+    row. Draw it once with :func:`grid_pixels` and cut each panel out by its box.
+    ``histories``: the patient's :func:`analyte_histories` when already computed.
     """
+    from matplotlib.transforms import Bbox
+
     n = len(table)
     if n == 0:
         raise ValueError("panel_grid: the table has no rows")
@@ -738,27 +1107,48 @@ def panel_grid(history: pd.DataFrame, table: pd.DataFrame,
     px, py = _pitch(width, GRID_GUTTER[0]), _pitch(height, GRID_GUTTER[1])
     W, H = ncols * px, nrows * py
     fig = Figure(figsize=(W, H), dpi=dpi, facecolor="white")
+    _caches_for_settings()
     if histories is None:
         histories = analyte_histories(history, table["patient"].iloc[0])
-    empty = history.iloc[0:0]
-    # each panel reads its own analyte's rows of the path (the same rows, split once)
-    paths = _path_points(interval_path)
-    boxes = []
-    for i, (_, row) in enumerate(table.iterrows()):
+    paths = _path_days(interval_path)  # each panel's rows of the path, split once
+    marks, boxes = _Marks(), []
+    for i, row in enumerate(table.to_dict("records")):
         r, c = divmod(i, ncols)
         x0, top = c * px, r * py  # the cell, inches from the top left
-        # the margins of analyte_panel: left 0.5, right 0.1, top 0.32, bottom 0.28 inches
-        ax = fig.add_axes(((x0 + 0.5) / W, 1 - (top + height - 0.28) / H,
-                           (width - 0.6) / W, (height - 0.6) / H))
-        h = histories.get(row["analyte"])
-        _draw_panel(ax, history, row, paths.get((row["patient"], row["analyte"])), compact=True,
-                    h=h if h is not None else empty)
-        _tick_artists(ax)
+        # the axes of analyte_panel: margins left 0.5, right 0.1, top 0.32, bottom 0.28 inches
+        frac = Bbox.from_bounds((x0 + 0.5) / W, 1 - (top + height - 0.28) / H,
+                                (width - 0.6) / W, (height - 0.6) / H)
+        box = Bbox.from_extents(frac.x0 * W * dpi, frac.y0 * H * dpi, frac.x1 * W * dpi,
+                                frac.y1 * H * dpi)
+        _panel_marks(marks, box, row, _Specimens.of(histories.get(row["analyte"])),
+                     paths.get((row["patient"], row["analyte"])), dpi)
         boxes.append(tuple(round(v * dpi) for v in (x0, top, x0 + width, top + height)))
+    for artist in _marks_artists(marks, dpi):
+        fig.add_artist(artist)
     return PanelGrid(fig, tuple(boxes), dpi)
 
 
 def grid_pixels(grid: PanelGrid) -> tuple[np.ndarray, list[np.ndarray]]:
-    """Draw the shared figure once: (all its pixels, each panel's pixels), RGB uint8."""
-    rgb = _rgb(grid.figure, grid.dpi)
-    return rgb, [np.ascontiguousarray(rgb[t:b, l:r]) for l, t, r, b in grid.boxes]
+    """Draw the shared figure once: (all its pixels, each panel's pixels), RGB uint8. All the
+    pixels are a read-only view of the canvas drawn (no copy of the whole figure); each panel's
+    are its own copy."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = FigureCanvasAgg(grid.figure)
+    old = grid.figure.dpi
+    grid.figure.dpi = grid.dpi
+    try:
+        canvas.draw()
+    finally:
+        grid.figure.dpi = old
+    rgba = np.asarray(canvas.buffer_rgba())
+    rgb = rgba[..., :3]
+    rgb.flags.writeable = False
+    # each pixel's first three bytes as one item: copied about twice as fast as three bytes
+    pixels = rgba.view(np.dtype([("rgb", "V3"), ("a", "u1")]))[..., 0]["rgb"]
+    cells = []
+    for left, top, right, bottom in grid.boxes:
+        cell = np.empty((bottom - top, right - left), dtype="V3")
+        cell[...] = pixels[top:bottom, left:right]
+        cells.append(cell.view(np.uint8).reshape(bottom - top, right - left, 3))
+    return rgb, cells
