@@ -113,6 +113,9 @@ def _logical(db: Path) -> dict:
     try:
         tables = {r[0] for r in con.execute(
             "SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%'")}
+        # the columnar copies of schema version 3 are derived from patients, specimens and results
+        # (their rows are checked against those tables in tests/test_store_read_columnar_copy.py)
+        tables -= {"patients_columns", "specimens_columns", "results_columns"}
         assert tables == set(_LOGICAL), "a table of the store is not compared"
         return {t: sorted(con.execute(q).fetchall(), key=repr) for t, q in _LOGICAL.items()}
     finally:

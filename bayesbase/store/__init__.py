@@ -27,7 +27,7 @@ results.sqlite`` when ``XDG_DATA_HOME`` is set; else, on macOS and Windows, the 
 directory from ``platformdirs`` when it is installed; else ``~/.local/share/bayesbase/
 results.sqlite``.
 
-Tables (schema version 2)
+Tables (schema version 3)
 -------------------------
 ``patients``   one row per animal: ``id`` (as given), species, breed, sex, birth_date.
 ``owners``     owner identity, kept out of the analytical tables: one row per patient, filled
@@ -50,6 +50,14 @@ Tables (schema version 2)
 ``meta``       key/value pairs: the per-store random salt used for pseudonyms.
 ``schema_version`` the version reached by the forward migrations in :data:`MIGRATIONS`
                (version 2 rewrites texts of missing values left by earlier versions to NULL).
+``patients_columns``, ``specimens_columns``, ``results_columns`` (version 3) a columnar copy
+               of those tables for the whole-store read (:meth:`Store.results`): one Arrow IPC
+               stream per chunk of 16,384 primary keys. Triggers delete a chunk's copy in the
+               statement that changes any of its rows (whoever writes), so a copy present is
+               never stale; a chunk without one is read from its table; every committed store
+               write (import, forget, migration: ``transaction.write_transaction``) makes the
+               missing copies before its ``COMMIT``. Forget's deleted copies are overwritten
+               with zeros like every deleted row.
 
 A missing optional attribute (breed, sex, birth date, method, fasting, sample-quality index,
 laboratory) is stored as SQL NULL, never as the text of a missing value ('NaT', 'nan', ...);

@@ -11,6 +11,12 @@ split here with numpy into Arrow arrays (:func:`aggregate_columns`); REAL column
 the separator, a value of another type than its column's or a string over SQLite's length limit
 sends that table to the row-by-row read (:func:`columns_from_rows`); the frame is the same either
 way (tests/test_store_read_speed_equivalence.py).
+
+The whole-store read mostly skips both: each chunk of a table with a columnar copy in the store
+(schema version 3) is decoded from one Arrow IPC stream (:func:`encode_columns` /
+:func:`decode_columns`: narrow integers, doubles as their 8 bytes, texts with few distinct
+values dictionary-encoded and kept so until one string copy in :func:`canonical_from_tables`)
+(tests/test_store_read_columnar_copy.py).
 """
 from __future__ import annotations
 
@@ -22,7 +28,7 @@ from ..contract import CANONICAL_COLUMNS, CANONICAL_DTYPES
 __all__ = ["VALUE_RTOL", "CANONICAL_SORT", "AGG_SEP", "NotAggregated", "is_missing", "py", "col",
            "blank_to_none", "iso", "same", "differs", "coerce_canonical", "aggregate_select",
            "aggregate_columns", "columns_from_rows", "concat_columns", "canonical_from_tables",
-           "now_utc"]
+           "columns_format", "encode_columns", "decode_columns", "now_utc"]
 
 #: Relative tolerance under which two canonical values are the same value (float round-off of a
 #: unit conversion; modelling choice of this project).
@@ -247,8 +253,100 @@ def concat_columns(parts: list, kinds: dict) -> dict:
         return columns_from_rows([], kinds)
     if len(parts) == 1:
         return parts[0]
+
+    def texts(arrays):  # dictionary-encoded chunks (columnar copies) stay so, under one dictionary
+        if all(pa.types.is_dictionary(a.type) for a in arrays):
+            return pa.chunked_array(arrays).unify_dictionaries().combine_chunks()
+        return pa.concat_arrays([_plain(a) for a in arrays])
+
     return {name: (np.concatenate([p[name] for p in parts]) if kind == "real"
+                   else texts([p[name] for p in parts]) if kind.startswith("text")
                    else pa.concat_arrays([p[name] for p in parts])) for name, kind in kinds.items()}
+
+
+def _plain(values):
+    """A text column as a plain Arrow string array (a dictionary-encoded one decoded)."""
+    import pyarrow as pa
+
+    if isinstance(values, pa.Array) and pa.types.is_dictionary(values.type):
+        return values.dictionary.take(values.indices)
+    return values
+
+
+def columns_format(kinds: dict) -> str:
+    """The ``format`` of a columnar copy of a table with these columns (names and kinds, in
+    order): a copy in another format is not used (:func:`decode_columns`)."""
+    return "arrow-ipc-1 " + ",".join(f"{name}:{kind}" for name, kind in kinds.items())
+
+
+def _narrow(values, kind: str):
+    """One column as stored in a columnar copy: integers in the narrowest Arrow integer type
+    holding them, texts with few distinct values dictionary-encoded, doubles as they are."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if kind == "real":
+        return pa.array(np.asarray(values, dtype=np.float64), type=pa.float64())
+    if kind.startswith("int"):
+        lo, hi = (pc.min_max(values)[k].as_py() for k in ("min", "max"))
+        for t in (pa.int8(), pa.int16(), pa.int32()):
+            info = np.iinfo(t.to_pandas_dtype())
+            if lo is None or (info.min <= lo and hi <= info.max):
+                return values.cast(t)
+        return values.cast(pa.int64())
+    if pc.count_distinct(values).as_py() * 4 > len(values):
+        return values
+    enc = values.dictionary_encode()
+    k = len(enc.dictionary)
+    small = pa.int8() if k < 128 else pa.int16() if k < 32768 else pa.int32()
+    return pa.DictionaryArray.from_arrays(enc.indices.cast(small), enc.dictionary)
+
+
+def encode_columns(cols: dict, kinds: dict) -> bytes:
+    """A chunk of a table's columns (as :func:`aggregate_columns` / :func:`columns_from_rows`
+    give them, every column of ``kinds``) as the bytes of one Arrow IPC stream."""
+    import pyarrow as pa
+
+    batch = pa.RecordBatch.from_arrays([_narrow(cols[k], kind) for k, kind in kinds.items()],
+                                       names=list(kinds))
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, batch.schema) as writer:
+        writer.write_batch(batch)
+    return sink.getvalue().to_pybytes()
+
+
+def decode_columns(blob: bytes, kinds: dict) -> dict:
+    """The columns of :func:`encode_columns`' bytes, as :func:`aggregate_columns` gives them
+    (int64 and large_string Arrow arrays, ``real`` ones as float64 with NaN for NULL);
+    :class:`NotAggregated` when the stream does not hold exactly the columns of ``kinds``."""
+    import pyarrow as pa
+
+    try:
+        reader = pa.ipc.open_stream(blob)
+        batches = list(reader)
+    except (pa.ArrowInvalid, OSError) as exc:
+        raise NotAggregated(f"unreadable columnar copy: {exc}") from exc
+    if len(batches) != 1 or batches[0].schema.names != list(kinds):
+        raise NotAggregated("columnar copy of other columns")
+    batch, out = batches[0], {}
+    for i, (name, kind) in enumerate(kinds.items()):
+        v = batch.column(i)
+        if kind == "real":
+            if v.type != pa.float64() or v.null_count:
+                raise NotAggregated(f"column {name}: {v.type}")
+            out[name] = v.to_numpy(zero_copy_only=False)
+        elif kind.startswith("int"):
+            if not pa.types.is_integer(v.type):
+                raise NotAggregated(f"column {name}: {v.type}")
+            out[name] = v.cast(pa.int64())
+        else:
+            d = v.dictionary if pa.types.is_dictionary(v.type) else v
+            if not (pa.types.is_string(d.type) or pa.types.is_large_string(d.type)):
+                raise NotAggregated(f"column {name}: {v.type}")
+            out[name] = (pa.DictionaryArray.from_arrays(v.indices.cast(pa.int32()), d.cast(pa.large_string()))
+                         if d is not v else v.cast(pa.large_string()))
+    return out
 
 
 def _text(values, index=None):
@@ -259,8 +357,11 @@ def _text(values, index=None):
     import pyarrow as pa
 
     arr = values if isinstance(values, (pa.Array, pa.ChunkedArray)) else pa.array(values, type=pa.string())
-    if index is not None:
-        arr = arr.take(pa.array(np.asarray(index, dtype=np.int64)))
+    at = None if index is None else pa.array(np.asarray(index, dtype=np.int64))
+    if isinstance(arr, pa.Array) and pa.types.is_dictionary(arr.type):  # one string copy only
+        arr = arr.dictionary.take(arr.indices if at is None else arr.indices.take(at))
+    elif at is not None:
+        arr = arr.take(at)
     return pd.array(arr, dtype="string")
 
 
@@ -283,8 +384,14 @@ def _int_column(values) -> tuple:
 
 def _times(values):
     """ISO 8601 texts (Arrow) as canonical datetimes (as :func:`coerce_canonical` reads them)."""
+    import numpy as np
     import pandas as pd
+    import pyarrow as pa
 
+    if pa.types.is_dictionary(values.type):  # each distinct text parsed once
+        idx, nulls = _int_column(values.indices.cast(pa.int64()))
+        out = np.concatenate([_times(values.dictionary), np.array(["NaT"], dtype="datetime64[ns]")])
+        return out[np.where(nulls, len(values.dictionary), idx) if nulls is not None else idx]
     return pd.to_datetime(pd.Series(values.to_pylist(), dtype=object),
                           format="ISO8601").astype("datetime64[ns]").to_numpy()
 
@@ -293,8 +400,12 @@ def _rank(values) -> "np.ndarray":
     """The rank of every text (Arrow) in code-point order (equal texts share a rank; UTF-8 byte
     order is code-point order)."""
     import numpy as np
+    import pyarrow as pa
     import pyarrow.compute as pc
 
+    if pa.types.is_dictionary(values.type):  # a columnar copy's: the distinct texts ranked once
+        rank = pc.rank(values.dictionary, sort_keys="ascending", tiebreaker="dense").to_numpy()
+        return np.asarray(rank, dtype=np.int64)[values.indices.to_numpy(zero_copy_only=False)]
     enc = pc.dictionary_encode(values)
     rank = np.empty(len(enc.dictionary), dtype=np.int64)
     rank[pc.sort_indices(enc.dictionary).to_numpy()] = np.arange(len(enc.dictionary))
@@ -305,9 +416,13 @@ def _positions(keys, pks) -> "np.ndarray":
     """Row of ``pks`` holding each of ``keys`` (every key is present: foreign keys)."""
     import numpy as np
 
-    pks = _ints(pks)
+    pks, keys = _ints(pks), _ints(keys)
+    if len(pks) and pks.min() >= 0 and max(pks.max(), keys.max(initial=0)) < 4 * len(pks) + 1024:
+        at = np.zeros(int(pks.max()) + 1, dtype=np.intp)  # dense keys: one lookup table
+        at[pks] = np.arange(len(pks))
+        return at[keys]
     order = np.argsort(pks, kind="stable")
-    return order[np.searchsorted(pks, _ints(keys), sorter=order)]
+    return order[np.searchsorted(pks, keys, sorter=order)]
 
 
 def _source(results: dict, files: dict):
@@ -318,8 +433,23 @@ def _source(results: dict, files: dict):
 
     own = results["source_file"]
     imp, no_imp = _int_column(results["import"])
-    ids, inverse = np.unique(imp, return_inverse=True)
-    logged = pa.array([files.get(int(k)) for k in ids], type=own.type).take(pa.array(inverse.astype(np.int64)))
+    if len(imp) and imp.min() >= 0 and imp.max() < (1 << 24):  # import ids: small integers
+        ids = np.flatnonzero(np.bincount(imp))
+        at = np.zeros(int(imp.max()) + 1, dtype=np.int64)
+        at[ids] = np.arange(len(ids))
+        inverse = at[imp]
+    else:
+        ids, inverse = np.unique(imp, return_inverse=True)
+    names = pa.array([files.get(int(k)) for k in ids], type=pa.large_string())
+    if pa.types.is_dictionary(own.type):  # a columnar copy's: chosen by index, no string copied
+        idx, own_null = _int_column(own.indices.cast(pa.int64()))
+        if own_null is None:
+            return own
+        idx = np.where(own_null, len(own.dictionary) + np.asarray(inverse, dtype=np.int64), idx)
+        null = own_null & no_imp if no_imp is not None else None
+        return pa.DictionaryArray.from_arrays(pa.array(idx, mask=null),
+                                              pa.concat_arrays([own.dictionary, names]))
+    logged = names.cast(own.type).take(pa.array(inverse.astype(np.int64)))
     if no_imp is not None:
         logged = pc.if_else(pa.array(no_imp), pa.nulls(len(imp), own.type), logged)
     return pc.coalesce(own, logged)
@@ -351,10 +481,13 @@ def canonical_from_tables(patients: dict, specimens: dict, results: dict, files:
     p_row = p_of_s[s_row]
     s_time = _times(specimens["collected_at"])
     replicate = _ints(results["replicate"])
-    order = np.lexsort((
-        replicate, _rank(results["analyte"]),
-        _rank(specimens["id"])[s_row], s_time.astype("int64")[s_row], _rank(patients["id"])[p_row],
-    )) if n else np.zeros(0, dtype=np.intp)
+    # specimens in canonical order first (patient id, time, specimen id: unique, as the schema's
+    # UNIQUE constraints make them), then the results by that position, analyte and replicate
+    s_pos = np.empty(len(p_of_s), dtype=np.int64)
+    s_pos[np.lexsort((_rank(specimens["id"]), s_time.astype("int64"), _rank(patients["id"])[p_of_s]))] = \
+        np.arange(len(p_of_s))
+    order = (np.lexsort((replicate, _rank(results["analyte"]), s_pos[s_row])) if n
+             else np.zeros(0, dtype=np.intp))
     s_row, p_row = s_row[order], p_row[order]
     row, no_row = _int_column(results["source_row"])
     src_row = pd.arrays.IntegerArray(row[order], np.zeros(n, dtype=bool) if no_row is None else no_row[order])

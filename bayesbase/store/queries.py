@@ -1,6 +1,8 @@
 """Reading the results store: canonical frames (all results, one patient's history), the wide
 display table, the patient list, the import log and the log of replaced values. Owner data are
-never read here."""
+never read here. The whole-store read takes every chunk of primary keys that has a columnar copy
+from it (:func:`_whole_table`); :func:`refresh_columns` makes the missing copies inside each
+store write transaction."""
 from __future__ import annotations
 
 import math
@@ -9,10 +11,12 @@ import sqlite3
 from ..errors import StoreError
 from ..units import resolve_analyte
 from .frames import (NotAggregated, aggregate_columns, aggregate_select, canonical_from_tables,
-                     columns_from_rows, concat_columns)
+                     columns_format, columns_from_rows, concat_columns, decode_columns,
+                     encode_columns)
+from .schema import COLUMNS_CHUNK_BITS, COLUMNS_TABLES
 
 __all__ = ["results", "history", "history_table", "patients", "imports", "replaced",
-           "require_patient", "analyte_id"]
+           "require_patient", "analyte_id", "refresh_columns"]
 
 _SELECT = (
     "SELECT p.id AS patient, p.species, p.breed, p.sex, p.birth_date, s.id AS specimen, "
@@ -62,20 +66,29 @@ def _reals(cur, k: int):
     return np.array(cur.fetchall(), dtype=np.float64).reshape(-1, k)
 
 
-def _aggregated(conn, table: str, kinds: dict, where: list, args: tuple) -> dict:
+def _pk_bounds(conn, table: str) -> tuple:
+    """(min, max) primary key of a table, (None, None) when it is empty (min and max asked apart:
+    each is then one step down the primary key)."""
+    return conn.execute(f"SELECT (SELECT min(pk) FROM {table}), (SELECT max(pk) FROM {table})").fetchone()
+
+
+def _aggregated(conn, table: str, kinds: dict, where: list, args: tuple, bounds=None) -> dict:
     """One table's columns read as one string per column (:func:`.frames.aggregate_select`),
     the ``real`` columns as rows in primary-key order beside them; the aggregated columns are put
-    in primary-key order too (SQLite aggregates in the order it scans)."""
+    in primary-key order too (SQLite aggregates in the order it scans). Without ``where``, the
+    rows of primary keys ``bounds`` (lo, hi: lo <= pk < hi; the whole table when None)."""
     import numpy as np
     import pyarrow as pa
 
     reals = {c: k for c, k in kinds.items() if k == "real"}
     if where:  # a filtered read (one patient): aggregated at once
         ranges = [(" WHERE " + " AND ".join(where), args)]
-    else:  # min and max apart: each is then one step down the primary key
-        lo, hi = conn.execute(f"SELECT (SELECT min(pk) FROM {table}), (SELECT max(pk) FROM {table})").fetchone()
-        ranges = [] if lo is None else [(" WHERE pk >= ? AND pk < ?", (a, min(a + _CHUNK_PKS, hi + 1)))
-                                        for a in range(lo, hi + 1, _CHUNK_PKS)]
+    else:
+        if bounds is None:
+            lo, hi = _pk_bounds(conn, table)
+            bounds = (0, 0) if lo is None else (lo, hi + 1)
+        ranges = [(" WHERE pk >= ? AND pk < ?", (a, min(a + _CHUNK_PKS, bounds[1])))
+                  for a in range(bounds[0], bounds[1], _CHUNK_PKS)]
     parts = []
     for cond, cargs in ranges:
         agg = conn.execute(f"SELECT {aggregate_select(kinds)} FROM {table}{cond}", cargs).fetchone()
@@ -99,23 +112,105 @@ def _aggregated(conn, table: str, kinds: dict, where: list, args: tuple) -> dict
     return concat_columns(parts, kinds)
 
 
-def _columns(conn, table: str, patient_pk: int | None, extra: str = "", params: tuple = ()) -> dict:
-    """One table's rows (of one patient when ``patient_pk`` is given) as columns
-    (:func:`.frames.aggregate_columns`), in primary-key order; read row by row when the
-    aggregated read would not give them back exactly (:class:`.frames.NotAggregated`)."""
+def _columns(conn, table: str, patient_pk: int | None, extra: str = "", params: tuple = (),
+             bounds=None) -> dict:
+    """One table's rows (of one patient when ``patient_pk`` is given; of primary keys
+    lo <= pk < hi with ``bounds``) as columns (:func:`.frames.aggregate_columns`), in primary-key
+    order; read row by row when the aggregated read would not give them back exactly
+    (:class:`.frames.NotAggregated`)."""
     kinds, by_patient = _TABLES[table]
     where = ([by_patient] if patient_pk is not None else []) + ([extra] if extra else [])
     args = ((patient_pk,) if patient_pk is not None else ()) + params
     try:
-        return _aggregated(conn, table, kinds, where, args)
+        return _aggregated(conn, table, kinds, where, args, bounds)
     except NotAggregated:
         pass
     except sqlite3.DataError as exc:  # SQLITE_TOOBIG: a string longer than SQLite allows
         if "too big" not in str(exc):
             raise
+    if bounds is not None and not where:
+        where, args = ["pk >= ? AND pk < ?"], tuple(bounds)
     cond = " WHERE " + " AND ".join(where) if where else ""
     return columns_from_rows(conn.execute(f"SELECT {_names(kinds)} FROM {table}{cond} ORDER BY pk",
                                           args).fetchall(), kinds)
+
+
+def _copies(conn, table: str, data: bool) -> dict:
+    """The chunks of ``table`` holding a columnar copy in this code's format (schema version 3:
+    :data:`.schema.COLUMNS_TABLES`): chunk -> the copy's bytes (None without ``data``); empty
+    for a store without copies, or when a copy is longer than this connection allows."""
+    fmt = columns_format(_TABLES[table][0])
+    try:
+        return dict(conn.execute(f"SELECT chunk, {'data' if data else 'NULL'} FROM {table}_columns "
+                                 "WHERE format = ?", (fmt,)).fetchall())
+    except sqlite3.OperationalError as exc:
+        if "no such table" not in str(exc):
+            raise
+    except sqlite3.DataError as exc:  # SQLITE_TOOBIG under a lowered length limit
+        if "too big" not in str(exc):
+            raise
+    return {}
+
+
+def _chunk_bounds(chunk: int) -> tuple:
+    return chunk << COLUMNS_CHUNK_BITS, (chunk + 1) << COLUMNS_CHUNK_BITS
+
+
+def _whole_table(conn, table: str) -> dict:
+    """Every row of a table as columns, in primary-key order: each chunk of primary keys from
+    its columnar copy (:func:`.frames.decode_columns`) when it has one, else from the table
+    (:func:`_columns`). The caller holds the read snapshot; a copy present is never stale (the
+    triggers of schema version 3 delete it with any change to its rows)."""
+    kinds = _TABLES[table][0]
+    lo, hi = _pk_bounds(conn, table)
+    if lo is None:
+        return columns_from_rows([], kinds)
+    copies, parts = _copies(conn, table, True), []
+    for chunk in range(lo >> COLUMNS_CHUNK_BITS, (hi >> COLUMNS_CHUNK_BITS) + 1):
+        part = None
+        if chunk in copies:
+            try:
+                part = decode_columns(copies[chunk], kinds)
+            except NotAggregated:
+                part = None
+        if part is None:
+            a, b = _chunk_bounds(chunk)
+            part = _columns(conn, table, None, bounds=(max(a, lo), min(b, hi + 1)))
+        parts.append(part)
+    return concat_columns(parts, kinds)
+
+
+def refresh_columns(conn) -> None:
+    """Make the columnar copy of every chunk of :data:`.schema.COLUMNS_TABLES` that has rows
+    and no copy (a write removed it, or the store was migrated), inside the caller's write
+    transaction (:func:`.transaction.write_transaction` calls this before its ``COMMIT``). A
+    copy in another format is removed. A chunk whose copy cannot be made (a value of another
+    type than its column's, a copy over SQLite's length limit) is left without one and read
+    from its table. Nothing is done on a store without copies (before schema version 3)."""
+    import pyarrow as pa
+
+    for table in COLUMNS_TABLES:
+        kinds = _TABLES[table][0]
+        fmt = columns_format(kinds)
+        try:
+            conn.execute(f"DELETE FROM {table}_columns WHERE format <> ?", (fmt,))
+        except sqlite3.OperationalError as exc:
+            if "no such table" in str(exc):
+                return
+            raise
+        lo, hi = _pk_bounds(conn, table)
+        have = set(_copies(conn, table, False)) if lo is not None else set()
+        for chunk in range(0 if lo is None else lo >> COLUMNS_CHUNK_BITS,
+                           0 if hi is None else (hi >> COLUMNS_CHUNK_BITS) + 1):
+            if chunk in have:
+                continue
+            try:
+                part = _columns(conn, table, None, bounds=_chunk_bounds(chunk))
+                if len(part["pk"]):
+                    conn.execute(f"INSERT INTO {table}_columns (chunk, format, data) VALUES (?, ?, ?)",
+                                 (chunk, fmt, encode_columns(part, kinds)))
+            except (pa.ArrowException, TypeError, ValueError, OverflowError, sqlite3.DataError):
+                continue  # no copy: this chunk is read from its table
 
 
 def _frame(conn, patient_pk: int | None = None, analyte: str | None = None):
@@ -126,10 +221,13 @@ def _frame(conn, patient_pk: int | None = None, analyte: str | None = None):
     if own:
         conn.execute("BEGIN")
     try:
-        res = _columns(conn, "results", patient_pk, "analyte = ?" if analyte is not None else "",
-                       (analyte,) if analyte is not None else ())
+        if patient_pk is None and analyte is None:  # the whole store: columnar copies first
+            res, pats, specs = (_whole_table(conn, t) for t in ("results", "patients", "specimens"))
+        else:
+            res = _columns(conn, "results", patient_pk, "analyte = ?" if analyte is not None else "",
+                           (analyte,) if analyte is not None else ())
+            pats, specs = _columns(conn, "patients", patient_pk), _columns(conn, "specimens", patient_pk)
         files = dict(conn.execute("SELECT id, file FROM import_log").fetchall())
-        pats, specs = _columns(conn, "patients", patient_pk), _columns(conn, "specimens", patient_pk)
     finally:
         if own:
             conn.execute("COMMIT")

@@ -9,12 +9,42 @@ from ..errors import StoreError
 from .frames import now_utc
 from .transaction import write_transaction
 
-__all__ = ["MIGRATIONS", "SCHEMA_VERSION", "MISSING_TEXTS", "migrate", "stored_version"]
+__all__ = ["MIGRATIONS", "SCHEMA_VERSION", "COLUMNS_TABLES", "COLUMNS_CHUNK_BITS", "MISSING_TEXTS",
+           "migrate", "stored_version"]
 
 #: Texts that pandas / Python print for a missing value; never stored (schema version 2
 #: rewrites them to NULL in stores written by earlier versions).
 MISSING_TEXTS = ("NaT", "nan", "NaN", "None", "<NA>")
 _MISSING_TEXTS_SQL = ", ".join(f"'{t}'" for t in MISSING_TEXTS)
+
+#: Tables whose rows the whole-store read takes from a columnar copy kept in the same file: for
+#: each, ``<table>_columns`` holds one row per chunk of :data:`COLUMNS_CHUNK_BITS` primary keys
+#: (``chunk`` = ``pk >> COLUMNS_CHUNK_BITS``), its ``data`` the chunk's columns as one Arrow IPC
+#: stream (:func:`bayesbase.store.frames.encode_columns`), ``format`` naming the columns and their
+#: kinds. Triggers delete a chunk's copy in the statement that inserts, updates or deletes any of
+#: its rows, so a copy present is never stale, whichever writer wrote; a chunk without a copy is
+#: read from its table (:mod:`bayesbase.store.queries`), and every committing
+#: :func:`~bayesbase.store.transaction.write_transaction` makes the missing copies again before
+#: its ``COMMIT``. Part of released migration 3: never change these values; a new layout is a new
+#: migration.
+COLUMNS_TABLES = ("patients", "specimens", "results")
+COLUMNS_CHUNK_BITS = 14
+
+
+def _columns_copy_steps(bits: int = COLUMNS_CHUNK_BITS) -> list[str]:
+    """DDL of the columnar copy (tables and triggers) of :data:`COLUMNS_TABLES`, in chunks of
+    ``2 ** bits`` primary keys (tests build stores of small chunks with another ``bits``)."""
+    steps = []
+    for t in COLUMNS_TABLES:
+        steps.append(f"CREATE TABLE {t}_columns (chunk INTEGER PRIMARY KEY, format TEXT NOT NULL, "
+                     "data BLOB NOT NULL)")
+        b = int(bits)
+        for event, cond in (("INSERT", f"chunk = NEW.pk >> {b}"), ("DELETE", f"chunk = OLD.pk >> {b}"),
+                            ("UPDATE", f"chunk IN (OLD.pk >> {b}, NEW.pk >> {b})")):
+            steps.append(f"CREATE TRIGGER {t}_columns_{event.lower()} AFTER {event} ON {t} "
+                         f"BEGIN DELETE FROM {t}_columns WHERE {cond}; END")
+    return steps
+
 
 MIGRATIONS: list[list[str]] = [
     [  # version 1
@@ -95,6 +125,9 @@ MIGRATIONS: list[list[str]] = [
         f"UPDATE specimens SET state = '' WHERE state IN ({_MISSING_TEXTS_SQL})",
         f"UPDATE replaced SET old_value = NULL WHERE old_value IN ({_MISSING_TEXTS_SQL})",
         f"UPDATE replaced SET new_value = NULL WHERE new_value IN ({_MISSING_TEXTS_SQL})",
+    ],
+    [  # version 3: a columnar copy of patients, specimens and results for the whole-store read
+        *_columns_copy_steps(),
     ],
 ]
 SCHEMA_VERSION = len(MIGRATIONS)
