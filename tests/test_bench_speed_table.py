@@ -144,10 +144,12 @@ def test_speed_issue_is_in_the_plan_with_quick_arguments():
 # ---------------------------------------- the warm PyMC path draws exactly what pm.sample draws
 @pytest.mark.slow
 def test_warm_pymc_path_draws_what_pm_sample_draws():
-    """The cached compile of the PyMC engine (the table's last row) starts NUTS as
-    ``pymc.sample`` does by itself (reference: ``reuse_model=False``, PyMC's own
-    initialisation and compile): bit-identical draws, also for a second panel with another
-    number of baseline results reusing the first panel's compiled function."""
+    """The cached compile of the PyMC engine (the table's last row) draws what ``pymc.sample``
+    draws with its own compile (reference: ``reuse_model=False``: the same NUTS step and starts,
+    for this plain normal panel the informed start written out with PyMC's public API in
+    tests/test_mcmc.py, given to ``pymc.sample``, which compiles): bit-identical draws, also
+    for a second panel with another number of baseline results reusing the first panel's
+    compiled function."""
     from bayesbase.mcmc import engine as E
 
     kw = dict(draws=30, tune=30, chains=2, cores=1, seed=7)

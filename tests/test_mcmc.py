@@ -85,6 +85,109 @@ def test_layout_rejects_repeated_pair_and_bad_labels():
         mcmc._layout(cases, ["p"], None)
 
 
+def _moments_reference(y, mu, sg, cvi, s, sa):
+    """Posterior mean and variance of z = (theta - mu) / sG and of eta for one case, by
+    scipy.integrate.quad over eta: p(eta | y) is proportional to N(eta; 0, 1) times the
+    marginal density of the baselines with theta integrated out, N(y; mu 1, sG^2 11' +
+    (sI(eta)^2 + sA^2) I) (scipy.stats.multivariate_normal); given eta, theta is normal by the
+    textbook normal-normal update (Gelman et al., Bayesian Data Analysis, 3rd ed., sec. 2.5)."""
+    y = np.asarray(y, float)
+    n = y.size
+
+    def v(e):
+        return cv_to_sigma(cvi * np.exp(s * e)) ** 2 + sa**2
+
+    def cond(e):
+        prec = 1.0 / sg**2 + n / v(e)
+        return (mu / sg**2 + y.sum() / v(e)) / prec, 1.0 / prec
+
+    def dens(e):
+        if n == 0:  # no baseline: the prior
+            return stats.norm.pdf(e)
+        cov = sg**2 * np.ones((n, n)) + v(e) * np.eye(n)
+        return stats.norm.pdf(e) * stats.multivariate_normal(np.full(n, mu), cov).pdf(y)
+
+    def mean_of(f):
+        return integrate.quad(lambda e: f(e) * dens(e), -10, 10, epsabs=1e-11 * z0,
+                              epsrel=1e-10, limit=200)[0] / z0
+
+    z0 = integrate.quad(dens, -10, 10, epsabs=0, epsrel=1e-10, limit=200)[0]
+    e_mean = mean_of(lambda e: e)
+    e_var = mean_of(lambda e: e * e) - e_mean**2
+    t_mean = mean_of(lambda e: cond(e)[0])
+    t_var = mean_of(lambda e: cond(e)[1] + (cond(e)[0] - t_mean) ** 2)
+    return (t_mean - mu) / sg, t_var / sg**2, e_mean, e_var
+
+
+def test_informed_start_moments_match_scipy_integration():
+    """The posterior means and variances that start NUTS on a plain normal model (the mass
+    matrix and starting points, ``_exact_moments``) against :func:`_moments_reference`
+    (scipy quadrature of the same model), every case of the panel; the padded grid cell
+    (d2, urea) keeps the prior N(0, 1) for z and eta. A case with known CVI (cvi_log_sd 0)
+    keeps eta at its prior N(0, 1) (eta does not enter its likelihood)."""
+    scal = dict(SCALARS, cvi_log_sd=[0.3, 0.2, 0.0, 0.3, 0.25, 0.2, 0.35])
+    cases = CaseArrays.from_lists(BASELINES, **scal)
+    _, coords, _, pidx, aidx, _, _ = mcmc._layout(cases, PATIENTS, ANALYTES)
+    mom = mcmc._exact_moments(cases, pidx, aidx, coords)
+    for i in range(cases.n_cases):
+        zm, zv, em, ev = _moments_reference(BASELINES[i], scal["prior_mean"][i], scal["sg"][i],
+                                            scal["cvi"][i], scal["cvi_log_sd"][i], scal["sa"][i])
+        got = [mom["z"][0][pidx[i], aidx[i]], mom["z"][1][pidx[i], aidx[i]],
+               mom["eta"][0][pidx[i], aidx[i]], mom["eta"][1][pidx[i], aidx[i]]]
+        if scal["cvi_log_sd"][i] == 0:
+            em, ev = 0.0, 1.0
+        assert got == pytest.approx([zm, zv, em, ev], rel=1e-6, abs=1e-9), i
+    empty = (list(coords["patient"]).index("d2"), list(coords["analyte"]).index("urea"))
+    assert mom["z"][0][empty] == 0 and mom["z"][1][empty] == 1
+    assert mom["eta"][0][empty] == 0 and mom["eta"][1][empty] == 1
+
+
+@pytest.mark.slow
+def test_informed_start_draws_what_pm_sample_draws_with_that_step():
+    """The plain normal model's NUTS (cached compile, second panel reusing the first panel's
+    compiled function) draws bit-identically what ``pymc.sample`` draws on a freshly built
+    model with PyMC's own compile, given the step ``pm.NUTS(scaling=var, is_cov=True,
+    step_scale=INFORMED_STEP_SCALE)`` with the exact posterior variances and the starts
+    mean + sd * N(0, 1) from ``numpy.random.default_rng(seed)``, one per chain."""
+    import pymc as pm
+    from pymc.blocking import DictToArrayBijection
+
+    kw = dict(draws=30, tune=30, chains=2, cores=1, seed=7)
+    a, b = mcmc._demo_panel(4, seed=1), mcmc._demo_panel(4, seed=2)
+    mcmc.mcmc_assess(a, **kw)
+    warm = mcmc.mcmc_assess(b, **kw)
+    data, coords, structure, pidx, aidx, _, _ = mcmc._layout(b, None, None)
+    model = mcmc.build_model(data, coords, **structure)
+    mom = mcmc._exact_moments(b, pidx, aidx, coords)
+    names = [v.name for v in model.value_vars]
+    mean = DictToArrayBijection.map({n: mom[n][0] for n in names})
+    var = DictToArrayBijection.map({n: mom[n][1] for n in names}).data
+    rng = np.random.default_rng(7)
+    starts = [DictToArrayBijection.rmap(mean._replace(
+        data=mean.data + np.sqrt(var) * rng.standard_normal(var.size))) for _ in range(2)]
+    step = pm.NUTS(model=model, scaling=var, is_cov=True, step_scale=mcmc.INFORMED_STEP_SCALE,
+                   target_accept=mcmc.DEFAULTS_NORMAL["target_accept"])
+    ref = pm.sample(draws=30, tune=30, chains=2, cores=1, random_seed=7, step=step,
+                    initvals=starts, model=model, progressbar=False,
+                    compute_convergence_checks=False)
+    np.testing.assert_array_equal(warm.idata.posterior["theta"].values,
+                                  ref.posterior["theta"].values)
+
+
+@pytest.mark.slow
+def test_robust_model_keeps_pymc_default_start():
+    """A robust (Student-t) model keeps PyMC's own start ("jitter+adapt_diag"): with the
+    cached compile it draws bit-identically what plain ``pymc.sample`` draws (reference:
+    ``reuse_model=False``, PyMC's own initialisation and compile)."""
+    kw = dict(draws=30, tune=30, chains=2, cores=1, seed=7, robust=True)
+    a, b = mcmc._demo_panel(4, seed=1), mcmc._demo_panel(4, seed=2)
+    mcmc.mcmc_assess(a, **kw)
+    warm = mcmc.mcmc_assess(b, **kw)
+    ref = mcmc.mcmc_assess(b, reuse_model=False, **kw)
+    np.testing.assert_array_equal(warm.idata.posterior["theta"].values,
+                                  ref.idata.posterior["theta"].values)
+
+
 # ------------------------------------------------------------------ slow: one shared panel fit
 @pytest.mark.slow
 def test_agreement_with_exact_engine(panel_fit):

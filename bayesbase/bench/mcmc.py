@@ -36,8 +36,11 @@ def bench_mcmc_panel(n_analytes: int = 25, chains: int = 4, draws: int | None = 
     for a model of this structure (includes building and compiling), ``warm`` a second call
     on new data (another invented panel of the same size) reusing the cached model and its
     compiled functions. With the CPU time (this process and its chain processes) and the load
-    average when it ran (the machine may be shared). ``draws``, ``tune``, ``target_accept``:
-    None takes the engine's default for the model kind (the demo panel: plain normal)."""
+    average when it ran (the machine may be shared). ``draws``, ``tune``, ``target_accept``,
+    ``cores``: None takes the engine's default for the model kind (the demo panel: plain
+    normal, so PyMC's NUTS runs its chains in one process from the informed start).
+    ``leapfrog_steps``: the warm fit's leapfrog steps over its kept draws (sample stat
+    ``n_steps``; tuning not included), a load-independent measure of the sampler's work."""
     from ..mcmc.engine import _demo_panel, mcmc_assess
 
     kw = dict(chains=chains, sampler=sampler, cores=cores,
@@ -54,8 +57,14 @@ def bench_mcmc_panel(n_analytes: int = 25, chains: int = 4, draws: int | None = 
         warm_cpu_seconds=warm_cpu, converged=(r1.converged, r2.converged),
         max_r_hat=r2.diagnostics["max_r_hat"], min_ess_bulk=r2.diagnostics["min_ess_bulk"],
         min_ess_tail=r2.diagnostics["min_ess_tail"], divergences=r2.diagnostics["divergences"],
-        load_average=load, load_average_after=_load(), cpu_count=os.cpu_count(),
+        leapfrog_steps=_leapfrog_steps(r2), load_average=load, load_average_after=_load(),
+        cpu_count=os.cpu_count(),
     )
+
+
+def _leapfrog_steps(result) -> int | None:
+    stats = result.idata.sample_stats
+    return int(stats["n_steps"].values.sum()) if "n_steps" in stats else None
 
 
 def bench_mcmc_case(n_cases: int = 400_000, chains: int = 4, draws: int | None = None,

@@ -43,17 +43,32 @@ series (for a posterior mean this is sd / sqrt(ess); for a probability averaged 
 sd of the per-draw values / sqrt(ess)). Quantiles of theta use ArviZ's quantile MCSE.
 
 Sampler defaults (:func:`sampler_defaults`), 4 chains of 1000 draws for every model kind. A
-plain normal model tunes 300 steps per chain at target acceptance 0.8; a model with censored
-baselines or robust (Student-t) baselines keeps 1000 tuning steps at 0.9, the settings it was
-validated with. Measured on the invented 25-analyte demo panels (``_demo_panel``, data seeds
-20240602-20240604, warm compile, 4 chains x 1000 draws; max R-hat and min bulk / tail ESS over
-theta and eta): the normal model at 300 / 0.8 took 47.5-52.1k gradient evaluations (tuning
-included; 5 sampler seeds) instead of 114.5k at the former 1000 / 0.9, with max R-hat <= 1.0046,
-min bulk ESS >= 3077, min tail ESS >= 2164 and no divergence after tuning (500 / 0.8: 54.7-57.5k,
-3 seeds, equally clean). Censored baselines (normal or Student-t) at 300 / 0.8 and 500 / 0.8
-also gave no divergence (10 fits; max R-hat <= 1.0057, bulk ESS >= 3344, tail ESS >= 1822), but
-they keep the safer settings. 500 draws per chain were not enough: the largest R-hat over the
-panel's 50 parameters reached 1.0115 (above :data:`RHAT_MAX`) in one of twelve fits.
+plain normal model tunes 150 steps per chain at target acceptance 0.8 from an informed start
+(below); a model with censored baselines or robust (Student-t) baselines keeps PyMC's own start
+("jitter+adapt_diag") with 1000 tuning steps at 0.9, the settings it was validated with.
+500 draws per chain were not enough: the largest R-hat over a 25-analyte panel's 50 parameters
+reached 1.0115 (above :data:`RHAT_MAX`) in one of twelve fits (PyMC's own start, 300 / 0.8).
+
+Informed start (plain normal model only, :func:`_informed_nuts`): the exact engine solves the
+same model, so it gives every free variable's posterior mean and variance (:func:`_exact_moments`:
+z and eta, by its quadrature over the CVI). NUTS gets those variances as a fixed diagonal mass
+matrix (the diagonal that PyMC's adaptation estimates from the tuning draws, here without its
+noise), so tuning only adapts the step size, starting at ``step_scale``
+:data:`INFORMED_STEP_SCALE`; each chain starts at the means plus one normal draw of the
+posterior standard deviations. Measured on the invented 25-analyte demo panels (``_demo_panel``,
+data seeds 20240602-20240604 x sampler seeds 1-4, 12 fits, warm compile, 4 chains x 1000 draws,
+one process; max R-hat and min bulk / tail ESS over theta and eta): tune 150 gave max R-hat
+<= 1.0061, min bulk ESS >= 2878, min tail ESS >= 1902, no divergence, and 38.7-40.2k gradient
+evaluations per fit (6 fits counted, tuning included); PyMC's own start at tune 300 on the same
+panels and seeds gave max R-hat <= 1.0061, bulk ESS >= 2778, tail ESS >= 1947, no divergence and
+52.1-56.8k gradient evaluations. Three such panels as one 3-patient fit (150 parameters, 2
+fits): 71.1-72.9k against 89.2-90.8k gradient evaluations, max R-hat 1.0065 against 1.0061,
+bulk ESS >= 4311 against >= 3879, tail ESS >= 2124 against >= 2202, no divergence in either.
+Both draw about 7 leapfrog steps per kept draw (tree depth 3, tuned step sizes 0.35-0.6):
+the saving is in tuning. Tune 100 was as clean in 6 fits but its
+step sizes spread wider (one fit took 36k leapfrog steps in its draws instead of 28k); tune
+200 costs 5 % more than 150 for the same diagnostics. A dense mass matrix (the z-eta
+covariance added) did not shorten the trajectories and cost more per step.
 
 This is the only module (with ``mcmc_trend``) that imports PyMC, PyTensor and ArviZ; nothing
 imports it at import time.
@@ -90,6 +105,7 @@ __all__ = [
     "build_model",
     "sbc_setpoint",
     "sampler_defaults",
+    "default_cores",
     "RHAT_MAX",
     "ESS_MIN",
 ]
@@ -126,7 +142,7 @@ SAMPLERS = ("pymc", "nutpie")
 #: Sampler defaults per model kind (draws per chain, tuning steps per chain, NUTS target
 #: acceptance), chosen by measurement (module docstring, "Sampler defaults"). 1000 draws for
 #: every kind: at 500 the largest R-hat of a 25-analyte panel reached 1.0115 (above RHAT_MAX).
-DEFAULTS_NORMAL = dict(draws=1000, tune=300, target_accept=0.8)
+DEFAULTS_NORMAL = dict(draws=1000, tune=150, target_accept=0.8)
 #: censored or robust (Student-t) baselines keep the settings they were validated with
 DEFAULTS_CENSORED_OR_ROBUST = dict(draws=1000, tune=1000, target_accept=0.9)
 
@@ -136,6 +152,24 @@ def sampler_defaults(censored: bool, robust: bool) -> dict:
     model (no censored baseline, ``robust=False``) gets :data:`DEFAULTS_NORMAL`, any other
     :data:`DEFAULTS_CENSORED_OR_ROBUST` (a new dict each call)."""
     return dict(DEFAULTS_CENSORED_OR_ROBUST if censored or robust else DEFAULTS_NORMAL)
+
+
+def default_cores(chains: int, censored_or_robust: bool, sampler: str = "pymc") -> int:
+    """Chains run in parallel by default (``cores`` not given): one process for a plain normal
+    model under PyMC's NUTS, whose informed start makes the sampling short (a 25-analyte panel
+    samples in a few CPU seconds), so that starting chain processes (each imports PyMC and
+    receives the compiled model) costs about as much CPU as the sampling itself. Measured on the
+    invented 25-analyte demo panels (data seeds 20240602 and 20240603, sampler seed 5, the same
+    draws either way): 4.7 and 4.1 CPU-s, 18.6 and 15.4 s wall in one process against 9.4 and
+    8.9 CPU-s, 35.0 and 33.8 s wall with 2 chain processes (load average 10-12 on 2 cores); the
+    earlier start (tune 300) gave 6.3 against 9.8 CPU-s and 6.6 against 7.8 s wall (load
+    1.2-1.9). On an idle machine 2 processes may finish a little sooner in wall time; the CPU
+    cost is about twice. Censored or robust models (1000 tuning
+    steps, several times the sampling) and nutpie (threads, not processes) keep
+    min(chains, CPU count)."""
+    if sampler == "pymc" and not censored_or_robust:
+        return 1
+    return max(1, min(chains, os.cpu_count() or 1))
 
 
 @dataclass
@@ -575,7 +609,8 @@ def mcmc_assess(
 
     ``patient`` / ``analyte``: labels of each case (default ``"p0"`` and ``"a{i}"``); every
     (patient, analyte) pair appears once. ``seed`` seeds the sampler (``random_seed``); no
-    global seed is touched. ``cores``: parallel chains (default min(chains, CPU count)).
+    global seed is touched. ``cores``: parallel chain processes (default
+    :func:`default_cores`: 1 for a plain normal model under PyMC, else min(chains, CPU count)).
     ``idata_path``: write the InferenceData to netCDF with attrs engine, seed, settings,
     bayesbase version and the caller's ``attrs`` (e.g. pack id and sha256).
     ``reuse_model``: reuse a cached model of the same structure via ``pm.set_data`` and, for
@@ -587,7 +622,10 @@ def mcmc_assess(
 
     ``draws``, ``tune``, ``target_accept``: None takes the model kind's default
     (:func:`sampler_defaults`: a plain normal model samples with fewer tuning steps and a lower
-    target acceptance than a censored or robust one); a value given is used as given.
+    target acceptance than a censored or robust one); a value given is used as given. Under
+    PyMC's NUTS a plain normal model starts from the exact engine's posterior means and
+    variances (module docstring, "Informed start"); censored and robust models keep PyMC's own
+    start.
 
     A fit that fails a convergence check is returned with ``diagnostics["converged"] = False``
     (never raised, never hidden): the caller marks every output of it.
@@ -607,7 +645,7 @@ def mcmc_assess(
     if not 0 < target_accept < 1:
         raise ValueError("target_accept must lie in (0, 1)")
     if cores is None:
-        cores = max(1, min(chains, os.cpu_count() or 1))
+        cores = default_cores(chains, structure["censored"] or robust, sampler)
     settings = dict(
         sampler=sampler, draws=int(draws), tune=int(tune), chains=int(chains),
         cores=int(cores), seed=int(seed), target_accept=float(target_accept),
@@ -630,20 +668,13 @@ def mcmc_assess(
                 idata = _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune,
                                        chains, cores, seed, target_accept, reuse_model)
             else:
+                start = None if structure["censored"] or robust else \
+                    _exact_moments(cases, pidx, aidx, coords)
                 idata = _sample_pymc(model, coords, structure, robust, nu, draws, tune, chains,
-                                     cores, seed, target_accept, reuse_model)
+                                     cores, seed, target_accept, reuse_model, start)
             settings["seconds"] = time.perf_counter() - t0
-            cvi_sd = cases.cvi_log_sd
-            diagnostics = _diagnostics(idata, pidx, aidx, cvi_sd)
-            theta = _case_draws(idata, "theta", pidx, aidx)
-            cvi = _case_draws(idata, "cvi", pidx, aidx)
-            a = 0.5 * (1.0 - ci_prob)
-            th_ds = idata.posterior[["theta"]]
-            q_se = []
-            for prob in (a, 1.0 - a):
-                mq = az.mcse(th_ds, method="quantile", prob=prob)["theta"]
-                q_se.append(mq.transpose(DIM_PATIENT, DIM_ANALYTE).values[pidx, aidx])
-            summary, mc_se = _summaries(cases, theta, cvi, chains, coverage, ci_prob, q_se)
+            diagnostics, summary, mc_se = _summarise_fit(idata, cases, pidx, aidx, chains,
+                                                         coverage, ci_prob)
     finally:
         for lg, lv in zip(loggers, levels):
             lg.setLevel(lv)
@@ -654,19 +685,115 @@ def mcmc_assess(
                       settings=settings, patient=patient, analyte=analyte)
 
 
+def _summarise_fit(idata, cases, pidx, aidx, chains, coverage, ci_prob):
+    """Diagnostics, summaries and their MCSEs of a fit (see :func:`mcmc_assess`)."""
+    diagnostics = _diagnostics(idata, pidx, aidx, cases.cvi_log_sd)
+    theta = _case_draws(idata, "theta", pidx, aidx)
+    cvi = _case_draws(idata, "cvi", pidx, aidx)
+    a = 0.5 * (1.0 - ci_prob)
+    th_ds = idata.posterior[["theta"]]
+    q_se = []
+    for prob in (a, 1.0 - a):
+        mq = az.mcse(th_ds, method="quantile", prob=prob)["theta"]
+        q_se.append(mq.transpose(DIM_PATIENT, DIM_ANALYTE).values[pidx, aidx])
+    summary, mc_se = _summaries(cases, theta, cvi, chains, coverage, ci_prob, q_se)
+    return diagnostics, summary, mc_se
+
+
 def _sample_pymc(model, coords, structure, robust, nu, draws, tune, chains, cores, seed,
-                 target_accept, reuse):
-    """PyMC's NUTS. With ``reuse``, PyMC's default start ("jitter+adapt_diag") is built here
-    with the model's compiled log density and gradient kept from an earlier call of the same
-    structure and shape (:func:`_nuts_start`); without it, :func:`pymc.sample` does it all."""
+                 target_accept, reuse, moments=None):
+    """PyMC's NUTS. ``moments`` (plain normal model, :func:`_exact_moments`): the exact
+    posterior means and variances start NUTS (:func:`_informed_nuts`); otherwise PyMC's default
+    start ("jitter+adapt_diag", :func:`_nuts_start`). With ``reuse``, either start uses the
+    model's compiled log density and gradient (and trace) kept from an earlier call of the same
+    structure and shape; without it, :func:`pymc.sample` compiles them (and, without
+    ``moments``, builds its own start)."""
     kw = dict(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
               progressbar=False, model=model, compute_convergence_checks=False,
               return_inferencedata=True)
+    key = _model_key(structure, robust, nu) + (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))
+    if moments is not None:
+        fn = _cached_logp(model, key) if reuse else None
+        start, step = _informed_nuts(model, moments, chains, seed, target_accept, fn)
+        if reuse:
+            kw["trace"] = _kept_trace(model, key, start[0])
+        return pm.sample(step=step, initvals=start, **kw)
     if not reuse:
         return pm.sample(target_accept=target_accept, **kw)
-    key = _model_key(structure, robust, nu) + (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))
     start, step = _nuts_start(model, key, chains, seed, target_accept)
     return pm.sample(step=step, initvals=start, trace=_kept_trace(model, key, start[0]), **kw)
+
+
+#: NUTS ``step_scale`` of the informed start: the first step size is step_scale / n^(1/4) for
+#: n free parameters (PyMC's rule); PyMC's default 0.25 starts near 0.09 for a 25-analyte
+#: panel, while with the exact posterior scales as mass matrix the tuned step sizes were
+#: 0.4-0.55 (measured; module docstring, "Informed start"), so step-size adaptation starts
+#: there.
+INFORMED_STEP_SCALE = 1.3
+
+
+def _exact_moments(cases: CaseArrays, pidx, aidx, coords) -> dict:
+    """Posterior mean and variance of every free variable of the plain normal model (``z``
+    and, where some CVI is uncertain, ``eta``) on the patient x analyte grid, from the exact
+    engine's quadrature over the CVI (:mod:`bayesbase.model.engine`; the same model). Grid cells
+    without a case, and ``eta`` of a case with known CVI, keep the prior N(0, 1). None when a
+    moment is not finite or a variance not positive (the caller then keeps PyMC's own start)."""
+    from ..model.engine import _FIELDS, DEFAULT_QUAD_NODES, _node_posterior, quadrature
+
+    x, w = quadrature(DEFAULT_QUAD_NODES)
+    with np.errstate(divide="ignore"):
+        m, pv, _, _, _, wt = _node_posterior({k: getattr(cases, k) for k in _FIELDS}, x,
+                                             np.log(w))
+    t_mean = np.einsum("ij,ij->i", wt, m)
+    t_var = np.einsum("ij,ij->i", wt, pv + (m - t_mean[:, None]) ** 2)
+    e_mean = wt @ x
+    e_var = wt @ (x * x) - e_mean**2
+    shape = (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))
+    out = {n: (np.zeros(shape), np.ones(shape)) for n in ("z", "eta")}
+    out["z"][0][pidx, aidx] = (t_mean - cases.prior_mean) / cases.sg
+    out["z"][1][pidx, aidx] = t_var / cases.sg**2
+    has = cases.cvi_log_sd > 0
+    out["eta"][0][pidx[has], aidx[has]] = e_mean[has]
+    out["eta"][1][pidx[has], aidx[has]] = e_var[has]
+    ok = all(np.all(np.isfinite(a)) for pair in out.values() for a in pair)
+    return out if ok and all(np.all(v > 0) for _, v in out.values()) else None
+
+
+def _cached_logp(model, key, cache=None):
+    """The compiled log density and gradient of ``model`` kept under ``key``."""
+    cache = _LOGP_CACHE if cache is None else cache
+    fn = cache.get(key)
+    if fn is None:
+        fn = model.logp_dlogp_function(ravel_inputs=True)
+        fn.trust_input = True
+        cache[key] = fn
+    return fn
+
+
+def _informed_nuts(model, moments, chains, seed, target_accept, fn=None):
+    """NUTS with the exact posterior variances as its (fixed, diagonal) mass matrix, so tuning
+    only adapts the step size, started at :data:`INFORMED_STEP_SCALE`; each chain starts at
+    the posterior means plus one normal draw of the posterior standard deviations (a start
+    spread like the posterior, as R-hat wants). ``fn``: a compiled log density and gradient
+    (None: NUTS compiles its own). Seeded by ``seed`` alone (``pymc.sample`` then reseeds the
+    step per chain from the same ``random_seed``)."""
+    from pymc.blocking import DictToArrayBijection
+    from pymc.step_methods.hmc import quadpotential
+
+    names = [v.name for v in model.value_vars]
+    mean = DictToArrayBijection.map({n: moments[n][0] for n in names})
+    var = DictToArrayBijection.map({n: moments[n][1] for n in names}).data
+    rng = np.random.default_rng(seed)
+    starts = []
+    for _ in range(chains):
+        draw = mean.data + np.sqrt(var) * rng.standard_normal(var.size)
+        point = DictToArrayBijection.rmap(mean._replace(data=draw))
+        starts.append({n: np.asarray(point[n]) for n in names})
+    potential = quadpotential.QuadPotentialDiag(var, rng=rng)
+    kw = {} if fn is None else dict(logp_dlogp_func=fn)
+    step = pm.NUTS(potential=potential, model=model, rng=rng, initial_point=starts[0],
+                   target_accept=target_accept, step_scale=INFORMED_STEP_SCALE, **kw)
+    return starts, step
 
 
 def _nuts_start(model, key, chains, seed, target_accept, cache=None):
@@ -685,11 +812,7 @@ def _nuts_start(model, key, chains, seed, target_accept, cache=None):
     from pymc.util import get_random_generator
 
     cache = _LOGP_CACHE if cache is None else cache
-    fn = cache.get(key)
-    if fn is None:
-        fn = model.logp_dlogp_function(ravel_inputs=True)
-        fn.trust_input = True
-        cache[key] = fn
+    fn = _cached_logp(model, key, cache)
     seeds = [r.integers(2**30) for r in get_random_generator(seed).spawn(chains)]
 
     def logp(point):
