@@ -12,7 +12,12 @@ those of the numpy path of :mod:`bayesbase.model.trend`, written for one series.
 Speed: the loops over a series' nodes vectorise (4 doubles at a time), so exp and ln are written
 without library calls (:func:`vexp`, :func:`vlog`, within 2 ulp), node counts are padded to a
 multiple of 4 with zero-weight nodes, and sums may be reordered (``fastmath={"reassoc",
-"contract"}``: rounding-level differences only; NaN and inf keep their meaning).
+"contract"}``: rounding-level differences only; NaN and inf keep their meaning). What depends on
+the design only (the specimens' times and variances, the priors: precisions, determinants, their
+logarithms, the slope SDs, the SDs of the set point at the last specimen and at the horizon) is
+computed once per run of consecutive series sharing that design (:func:`_design_uniform`,
+:func:`_derived`), and the functions called per series take the scratch array itself rather than
+views of its rows (each view costs atomic reference-count updates).
 """
 from __future__ import annotations
 
@@ -49,7 +54,19 @@ ROWS = ("log_bf10", "p_drift", "p_increase", "slope_mean", "slope_sd", "exp_slop
 EARLY = (1e-2, 1e-4)
 # scratch rows (per node of one series)
 _ML0, _ML1, _MT, _MB, _VTT, _VTB, _VBB, _W, _SB, _ISB, _M0, _V0, _C0B, _MBS, _SI2 = range(15)
-N_SCRATCH = 15
+# the design's rows (per node, before pruning): what :func:`_fit_uniform` needs that does not
+# depend on the values y, kept while consecutive series share the design (:func:`_design_uniform`)
+_DIV, _DS1, _DP0, _DA11, _DIDET, _DLC, _DL0, _DL1 = range(15, 23)
+# SDs of theta at the last specimen and at the horizon (:func:`_derived`), and the design's
+# copies of the rows :func:`_derived` fills
+_SD0, _SDH, _DSB, _DISB, _DV0, _DC0B, _DSD0, _DSDH = range(23, 31)
+N_SCRATCH = 31
+#: the rows :func:`_derived` fills, and their design copies (same order)
+_DERIVED = (_SB, _ISB, _V0, _C0B, _SD0, _SDH)
+_DESIGN_DERIVED = (_DSB, _DISB, _DV0, _DC0B, _DSD0, _DSDH)
+#: the per-node rows read after pruning, which it compacts and padding copies (the covariance
+#: rows vtt, vtb are read only by :func:`_derived`, before)
+_NODE_ROWS = (_MT, _MB, _VBB, _SB, _ISB, _V0, _C0B, _SD0, _SDH)
 
 _jit = numba.njit(cache=True, error_model="numpy", nogil=True)
 # loops over a series' nodes: sums may be reordered so the CPU can vectorise them
@@ -176,20 +193,23 @@ def _node_si2(cvi, cvs, x, si2):
 
 
 @_jit
-def _series_sums(i, times, y, r, ev_extra, mask, t_ref, pm, sa2, gs, tj, yj, vj):
+def _series_sums(i, times, y, r, ev_extra, steps, mask, t_ref, pm, sa2, gs, tj, yj, vj):
     """Plain sums of (1, t, t^2, y, t y, y^2) over the usable specimens (t, y centred) into
     gs; the usable specimens' centred t, y and extra variance sA^2 / r + e into tj, yj, vj.
-    Returns (number used, their largest extra variance, all extra variances equal)."""
+    Row i of ``times``, ``r``, ``ev_extra`` is row i * steps[0], i * steps[1], i * steps[2]
+    (step 0: one row shared by every series). Returns (number used, their largest extra
+    variance, all extra variances equal)."""
     n = 0
     ev0 = -np.inf
+    it, ir, ie = i * steps[0], i * steps[1], i * steps[2]
     for g in range(6):
         gs[g] = 0.0
     for j in range(times.shape[1]):
         if not mask[i, j]:
             continue
-        tc = times[i, j] - t_ref
+        tc = times[it, j] - t_ref
         yc = y[i, j] - pm
-        ev = sa2 / r[i, j] + ev_extra[i, j]
+        ev = sa2 / r[ir, j] + ev_extra[ie, j]
         gs[0] += 1.0
         gs[1] += tc
         gs[2] += tc * tc
@@ -209,36 +229,62 @@ def _series_sums(i, times, y, r, ev_extra, mask, t_ref, pm, sa2, gs, tj, yj, vj)
 
 
 @_jit_sum
-def _fit_uniform(n, ev0, gs, lw, sg2, sb2, S):
-    """Per node, for a series whose specimens share one variance v = sI^2 + ev0: log marginal
-    likelihoods under H0 and H1 (the constant n ln(2 pi) left out, it cancels in every use) and
-    the H1 posterior of (theta0 - mu, beta), into the scratch rows."""
+def _design_uniform(ev0, gs, sg2, sb2, kk, S):
+    """The part of :func:`_fit_uniform` that depends on the design only (the specimens' times
+    through the sums g0, g1, g2, their common extra variance ev0, sG^2, sB^2 and sI^2 per node),
+    into the design rows: 1 / v, s1, the precisions p0 and a11, 1 / det, g0 ln v and the
+    log-determinant terms."""
     isg = 1.0 / sg2
     isb = 1.0 / sb2
-    ml0, ml1, si2 = S[_ML0], S[_ML1], S[_SI2]
-    mt, mb, vtt, vtb, vbb = S[_MT], S[_MB], S[_VTT], S[_VTB], S[_VBB]
-    g0, g1, g2, g3, g4, g5 = gs[0], gs[1], gs[2], gs[3], gs[4], gs[5]
-    for k in range(lw.size):
+    si2 = S[_SI2]
+    g0, g1, g2 = gs[0], gs[1], gs[2]
+    for k in range(kk):
         v = si2[k] + ev0
         iv = 1.0 / v
         s1 = g1 * iv
-        h0 = g3 * iv
-        h1 = g4 * iv
-        qq = g5 * iv
         p0 = isg + g0 * iv
         a11 = isb + g2 * iv
         det = p0 * a11 - s1 * s1
-        idet = 1.0 / det
+        S[_DIV, k] = iv
+        S[_DS1, k] = s1
+        S[_DP0, k] = p0
+        S[_DA11, k] = a11
+        S[_DIDET, k] = 1.0 / det
+        S[_DLC, k] = vlog(v) * g0
+        S[_DL0, k] = vlog(sg2 * p0)
+        S[_DL1, k] = vlog(sg2 * sb2 * det)
+
+
+@_jit_sum
+def _fit_uniform(gs, lw, S):
+    """Per node, for a series whose specimens share one variance v = sI^2 + ev0 (design rows
+    from :func:`_design_uniform`): log marginal likelihoods under H0 and H1 (the constant
+    n ln(2 pi) left out, it cancels in every use) and the H1 posterior of (theta0 - mu, beta),
+    into the scratch rows."""
+    ml0, ml1 = S[_ML0], S[_ML1]
+    mt, mb, vtt, vtb, vbb = S[_MT], S[_MB], S[_VTT], S[_VTB], S[_VBB]
+    ivr, s1r, p0r, a11r, idr = S[_DIV], S[_DS1], S[_DP0], S[_DA11], S[_DIDET]
+    lcr, l0r, l1r = S[_DLC], S[_DL0], S[_DL1]
+    g3, g4, g5 = gs[3], gs[4], gs[5]
+    for k in range(lw.size):
+        iv = ivr[k]
+        s1 = s1r[k]
+        p0 = p0r[k]
+        a11 = a11r[k]
+        idet = idr[k]
+        h0 = g3 * iv
+        h1 = g4 * iv
+        qq = g5 * iv
         mt[k] = (a11 * h0 - s1 * h1) * idet
         mb[k] = (p0 * h1 - s1 * h0) * idet
         vtt[k] = a11 * idet
         vtb[k] = -s1 * idet
         vbb[k] = p0 * idet
-        common = vlog(v) * g0
+        common = lcr[k]
         o5 = qq - h0 * h0 / p0
         o6 = qq - (a11 * h0 * h0 - 2.0 * s1 * h0 * h1 + p0 * h1 * h1) * idet
-        ml0[k] = lw[k] - 0.5 * (common + vlog(sg2 * p0) + o5)
-        ml1[k] = lw[k] - 0.5 * (common + vlog(sg2 * sb2 * det) + o6)
+        ml0[k] = lw[k] - 0.5 * (common + l0r[k] + o5)
+        ml1[k] = lw[k] - 0.5 * (common + l1r[k] + o6)
 
 
 @_jit_sum
@@ -291,13 +337,65 @@ def _lse(a, e, n):
     return vlog(s) + mx, s
 
 
+@_jit_sum
+def _derived(S, kk, tcl, horizon):
+    """From the H1 posterior covariance rows: the slope SD and its inverse, the variance of
+    theta at the last specimen (tcl years after t_ref) and its covariance with beta, and the SD
+    of theta there and ``horizon`` years later (floored at 1e-150). Depends on the design only."""
+    vtt, vtb, vbb = S[_VTT], S[_VTB], S[_VBB]
+    for k in range(kk):
+        vb = vbb[k]
+        sb = np.sqrt(vb)
+        S[_SB, k] = sb
+        S[_ISB, k] = 1.0 / sb
+        v0 = vtt[k] + 2.0 * tcl * vtb[k] + tcl * tcl * vb
+        c0b = vtb[k] + tcl * vb
+        S[_V0, k] = v0
+        S[_C0B, k] = c0b
+        S[_SD0, k] = np.sqrt(max(v0, 1e-300))
+        S[_SDH, k] = np.sqrt(max(v0 + horizon * (2.0 * c0b + horizon * vb), 1e-300))
+
+
+@_jit
+def _copy_rows(S, src, dst, kk):
+    for q in range(len(src)):
+        for k in range(kk):
+            S[dst[q], k] = S[src[q], k]
+
+
+@_jit_sum
+def _lse2(S, n):
+    """:func:`_lse` of the rows ml0 and ml1 (first n nodes) in one pass over the nodes: (log sum
+    exp ml0, log sum exp ml1, sum exp(ml1 - max ml1)); the weight row = exp(ml1 - max ml1).
+    Functions of the per-series loop take the scratch S itself, not views of its rows (a view
+    costs an atomic reference count update per call)."""
+    a0, a1, e = S[_ML0], S[_ML1], S[_W]
+    mx0 = -np.inf
+    mx1 = -np.inf
+    for k in range(n):
+        mx0 = max(mx0, a0[k])
+        mx1 = max(mx1, a1[k])
+    if not np.isfinite(mx0):
+        mx0 = 0.0
+    if not np.isfinite(mx1):
+        mx1 = 0.0
+    s0 = 0.0
+    s1 = 0.0
+    for k in range(n):
+        s0 += vexp(a0[k] - mx0)
+        t = vexp(a1[k] - mx1)
+        e[k] = t
+        s1 += t
+    return vlog(s0) + mx0, vlog(s1) + mx1, s1
+
+
 @_jit
 def _pad(S, kn):
     """Zero-weight copies of node 0 up to a multiple of 4 nodes (the vector width of the loops;
     a remainder would run one node at a time). Returns the padded count."""
     kp = (kn + 3) // 4 * 4
     for k in range(kn, kp):
-        for row in (_MT, _MB, _VTT, _VTB, _VBB):
+        for row in _NODE_ROWS:
             S[row, k] = S[row, 0]
         S[_W, k] = 0.0
     return kp
@@ -320,8 +418,9 @@ def _weights(S, kn, tot, prune):
     for k in range(kn):
         if not w[k] > prune:
             continue
-        for row in (_MT, _MB, _VTT, _VTB, _VBB, _W):
+        for row in _NODE_ROWS:
             S[row, kept] = S[row, k]
+        w[kept] = w[k]
         kept += 1
     tot = 0.0
     for k in range(kept):
@@ -333,10 +432,11 @@ def _weights(S, kn, tot, prune):
 
 # ------------------------------------------------------------------ normal-mixture quantile
 @_jit_sum
-def mix_moments(w, m, s, kn, mom):
+def mix_moments(S, kn, mom):
     """Of the mixture sum_j w_j N(m_j, s_j^2): mean, SD, skewness, excess kurtosis, the bracket
     min(m - 12 s), max(m + 12 s) and the smallest s, into mom[0:7] (the moments of
     bayesbase.model._jit.start_k)."""
+    w, m, s = S[_W], S[_MB], S[_SB]
     a = 0.0
     for j in range(kn):
         a += w[j] * m[j]
@@ -380,9 +480,10 @@ def _mix_start(mom, z):
 
 
 @_jit_sum
-def _mix_step(x, q, w, m, inv_s, kn):
+def _mix_step(x, q, S, kn):
     """g = F(x) - q, the fourth-order step h and the Newton step t (as bayesbase.model._jit
     eval_k and step4, one row)."""
+    w, m, inv_s = S[_W], S[_MB], S[_ISB]
     f = d1 = d2 = d3 = d4 = 0.0
     for j in range(kn):
         si = inv_s[j]
@@ -411,17 +512,17 @@ def _mix_step(x, q, w, m, inv_s, kn):
 
 
 @_jit
-def mix_quantile(q, z, w, m, mom, inv_s, kn, tol, max_iter, early):
-    """Quantile q (standard normal deviate z, for the start) of sum_j w_j N(m_j, s_j^2)
-    (inv_s = 1 / s; ``mom`` from :func:`mix_moments`): the algorithm of bayesbase.model.normal.mixture_quantile for one row (the
-    last step applied); it also stops after a fourth-order step whose Newton step t is at most
+def mix_quantile(q, z, S, mom, kn, tol, max_iter, early):
+    """Quantile q (standard normal deviate z, for the start) of sum_j w_j N(m_j, s_j^2) (the
+    rows w, mb and 1 / sb of S; ``mom`` from :func:`mix_moments`): the algorithm of
+    bayesbase.model.normal.mixture_quantile for one row (the last step applied); it also stops after a fourth-order step whose Newton step t is at most
     ``early`` times the smallest component SD s (the step's error is then of order
     s (t / s)^5, about 1e-10 s for early = 1e-2; on the benchmark's series the slope limits
     move by less than 1e-12 from the fully converged ones)."""
     x = _mix_start(mom, z)
     lo, hi, smin = mom[4], mom[5], mom[6]
     for _ in range(max_iter):
-        g, h, t, fine = _mix_step(x, q, w, m, inv_s, kn)
+        g, h, t, fine = _mix_step(x, q, S, kn)
         if g < 0:
             lo = max(lo, x)
         if g > 0:
@@ -438,10 +539,11 @@ def mix_quantile(q, z, w, m, mom, inv_s, kn, tol, max_iter, early):
 
 # ---------------------------------------------------------------------- time to a limit
 @_jit_sum
-def _cross_start(z, w, m0, v0, mb, c0b, vb, kn, a, horizon):
+def _cross_start(z, S, kn, a, horizon):
     """Start for F(tau) = q (standard normal deviate z of q): the root of the one normal with
     the mixture's mean and covariance of (theta_last, beta) (as the numpy path's start), the
     middle of [0, horizon] when none fits."""
+    w, m0, v0, mb, c0b, vb = S[_W], S[_M0], S[_V0], S[_MBS], S[_C0B], S[_VBB]
     mm = bb = 0.0
     for j in range(kn):
         mm += w[j] * m0[j]
@@ -483,9 +585,32 @@ def _cross_cdf(tau, w, m0, v0, mb, c0b, vb, kn, a):
 
 
 @_jit_sum
-def _cross_step(tau, q, w, m0, v0, mb, c0b, vb, kn, a):
+def _cross_ends(S, kn, sign, pm, tcl, a, horizon):
+    """The rows of the mean of theta at the last specimen m0 and of the slope mbs, signed so the
+    limit lies above (``sign`` -1 for a lower limit), and F(0), F(horizon) of :func:`_cross_cdf`
+    (with the SDs of :func:`_derived`), in one pass over the nodes."""
+    w, mt, mbr, v0r, c0r = S[_W], S[_MT], S[_MB], S[_V0], S[_C0B]
+    sd0, sdh = S[_SD0], S[_SDH]
+    m0r, mbs = S[_M0], S[_MBS]
+    f0 = fh = 0.0
+    for j in range(kn):
+        mb = mbr[j]
+        m0 = sign * (mt[j] + pm + mb * tcl)
+        ms = sign * mb
+        m0r[j] = m0
+        mbs[j] = ms
+        z0 = (m0 - a) / sd0[j]
+        f0 += w[j] * phi(z0, vexp(-0.5 * z0 * z0))
+        zh = (m0 + ms * horizon - a) / sdh[j]
+        fh += w[j] * phi(zh, vexp(-0.5 * zh * zh))
+    return f0, fh
+
+
+@_jit_sum
+def _cross_step(tau, q, S, kn, a):
     """g = F(tau) - q, the Halley step and the Newton step (as bayesbase.model._jit
     cross_prep_k and cross_eval_k, one row)."""
+    w, m0, v0, mb, c0b, vb = S[_W], S[_M0], S[_V0], S[_MBS], S[_C0B], S[_VBB]
     f = d1 = d2 = 0.0
     for j in range(kn):
         sl = c0b[j] + tau * vb[j]
@@ -512,16 +637,17 @@ def _cross_step(tau, q, w, m0, v0, mb, c0b, vb, kn, a):
 
 
 @_jit
-def cross_quantile(q, z, w, m0, v0, mb, c0b, vb, kn, a, lo, hi, tol, max_iter, early):
-    """Smallest tau in [lo, hi] with F(tau) = q, given F(lo) < q <= F(hi): Halley steps from
-    the one-normal start, kept inside the bisection bracket; done when the Newton step or the
-    bracket is at most ``tol`` (as the numpy path), or after a Halley step whose Newton step
-    is at most ``early`` years (its error is then of order early^3: 1e-12 years for 1e-4)."""
-    x = _cross_start(z, w, m0, v0, mb, c0b, vb, kn, a, hi)
+def cross_quantile(q, z, S, kn, a, lo, hi, tol, max_iter, early):
+    """Smallest tau in [lo, hi] with F(tau) = q (the rows w, m0, v0, mbs, c0b, vb of S), given
+    F(lo) < q <= F(hi): Halley steps from the one-normal start, kept inside the bisection
+    bracket; done when the Newton step or the bracket is at most ``tol`` (as the numpy path), or
+    after a Halley step whose Newton step is at most ``early`` years (its error is then of order
+    early^3: 1e-12 years for 1e-4)."""
+    x = _cross_start(z, S, kn, a, hi)
     if not (x > lo and x < hi):
         x = 0.5 * (lo + hi)
     for _ in range(max_iter):
-        g, h, t, fine = _cross_step(x, q, w, m0, v0, mb, c0b, vb, kn, a)
+        g, h, t, fine = _cross_step(x, q, S, kn, a)
         if g < 0:
             lo = x
         else:
@@ -539,16 +665,14 @@ def cross_quantile(q, z, w, m0, v0, mb, c0b, vb, kn, a, lo, hi, tol, max_iter, e
 # --------------------------------------------------------------------------- per series
 @_jit_sum
 def _summaries(S, kn, out, c):
-    """P(beta > 0 | H1), slope mean and SD, E[exp(beta)] and P(beta < 0 | H1) of the kept nodes;
-    fills the scratch rows of slope SDs and their inverses."""
-    w, mbr, vbr, sbr, isr = S[_W], S[_MB], S[_VBB], S[_SB], S[_ISB]
+    """P(beta > 0 | H1), slope mean and SD, E[exp(beta)] and P(beta < 0 | H1) of the kept nodes
+    (slope SDs from :func:`_derived`)."""
+    w, mbr, vbr, sbr = S[_W], S[_MB], S[_VBB], S[_SB]
     p_inc = mean = m2 = ex = f1_0 = 0.0
     for k in range(kn):
         mb = mbr[k]
         vb = vbr[k]
-        sb = np.sqrt(vb)
-        sbr[k] = sb
-        isr[k] = 1.0 / sb
+        sb = sbr[k]
         zz = mb / sb
         p_pos = phi(zz, vexp(-0.5 * zz * zz))
         p_inc += w[k] * p_pos
@@ -567,20 +691,19 @@ def _summaries(S, kn, out, c):
 def _slope_limits(S, kn, p_drift, f1_0, a, za, tol, max_iter, early, out, c, mom):
     """Central interval of the slope under H1 and of the model-averaged slope (point mass
     1 - P(drift) at 0 plus P(drift) x the H1 posterior), log units. ``mom``: scratch (7,)."""
-    w, mb, isb = S[_W], S[_MB], S[_ISB]
-    mix_moments(w, mb, S[_SB], kn, mom)
-    out[6, c] = mix_quantile(a, -za, w, mb, mom, isb, kn, tol, max_iter, early)
-    out[7, c] = mix_quantile(1.0 - a, za, w, mb, mom, isb, kn, tol, max_iter, early)
+    mix_moments(S, kn, mom)
+    out[6, c] = mix_quantile(a, -za, S, mom, kn, tol, max_iter, early)
+    out[7, c] = mix_quantile(1.0 - a, za, S, mom, kn, tol, max_iter, early)
     below = p_drift * f1_0  # averaged CDF just below 0
     above = below + (1.0 - p_drift)  # averaged CDF at 0
     for r, qv in ((8, a), (9, 1.0 - a)):
         val = 0.0
         if qv < below:
             qq = qv / p_drift
-            val = mix_quantile(qq, ndtri_start(qq), w, mb, mom, isb, kn, tol, max_iter, early)
+            val = mix_quantile(qq, ndtri_start(qq), S, mom, kn, tol, max_iter, early)
         elif qv > above:
             qq = min((qv - (1.0 - p_drift)) / p_drift, 1 - 1e-15)
-            val = mix_quantile(qq, ndtri_start(qq), w, mb, mom, isb, kn, tol, max_iter, early)
+            val = mix_quantile(qq, ndtri_start(qq), S, mom, kn, tol, max_iter, early)
         out[r, c] = val
 
 
@@ -589,10 +712,9 @@ def _limit(S, kn, tcl, pm, lu, ll, zq, a, horizon, tol, max_iter, early, out, c)
     """Set point at the last specimen and the time to the population limit the H1 slope
     points to (quantiles a, 0.5, 1 - a; 0 when already reached, +inf when not within
     ``horizon``), and P(already beyond it)."""
-    w = S[_W]
     th = 0.0
     for k in range(kn):
-        th += w[k] * (S[_MT, k] + pm + S[_MB, k] * tcl)
+        th += S[_W, k] * (S[_MT, k] + pm + S[_MB, k] * tcl)
     out[10, c] = th
     slope = out[3, c]
     has = np.isfinite(lu) or np.isfinite(ll)
@@ -605,33 +727,27 @@ def _limit(S, kn, tcl, pm, lu, ll, zq, a, horizon, tol, max_iter, early, out, c)
         sign, lim, side = -1.0, ll, -1
     else:
         return 0
-    m0, v0, mbs, c0b, vb = S[_M0], S[_V0], S[_MBS], S[_C0B], S[_VBB]
-    for k in range(kn):
-        mb = S[_MB, k]
-        m0[k] = sign * (S[_MT, k] + pm + mb * tcl)
-        v0[k] = S[_VTT, k] + 2.0 * tcl * S[_VTB, k] + tcl * tcl * S[_VBB, k]
-        mbs[k] = sign * mb
-        c0b[k] = S[_VTB, k] + tcl * S[_VBB, k]
     aa = sign * lim
-    f0 = _cross_cdf(0.0, w, m0, v0, mbs, c0b, vb, kn, aa)
-    fh = _cross_cdf(horizon, w, m0, v0, mbs, c0b, vb, kn, aa)
+    f0, fh = _cross_ends(S, kn, sign, pm, tcl, aa, horizon)
     out[14, c] = f0
     for r, q, z in ((11, 0.5, zq[0]), (12, a, zq[1]), (13, 1.0 - a, zq[2])):
         if f0 >= q:
             out[r, c] = 0.0
         elif fh >= q:
-            out[r, c] = cross_quantile(q, z, w, m0, v0, mbs, c0b, vb, kn, aa, 0.0, horizon,
+            out[r, c] = cross_quantile(q, z, S, kn, aa, 0.0, horizon,
                                        tol, max_iter, early)
     return side
 
 
 @_jit
-def trend_k(idx, times, y, r, ev_extra, mask, t_ref, t_last, pm, sg, sb, cvi, cvs, sa, pi, lu,
-            ll, x_nodes, lw_nodes, a, zq, horizon, prune, intervals, early, out, side):
+def trend_k(idx, times, y, r, ev_extra, steps, mask, t_ref, t_last, pm, sg, sb, cvi, cvs, sa,
+            pi, lu, ll, x_nodes, lw_nodes, a, zq, horizon, prune, intervals, early, out, side):
     """Every series idx[c] (eligible: at least one usable specimen): the drift model's outputs
-    into out[:, c] (rows :data:`ROWS`) and the limit side (1 upper, -1 lower, 0 none) into
-    side[c]. ``zq`` = the standard normal deviates of (0.5, a, 1 - a); ``early`` = the early
-    stops of the slope and the time-to-limit solvers (:data:`EARLY`)."""
+    into out[:, c] (rows :data:`ROWS`; rows 6 on NaN when not ``intervals``) and the limit side
+    (1 upper, -1 lower, 0 none) into side[c]. ``steps``: the row steps of ``times``, ``r`` and
+    ``ev_extra`` (0: one row for every series, see :func:`_series_sums`). ``zq`` = the standard
+    normal deviates of (0.5, a, 1 - a); ``early`` = the early stops of the slope and the
+    time-to-limit solvers (:data:`EARLY`)."""
     kk = x_nodes.size
     S = np.empty((N_SCRATCH, (kk + 3) // 4 * 4))
     gs = np.empty(6)
@@ -640,20 +756,38 @@ def trend_k(idx, times, y, r, ev_extra, mask, t_ref, t_last, pm, sg, sb, cvi, cv
     tj, yj, vj = np.empty(nj), np.empty(nj), np.empty(nj)
     last_cvi = np.nan
     last_cvs = np.nan
+    dkey = np.zeros(7, dtype=np.int64)  # bits of (g0, g1, g2, ev0, sG^2, sB^2, tcl): design rows'
+    have_design = False
     for c in range(idx.size):
         i = idx[c]
         if not (cvi[i] == last_cvi and cvs[i] == last_cvs):  # sI^2 per node, once per (CVI, s)
             _node_si2(cvi[i], cvs[i], x_nodes, S[_SI2])
             last_cvi, last_cvs = cvi[i], cvs[i]
-        n, ev0, uniform = _series_sums(i, times, y, r, ev_extra, mask, t_ref[i], pm[i],
+            have_design = False
+        n, ev0, uniform = _series_sums(i, times, y, r, ev_extra, steps, mask, t_ref[i], pm[i],
                                        sa[i] * sa[i], gs, tj, yj, vj)
         sg2 = sg[i] * sg[i]
+        tcl = t_last[i] - t_ref[i]
         if uniform:
-            _fit_uniform(n, ev0, gs, lw_nodes, sg2, sb[i] * sb[i], S)
+            sb2 = sb[i] * sb[i]
+            same = have_design
+            for q, val in enumerate((gs[0], gs[1], gs[2], ev0, sg2, sb2, tcl)):
+                bits = _as_i64(val)
+                same = same and dkey[q] == bits
+                dkey[q] = bits
+            if not same:  # a new design (times, variances, priors): its rows once
+                _design_uniform(ev0, gs, sg2, sb2, kk, S)
+            _fit_uniform(gs, lw_nodes, S)
+            if not same:
+                _derived(S, kk, tcl, horizon)
+                _copy_rows(S, _DERIVED, _DESIGN_DERIVED, kk)
+                have_design = True
+            else:
+                _copy_rows(S, _DESIGN_DERIVED, _DERIVED, kk)
         else:
             _fit_general(n, tj, yj, vj, lw_nodes, sg2, sb[i] * sb[i], S)
-        lp0, _ = _lse(S[_ML0], S[_W], kk)
-        lp1, tot = _lse(S[_ML1], S[_W], kk)
+            _derived(S, kk, tcl, horizon)
+        lp0, lp1, tot = _lse2(S, kk)
         log_bf = lp1 - lp0
         p_drift = 1.0 / (1.0 + np.exp(-(np.log(pi[i]) - np.log1p(-pi[i]) + log_bf)))
         out[0, c] = log_bf
@@ -662,8 +796,10 @@ def trend_k(idx, times, y, r, ev_extra, mask, t_ref, t_last, pm, sg, sb, cvi, cv
         f1_0 = _summaries(S, kn, out, c)
         side[c] = 0
         if not intervals:
+            for row in range(6, out.shape[0]):
+                out[row, c] = np.nan
             continue
         _slope_limits(S, kn, p_drift, f1_0, a, zq[2], 1e-9, 60, early[0], out, c,
                       mom)
-        side[c] = _limit(S, kn, t_last[i] - t_ref[i], pm[i], lu[i], ll[i], zq, a, horizon,
+        side[c] = _limit(S, kn, tcl, pm[i], lu[i], ll[i], zq, a, horizon,
                          1e-7, 80, early[1], out, c)

@@ -153,6 +153,23 @@ def prepare_series(times, y, r=None, extra_var=None, prior_mean=0.0, sg=1.0, cvi
     takes :data:`DEFAULT_SLOPE_SD`. Adds ``mask``, ``n_used``, ``span_years``, ``t_ref``
     (mean time of the usable specimens), ``t_last``, ``eligible`` and ``reason``.
     """
+    return _densify(_prepare(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa,
+                             slope_sd))
+
+
+def _densify(p):
+    """``r`` and ``extra_var`` as (C, J) arrays where :func:`_prepare` left them None (not given:
+    one replicate, no extra variance, 0 for unusable specimens)."""
+    if p["r"] is None:
+        p["r"] = p["mask"].astype(float)
+    if p["extra_var"] is None:
+        p["extra_var"] = np.zeros(p["y"].shape)
+    return p
+
+
+def _prepare(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slope_sd):
+    """:func:`prepare_series` without building ``r`` / ``extra_var`` when not given (None:
+    the compiled pass reads one shared row instead)."""
     y = _as_2d(y, "y")
     shape = y.shape
     times = _as_2d(times, "times", shape)
@@ -199,8 +216,8 @@ def prepare_series(times, y, r=None, extra_var=None, prior_mean=0.0, sg=1.0, cvi
     reason[short] = f"usable specimens span less than {TREND_MIN_SPAN_YEARS} years"
     out.update(
         times=times, y=y,
-        r=mask.astype(float) if r is None else np.where(mask, r, 0.0),
-        extra_var=np.zeros(shape) if extra_var is None else np.where(mask, extra_var, 0.0),
+        r=None if r is None else np.where(mask, r, 0.0),
+        extra_var=None if extra_var is None else np.where(mask, extra_var, 0.0),
         mask=mask, n_used=n_used.astype(float), span_years=span, t_ref=t_ref,
         t_last=np.where(n_used > 0, t_max, np.nan), eligible=eligible, reason=reason,
     )
@@ -493,42 +510,66 @@ def _c_array(a, dtype=float):
     return np.ascontiguousarray(a, dtype=dtype)
 
 
+def _shared_rows(p):
+    """``times``, ``y``, ``r``, ``extra_var`` for the compiled pass, with the row steps of times,
+    r and extra_var: one row and step 0 where every series has the same row (times broadcast
+    from one row; r / extra_var not given: 1 and 0), else the (C, J) array and step 1."""
+    j = p["y"].shape[1]
+    times = p["times"]
+    shared = times.shape[0] > 0 and times.strides[0] == 0
+    cols = [_c_array(times[:1] if shared else times), _c_array(p["y"])]
+    steps = [0 if shared else 1]
+    for name, fill in (("r", 1.0), ("extra_var", 0.0)):
+        steps.append(0 if p[name] is None else 1)
+        cols.append(np.full((1, j), fill) if p[name] is None else _c_array(p[name]))
+    return cols, np.array(steps, dtype=np.int64)
+
+
 def _trend_compiled(k, p, idx, x_nodes, w_nodes, pi, ci_prob, lu, ll, horizon, prune,
                     intervals, out):
     """:func:`trend_exact`'s summaries for the series ``idx`` in one compiled pass
-    (:func:`bayesbase.model._jit_trend.trend_k`), written into ``out``."""
+    (:func:`bayesbase.model._jit_trend.trend_k`), written into ``out``; ``out`` None when
+    ``idx`` is every series (0..C-1): then the summary arrays are made from the kernel's rows
+    (no NaN-filled arrays to overwrite) and returned."""
     a = 0.5 * (1.0 - ci_prob)
     zq = special.ndtri(np.array([0.5, a, 1.0 - a]))
-    res = np.full((len(k.ROWS), idx.size), np.nan)
-    side = np.zeros(idx.size, dtype=np.int8)
-    cols = [_c_array(p[n]) for n in ("times", "y", "r", "extra_var")]
+    res = np.empty((len(k.ROWS), idx.size))  # the kernel writes every row of every column
+    side = np.empty(idx.size, dtype=np.int8)
+    cols, steps = _shared_rows(p)
     per = [_c_array(v) for v in (p["t_ref"], p["t_last"], p["prior_mean"], p["sg"], p["slope_sd"],
                                   p["cvi"], p["cvi_log_sd"], p["sa"], pi, lu, ll)]
     with np.errstate(all="ignore"):
-        k.trend_k(_c_array(idx, np.int64), *cols, _c_array(p["mask"], np.bool_), *per,
+        k.trend_k(_c_array(idx, np.int64), *cols, steps, _c_array(p["mask"], np.bool_), *per,
                   _c_array(x_nodes), np.log(w_nodes), float(a), zq, float(horizon),
                   float(prune), bool(intervals), np.array(k.EARLY, float), res, side)
     r = dict(zip(k.ROWS, res))
-    if idx.size == out["p_drift"].size:  # every series (idx = 0..C-1): plain slices, no gather
-        idx = slice(None)
-    for key in ("log_bf10", "p_drift", "p_increase", "slope_mean", "slope_sd"):
-        out[key][idx] = r[key]
-    out["bf10"][idx] = np.exp(r["log_bf10"])
     pct_mean = 100.0 * (r["exp_slope_mean"] - 1.0)
-    out["pct_per_year_mean"][idx] = pct_mean
-    out["pct_per_year_avg_mean"][idx] = r["p_drift"] * pct_mean
-    if not intervals:
-        return
-    for key, row in (("slope_lower", "slope_lower"), ("slope_upper", "slope_upper"),
-                     ("theta_last_mean", "theta_last_mean"), ("years_to_limit", "years_mid"),
-                     ("years_to_limit_lower", "years_lo"), ("years_to_limit_upper", "years_hi"),
-                     ("p_beyond_limit", "p_beyond_limit")):
-        out[key][idx] = r[row]
-    for key, row in (("pct_per_year_lower", "slope_lower"), ("pct_per_year_upper", "slope_upper"),
-                     ("pct_per_year_avg_lower", "avg_lower"),
-                     ("pct_per_year_avg_upper", "avg_upper")):
-        out[key][idx] = 100.0 * np.expm1(r[row])
-    out["limit_side"][idx] = np.array(["lower", "", "upper"], dtype=object)[side + 1]
+    got = {key: r[key] for key in ("log_bf10", "p_drift", "p_increase", "slope_mean", "slope_sd")}
+    got["bf10"] = np.exp(r["log_bf10"])
+    got["pct_per_year_mean"] = pct_mean
+    got["pct_per_year_avg_mean"] = r["p_drift"] * pct_mean
+    if intervals:
+        for key, row in (("slope_lower", "slope_lower"), ("slope_upper", "slope_upper"),
+                         ("theta_last_mean", "theta_last_mean"), ("years_to_limit", "years_mid"),
+                         ("years_to_limit_lower", "years_lo"), ("years_to_limit_upper", "years_hi"),
+                         ("p_beyond_limit", "p_beyond_limit")):
+            got[key] = r[row]
+        for key, row in (("pct_per_year_lower", "slope_lower"),
+                         ("pct_per_year_upper", "slope_upper"),
+                         ("pct_per_year_avg_lower", "avg_lower"),
+                         ("pct_per_year_avg_upper", "avg_upper")):
+            got[key] = 100.0 * np.expm1(r[row])
+        got["limit_side"] = np.array(["lower", "", "upper"], dtype=object)[side + 1]
+    if out is None:  # every series: the rows are the outputs; what bulk scoring skips is NaN
+        out = {key: got.get(key) for key in SUMMARY_KEYS}
+        for key in SUMMARY_KEYS:
+            if out[key] is None:
+                out[key] = np.full(idx.size, np.nan)
+        out["limit_side"] = got.get("limit_side", np.full(idx.size, "", dtype=object))
+        return out
+    for key, val in got.items():
+        out[key][idx] = val
+    return out
 
 
 # ------------------------------------------------------------------------------- public API
@@ -575,20 +616,24 @@ def trend_exact(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slo
     pd_arr = np.asarray(prior_drift, float)
     if np.any(~((pd_arr > 0) & (pd_arr < 1))):
         raise ValueError("prior_drift must lie in (0, 1)")
-    p = prepare_series(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slope_sd)
+    p = _prepare(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slope_sd)
     c = p["y"].shape[0]
     pi = np.broadcast_to(pd_arr, (c,))
     lu = np.broadcast_to(np.asarray(np.nan if limit_upper is None else limit_upper, float), (c,))
     ll = np.broadcast_to(np.asarray(np.nan if limit_lower is None else limit_lower, float), (c,))
-    out = {k: np.full(c, np.nan) for k in SUMMARY_KEYS}
-    out["limit_side"] = np.full(c, "", dtype=object)
     x_nodes, w_nodes = quadrature(nodes)
     idx_all = np.nonzero(p["eligible"])[0]
     k = _kernels(idx_all.size * x_nodes.size)
+    out = None
+    if not (k and idx_all.size == c):  # else the compiled pass makes the summary arrays
+        out = {key: np.full(c, np.nan) for key in SUMMARY_KEYS}
+        out["limit_side"] = np.full(c, "", dtype=object)
     if k:
-        _trend_compiled(k, p, idx_all, x_nodes, w_nodes, pi, ci_prob, lu, ll, horizon, prune,
-                        intervals, out)
+        out = _trend_compiled(k, p, idx_all, x_nodes, w_nodes, pi, ci_prob, lu, ll, horizon,
+                              prune, intervals, out)
         idx_all = idx_all[:0]
+    else:
+        _densify(p)
     block = max(1, min(int(chunk), _BLOCK_ELEMS // x_nodes.size))  # (series, node) arrays in cache
     for s in range(0, idx_all.size, block):
         idx = idx_all[s : s + block]
