@@ -28,6 +28,7 @@ import math
 from collections import Counter
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
+from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -35,7 +36,7 @@ import pandas as pd
 from ..constants import DEFAULT_PRIOR_CHANGE
 from ..errors import BayesbaseError
 from ..model.engine import CaseArrays
-from .frame import years_of
+from .frame import factorized, years_of
 from .options import Options
 from .packs import RowPriors
 from .roles import CaseRows, Roles, texts_full
@@ -231,7 +232,7 @@ def codes_of(hist: pd.DataFrame, column: str, cache: dict | None = None) -> tupl
     if column not in hist:
         got = np.full(len(hist), -1, dtype=np.int64), np.array([], dtype=object)
     else:
-        codes, uniq = pd.factorize(hist[column])
+        codes, uniq = factorized(hist, column, cache)
         got = codes.astype(np.int64), np.asarray(uniq, dtype=object)
     if cache is not None:
         cache[column] = got
@@ -249,13 +250,18 @@ def _baseline_groups(hist, row_case, roles: Roles, years, cache: dict | None = N
     return idx, case, np.cumsum(new) - 1, np.flatnonzero(new)
 
 
-def _joined_specimens(hist, idx_first: np.ndarray, gcase: np.ndarray, j: np.ndarray, C: int) -> np.ndarray:
+def _joined_specimens(hist, idx_first: np.ndarray, gcase: np.ndarray, j: np.ndarray, C: int,
+                      cache: dict | None = None) -> np.ndarray:
     """"S1;S2" per case from its groups (in order, ``j``: position in the case), joined once per
-    distinct sequence of specimens (the analytes of a patient mostly share one)."""
+    distinct sequence of specimens (the analytes of a patient mostly share one); ``cache``: as
+    for :func:`codes_of`."""
     out = texts_full(C, "")
     if not len(gcase):
         return out
-    codes, uniq = pd.factorize(hist["specimen"].iloc[idx_first], use_na_sentinel=False)
+    codes, uniq = codes_of(hist, "specimen", cache)
+    codes = codes[idx_first]
+    if len(codes) and codes.min() < 0:  # a missing specimen id: named as pandas gives it
+        codes, uniq = pd.factorize(hist["specimen"].iloc[idx_first], use_na_sentinel=False)
     names = [str(s) for s in np.asarray(uniq, dtype=object).tolist()]
     seq = np.full((C, int(j.max()) + 1), -1, dtype=np.int64)
     seq[gcase, j] = codes
@@ -326,7 +332,7 @@ def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, c
         e=padded(np.bincount(g, weights=extra[idx], minlength=G) / r, 0.0), c=padded(cen_num[first], 0.0),
         t=padded(years[first], np.nan), n=np.bincount(gcase, minlength=C),
         n_assumed=np.bincount(gcase, weights=roles.assumed[first].astype(float), minlength=C).astype(int),
-        specimens=_joined_specimens(hist, first, gcase, j, C),
+        specimens=_joined_specimens(hist, first, gcase, j, C, cache),
         methods=CaseSets.of_rows(case, mcodes[idx], mnames), units=CaseSets.of_rows(case, ucodes[idx], unames),
         method_code=mcode,
     )
@@ -342,20 +348,55 @@ class AssessedResults:
     unit: list  # reported unit
     years: np.ndarray  # collection time, years since 1970
     rows: np.ndarray | None = None  # the history row of :attr:`first`, per case
+    #: column -> (code per history row, distinct values) of the history's text columns
+    #: (:func:`.frame.factorized`), when known: then texts are read once per distinct value
+    coded: Callable | None = None
+
+    def _codes(self, name: str):
+        """(code per case, distinct texts as a list) of a text column of :attr:`first`, or None."""
+        if self.coded is None or self.rows is None or name not in self.first.columns \
+                or not isinstance(self.first[name].dtype, pd.StringDtype):
+            return None
+        codes, uniq = self.coded(name)
+        return codes[self.rows], list(uniq)
 
     def col(self, name: str) -> list:
         """One column of :attr:`first` as a list (None per case when the column is absent)."""
+        got = self._codes(name)
+        if got is not None and not (len(got[0]) and got[0].min() < 0):
+            return _gather(got[1], got[0])
         return self.first[name].tolist() if name in self.first.columns else [None] * len(self.first)
 
+    def texts(self, name: str) -> tuple[np.ndarray, np.ndarray] | None:
+        """:func:`_texts` of a column of :attr:`first`: (values as objects, None where missing;
+        mask of the non-empty texts), or None when it is not a text column."""
+        got = self._codes(name)
+        if got is None:
+            return _texts(self.first[name]) if name in self.first.columns else None
+        codes, uniq = got
+        table = np.empty(len(uniq) + 1, dtype=object)
+        table[:-1] = uniq
+        nonempty = np.array([u != "" for u in uniq] + [False], dtype=bool)
+        return table[codes], nonempty[codes]
 
-def assessed_results(hist, rows: CaseRows, case_index: dict, years: np.ndarray) -> AssessedResults:
+
+#: history columns no later stage reads from the assessed rows (the roles the stages add, the
+#: rows' provenance): left out of :attr:`AssessedResults.first`
+_NOT_READ = frozenset({"role", "reason", "source_file", "source_row"})
+
+
+def assessed_results(hist, rows: CaseRows, case_index: dict, years: np.ndarray,
+                     cache: dict | None = None) -> AssessedResults:
+    """The assessed result of every case (``cache``: as for :func:`.frame.factorized`; given,
+    text columns are read through their codes)."""
     ai = np.flatnonzero(rows.is_assessed)
     acase = row_cases(rows, case_index)[ai]
     order = np.argsort(acase, kind="stable")
     ai, acase = ai[order], acase[order]
     start = np.r_[True, acase[1:] != acase[:-1]] if len(ai) else np.zeros(0, dtype=bool)
     first_rows = ai[start]
-    first = hist.iloc[first_rows]
+    keep = [k for k, c in enumerate(hist.columns) if c not in _NOT_READ]
+    first = hist.iloc[first_rows, keep] if len(keep) < hist.shape[1] else hist.iloc[first_rows]
     first.index = pd.RangeIndex(len(first_rows), name="_case")
     C = len(case_index)
     n_rep = np.bincount(acase, minlength=C).astype(float)
@@ -363,8 +404,11 @@ def assessed_results(hist, rows: CaseRows, case_index: dict, years: np.ndarray) 
     log_mean = np.bincount(acase, weights=logv[ai], minlength=C) / n_rep
     when = np.empty(C)
     when[acase] = years[ai]
-    return AssessedResults(first=first, log_mean=log_mean, n_rep=n_rep, unit=first["reported_unit"].tolist(),
-                           years=when, rows=first_rows)
+    coded = None if cache is None else (lambda name: factorized(hist, name, cache))
+    out = AssessedResults(first=first, log_mean=log_mean, n_rep=n_rep, unit=[], years=when, rows=first_rows,
+                          coded=coded)
+    unit = out.col("reported_unit") if "reported_unit" in first.columns else first["reported_unit"].tolist()
+    return replace(out, unit=unit)
 
 
 @dataclass(frozen=True)
@@ -426,7 +470,7 @@ def method_changes(assessed: AssessedResults, baselines: Baselines, analytes: li
     if assessed_codes is None:
         lookup = {v: k for k, v in enumerate(baselines.methods.names)}
         assessed_codes = np.array([lookup.get(m, -2) if isinstance(m, str) else -1 for m in after], dtype=np.int64)
-    text = _texts(assessed.first["method"]) if "method" in assessed.first.columns else None
+    text = assessed.texts("method")
     has_method = (text[1] if text is not None else
                   np.array([isinstance(m, str) and m != "" for m in after], dtype=bool))
     changed = has_method & baselines.methods.differs(np.where(has_method, assessed_codes, -1))
@@ -594,7 +638,7 @@ def _centers(prior_groups, breed: list) -> list:
 
 def _breeds(assessed: AssessedResults) -> list:
     """The breed of every case (None when blank or unknown)."""
-    text = _texts(assessed.first["breed"]) if "breed" in assessed.first.columns else None
+    text = assessed.texts("breed")
     if text is None:
         return [b if isinstance(b, str) and b else None for b in assessed.col("breed")]
     return np.where(text[1], text[0], None).tolist()
@@ -610,14 +654,15 @@ def _case_keys(assessed: AssessedResults, patient: list, analyte: list) -> np.nd
 
 
 def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPriors, packs: dict,
-                opts: Options) -> CaseBatch:
+                opts: Options, cache: dict | None = None) -> CaseBatch:
+    """The case batch (``cache``: as for :func:`.frame.factorized`)."""
     case_index = _CaseIndex(rows.assessed_keys)
     if not len(case_index):
         raise BayesbaseError("the assessed specimen has no results")
     years = years_of(hist["collected_at"])
-    codes: dict = {}
+    codes: dict = {} if cache is None else cache
     baselines = aggregate_baselines(hist, rows, roles, priors, case_index, years, codes)
-    assessed = assessed_results(hist, rows, case_index, years)
+    assessed = assessed_results(hist, rows, case_index, years, codes)
     species, analyte, patient = assessed.col("species"), assessed.col("analyte"), assessed.col("patient")
     prior, groups = _case_priors(priors, assessed, species, analyte)
     pack, pack_groups = _case_packs(packs, species)

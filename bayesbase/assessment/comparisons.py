@@ -62,22 +62,23 @@ def _baseline_means(b: CaseBatch):
     return last, gmean, amean
 
 
-def _changes(b: CaseBatch):
+def _changes(b: CaseBatch, means=None):
     """Relative change of the assessed result against the last baseline and the baseline mean
-    (geometric), NaN without a baseline."""
-    last, gmean, _ = _baseline_means(b)
+    (geometric), NaN without a baseline (``means``: :func:`_baseline_means` when known)."""
+    last, gmean, _ = _baseline_means(b) if means is None else means
     with np.errstate(invalid="ignore", divide="ignore"):
         v_eff = np.exp(b.scalars["new_y"])
         return v_eff / last - 1, v_eff / gmean - 1
 
 
-def _exact_columns(b: CaseBatch, coverage: float, cva, cvi) -> dict[str, object]:
-    """Exact difference-from-a-mean columns and both model-2 intervals (see module notes)."""
+def _exact_columns(b: CaseBatch, coverage: float, cva, cvi, means=None) -> dict[str, object]:
+    """Exact difference-from-a-mean columns and both model-2 intervals (see module notes;
+    ``means``: :func:`_baseline_means` when known)."""
     n = b.baselines.n
     has_b = n > 0
     z = classical.z_two_sided(coverage)
     v = np.exp(b.scalars["new_y"])
-    _, _, amean = _baseline_means(b)
+    _, _, amean = _baseline_means(b) if means is None else means
     rcv_exact = classical.rcv_classical(cva, cvi, z=z, n_mean=n)  # NaN where n = 0
     up_exact, down_exact = classical.rcv_lognormal(cva, cvi, z=z, n_mean=n)
     m2lo, m2hi = model2_intervals(b, coverage, "arithmetic")
@@ -106,7 +107,8 @@ def classical_comparisons(b: CaseBatch, coverage: float) -> dict[str, object]:
     rcv = classical.rcv_classical(cva, cvi)
     up, down = classical.rcv_lognormal(cva, cvi)
     has_b = b.baselines.n > 0
-    d_last, d_mean = _changes(b)
+    means = _baseline_means(b)
+    d_last, d_mean = _changes(b, means)
     with np.errstate(invalid="ignore"):
         p_sig = np.where(has_b, classical.prob_significant_change(d_mean, cva, cvi), np.nan)
     return {
@@ -117,7 +119,7 @@ def classical_comparisons(b: CaseBatch, coverage: float) -> dict[str, object]:
         "lognormal_exceeded_last": _tri((d_last > up) | (d_last < down), has_b),
         "lognormal_exceeded_mean": _tri((d_mean > up) | (d_mean < down), has_b),
         "p_significant": p_sig,
-        **_exact_columns(b, coverage, cva, cvi),
+        **_exact_columns(b, coverage, cva, cvi, means),
         "ii": classical.index_of_individuality(cvi, cvg),
         "ii_total": classical.index_of_individuality(cvi, cvg, cva),
         "n_for_setpoint": classical.n_for_setpoint(cva, cvi, 0.10),

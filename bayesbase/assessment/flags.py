@@ -62,7 +62,12 @@ def _words_by(mask, keys, make: Callable[[object], str]) -> np.ndarray:
     out = texts_full(len(mask), "")
     idx = np.flatnonzero(mask)
     if len(idx):
-        codes, uniq = pd.factorize(np.asarray(keys, dtype=object)[idx], use_na_sentinel=False)
+        keys = np.asarray(keys)
+        if keys.dtype.kind in "iub":  # integer keys: grouped by one sort
+            uniq, codes = np.unique(keys[idx], return_inverse=True)
+            uniq, codes = uniq.tolist(), codes.reshape(-1)
+        else:
+            codes, uniq = pd.factorize(np.asarray(keys, dtype=object)[idx], use_na_sentinel=False)
         out[idx] = np.asarray([make(k) for k in uniq] + [""], dtype=object)[codes]
     return out
 

@@ -10,7 +10,7 @@ from ..contract import is_canonical
 from ..errors import BayesbaseError
 
 __all__ = ["YEAR_DAYS", "SORT_COLUMNS", "canonical_frame", "select_patients", "history_frame",
-           "years_of", "in_sort_order"]
+           "years_of", "in_sort_order", "factorized"]
 
 #: days in a year for ages and time axes (Julian year)
 YEAR_DAYS = 365.25
@@ -41,6 +41,18 @@ def select_patients(frame: pd.DataFrame, wanted: set[str] | None) -> pd.DataFram
     if frame.empty:
         raise BayesbaseError("no results to assess")
     return frame
+
+
+def factorized(hist: pd.DataFrame, column: str, cache: dict | None = None):
+    """``pd.factorize(hist[column])`` (codes, uniques), made once per column for the stages of
+    one assessment: ``cache`` is a dict the stages share (None: made afresh). Only for columns
+    the stages never change."""
+    if cache is None:
+        return pd.factorize(hist[column])
+    key = ("factorize", column)
+    if key not in cache:
+        cache[key] = pd.factorize(hist[column])
+    return cache[key]
 
 
 def years_of(times: pd.Series) -> np.ndarray:

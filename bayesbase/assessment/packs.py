@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import AnalyteNotInPack, BayesbaseError
+from .frame import factorized
 
 __all__ = ["resolve_pack", "packs_by_species", "RowPriors", "row_priors"]
 
@@ -65,11 +66,12 @@ class RowPriors:
         return self.priors[c] if c >= 0 else None
 
 
-def row_priors(hist: pd.DataFrame, in_case: np.ndarray, packs: dict) -> RowPriors:
+def row_priors(hist: pd.DataFrame, in_case: np.ndarray, packs: dict, cache: dict | None = None) -> RowPriors:
     """Priors of the (species, analyte) pairs of rows in a case; an analyte missing from a
-    pack is an error naming up to five of the patients concerned."""
-    sp_codes, sp_names = pd.factorize(hist["species"])
-    an_codes, an_names = pd.factorize(hist["analyte"])
+    pack is an error naming up to five of the patients concerned (``cache``: as for
+    :func:`.frame.factorized`)."""
+    sp_codes, sp_names = factorized(hist, "species", cache)
+    an_codes, an_names = factorized(hist, "analyte", cache)
     pair = np.where((sp_codes < 0) | (an_codes < 0), -1,
                     sp_codes.astype(np.int64) * (len(an_names) + 1) + an_codes)
     codes, used = pd.factorize(pair, use_na_sentinel=False)

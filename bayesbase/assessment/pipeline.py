@@ -17,7 +17,7 @@ import threading
 from contextlib import contextmanager
 
 from ..constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DEFAULT_QUAD_NODES
-from .cases import build_cases, object_texts
+from .cases import build_cases, object_texts, text_column
 from .comparisons import classical_comparisons, classical_cvs
 from .engine_step import run_engine
 from .flags import case_flags, not_converged_flag, quality_column
@@ -104,6 +104,16 @@ def _heap_frozen():
                 gc.unfreeze()
 
 
+def _freeze_more() -> None:
+    """Inside :func:`_heap_frozen`: leave the objects made so far out of the cycle collections
+    too (the case batch holds lists of one entry per case, which every full collection would
+    walk again while the flags' lists are made); undone with the rest by the last
+    :func:`gc.unfreeze`. Outside it: nothing."""
+    with _FROZEN_LOCK:
+        if _FROZEN[0] > 0:
+            gc.freeze()
+
+
 def run(results, opts: Options) -> Assessment:
     """The stages of :func:`assess` on checked options (with the heap frozen: :func:`_heap_frozen`),
     in ``opts.jobs`` worker processes where that applies (:func:`.pool.pooled`)."""
@@ -118,17 +128,25 @@ def run(results, opts: Options) -> Assessment:
         return _stages_on(hist, opts)
 
 
+def _role_columns(roles):
+    """The history's ``role`` and ``reason`` columns (as pandas infers them from the texts)."""
+    if roles.coded is None:
+        return object_texts(roles.role), object_texts(roles.reason)
+    return tuple(text_column(codes, names) for codes, names in roles.coded)
+
+
 def _stages_on(hist, opts: Options) -> Assessment:
     """The stages after the history (:func:`.frame.history_frame`), in order; ``hist`` gets the
     role and reason of every row."""
     packs = packs_by_species(hist, opts.pack, opts.priors)
-    targets = assessed_specimens(hist, opts.at)
-    rows = case_rows(hist, targets)
-    priors = row_priors(hist, rows.in_case, packs)
+    codes: dict = {}  # the columns factorized once for every stage (.frame.factorized)
+    targets = assessed_specimens(hist, opts.at, codes)
+    rows = case_rows(hist, targets, codes)
+    priors = row_priors(hist, rows.in_case, packs, codes)
     roles = assign_roles(rows, rule_context(hist, rows, priors, opts.keep_compromised))
-    hist["role"] = object_texts(roles.role)
-    hist["reason"] = object_texts(roles.reason)
-    batch = build_cases(hist, rows, roles, priors, packs, opts)
+    hist["role"], hist["reason"] = _role_columns(roles)
+    batch = build_cases(hist, rows, roles, priors, packs, opts, codes)
+    _freeze_more()
     flags = case_flags(batch)
     result = run_engine(batch.case_arrays(), opts, batch.patient, batch.analyte)
     if not result.converged.all():

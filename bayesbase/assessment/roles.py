@@ -23,6 +23,7 @@ from ..contract import (
     ROLE_UNWELL,
 )
 from ..errors import BayesbaseError
+from .frame import factorized
 from .packs import RowPriors
 
 __all__ = ["FEEDING_SENSITIVE_DEFAULT", "Targets", "CaseRows", "RuleContext", "Roles",
@@ -86,11 +87,11 @@ def _at_time(at_s: str) -> pd.Timestamp:
     return ts
 
 
-def _targets_at(hist: pd.DataFrame, at) -> Targets:
+def _targets_at(hist: pd.DataFrame, at, cache: dict | None = None) -> Targets:
     """:func:`pick_assessed` for every patient at once (same choice, same errors): the specimen
     ``at`` names where the patient has it, else the last specimen (row order) collected on or
     before the time ``at`` gives."""
-    pc, pu, _, _, first = _specimen_rows(hist)
+    pc, pu, _, _, first = _specimen_rows(hist, cache)
     at_s = str(at)
     sp = hist["specimen"].to_numpy(dtype=object)[first]
     pick = np.full(len(pu), -1, dtype=np.int64)
@@ -109,21 +110,31 @@ def _targets_at(hist: pd.DataFrame, at) -> Targets:
     return Targets(specimen=target, collected_at=pd.Series(list(hist["collected_at"].iloc[pick]), index=pids))
 
 
-def _specimen_rows(hist: pd.DataFrame):
+def _specimen_rows(hist: pd.DataFrame, cache: dict | None = None):
     """(patient codes, patient ids, specimen codes, specimen ids, first row of every
-    (patient, specimen) in row order)."""
-    pc, pu = pd.factorize(hist["patient"])
-    sc, su = pd.factorize(hist["specimen"])
+    (patient, specimen) in row order); ``cache``: as for :func:`.frame.factorized`."""
+    pc, pu = factorized(hist, "patient", cache)
+    sc, su = factorized(hist, "specimen", cache)
     pair = pc.astype(np.int64) * (len(su) + 1) + sc
+    starts = np.flatnonzero(np.r_[True, pair[1:] != pair[:-1]]) if len(pair) else np.zeros(0, dtype=np.int64)
+    if len(_sorted_unique(pair[starts])) == len(starts):  # every pair in one run of rows (a sorted history)
+        return pc, pu, sc, su, starts
     first = np.sort(np.unique(pair, return_index=True)[1])
     return pc, pu, sc, su, first
 
 
-def assessed_specimens(hist: pd.DataFrame, at=None) -> Targets:
-    """The assessed specimen of each patient (specimens are keyed by patient and id)."""
+def _sorted_unique(values: np.ndarray) -> np.ndarray:
+    """The distinct integers of ``values`` (sorted), by one sort."""
+    a = np.sort(values)
+    return a[np.r_[True, a[1:] != a[:-1]]] if len(a) else a
+
+
+def assessed_specimens(hist: pd.DataFrame, at=None, cache: dict | None = None) -> Targets:
+    """The assessed specimen of each patient (specimens are keyed by patient and id);
+    ``cache``: as for :func:`.frame.factorized`."""
     if at is not None:
-        return _targets_at(hist, at)
-    pc, pu, _, _, first = _specimen_rows(hist)
+        return _targets_at(hist, at, cache)
+    pc, pu, _, _, first = _specimen_rows(hist, cache)
     last = np.full(len(pu), -1, dtype=np.int64)
     np.maximum.at(last, pc[first], first)  # the last specimen (in row order) of every patient
     last = np.sort(last)
@@ -147,11 +158,12 @@ class CaseRows:
     case: np.ndarray | None = None  # the case of every row (-1: in none), when known
 
 
-def case_rows(hist: pd.DataFrame, targets: Targets) -> CaseRows:
-    pc, pu = pd.factorize(hist["patient"])
-    ac, au = pd.factorize(hist["analyte"])
+def case_rows(hist: pd.DataFrame, targets: Targets, cache: dict | None = None) -> CaseRows:
+    """The rows of ``hist`` against ``targets``; ``cache``: as for :func:`.frame.factorized`."""
+    pc, pu = factorized(hist, "patient", cache)
+    ac, au = factorized(hist, "analyte", cache)
     key, _ = pd.factorize(pc.astype(np.int64) * (len(au) + 1) + ac)  # dense (patient, analyte) code
-    sc, su = pd.factorize(hist["specimen"])
+    sc, su = factorized(hist, "specimen", cache)
     pids = pd.Index(pu)
     target_code = pd.Index(su).get_indexer(pids.map(lambda p: targets.specimen.get(p)))
     is_assessed = (sc == target_code[pc]) & (target_code[pc] >= 0)
@@ -232,10 +244,18 @@ def sample_quality_rule(ctx: RuleContext, eligible: np.ndarray):
     return out, why
 
 
+def _any_per_key(flag: np.ndarray, key) -> np.ndarray:
+    """Per row: ``flag`` holds on some row of the same key (pandas' groupby ``transform("any")``;
+    counted per code when the keys are codes 0, 1, ...)."""
+    key = np.asarray(key)
+    if key.dtype.kind in "iu" and len(key) and key.min() >= 0:
+        return (np.bincount(key[flag], minlength=int(key.max()) + 1) > 0)[key]
+    return pd.Series(flag).groupby(key).transform("any").to_numpy(dtype=bool)
+
+
 def fasting_rule(ctx: RuleContext, eligible: np.ndarray):
     """For a feeding-sensitive analyte, non-fasted results are left out when fasted ones exist."""
-    has_fasted = (pd.Series(eligible & ctx.fasted).groupby(ctx.key).transform("any")
-                  .to_numpy(dtype=bool))
+    has_fasted = _any_per_key(eligible & ctx.fasted, ctx.key)
     out = eligible & ctx.feeding & has_fasted & ctx.not_fasted
     return out, "not fasted (feeding-sensitive analyte; fasted baselines exist)"
 
@@ -257,26 +277,62 @@ class Roles:
     baseline: np.ndarray
     kept: np.ndarray  # baseline kept with an index above the threshold (variance inflated)
     assumed: np.ndarray  # baseline with a blank state ("assumed healthy")
+    #: ((code per row, texts) of ``role``, the same of ``reason``), when made from codes
+    coded: tuple | None = None
+
+
+class _CodedTexts:
+    """A column of texts held as a code per row over a table of the distinct texts."""
+
+    def __init__(self, n: int, text: str):
+        self.codes = np.zeros(n, dtype=np.int64)
+        self.names, self._index = [text], {text: 0}
+
+    def _code(self, text) -> int:
+        k = self._index.get(text)
+        if k is None:
+            k = self._index[text] = len(self.names)
+            self.names.append(text)
+        return k
+
+    def set(self, mask: np.ndarray, text) -> None:
+        """``text`` where ``mask`` holds (a text, or an array of one per row)."""
+        if isinstance(text, str):
+            self.codes[mask] = self._code(text)
+            return
+        idx = np.flatnonzero(mask)
+        if len(idx):
+            self.codes[idx] = [self._code(t) for t in np.asarray(text, dtype=object)[idx].tolist()]
+
+    def values(self) -> np.ndarray:
+        """The texts as an object array."""
+        table = np.empty(len(self.names), dtype=object)
+        table[:] = self.names
+        return table[self.codes]
 
 
 def assign_roles(rows: CaseRows, ctx: RuleContext, rules=BASELINE_RULES) -> Roles:
     n = len(rows.in_case)
-    role = texts_full(n, ROLE_NOT_ASSESSED)
-    reason = texts_full(n, "analyte not measured in the assessed specimen")
-    role[rows.is_assessed] = ROLE_ASSESSED
-    reason[rows.is_assessed] = ""
-    role[rows.later] = ROLE_LATER
-    reason[rows.later] = "collected with or after the assessed specimen"
+    role = _CodedTexts(n, ROLE_NOT_ASSESSED)
+    reason = _CodedTexts(n, "analyte not measured in the assessed specimen")
+    role.set(rows.is_assessed, ROLE_ASSESSED)
+    reason.set(rows.is_assessed, "")
+    role.set(rows.later, ROLE_LATER)
+    reason.set(rows.later, "collected with or after the assessed specimen")
     eligible = rows.earlier
     for left_out_as, rule in rules:
         out, why = rule(ctx, eligible)
-        role[out] = left_out_as
-        reason[out] = why if isinstance(why, str) else why[out]
+        role.set(out, left_out_as)
+        reason.set(out, why)
         eligible = eligible & ~out
     kept = eligible & ctx.compromised & ctx.keep_compromised
-    role[eligible] = ROLE_BASELINE
-    reason[eligible] = ""
-    reason[kept] = ["kept with inflated variance: " + t for t in ctx.quality_text[kept]]
+    role.set(eligible, ROLE_BASELINE)
+    reason.set(eligible, "")
+    if kept.any():
+        why = np.empty(n, dtype=object)
+        why[kept] = ["kept with inflated variance: " + t for t in ctx.quality_text[kept]]
+        reason.set(kept, why)
     assumed = eligible & (ctx.state == "")
-    reason[assumed & ~kept] = "assumed healthy (state blank)"
-    return Roles(role=role, reason=reason, baseline=eligible, kept=kept, assumed=assumed)
+    reason.set(assumed & ~kept, "assumed healthy (state blank)")
+    return Roles(role=role.values(), reason=reason.values(), baseline=eligible, kept=kept, assumed=assumed,
+                 coded=((role.codes, role.names), (reason.codes, reason.names)))

@@ -101,7 +101,7 @@ def _pack_ids(b: CaseBatch):
 
 def _cells(flags) -> np.ndarray:
     """The flags column: an object array holding each case's list (a tuple becomes a list)."""
-    if all(type(f) is list for f in flags):
+    if set(map(type, flags)) <= {list}:
         return np.fromiter(flags, dtype=object, count=len(flags))  # the lists themselves
     out = np.empty(len(flags), dtype=object)
     for i, f in enumerate(flags):
@@ -122,7 +122,7 @@ def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classica
     cols.update(_population(b, values, engine.summary, cva, cvg))
     cols.update({
         "retest_group": b.prior_text(lambda p: p.group), "quality": _texts(quality),
-        "comparable": (~b.method.changed | b.method.corrected).tolist(), "flags": _cells(flags),
+        "comparable": np.asarray(~b.method.changed | b.method.corrected, dtype=bool), "flags": _cells(flags),
         "engine": text_column(np.zeros(len(b), dtype=np.int64), [opts.engine]), "converged": engine.converged,
         "pack": _pack_ids(b),
     })
