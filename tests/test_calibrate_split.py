@@ -131,3 +131,21 @@ def test_unequal_replicates_fall_back_to_the_joint_graph():
     data.n_rep = data.n_rep.copy()
     data.n_rep[0] = 2.0  # one specimen with two replicates: the animal's specimens differ
     assert not S.applies(data)
+
+
+def test_quadrature_parts_add_up_to_the_joint_density():
+    """The CVI integrated out (``cvi="quadrature"``): a part's graph broadcasts the analyte's
+    parameters instead of indexing them, and a padded cell (no specimen, plain nodes whose
+    weights sum to 1) adds log 1 = 0, so the padded parts add up to the joint density."""
+    _, _, data, pri = _store(drop=False)
+    parts = [S.analyte_part(data, i) for i in range(len(data.analytes))]
+    joint = M.build_model(data, pri, cvi="quadrature", nodes=8)
+    rng = np.random.default_rng(2)
+    point = {k: v + rng.normal(0.0, 0.2, np.shape(v)) for k, v in joint.initial_point().items()}
+    pad = {"cell": max(len(p.cell_analyte) for p in parts) + 2, "method_level": 1,
+           "breed_pair": max(len(p.breed_pairs) for p in parts)}
+    total = 0.0
+    for i, part in enumerate(parts):
+        m = M.build_model(part, {k: v[i:i + 1] for k, v in pri.items()}, cvi="quadrature", nodes=8, pad=pad)
+        total += float(m.compile_logp()(_part_point(data, point, i, m.initial_point())))
+    assert total == pytest.approx(float(joint.compile_logp()(point)), abs=1e-8)

@@ -18,7 +18,17 @@ CVI, 4 x 1000 draws after 1000 tuning): the 500 x 20 x 4 store took 588 CPU seco
 (about 145 building, simulating and compiling; about 22 per analyte sampling), max R-hat 1.014
 (cvi_log_sd), min bulk / tail ESS 271 / 142, 10 divergences: short of the targets. One analyte
 alone: 15 CPU s sampling, 15 leapfrog steps per draw (depth 4); the quadrature form (12 nodes)
-needs 7 steps per draw but 69 CPU s, with 6 divergences on the second analyte.
+needs 7 steps per draw but 69 CPU s, with 6 divergences on the second analyte. Again after the
+graph's parameter checks were dropped and a part's parameters broadcast (same density;
+:mod:`bayesbase.calibrate.model`, cost per gradient; 123 -> 96 microseconds per numba
+logp+gradient), load 7-14: 418 CPU seconds in all (nutpie's one compile 318 s wall under that
+load), max R-hat 1.011 (cvi_log_sd), min bulk / tail ESS 292 / 142, 17 divergences: still short.
+At about 15 leapfrog steps per draw and 96 microseconds per gradient, 20 analytes x 4 chains x
+2000 iterations need at least 20 x 8000 x 15 x 96e-6 = 230 CPU seconds, about 115 s on 2 idle
+cores: the per-call node overhead of the compiled graph and the steps per draw dominate. The
+10,000-animal creatinine store (same code, load 4-11): 515 CPU seconds in all (nutpie compile
+433 s wall under that load), max R-hat 1.008 (cvi_z), min bulk / tail ESS 1251 / 1647, 0
+divergences: converged.
 
 Each reports wall seconds, the sampling seconds alone, the seconds of building and compiling the
 model (nutpie's compile measured alone beside it), the CPU seconds of the process and its children
