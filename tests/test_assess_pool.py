@@ -1,7 +1,9 @@
 """Assessing in worker processes (:mod:`bayesbase.assessment.pool`) gives exactly what one process
 gives: the table and the annotated history (pandas ``assert_frame_equal`` with ``check_exact``),
-the flags, the attrs and the JSON, on an invented store of 4,200 dogs
-(:func:`bayesbase.testing.synthetic_canonical`). The reference is the same assessment in this
+the flags, the attrs and the JSON, on an invented store of 4,200 dogs x 2 specimens x 5 analytes
+(:func:`bayesbase.testing.synthetic_canonical`), the smallest that reaches both of the pool's
+thresholds (patients x quadrature nodes >= ``NUMBA_MIN_ELEMS``, rows >= 2 x ``MIN_ROWS_PER_JOB``;
+checked in the fixture). The reference is the same assessment in this
 process (``jobs=1``), with the compiled loops loaded as the pool loads them; the parts' row
 ranges are checked against a plain loop over the patients, and the joined text columns against
 the column pandas itself infers from the whole list of values (pandas' DataFrame constructor)."""
@@ -19,6 +21,7 @@ from bayesbase.errors import BayesbaseError
 from bayesbase.testing import synthetic_canonical
 
 FORK = "fork" in mp.get_all_start_methods()
+N_DOGS, N_ANALYTES = 4_200, 5
 
 
 def _plain_bounds(patients: list, jobs: int) -> list[tuple[int, int]]:
@@ -70,10 +73,16 @@ def test_jobs_must_be_a_whole_number_of_at_least_one():
 
 @pytest.fixture(scope="module")
 def store_frame():
-    """4,200 invented dogs x 2 specimens x 10 analytes (84,000 rows; 4,200 x 24 quadrature nodes
-    reach the compiled loops' threshold); the first third without a method, so one part's
-    method column holds no text."""
-    frame = synthetic_canonical(4_200, 2, 10)
+    """4,200 invented dogs x 2 specimens x 5 analytes (42,000 rows: two parts of at least
+    ``MIN_ROWS_PER_JOB``; 4,200 x 24 quadrature nodes reach the compiled loops' threshold
+    ``NUMBA_MIN_ELEMS``); the first third without a method, so one part's method column holds
+    no text."""
+    from bayesbase.constants import DEFAULT_QUAD_NODES
+    from bayesbase.model.normal import NUMBA_MIN_ELEMS
+
+    frame = synthetic_canonical(N_DOGS, 2, N_ANALYTES)
+    # the store is just big enough for the pool to run (a smaller one makes the test vacuous)
+    assert len(frame) >= 2 * pool.MIN_ROWS_PER_JOB and N_DOGS * DEFAULT_QUAD_NODES >= NUMBA_MIN_ELEMS
     first = frame["patient"].isin(frame["patient"].drop_duplicates().iloc[:1_400])
     frame["method"] = frame["method"].astype(object).where(~first, None).astype(frame["method"].dtype)
     return frame
@@ -95,7 +104,7 @@ def test_two_workers_give_what_one_process_gives(store_frame, monkeypatch):
     assert two.table["flags"].tolist() == one.table["flags"].tolist()
     assert two.attrs == one.attrs and list(two.packs) == list(one.packs)
     assert two.to_json() == one.to_json()
-    assert len(one.table) == 4_200 * 10
+    assert len(one.table) == N_DOGS * N_ANALYTES
 
 
 def test_pool_is_not_used_where_it_does_not_apply(store_frame, monkeypatch):

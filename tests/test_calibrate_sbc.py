@@ -16,12 +16,17 @@ The reduced model is built with the CVI layer integrated out by quadrature
 (``cvi="quadrature"``), so its free parameters are exactly the four checked.
 
 Affordable: one model is compiled per test and reused for every replicate. Each replicate's
-layout is built into a fresh (uncompiled) model by ``model.build_model``, whose data containers
-(``pm.Data``) are copied into the compiled one with ``pm.set_data``; one NUTS step object (its
-compiled log density and gradient) serves every fit. This needs every data-dependent array of
-the density to be a data container: the animals' sufficient statistics were numpy constants
-before (the reason ``pm.set_data`` did not reach the compiled density), now ``stat_*``
-containers. The transfer checks that the compiled density equals a fresh model's.
+data containers come from ``model.model_values`` (every value of the graph is a ``pm.Data``
+container) and are put into the compiled model with ``pm.set_data``; one NUTS step object (its
+compiled log density and gradient) serves every fit. The transfer is checked once against a
+fresh model built for that replicate (the compiled density equals the fresh model's).
+The chains are run by :meth:`Reused.sample`, PyMC's own loop of ``pymc.sample`` for a given
+step (``_iter_sample``: the same seeds, starting point, tuning switches and steps), without the
+functions ``pymc.sample`` compiles again on every call (the initial point, the trace's point
+function) and its InferenceData conversion; the SBC test's first replicate
+checks that it draws exactly what ``pymc.sample`` draws. The replicates are fitted in two forked
+worker processes (:func:`_map_replicates`; CI has two cores and runs the tests one at a time),
+each fit seeded by its replicate number alone, so the figures do not depend on the split.
 """
 from __future__ import annotations
 
@@ -58,35 +63,114 @@ def _layout(frame, pack, age=True):
 
 
 class Reused:
-    """One compiled model and NUTS step, refilled with each replicate's data."""
+    """One compiled model and NUTS step, refilled with each replicate's data; the traced
+    variables' point function and the initial point's function compiled once too."""
 
-    def __init__(self, data, pri):
+    def __init__(self, data, pri, cvi="quadrature", traced=None):
         import pymc as pm
+        from pymc.initial_point import make_initial_point_fn
 
         import bayesbase.mcmc.engine  # noqa: F401  (reads PyTensor's BLAS flag once, its notice silenced)
         from bayesbase.calibrate import model as M
 
-        self.pri, self.M, self.pm = pri, M, pm
-        self.model = M.build_model(data, pri, cvi="quadrature")
+        self.pri, self.M, self.pm, self.cvi = pri, M, pm, cvi
+        self.model = M.build_model(data, pri, cvi=cvi)
         self.step = pm.NUTS(model=self.model, target_accept=0.9)
         self.logp = self.model.compile_logp()
+        # what pymc.sample builds for a given step: the initial point without jitter
+        self.ipfn = make_initial_point_fn(model=self.model, overrides=None, jitter_rvs=set(), return_transformed=True)
+        names = [v.name for v in self.model.free_RVs] if traced is None else list(traced)
+        self.names = [n for n in dict.fromkeys(names) if n in self.model.named_vars]
+        outs = self.model.replace_rvs_by_values([self.model[n] for n in self.names])
+        self.trace_fn = self.model.compile_fn(outs, inputs=self.model.value_vars, point_fn=True,
+                                              on_unused_input="ignore")
         self.checked = False
 
     def set(self, data) -> None:
-        fresh = self.M.build_model(data, self.pri, cvi="quadrature")  # graph only, not compiled
-        assert {k: list(v) for k, v in fresh.coords.items()} == {k: list(v) for k, v in self.model.coords.items()}
-        values = {v.name: v.get_value() for v in fresh.data_vars}
+        values = self.M.model_values(data, self.pri, cvi=self.cvi)
+        values = {k: v for k, v in values.items() if k in self.model.named_vars}
         assert set(values) == {v.name for v in self.model.data_vars}
         self.pm.set_data(values, model=self.model)
         if not self.checked:  # once (a compile): the new data reach the compiled density
+            fresh = self.M.build_model(data, self.pri, cvi=self.cvi)
+            assert {k: list(v) for k, v in fresh.coords.items()} == {k: list(v) for k, v in self.model.coords.items()}
             ip = fresh.initial_point()
             assert self.logp(ip) == pytest.approx(fresh.compile_logp()(ip), rel=1e-10)
             self.checked = True
 
-    def sample(self, draws, tune, seed, var_names=None):
-        return self.pm.sample(draws=draws, tune=tune, chains=2, cores=1, step=self.step, random_seed=seed,
-                              progressbar=False, model=self.model, var_names=var_names,
-                              compute_convergence_checks=False, return_inferencedata=True)
+    def sample(self, draws, tune, seed, chains=2):
+        """``pymc.sample(draws, tune=tune, chains=chains, cores=1, step=self.step, random_seed=seed)``
+        as PyMC 5.28 runs it (``pymc.sampling.mcmc.sample``, ``_sample_many``, ``_iter_sample``),
+        the tuning iterations discarded; returns an ArviZ InferenceData of the traced variables
+        (posterior, with the model's dims) and the ``diverging`` stat."""
+        import arviz as az
+        from pymc.util import get_random_generator
+
+        rngs = get_random_generator(seed).spawn(chains)
+        seeds = [rng.integers(2**30) for rng in rngs]
+        state = self.step.sampling_state
+        chains_out, diverging = [], []
+        for rng, s in zip(rngs, seeds):
+            self.step.sampling_state = state
+            self.step.set_rng(rng)
+            point = self.ipfn(s)
+            self.step.tune = bool(tune)
+            self.step.reset_tuning()
+            kept, div = [], []
+            for i in range(tune + draws):
+                if i == 0:
+                    self.step.iter_count = 0
+                if i == tune:
+                    self.step.stop_tuning()
+                point, stats = self.step.step(point)
+                if i >= tune:
+                    kept.append(self.trace_fn(point))
+                    div.append(bool(stats[0]["diverging"]))
+            chains_out.append(kept)
+            diverging.append(div)
+        post = {n: np.array([[d[k] for d in c] for c in chains_out]) for k, n in enumerate(self.names)}
+        dims = {n: list(self.model.named_vars_to_dims.get(n, ())) for n in self.names}
+        coords = {k: list(v) for k, v in self.model.coords.items()}
+        return az.from_dict(posterior=post, sample_stats={"diverging": np.array(diverging)}, coords=coords,
+                            dims={n: d for n, d in dims.items() if d})
+
+
+_WORK: dict = {}  # the replicate function being mapped (read by the forked workers)
+
+
+def _run_one(i):
+    return _WORK["fn"](i)
+
+
+def _map_replicates(fn, n: int, processes: int = 2) -> list:
+    """[fn(0), ..., fn(n - 1)] computed in up to ``processes`` forked worker processes (each
+    inherits the compiled model; the replicates are independent and seeded, and each fit resets
+    the step's tuning and random generator, so a worker gives what a serial loop gives), in
+    order; serially where this system cannot fork. An assertion inside ``fn`` fails the test."""
+    import multiprocessing as mp
+
+    if processes < 2 or "fork" not in mp.get_all_start_methods():
+        return [fn(i) for i in range(n)]
+    _WORK["fn"] = fn
+    try:
+        with mp.get_context("fork").Pool(processes) as pool:
+            return pool.map(_run_one, range(n), chunksize=1)
+    finally:
+        _WORK.clear()
+
+
+def _same_as_pymc_sample(run, draws, tune, seed):
+    """:meth:`Reused.sample` draws exactly what ``pymc.sample`` draws with the same step and seed
+    (outside reference: PyMC's own sampler); returns the draws."""
+    state = run.step.sampling_state
+    ref = run.pm.sample(draws=draws, tune=tune, chains=2, cores=1, step=run.step, random_seed=seed,
+                        progressbar=False, model=run.model, var_names=run.names, compute_convergence_checks=False)
+    run.step.sampling_state = state
+    mine = run.sample(draws=draws, tune=tune, seed=seed)
+    for n in run.names:
+        np.testing.assert_array_equal(mine.posterior[n].values, ref.posterior[n].values, err_msg=n)
+    np.testing.assert_array_equal(mine.sample_stats["diverging"].values, ref.sample_stats["diverging"].values)
+    return mine
 
 
 def _reduced_truth(draw: dict, cva: float):
@@ -131,28 +215,34 @@ def test_sbc_ranks_of_a_reduced_model_are_uniform():
     start = _layout(_reduced_store(_reduced_truth({"mu": 4.5, "sigma_g": 0.2, "ln_cvi_median": -2.5,
                                                    "cvi_log_sd": 0.2}, cva), seed=0), pack, age=False)
     assert start.age_analytes == [] and not start.bias_pairs and len(start.breed_pairs) == 1
-    run = Reused(start, M.prior_values(pack, start.analytes))
+    run = Reused(start, M.prior_values(pack, start.analytes), traced=SBC_PARAMS)
     assert {v.name for v in run.model.free_RVs} == set(SBC_PARAMS)  # the reduced model
+    run.set(start)  # the transfer of data checked here, once, before the workers fork
     with run.model, warnings.catch_warnings():
         # the model's Potentials are its likelihood terms: leaving them out is what a prior draw is
         warnings.filterwarnings("ignore", message="The effect of Potentials")
         prior = pm.sample_prior_predictive(draws=SBC_REPLICATES, random_seed=2026, var_names=list(SBC_PARAMS))
     draws = {k: np.ravel(prior.prior[k].values) for k in SBC_PARAMS}
-    ranks = {k: [] for k in SBC_PARAMS}
-    covered = {k: 0 for k in SBC_PARAMS}
-    shifted, divergences = [], 0
-    for i in range(SBC_REPLICATES):
+
+    def replicate(i):
         one = {k: float(v[i]) for k, v in draws.items()}
         run.set(_layout(_reduced_store(_reduced_truth(one, cva), seed=100 + i), pack, age=False))
-        idata = run.sample(draws=100, tune=200, seed=i, var_names=list(SBC_PARAMS))
-        divergences += int(idata.sample_stats["diverging"].values.sum())
+        sample = _same_as_pymc_sample if i == 0 else Reused.sample  # the loop checked against PyMC once
+        idata = sample(run, draws=100, tune=200, seed=i)
+        out = {"divergences": int(idata.sample_stats["diverging"].values.sum())}
         for k in SBC_PARAMS:
             x = np.ravel(idata.posterior[k].values)[::2][:L_DRAWS]
-            ranks[k].append(int(np.sum(x < one[k])))
             lo, hi = np.quantile(x, [0.25, 0.75])
-            covered[k] += bool(lo <= one[k] <= hi)
+            out[k] = (int(np.sum(x < one[k])), bool(lo <= one[k] <= hi))
             if k == "mu":
-                shifted.append(int(np.sum(x < one[k] + np.std(x))))
+                out["shifted"] = int(np.sum(x < one[k] + np.std(x)))
+        return out
+
+    fits = _map_replicates(replicate, SBC_REPLICATES)
+    assert len(fits) == SBC_REPLICATES
+    ranks = {k: [f[k][0] for f in fits] for k in SBC_PARAMS}
+    covered = {k: sum(f[k][1] for f in fits) for k in SBC_PARAMS}
+    shifted, divergences = [f["shifted"] for f in fits], sum(f["divergences"] for f in fits)
     lo50, hi50 = stats.binom.interval(0.99, SBC_REPLICATES, 0.5)
     report = {k: (_uniform(r), covered[k]) for k, r in ranks.items()}
     print(f"SBC: {SBC_REPLICATES} fits, {divergences} divergences; per parameter (rank counts in {SBC_BINS} bins, "
@@ -165,7 +255,7 @@ def test_sbc_ranks_of_a_reduced_model_are_uniform():
     assert p < SBC_ALPHA, ("a shifted posterior passed the rank test", counts, p)
 
 
-RECOVERY_REPLICATES = 6  # each fit ~20 CPU-s here (PyMC NUTS, 60 dogs): 6 keep the file near 4 CPU-minutes
+RECOVERY_REPLICATES = 6  # each fit ~20 CPU-s (PyMC NUTS, 60 dogs), in two worker processes
 #: what summary_table reads, and the free parameters (diagnostics)
 _TRACED = ("center", "cvg", "cvi", "cvi_log_sd", "breed_center_all", "method_bias", "age_slope")
 
@@ -189,26 +279,31 @@ def test_parameter_recovery_over_seeded_replicates():
     from bayesbase.priors import load_pack
 
     pack = load_pack("dog")
-    run = None
-    hits: dict = {}
-    max_rhat = 0.0
-    for i in range(RECOVERY_REPLICATES):
-        frame, truth = simulate_store(seed=500 + i, n_animals=60, n_specimens=4)
+    stores = [simulate_store(seed=500 + i, n_animals=60, n_specimens=4) for i in range(RECOVERY_REPLICATES)]
+    first = _layout(stores[0][0], pack)
+    run = Reused(first, M.prior_values(pack, first.analytes), traced=[*_TRACED, *M.FREE_NAMES])
+    run.set(first)  # the transfer of data checked here, once, before the workers fork
+
+    def replicate(i):
+        frame, truth = stores[i]
         data = _layout(frame, pack)
-        if run is None:
-            run = Reused(data, M.prior_values(pack, data.analytes))
         run.set(data)
-        idata = run.sample(draws=150, tune=150, seed=i,
-                           var_names=list(dict.fromkeys([*_TRACED, *(v.name for v in run.model.free_RVs)])))
-        max_rhat = max(max_rhat, M.diagnostics(idata, 1.01, 400)["max_r_hat"])
+        idata = run.sample(draws=150, tune=150, seed=i)
         t = summary_table(idata, data, pack).set_index(["parameter", "group"])
         tr = truth["creatinine"]
         want = {("cvi", ""): tr.cvi_median, ("cvi_log_sd", ""): tr.cvi_log_sd,
                 ("method_bias", "demo analyser B"): tr.method_bias}
         want.update({("breed_center", b): tr.breed_center(b) for b in tr.breed_log_offsets})
-        for key, value in want.items():
-            r = t.loc[key]
-            hits.setdefault(key, []).append(bool(r["lower"] <= value <= r["upper"]))
+        covers = [(key, bool(t.loc[key, "lower"] <= value <= t.loc[key, "upper"])) for key, value in want.items()]
+        return M.diagnostics(idata, 1.01, 400)["max_r_hat"], covers
+
+    fits = _map_replicates(replicate, RECOVERY_REPLICATES)
+    assert len(fits) == RECOVERY_REPLICATES
+    max_rhat = max(r for r, _ in fits)
+    hits: dict = {}
+    for _, covers in fits:
+        for key, hit in covers:
+            hits.setdefault(key, []).append(hit)
     print(f"recovery: {RECOVERY_REPLICATES} stores, max R-hat {max_rhat:.3f}; covered per parameter: "
           f"{ {k: sum(h) for k, h in hits.items()} }")
     assert max_rhat < 1.1  # a sanity gate on short chains, not the product's convergence rule

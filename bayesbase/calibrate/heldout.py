@@ -8,7 +8,10 @@ Design (k-fold over animals, seeded):
 2. for each fold, :func:`bayesbase.calibrate.job.calibrate` is fitted to every result of the
    animals of the other folds (sampler seed ``seed + fold``) and its pack fragment
    (:func:`bayesbase.calibrate.output.fragment_toml`, checked by the pack schema) is loaded over
-   the prior pack: the *calibrated* arm;
+   the prior pack: the *calibrated* arm. The folds' fits run in this process one after the
+   other, so a fold whose training set has the shape of an earlier one (same padded sizes and
+   breed levels: folds of equal size) samples with that fold's compiled graph, its data swapped
+   in (:mod:`bayesbase.calibrate.split` keeps the graphs; the draws are those of a fresh compile);
 3. for each animal of the held-out fold and each analyte, its last usable specimen (usable by the
    calibration's own selection, i.e. the assessment's baseline rules) is assessed against its
    earlier usable specimens with ``bayesbase.assessment.assess`` (exact engine, the public API)

@@ -85,12 +85,21 @@ def _structure(part: CalibrationData) -> tuple:
     return bool(part.df_within[0] > 0), bool(part.age_analytes)
 
 
+#: PyMC graphs and their compiled functions (log density and gradient, jittered start, trace) kept
+#: across the fits of one process, per structure, breed levels, padded sizes and settings: a later
+#: fit of the same shape (the next fold of a held-out proof, :mod:`bayesbase.calibrate.heldout`,
+#: or the next analyte) swaps its data in (``pm.set_data``) without compiling; the last
+#: :data:`_KEPT_MAX` shapes are kept.
+_KEPT: dict = {}
+_KEPT_MAX = 4
+
+
 class _Sampler:
     """Samples each analyte's part with one compiled graph per structure (module docstring)."""
 
     def __init__(self, sampler, pad, fit_kw):
         self.sampler, self.pad, self.kw = sampler, pad, fit_kw
-        self.models, self.compiled = {}, {}
+        self.models, self.compiled, self.fns = {}, {}, {}
         self.compile_seconds = 0.0
         self.sample_seconds = 0.0
 
@@ -99,8 +108,14 @@ class _Sampler:
 
         key = _structure(part)
         if key not in self.models:
-            self.models[key] = build_model(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"],
-                                           self.kw["nodes"], pad=self.pad)
+            shape = (key, len(part.breed_levels or ()), tuple(sorted(self.pad.items())),
+                     tuple(sorted(self.kw.items())))
+            if shape not in _KEPT:
+                _KEPT[shape] = (build_model(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"],
+                                            self.kw["nodes"], pad=self.pad), {})
+                while len(_KEPT) > _KEPT_MAX:
+                    _KEPT.pop(next(iter(_KEPT)))
+            self.models[key], self.fns[key] = _KEPT[shape]
         return key, self.models[key]
 
     def sample(self, part, pri, seed, draws, tune, chains, cores, target_accept):
@@ -113,10 +128,16 @@ class _Sampler:
         values = {k: v for k, v in values.items() if k in model.named_vars}
         pm.set_data(values, model=model)  # also the initial point's data (nutpie's initial point reads them)
         if self.sampler == "pymc":
+            from ..mcmc.engine import _kept_trace, _nuts_start
+
             t0 = time.perf_counter()
-            idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
-                              target_accept=target_accept, progressbar=False, model=model,
-                              compute_convergence_checks=False, return_inferencedata=True)
+            # pymc.sample's own start and NUTS step (jitter+adapt_diag, same seeds, same draws) built
+            # with the kept compiled functions, which read the data from the model's containers
+            start, step = _nuts_start(model, "fit", chains, seed, target_accept, self.fns[key])
+            idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed, step=step,
+                              initvals=start, trace=_kept_trace(model, "fit", start[0], self.fns[key]),
+                              progressbar=False, model=model, compute_convergence_checks=False,
+                              return_inferencedata=True)
             self.sample_seconds += time.perf_counter() - t0
             return idata
         return self._nutpie(key, model, values, seed, draws, tune, chains, cores, target_accept)
