@@ -18,8 +18,12 @@ Normal(0, 1) prior of its own. Padded entries are dropped from the result, which
 fit's variables, dims and coords (``analyte``, ``cell``, ``method_level`` ...).
 
 With nutpie the graph is compiled once per structure and each analyte's data are swapped in
-(``with_data``); with PyMC the model's containers are reset (``pm.set_data``) and PyTensor's
-cache serves the compiled functions. The convergence gate (:func:`bayesbase.calibrate.model.diagnostics`)
+(``with_data``); with PyMC the model's containers are reset (``pm.set_data``) and the kept
+start and NUTS step functions are reused. Both kinds of compiled graph are kept across fits in one
+process (``_KEPT``, keyed on structure, breed levels, padded sizes and settings; at most 4), so the
+held-out folds and later calibrations of the same shape skip the compile. Like the PyMC engine's
+model cache, this is module-wide state: calibrations in concurrent threads of one process are not
+supported. The convergence gate (:func:`bayesbase.calibrate.model.diagnostics`)
 runs on the combined posterior: max R-hat and min ESS over every analyte, divergences summed.
 
 Applies when the likelihood is taken from the animals' sufficient statistics (equal replicate
