@@ -322,22 +322,6 @@ def _fit_general(nj, tj, yj, vj, lw, sg2, sb2, S):
 
 
 @_jit_sum
-def _lse(a, e, n):
-    """log(sum(exp(a[:n]))); e[:n] = exp(a - max) (for the weights)."""
-    mx = -np.inf
-    for k in range(n):
-        mx = max(mx, a[k])
-    if not np.isfinite(mx):
-        mx = 0.0
-    s = 0.0
-    for k in range(n):
-        t = vexp(a[k] - mx)
-        e[k] = t
-        s += t
-    return vlog(s) + mx, s
-
-
-@_jit_sum
 def _derived(S, kk, tcl, horizon):
     """From the H1 posterior covariance rows: the slope SD and its inverse, the variance of
     theta at the last specimen (tcl years after t_ref) and its covariance with beta, and the SD
@@ -365,7 +349,7 @@ def _copy_rows(S, src, dst, kk):
 
 @_jit_sum
 def _lse2(S, n):
-    """:func:`_lse` of the rows ml0 and ml1 (first n nodes) in one pass over the nodes: (log sum
+    """log(sum(exp(.))) of the rows ml0 and ml1 (first n nodes) in one pass over the nodes: (log sum
     exp ml0, log sum exp ml1, sum exp(ml1 - max ml1)); the weight row = exp(ml1 - max ml1).
     Functions of the per-series loop take the scratch S itself, not views of its rows (a view
     costs an atomic reference count update per call)."""
@@ -574,20 +558,10 @@ def _cross_start(z, S, kn, a, horizon):
 
 
 @_jit_sum
-def _cross_cdf(tau, w, m0, v0, mb, c0b, vb, kn, a):
-    """F(tau) = sum_j w_j Phi((m0 + mb tau - a) / s_j(tau)), s^2 = v0 + 2 tau c0b + tau^2 vb."""
-    f = 0.0
-    for j in range(kn):
-        s2 = max(v0[j] + tau * (2.0 * c0b[j] + tau * vb[j]), 1e-300)
-        zz = (m0[j] + mb[j] * tau - a) / np.sqrt(s2)
-        f += w[j] * phi(zz, vexp(-0.5 * zz * zz))
-    return f
-
-
-@_jit_sum
 def _cross_ends(S, kn, sign, pm, tcl, a, horizon):
     """The rows of the mean of theta at the last specimen m0 and of the slope mbs, signed so the
-    limit lies above (``sign`` -1 for a lower limit), and F(0), F(horizon) of :func:`_cross_cdf`
+    limit lies above (``sign`` -1 for a lower limit), and F(0), F(horizon) of the crossing CDF
+    F(tau) = sum_j w_j Phi((m0_j + mb_j tau - a) / s_j(tau)), s_j^2 = v0_j + 2 tau c0b_j + tau^2 vb_j
     (with the SDs of :func:`_derived`), in one pass over the nodes."""
     w, mt, mbr, v0r, c0r = S[_W], S[_MT], S[_MB], S[_V0], S[_C0B]
     sd0, sdh = S[_SD0], S[_SDH]
