@@ -225,3 +225,26 @@ def test_changed_font_settings_are_not_served_from_kept_stamps(monkeypatch):
         alone, ax = _alone(history, table.iloc[0], None)
         assert not ax.yaxis.get_major_formatter().get_offset()
         assert (cells[0] != alone).any(axis=2).mean() <= 0.001
+
+
+@pytest.mark.parametrize("side", ["left", "right"])
+def test_censored_result_without_history_chevron_above_star(side, monkeypatch):
+    """An analyte with no earlier result whose assessed value is censored (``<x`` / ``>x``): the
+    chevron is drawn above the star in both figures (reference: the panel on matplotlib's own
+    Axes, texts drawn by matplotlib's Text), pixel for pixel."""
+    t = pd.Timestamp("2026-05-04")
+    history = pd.DataFrame({"patient": pd.Series(dtype=object), "analyte": pd.Series(dtype=object),
+                            "specimen": pd.Series(dtype=object),
+                            "collected_at": pd.Series(dtype="datetime64[ns]"),
+                            "role": pd.Series(dtype=object), "value": pd.Series(dtype=float),
+                            "censor": pd.Series(dtype=object)})
+    table = pd.DataFrame([{
+        "patient": "P1", "analyte": "alt", "label": "Test analyte", "collected_at": t,
+        "value": 30.0, "censor": side, "p_change": 0.9, "pop_lower": 20.0, "pop_upper": 90.0,
+        "pi_lower": float("nan"), "pi_upper": float("nan")}])
+    alone, ax = _alone(history, table.iloc[0], None)
+    (note,) = [c for c in ax.get_children() if type(c).__name__ == "Annotation"]
+    (star,) = [ln for ln in ax.get_lines() if ln.get_zorder() == 7]
+    assert note.get_zorder() > star.get_zorder()
+    _, _, cells = _grid(history, table, None, True, monkeypatch)
+    assert (cells[0] != alone).any(axis=2).mean() <= 0.001

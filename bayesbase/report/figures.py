@@ -390,7 +390,8 @@ def _draw_specimens(ax, h: pd.DataFrame, row, t_assessed, compact: bool) -> floa
                         zorder=8)
     elif value is not None and row["censor"] in ("left", "right"):
         ax.annotate("v" if row["censor"] == "left" else "^", (t_assessed, value),
-                    xytext=(6, -2), textcoords="offset points", fontsize=_CHEVRON_SIZE)
+                    xytext=(6, -2), textcoords="offset points", fontsize=_CHEVRON_SIZE,
+                    zorder=8)  # above the star, as the chevrons of earlier specimens
     return value
 
 
