@@ -2,8 +2,10 @@
 importing the model stays light. Compiled once and cached on disk (numba ``cache=True``).
 
 The exact engine's one-pass kernel (:func:`engine_cases_k`) scores one case at a time with
-every per-node quantity in a small scratch array; its exp and log are branch-free polynomial
-loops (:func:`vexp`, :func:`vlog`, accurate to a few units in the last place) that the compiler
+every per-node quantity in a small scratch array, and the per-node quantities that depend on the
+case's design only (not its values) in a small table filled once per design
+(:func:`_case_design`); its exp is a branch-free polynomial loop (:func:`vexp`, accurate to a
+few units in the last place; :func:`vlog` the same for the logarithm) that the compiler
 vectorises, where a library call per element would not be.
 
 Sums over mixture components may be reordered so the CPU can vectorise them
@@ -468,38 +470,15 @@ def _baseline_sums(i, pm, sa, by, br, bev):
 
 
 @_jit_e_sum
-def _case_posterior(i, pm, sg, sa, by, br, bev, si2, lwn, sc):
-    """Per node of case i: set-point posterior mean sc[_S_M] and variance sc[_S_PV], and the
-    unnormalised log weight sc[_S_LW] = ln w_node + log marginal likelihood of the baselines,
+def _general_posterior(i, pm, sg, sa, by, br, bev, si2, lwn, m, pv, lw):
+    """Per node of case i, baselines of unequal variance: set-point posterior mean m and variance
+    pv, and the unnormalised log weight lw = ln w_node + log marginal likelihood of the baselines,
     -0.5 (sum ln v_j + ln(sG^2 prec) + sum yc_j^2 / v_j - m_c b), constants dropped (the
-    normal-normal algebra of the module docstring). Returns the number of baselines."""
-    kk = lwn.size
-    nb, sy, syy, ev0, uniform = _baseline_sums(i, pm, sa, by, br, bev)
+    normal-normal algebra of the module docstring)."""
     sg2 = sg[i] * sg[i]
     isg = 1.0 / sg2
-    m, pv, lw, a, b = sc[_S_M], sc[_S_PV], sc[_S_LW], sc[_S_A], sc[_S_B]
-    if uniform:
-        # loops of few output arrays, so the compiler vectorises them
-        for k in range(kk):
-            v0 = si2[k] + ev0
-            a[k] = v0
-            b[k] = sg2 * isg + sg2 * nb / v0
-        la, lb = sc[_S_A2], sc[_S_B2]
-        vlog(a, la, kk, sc[_S_TMP])
-        vlog(b, lb, kk, sc[_S_TMP])
-        for k in range(kk):
-            inv0 = 1.0 / a[k]
-            p = 1.0 / (isg + nb * inv0)
-            mc = sy * inv0 * p
-            lw[k] = lwn[k] - 0.5 * (nb * la[k] + lb[k] + (syy - mc * sy) * inv0)
-        for k in range(kk):
-            inv0 = 1.0 / a[k]
-            p = 1.0 / (isg + nb * inv0)
-            m[k] = sy * inv0 * p + pm[i]
-            pv[k] = p
-        return nb
     sa2 = sa[i] * sa[i]
-    for k in range(kk):
+    for k in range(lwn.size):
         prec = isg
         bb = 0.0
         qq = 0.0
@@ -517,7 +496,72 @@ def _case_posterior(i, pm, sg, sa, by, br, bev, si2, lwn, sc):
         m[k] = mc + pm[i]
         pv[k] = p
         lw[k] = lwn[k] - 0.5 * (lg + np.log(sg2 * prec) + qq - mc * bb)
-    return nb
+
+
+#: slots of the per-call table of per-node design constants, keyed by (CVI, uncertainty, sG,
+#: baseline variance, number of baselines, new-result variance, tau): every case of one design
+#: shares them; the extra last slot holds a case whose baselines differ in variance (never kept)
+_DCACHE = 64
+# rows of a design slot (one value per node): the posterior's log-weight constant, sum
+# weight 1/v0 p, 1/v0 (uniform designs only), posterior variance, H0 predictive variance V0,
+# 1/V0, 1/V1 (V1 = V0 + tau^2), 1/sqrt(V0), 1/sqrt(V1), tau / sqrt(V0 V1), tau^2 / V1,
+# 1 / sqrt(tau^2 V0 / V1), the node's CVI, sqrt(V0), sqrt(posterior variance) and its inverse
+(_D_C, _D_G, _D_I0, _D_PV, _D_NV, _D_IV0, _D_IV1, _D_IS0, _D_IS1, _D_RZ, _D_F1, _D_IDS, _D_CK,
+ _D_S0, _D_SP, _D_ISP, _D_N) = range(17)
+
+
+@_jit_e
+def _design_key(cvi, s, sg, ev0, nb, evn, tau, dkey):
+    """Slot of the design table for this key (filled by the caller on a miss, a collision only
+    recomputes) and whether it holds the key already."""
+    h = (cvi * 7919.0 + s * 104729.0 + sg * 1299709.0 + ev0 * 15485863.0 + nb * 0.6180339887
+         + evn * 32452843.0 + tau * 49979687.0)
+    slot = int(h * 64.0 - 64.0 * np.floor(h)) % _DCACHE if np.isfinite(h) else 0
+    hit = (dkey[slot, 0] == cvi and dkey[slot, 1] == s and dkey[slot, 2] == sg
+           and dkey[slot, 3] == ev0 and dkey[slot, 4] == nb and dkey[slot, 5] == evn
+           and dkey[slot, 6] == tau)
+    return slot, hit
+
+
+@_jit_e
+def _fill_uniform(d, si2, ev0, sg2, nb, lwn):
+    """Posterior rows of a design slot whose baselines share one variance ev0: per node
+    v0 = sI^2 + ev0, prec = 1/sG^2 + nb / v0, p = 1 / prec, and the log weight's constant
+    ln w_node - 0.5 (nb ln v0 + ln(sG^2 prec)); the case's part is -0.5 (syy - sy^2 p / v0) / v0
+    and its posterior mean (centred) sy p / v0 (see :func:`engine_cases_k`)."""
+    isg = 1.0 / sg2
+    for k in range(lwn.size):
+        v0 = si2[k] + ev0
+        inv0 = 1.0 / v0
+        p = 1.0 / (isg + nb * inv0)
+        d[_D_C, k] = lwn[k] - 0.5 * (nb * np.log(v0) + np.log(sg2 * isg + sg2 * nb / v0))
+        d[_D_I0, k] = inv0
+        d[_D_G, k] = inv0 * p
+        d[_D_PV, k] = p
+
+
+@_jit_e
+def _fill_scores(d, si2, ck, evn, tau2):
+    """The scores' rows of a design slot from its posterior variances d[_D_PV]."""
+    tau = np.sqrt(tau2)
+    for k in range(si2.size):
+        nv = d[_D_PV, k] + si2[k] + evn
+        v1 = nv + tau2
+        s0 = np.sqrt(nv)
+        s1 = np.sqrt(v1)
+        d[_D_NV, k] = nv
+        d[_D_IV0, k] = 1.0 / nv
+        d[_D_IV1, k] = 1.0 / v1
+        d[_D_IS0, k] = 1.0 / s0
+        d[_D_IS1, k] = 1.0 / s1
+        d[_D_RZ, k] = tau / (s0 * s1)
+        d[_D_F1, k] = tau2 / v1
+        d[_D_IDS, k] = 1.0 / np.sqrt(tau2 * nv / v1)
+        d[_D_CK, k] = ck[k]
+        d[_D_S0, k] = s0
+        sp = np.sqrt(d[_D_PV, k])
+        d[_D_SP, k] = sp
+        d[_D_ISP, k] = 1.0 / sp
 
 
 @_jit_e_sum
@@ -543,79 +587,77 @@ def _normalise(sc, kk):
 
 
 @_jit_e_sum
-def _score_terms(y, tau2, delta, sc, n, acc):
-    """Sums over the n compacted nodes (weights sc[_S_WC], means sc[_S_MC], H0 predictive variances
-    V0 sc[_S_VC]) into acc[0:5]: sum w e0/sqrt(V0), sum w e1/sqrt(V1) (the two predictive densities
-    times sqrt(2 pi)), sum w Phi(z0) (the percentile), sum w e1/sqrt(V1) Phi(zi) and, for a finite
-    delta, sum w e1/sqrt(V1) P(|D| > delta | node); V1 = V0 + tau^2, zi the H1 posterior mean of
-    the change over its SD (tau^2 r / V1 over sqrt(tau^2 V0 / V1))."""
-    wc, mc, vc = sc[_S_WC], sc[_S_MC], sc[_S_VC]
-    t0, t1, t2, e0, e1, e2 = sc[_S_T0], sc[_S_T1], sc[_S_T2], sc[_S_E0], sc[_S_E1], sc[_S_E2]
+def _score_terms(y, delta, w, m, d, lo, hi, sc, acc):
+    """Sums over the nodes lo..hi-1 (weights w, means m, design rows d) into acc[0:5]:
+    sum w e0/sqrt(V0), sum w e1/sqrt(V1) (the two predictive densities times sqrt(2 pi)),
+    sum w Phi(z0) (the percentile), sum w e1/sqrt(V1) Phi(zi) and, for a finite delta,
+    sum w e1/sqrt(V1) P(|D| > delta | node); V1 = V0 + tau^2, zi the H1 posterior mean of the
+    change over its SD (tau^2 r / V1 over sqrt(tau^2 V0 / V1)), exp(-zi^2/2) = e0 / e1."""
+    n = hi - lo
+    wv, mv = w[lo:hi], m[lo:hi]
+    iv0, iv1, is0, is1, rz = (d[_D_IV0, lo:hi], d[_D_IV1, lo:hi], d[_D_IS0, lo:hi],
+                              d[_D_IS1, lo:hi], d[_D_RZ, lo:hi])
+    t0, t1, e0, e1, u1 = sc[_S_T0], sc[_S_T1], sc[_S_E0], sc[_S_E1], sc[_S_E2]
     tmp = sc[_S_TMP]
-    tau = np.sqrt(tau2)
     # few output arrays per loop (the compiler then vectorises); the last loop only reads
     for j in range(n):
-        res = y - mc[j]
+        res = y - mv[j]
         r2 = res * res
-        t0[j] = -0.5 * r2 / vc[j]
-        t1[j] = -0.5 * r2 / (vc[j] + tau2)
-    for j in range(n):
-        t2[j] = t0[j] - t1[j]
+        t0[j] = -0.5 * r2 * iv0[j]
+        t1[j] = -0.5 * r2 * iv1[j]
     vexp(t0, e0, n, tmp)
     vexp(t1, e1, n, tmp)
-    vexp(t2, e2, n, tmp)
+    for j in range(n):
+        u1[j] = wv[j] * e1[j] * is1[j]
     a = 0.0
     b = 0.0
     c = 0.0
-    d = 0.0
+    dd = 0.0
     for j in range(n):
-        res = y - mc[j]
-        v0 = vc[j]
-        s0 = np.sqrt(v0)
-        s1 = np.sqrt(v0 + tau2)
-        u1 = wc[j] * e1[j] / s1
-        a += wc[j] * e0[j] / s0
-        b += u1
-        c += wc[j] * phi(res / s0, e0[j])
-        d += u1 * phi(res * tau / (s0 * s1), e2[j])
+        res = y - mv[j]
+        ee0 = e0[j]
+        ee1 = e1[j]
+        e2 = ee0 / ee1 if ee1 > 0.0 else 0.0  # both below 1e-307: the node adds nothing
+        a += wv[j] * ee0 * is0[j]
+        b += u1[j]
+        c += wv[j] * phi(res * is0[j], ee0)
+        dd += u1[j] * phi(res * rz[j], e2)
     acc[0] = a
     acc[1] = b
     acc[2] = c
-    acc[3] = d
-    acc[4] = _tail_terms(y, tau2, delta, sc, n) if np.isfinite(delta) else 0.0
+    acc[3] = dd
+    acc[4] = _tail_terms(y, delta, mv, d, lo, hi, sc) if np.isfinite(delta) else 0.0
 
 
 @_jit_e_sum
-def _tail_terms(y, tau2, delta, sc, n):
-    """sum w e1 / sqrt(V1) P(|D| > delta | node) over the compacted nodes (e1 in sc[_S_E1])."""
-    wc, mc, vc, e1 = sc[_S_WC], sc[_S_MC], sc[_S_VC], sc[_S_E1]
+def _tail_terms(y, delta, mv, d, lo, hi, sc):
+    """sum w e1 / sqrt(V1) P(|D| > delta | node) over the nodes lo..hi-1 (w e1 / sqrt(V1) in
+    sc[_S_E2] from :func:`_score_terms`)."""
+    n = hi - lo
+    f1, ids = d[_D_F1, lo:hi], d[_D_IDS, lo:hi]
+    u1 = sc[_S_E2]
     ea, eb, ta, tb = sc[_S_EA], sc[_S_EB], sc[_S_EA2], sc[_S_EB2]
     for j in range(n):
-        v1 = vc[j] + tau2
-        dm = tau2 / v1 * (y - mc[j])
-        dsd = np.sqrt(tau2 * vc[j] / v1)
-        za = (dm - delta) / dsd
-        zb = (-delta - dm) / dsd
+        dm = f1[j] * (y - mv[j])
+        za = (dm - delta) * ids[j]
+        zb = (-delta - dm) * ids[j]
         ta[j] = -0.5 * za * za
         tb[j] = -0.5 * zb * zb
     vexp(ta, ea, n, sc[_S_TMP])
     vexp(tb, eb, n, sc[_S_TMP])
     t = 0.0
     for j in range(n):
-        v1 = vc[j] + tau2
-        dm = tau2 / v1 * (y - mc[j])
-        dsd = np.sqrt(tau2 * vc[j] / v1)
-        u = wc[j] * e1[j] / np.sqrt(v1)
-        t += u * (phi((dm - delta) / dsd, ea[j]) + phi((-delta - dm) / dsd, eb[j]))
+        dm = f1[j] * (y - mv[j])
+        t += u1[j] * (phi((dm - delta) * ids[j], ea[j]) + phi((-delta - dm) * ids[j], eb[j]))
     return t
 
 
 @_jit_e
-def _score_logs(y, tau2, delta, lw, m, nv, l0, l1, acc):
-    """The log-sum-exp form of :func:`_score_terms` over every node for a case whose densities
+def _score_logs(y, tau2, delta, lw, m, nv, l0, l1, acc, kk):
+    """The log-sum-exp form of :func:`_score_terms` over the kk nodes for a case whose densities
     underflow (an extreme new value): acc[0:2] = log densities, acc[3], acc[4] = P(increase) and
-    P(|D| > delta) given a change (acc[2] is left as it is)."""
-    kk = lw.size
+    P(|D| > delta) given a change (acc[2] is left as it is). ``kk`` is the node count, never a
+    scratch row's length (the rows are padded for the quantile solve; the padding is unwritten)."""
     mx0 = -np.inf
     mx1 = -np.inf
     for k in range(kk):
@@ -652,25 +694,24 @@ def _score_logs(y, tau2, delta, lw, m, nv, l0, l1, acc):
 
 
 @_jit_e
-def _compact(sc, kk, thr, var_row):
-    """Copy the nodes whose weight is at least ``thr`` into sc[_S_WC], sc[_S_MC], sc[_S_VC] (the
-    variances of row ``var_row``); returns their number, the weight left out and the smallest
-    variance left out."""
-    w, m, v = sc[_S_W], sc[_S_M], sc[var_row]
-    wc, mc, vc = sc[_S_WC], sc[_S_MC], sc[_S_VC]
+def _compact(w, m, sd, isd, thr, sc, kk):
+    """Copy those of the kk nodes whose weight is at least ``thr`` into sc[_S_WC], sc[_S_MC],
+    sc[_S_VC] (their SDs ``sd``) and sc[_S_ISD] (``isd`` = 1 / sd); returns their number and the
+    weight left out. ``kk`` is the node count: ``w`` and ``m`` are scratch rows padded beyond
+    it, and the padding is never written."""
+    wc, mc, sc_, ic = sc[_S_WC], sc[_S_MC], sc[_S_VC], sc[_S_ISD]
     n = 0
     wp = 0.0
-    vmin = np.inf
     for k in range(kk):
         if w[k] >= thr:
             wc[n] = w[k]
             mc[n] = m[k]
-            vc[n] = v[k]
+            sc_[n] = sd[k]
+            ic[n] = isd[k]
             n += 1
         else:
             wp += w[k]
-            vmin = min(vmin, v[k])
-    return n, wp, vmin
+    return n, wp
 
 
 #: the quantile solves run over the compacted nodes padded with zero-weight copies of the first
@@ -695,23 +736,46 @@ def _pad(sc, n):
 
 
 @_jit_e
-def _scores_case(i, y, tau2, delta, pchg, sc, kk, wmax, acc, out):
-    """P(change), Bayes factor, percentile, P(increase), P(|D| > delta) of case i. Nodes below
-    1e-13 of the largest weight are left out unless their largest possible share of either
-    predictive density exceeds 1e-12 (an extreme new value can revive a node)."""
-    n, wp, vmin = _compact(sc, kk, 1e-13 * wmax, _S_NV)
-    _score_terms(y, tau2, delta, sc, n, acc)
-    if n < kk and not (wp <= 1e-12 * acc[0] * np.sqrt(vmin) and
-                       wp <= 1e-12 * acc[1] * np.sqrt(vmin + tau2)):
-        n, wp, vmin = _compact(sc, kk, 0.0, _S_NV)
-        _score_terms(y, tau2, delta, sc, n, acc)
+def _node_range(w, nv, thr, kk):
+    """Of the kk nodes, lo..hi-1 from the first to the last whose weight is at least ``thr``
+    (the nodes between them are kept whatever their weight), the weight outside and the smallest
+    variance nv outside. ``kk`` is the node count (``w`` is a scratch row padded beyond it)."""
+    lo = 0
+    while lo < kk - 1 and w[lo] < thr:
+        lo += 1
+    hi = kk
+    while hi > lo + 1 and w[hi - 1] < thr:
+        hi -= 1
+    wp = 0.0
+    vmin = np.inf
+    for k in range(lo):
+        wp += w[k]
+        vmin = min(vmin, nv[k])
+    for k in range(hi, kk):
+        wp += w[k]
+        vmin = min(vmin, nv[k])
+    return lo, hi, wp, vmin
+
+
+@_jit_e
+def _scores_case(i, y, tau2, delta, pchg, sc, d, kk, wmax, acc, out):
+    """P(change), Bayes factor, percentile, P(increase), P(|D| > delta) of case i. The nodes
+    before the first and after the last of at least 1e-13 of the largest weight are left out
+    unless their largest possible share of either predictive density exceeds 1e-12 (an extreme
+    new value can revive a node)."""
+    w, m = sc[_S_W], sc[_S_M]
+    lo, hi, wp, vmin = _node_range(w, d[_D_NV], 1e-13 * wmax, kk)
+    _score_terms(y, delta, w, m, d, lo, hi, sc, acc)
+    if hi - lo < kk and not (wp <= 1e-12 * acc[0] * np.sqrt(vmin) and
+                             wp <= 1e-12 * acc[1] * np.sqrt(vmin + tau2)):
+        _score_terms(y, delta, w, m, d, 0, kk, sc, acc)
     pct = acc[2]
     if acc[0] > 1e-250 and acc[1] > 1e-250:
         lbf = np.log(acc[1]) - np.log(acc[0])
         pinc = acc[3] / acc[1]
         ptail = acc[4] / acc[1]
     else:
-        _score_logs(y, tau2, delta, sc[_S_LW], sc[_S_M], sc[_S_NV], sc[_S_T0], sc[_S_T1], acc)
+        _score_logs(y, tau2, delta, sc[_S_LW], m, d[_D_NV], sc[_S_T0], sc[_S_T1], acc, kk)
         lbf = acc[1] - acc[0]
         pinc = acc[3]
         ptail = acc[4]
@@ -778,10 +842,19 @@ def _cdf_derivs(x, sc, n, d):
 @_jit_e
 def _taylor_root(g, d):
     """Root h of the Taylor polynomial P(h) = g + sum_j d[j] h^j (d[j] = F^(j) / j!) by Newton
-    from the Newton step t = -g / d[1] (five steps); t itself where that fails (h not finite or
-    more than t/2 away from t). Returns (h, t, P(h))."""
-    t = -g / max(d[1], 1e-300)
-    h = t
+    from the series reversion of its first four terms around the Newton step t = -g / d[1]
+    (h0 = t - a t^2 + (2a^2 - b) t^3 + (5ab - 5a^3 - c) t^4, a, b, c = d[2], d[3], d[4] over d[1];
+    t where |a t| > 0.1), at most five steps, done once a step is below 1e-15 of h (Newton's
+    convergence is quadratic, so what is left is far below rounding); t itself where that fails
+    (h not finite or more than t/2 away from t). Returns (h, t, P(h))."""
+    d1 = max(d[1], 1e-300)
+    t = -g / d1
+    a = d[2] / d1
+    b = d[3] / d1
+    c = d[4] / d1
+    h = t * (1.0 + t * (-a + t * ((2.0 * a * a - b) + t * (5.0 * a * b - 5.0 * a * a * a - c))))
+    if not (abs(a * t) <= 0.1):
+        h = t
     for _ in range(5):
         p = d[_QORD]
         dp = _QORD * d[_QORD]
@@ -789,7 +862,10 @@ def _taylor_root(g, d):
             p = p * h + d[j]
             dp = dp * h + j * d[j]
         p = p * h + g
-        h -= p / max(dp, 1e-300)
+        st = p / max(dp, 1e-300)
+        h -= st
+        if abs(st) <= 1e-15 * abs(h):
+            break
     if not (abs(h - t) <= 0.5 * abs(t)):
         h = t
     p = d[_QORD]
@@ -846,9 +922,10 @@ def _quantile(q, zq, sc, n, mom, tol, max_iter):
 @_jit_e_sum
 def _moments(sc, n, mom):
     """Mean, variance, third and fourth central moments of the mixture over the n compacted
-    nodes, the bracket min(m - 12 s), max(m + 12 s) (mom[0:6]; s = 1 / sc[_S_ISD]) and the
-    bounds M2 >= sup |F''|, M7 >= sup |F^(7)| of its CDF (mom[6:8]; see :func:`_quantile`)."""
-    wc, mc, isd = sc[_S_WC], sc[_S_MC], sc[_S_ISD]
+    nodes, the bracket min(m - 12 s), max(m + 12 s) (mom[0:6]; s in sc[_S_VC], 1 / s in
+    sc[_S_ISD]) and the bounds M2 >= sup |F''|, M7 >= sup |F^(7)| of its CDF (mom[6:8]; see
+    :func:`_quantile`)."""
+    wc, mc, isd, sd = sc[_S_WC], sc[_S_MC], sc[_S_ISD], sc[_S_VC]
     a = 0.0
     for j in range(n):
         a += wc[j] * mc[j]
@@ -860,7 +937,7 @@ def _moments(sc, n, mom):
     mn = np.inf
     mx = -np.inf
     for j in range(n):
-        s = 1.0 / isd[j]
+        s = sd[j]
         d = mc[j] - a
         d2 = d * d
         s2 = s * s
@@ -884,17 +961,23 @@ def _moments(sc, n, mom):
 
 
 @_jit_e
-def _intervals_case(i, levels, zl, sc, kk, wmax, prune, tol, max_iter, mom, out):
+def _intervals_case(i, levels, zl, sc, d, kk, wmax, prune, tol, max_iter, mom, out):
     """Set-point credible limits and personal-interval limits of case i from the nodes whose
     weight is at least ``prune`` times the largest (weights renormalised over them; padded by
-    :func:`_pad` after the moments)."""
+    :func:`_pad` after the moments; the SDs and their inverses from the design rows ``d``). No
+    node passing (weights NaN from NaN inputs, or ``prune`` > 1) gives NaN limits, so the
+    solve never runs over unwritten rows."""
     for part in range(2):
-        n, wp, _ = _compact(sc, kk, prune * wmax, _S_PV if part == 0 else _S_NV)
-        wc, vc, isd = sc[_S_WC], sc[_S_VC], sc[_S_ISD]
+        sd, isd = (d[_D_SP], d[_D_ISP]) if part == 0 else (d[_D_S0], d[_D_IS0])
+        n, wp = _compact(sc[_S_W], sc[_S_M], sd, isd, prune * wmax, sc, kk)
+        if n == 0:
+            for lv in range(2 * part, 2 * part + 2):
+                out[(_O_TL, _O_TU, _O_PL, _O_PU)[lv], i] = np.nan
+            continue
+        wc = sc[_S_WC]
         tot = 1.0 - wp
         for j in range(n):
             wc[j] /= tot
-            isd[j] = 1.0 / np.sqrt(vc[j])
         _moments(sc, n, mom)
         n = _pad(sc, n)
         for side in range(2):
@@ -904,44 +987,85 @@ def _intervals_case(i, levels, zl, sc, kk, wmax, prune, tol, max_iter, mom, out)
 
 
 @_jit_e
+def _case_design(i, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, nr, nev, tau, key, ck, si2, dkey,
+                 dtab, sc):
+    """Node posteriors of case i (means sc[_S_M], unnormalised log weights sc[_S_LW]) and the
+    slot of ``dtab`` holding its design's per-node constants (filled on a miss; a case whose
+    baselines differ in variance takes the last slot, filled every time). Returns (slot,
+    number of baselines)."""
+    kk = xn.size
+    nb, sy, syy, ev0, uniform = _baseline_sums(i, pm, sa, by, br, bev)
+    evn = sa[i] * sa[i] / max(nr[i], 1.0) + nev[i]
+    m, lw = sc[_S_M], sc[_S_LW]
+    if uniform:
+        slot, hit = _design_key(cvi[i], cs[i], sg[i], ev0, nb, evn, tau[i], dkey)
+        d = dtab[slot]
+        if not hit:
+            cslot = _cvi_slot(cvi[i], cs[i], xn, key, ck, si2)
+            _fill_uniform(d, si2[cslot], ev0, sg[i] * sg[i], nb, lwn)
+            _fill_scores(d, si2[cslot], ck[cslot], evn, tau[i] * tau[i])
+            dkey[slot, 0] = cvi[i]
+            dkey[slot, 1] = cs[i]
+            dkey[slot, 2] = sg[i]
+            dkey[slot, 3] = ev0
+            dkey[slot, 4] = nb
+            dkey[slot, 5] = evn
+            dkey[slot, 6] = tau[i]
+        c, g, i0 = d[_D_C], d[_D_G], d[_D_I0]
+        p = pm[i]
+        for k in range(kk):
+            lw[k] = c[k] - 0.5 * (syy - sy * sy * g[k]) * i0[k]
+        for k in range(kk):
+            m[k] = sy * g[k] + p
+        return slot, nb
+    slot = dtab.shape[0] - 1
+    d = dtab[slot]
+    cslot = _cvi_slot(cvi[i], cs[i], xn, key, ck, si2)
+    _general_posterior(i, pm, sg, sa, by, br, bev, si2[cslot], lwn, m, d[_D_PV], lw)
+    _fill_scores(d, si2[cslot], ck[cslot], evn, tau[i] * tau[i])
+    return slot, nb
+
+
+@_jit_e
 def engine_cases_k(start, stop, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, ny, nr, nev, tau,
-                   delta, pchg, levels, zl, intervals, prune, tol, max_iter, out, key, ck, si2, sc,
-                   acc):
+                   delta, pchg, levels, zl, intervals, prune, tol, max_iter, out, key, ck, si2,
+                   dkey, dtab, sc, acc):
     """Every output of the exact engine for cases start..stop-1, one case at a time (the rows
     of ``out`` follow ``OUTPUT_KEYS``): node posteriors and weights, the scores, and with
     ``intervals`` the four mixture quantiles (levels, with their normal deviates zl). Scratch
     (one set per thread, see :func:`engine_scratch`): key, ck, si2 the (CVI, uncertainty)
-    table, sc (_S_N_SCRATCH, nodes), acc (22,)."""
+    table, dkey, dtab the design table (:data:`_DCACHE`), sc (_S_N_SCRATCH, nodes), acc (22,)."""
     kk = xn.size
     mom = acc[5:22]
     for i in range(start, stop):
-        slot = _cvi_slot(cvi[i], cs[i], xn, key, ck, si2)
-        nb = _case_posterior(i, pm, sg, sa, by, br, bev, si2[slot], lwn, sc)
+        slot, nb = _case_design(i, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, nr, nev, tau, key,
+                                ck, si2, dkey, dtab, sc)
+        d = dtab[slot]
         wmax = _normalise(sc, kk)
-        w, m, pv, nv = sc[_S_W], sc[_S_M], sc[_S_PV], sc[_S_NV]
+        w, m, ckd = sc[_S_W], sc[_S_M], d[_D_CK]
         tm = 0.0
         cm = 0.0
-        ev_new = sa[i] * sa[i] / max(nr[i], 1.0) + nev[i]
         for k in range(kk):
             tm += w[k] * m[k]
-            cm += w[k] * ck[slot, k]
-            nv[k] = pv[k] + si2[slot, k] + ev_new
+            cm += w[k] * ckd[k]
         out[_O_NB, i] = nb
         out[_O_TM, i] = tm
         out[_O_CVI, i] = cm
         if np.isfinite(ny[i]):
-            _scores_case(i, ny[i], tau[i] * tau[i], delta[i], pchg[i], sc, kk, wmax, acc, out)
+            _scores_case(i, ny[i], tau[i] * tau[i], delta[i], pchg[i], sc, d, kk, wmax, acc, out)
         else:
             for o in (_O_PCT, _O_LBF, _O_BF, _O_PCH, _O_PINC, _O_PEX):
                 out[o, i] = np.nan
         if intervals:
-            _intervals_case(i, levels, zl, sc, kk, wmax, prune, tol, max_iter, mom, out)
+            _intervals_case(i, levels, zl, sc, d, kk, wmax, prune, tol, max_iter, mom, out)
         else:
             for o in (_O_TL, _O_TU, _O_PL, _O_PU):
                 out[o, i] = np.nan
 
 
 def engine_scratch(nodes):
-    """Scratch arrays for one thread of :func:`engine_cases_k` (key, ck, si2, sc, acc)."""
+    """Scratch arrays for one thread of :func:`engine_cases_k` (key, ck, si2, dkey, dtab, sc,
+    acc)."""
     return (np.full((_CACHE, 2), np.nan), np.empty((_CACHE, nodes)), np.empty((_CACHE, nodes)),
+            np.full((_DCACHE + 1, 7), np.nan), np.empty((_DCACHE + 1, _D_N, nodes)),
             np.empty((_S_N_SCRATCH, -(-nodes // _PAD) * _PAD)), np.empty(22))

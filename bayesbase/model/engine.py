@@ -24,7 +24,11 @@ case), optionally over several threads of the process. Small jobs (and an instal
 numba) use numpy: cases in blocks of about ``_BLOCK_ELEMS / nodes`` rows so every (case, node)
 array stays in the CPU cache. On both paths the usual case (baselines of equal variance) reduces
 to counts, sums and sums of squares, and the per-node CVI terms are computed once per distinct
-(CVI, uncertainty).
+(CVI, uncertainty). The compiled pass also keeps every per-node quantity that does not depend on
+the values (posterior variances, the log weights' constant part, the predictive variances, their
+square roots and inverses) once per design (CVI, uncertainty, sG, baseline variance, number of
+baselines, new-result variance, tau), so a case of a known design costs a few multiply-adds per
+node before the exponentials and normal CDFs of its scores.
 
 References
 ----------
@@ -466,9 +470,9 @@ def exact_assess(
     stays in cache). ``prune``: the four quantiles leave out the quadrature nodes whose
     posterior weight is below ``prune`` times the largest weight (of the case; on the numpy
     path, in every case of the block), so their total share is below ``prune * nodes``. The
-    compiled scores leave out nodes below 1e-13 of the largest weight only while their largest
-    possible share of either predictive density is below 1e-12 (a node an extreme new result
-    revives is kept); the numpy scores use every node.
+    compiled scores leave out the nodes before the first and after the last of at least 1e-13 of
+    the largest weight only while their largest possible share of either predictive density is
+    below 1e-12 (a node an extreme new result revives is kept); the numpy scores use every node.
     """
     if not 0 < coverage < 1 or not 0 < ci_prob < 1:
         raise ValueError("coverage and ci_prob must lie in (0, 1)")
