@@ -92,7 +92,7 @@ def store_frame():
 def test_two_workers_give_what_one_process_gives(store_frame, monkeypatch):
     from bayesbase.model import normal, trend
 
-    normal.have_numba(), trend._kernels()  # as the pool loads them before the fork
+    normal.have_numba(), trend.have_numba()  # as the pool loads them before the fork
     ran = []
     real = pool._run_parts
     monkeypatch.setattr(pool, "_run_parts", lambda *a: ran.append(len(a[1])) or real(*a))

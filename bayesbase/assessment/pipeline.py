@@ -126,16 +126,6 @@ def _heap_frozen():
                     _hugepage_advice(_FROZEN[1])
 
 
-def _freeze_more() -> None:
-    """Inside :func:`_heap_frozen`: leave the objects made so far out of the cycle collections
-    too (the case batch holds lists of one entry per case, which every full collection would
-    walk again while the flags' lists are made); undone with the rest by the last
-    :func:`gc.unfreeze`. Outside it: nothing."""
-    with _FROZEN_LOCK:
-        if _FROZEN[0] > 0:
-            gc.freeze()
-
-
 def run(results, opts: Options) -> Assessment:
     """The stages of :func:`assess` on checked options (with the heap frozen: :func:`_heap_frozen`),
     in ``opts.jobs`` worker processes where that applies (:func:`.pool.pooled`)."""
@@ -168,7 +158,6 @@ def _stages_on(hist, opts: Options) -> Assessment:
     roles = assign_roles(rows, rule_context(hist, rows, priors, opts.keep_compromised))
     hist["role"], hist["reason"] = _role_columns(roles)
     batch = build_cases(hist, rows, roles, priors, packs, opts, codes)
-    _freeze_more()
     flags = case_flags(batch)
     result = run_engine(batch.case_arrays(), opts, batch.patient, batch.analyte)
     if not result.converged.all():

@@ -106,7 +106,7 @@ def _run_parts(hist: pd.DataFrame, bounds: list, opts):
 
     # loaded before the fork: every part takes the path the whole job takes once they are loaded
     normal.have_numba()
-    trend._kernels()
+    trend.have_numba()
     pool = _workers(len(bounds))
     if pool is None:
         return None

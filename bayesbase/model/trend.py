@@ -77,6 +77,7 @@ __all__ = [
     "trend_path",
     "prepare_series",
     "drift_power",
+    "have_numba",
 ]
 
 #: Prior SD of the drift slope (log units per year) when a pack gives none. Modelling choice:
@@ -504,6 +505,12 @@ def _kernels(size=None):
         except ImportError:  # pragma: no cover - numba is a declared dependency
             _K = False
     return _K
+
+
+def have_numba() -> bool:
+    """True when the compiled drift loops are available (loading them if needed), as
+    :func:`.normal.have_numba` for the exact engine's."""
+    return bool(_kernels())
 
 
 def _c_array(a, dtype=float):
