@@ -10,7 +10,7 @@ from .engine_step import EngineResult
 from .options import Options
 from .roles import Targets
 
-__all__ = ["analyte_label", "results_table", "provenance"]
+__all__ = ["analyte_label", "frame_of_columns", "results_table", "provenance"]
 
 
 def analyte_label(aid: str) -> str:
@@ -109,11 +109,29 @@ def _cells(flags) -> np.ndarray:
     return out
 
 
+def frame_of_columns(cols: dict, keep_apart=()) -> pd.DataFrame:
+    """``pd.DataFrame(cols)`` (the reference: the same values, dtypes and column order) without
+    its copy of every numpy column into one 2-D block per dtype: each column keeps its own array.
+    The frame then owns its arrays as the copy would: a numpy array that may share memory with an
+    earlier column or with one of ``keep_apart`` (arrays that live on outside the frame) is copied
+    first, so writing into one column never changes another column or those arrays."""
+    seen = [a for a in keep_apart if isinstance(a, np.ndarray)]
+    own = {}
+    for k, v in cols.items():
+        if isinstance(v, np.ndarray) and v.ndim == 1:
+            if any(np.may_share_memory(v, a) for a in seen):
+                v = v.copy()
+            seen.append(v)
+        own[k] = v
+    return pd.DataFrame(own, copy=False)
+
+
 def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classical_cols: dict,
                   cvs: tuple, quality: list, flags: list, opts: Options) -> pd.DataFrame:
     """One row per case; column order is part of the contract (DEVELOPERS.md). The lists of
     ``flags`` (one per case, fresh from :func:`.flags.case_flags`) become the table's cells as
-    they are, not copied."""
+    they are, not copied; the columns' arrays are the table's own (:func:`frame_of_columns`; the
+    PyMC engine's summary arrays stay with its result)."""
     values = assessed_values(b)
     cva, _, cvg = cvs
     cols = _identity(b, targets, values)
@@ -126,7 +144,7 @@ def results_table(b: CaseBatch, targets: Targets, engine: EngineResult, classica
         "engine": text_column(np.zeros(len(b), dtype=np.int64), [opts.engine]), "converged": engine.converged,
         "pack": _pack_ids(b),
     })
-    return pd.DataFrame(cols)
+    return frame_of_columns(cols, list(engine.summary.values()) if engine.mcmc is not None else ())
 
 
 def provenance(b: CaseBatch, engine: EngineResult, opts: Options) -> tuple[dict, dict]:
