@@ -18,8 +18,20 @@ YEAR_DAYS = 365.25
 SORT_COLUMNS = ["patient", "collected_at", "specimen", "analyte", "replicate"]
 
 
+def _copy_on_write() -> bool:
+    """True when pandas gives every frame derived from another the behaviour of a copy (its
+    Copy-on-Write: always from pandas 3, an option before)."""
+    if int(pd.__version__.split(".")[0]) >= 3:
+        return True
+    return pd.options.mode.copy_on_write is True
+
+
 def canonical_frame(results, now=None) -> pd.DataFrame:
-    """A results file (read and validated), a canonical frame (copied) or a raw frame (validated)."""
+    """A results file (read and validated), a canonical frame (copied) or a raw frame (validated).
+    The copy of a canonical frame is pandas' lazy one where its Copy-on-Write holds
+    (:func:`_copy_on_write`): the columns' data are copied only when either frame is written to,
+    so the caller's frame and the assessment's history never change each other, as with a deep
+    copy."""
     from ..io import read_results
     from ..validate import validate
 
@@ -28,7 +40,7 @@ def canonical_frame(results, now=None) -> pd.DataFrame:
     if not isinstance(results, pd.DataFrame):
         raise BayesbaseError("results must be a file path or a pandas DataFrame")
     if is_canonical(results):
-        return results.copy()
+        return results.copy(deep=not _copy_on_write())
     return validate(results, now=now)
 
 
