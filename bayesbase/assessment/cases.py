@@ -239,6 +239,17 @@ def codes_of(hist: pd.DataFrame, column: str, cache: dict | None = None) -> tupl
     return got
 
 
+def log_values(hist: pd.DataFrame, cache: dict | None = None) -> np.ndarray:
+    """``np.log`` of the history's values, made once per assessment (``cache``: as for
+    :func:`codes_of`; the stages never change the values)."""
+    if cache is not None and ("log", "value") in cache:
+        return cache[("log", "value")]
+    got = np.log(hist["value"].to_numpy(dtype=float))
+    if cache is not None:
+        cache[("log", "value")] = got
+    return got
+
+
 def _baseline_groups(hist, row_case, roles: Roles, years, cache: dict | None = None):
     """Baseline rows in (case, time, specimen) order, with the start of each specimen's group."""
     idx = np.flatnonzero(roles.baseline)
@@ -309,8 +320,8 @@ def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, c
     row_case = row_cases(rows, case_index)
     idx, case, g, starts = _baseline_groups(hist, row_case, roles, years, cache)
     G = len(starts)
-    logv = np.log(hist["value"].to_numpy(dtype=float))
-    extra = np.where(roles.kept, priors.column(lambda p: float(p.si), 0.0) ** 2, 0.0)
+    logv = log_values(hist, cache)
+    extra = np.where(roles.kept[idx], priors.column(lambda p: float(p.si), 0.0)[idx] ** 2, 0.0)  # baseline rows
     cen_num = _censor_numbers(hist["censor"])
     r = np.bincount(g, minlength=G).astype(float)
     gcase, first = case[starts], idx[starts]
@@ -329,7 +340,7 @@ def aggregate_baselines(hist, rows: CaseRows, roles: Roles, priors: RowPriors, c
     mcode[gcase, j] = mcodes[first]
     return Baselines(
         y=padded(np.bincount(g, weights=logv[idx], minlength=G) / r, np.nan), r=padded(r, 0.0),
-        e=padded(np.bincount(g, weights=extra[idx], minlength=G) / r, 0.0), c=padded(cen_num[first], 0.0),
+        e=padded(np.bincount(g, weights=extra, minlength=G) / r, 0.0), c=padded(cen_num[first], 0.0),
         t=padded(years[first], np.nan), n=np.bincount(gcase, minlength=C),
         n_assumed=np.bincount(gcase, weights=roles.assumed[first].astype(float), minlength=C).astype(int),
         specimens=_joined_specimens(hist, first, gcase, j, C, cache),
@@ -400,8 +411,7 @@ def assessed_results(hist, rows: CaseRows, case_index: dict, years: np.ndarray,
     first.index = pd.RangeIndex(len(first_rows), name="_case")
     C = len(case_index)
     n_rep = np.bincount(acase, minlength=C).astype(float)
-    logv = np.log(hist["value"].to_numpy(dtype=float))
-    log_mean = np.bincount(acase, weights=logv[ai], minlength=C) / n_rep
+    log_mean = np.bincount(acase, weights=log_values(hist, cache)[ai], minlength=C) / n_rep
     when = np.empty(C)
     when[acase] = years[ai]
     coded = None if cache is None else (lambda name: factorized(hist, name, cache))
@@ -549,7 +559,6 @@ def prior_scalars(priors: list, packs: list, centers: list, opts: Options,
 class CaseBatch:
     """Everything the engine, the flags, the comparisons and the table read, per case."""
 
-    keys: np.ndarray  # "patient\x1fanalyte"
     patient: list
     species: list
     analyte: list
@@ -567,7 +576,12 @@ class CaseBatch:
     pack_groups: tuple | None = None  # (distinct packs, index of each case's) as :func:`distinct` gives them
 
     def __len__(self) -> int:
-        return len(self.keys)
+        return len(self.patient)
+
+    @property
+    def keys(self) -> np.ndarray:
+        """"patient\x1fanalyte" of every case (made when read: no stage needs it)."""
+        return _case_keys(self.assessed, self.patient, self.analyte)
 
     def prior_attr(self, get, dtype=float) -> np.ndarray:
         """``get(prior)`` of every case, computed once per distinct prior."""
@@ -676,7 +690,7 @@ def build_cases(hist: pd.DataFrame, rows: CaseRows, roles: Roles, priors: RowPri
     scalars["new_y"] = assessed.log_mean - method.y_shift
     scalars["new_extra_var"] = method.extra_var
     return CaseBatch(
-        keys=_case_keys(assessed, patient, analyte), patient=patient,
+        patient=patient,
         species=species, analyte=analyte, breed=breed, prior=prior, pack=pack, center=center,
         censor=[c or "" for c in assessed.col("censor")], baselines=baselines, assessed=assessed,
         method=method, scalars=scalars, engine=opts.engine, prior_groups=groups, pack_groups=pack_groups,
