@@ -182,7 +182,8 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
               reference_method: str | None = None, sampler: str = "pymc", draws: int = 1000,
               tune: int = 1000, chains: int = 4, seed: int = 0, cores: int | None = None,
               target_accept: float = 0.9, keep_compromised: bool = False, now=None,
-              heldout_folds: int = 0, age_term: bool = False, fit_form: str = "auto") -> Calibration:
+              heldout_folds: int = 0, age_term: bool = False, fit_form: str = "auto",
+              locations: str = "sampled") -> Calibration:
     """Fit the hierarchical calibration model (:mod:`bayesbase.calibrate.model`) to every usable
     result of ``species`` in a store (a ``Store`` or its file), a results file or a frame.
 
@@ -196,7 +197,9 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
     the packs' age marks describe young animals, not a steady trend over adult life; ask for it
     when the store spans ages and such a trend is plausible). ``fit_form``: ``auto`` (default)
     fits one analyte at a time where that applies (:mod:`bayesbase.calibrate.split`: the same
-    posterior, exactly), ``joint`` every analyte in one graph. Returns a
+    posterior, exactly), ``joint`` every analyte in one graph. ``locations``: the location
+    parameters sampled or integrated out exactly (:data:`bayesbase.calibrate.model.LOCATIONS`;
+    same posterior). Returns a
     :class:`Calibration`; never raises on poor convergence (it says so in ``diagnostics`` and
     ``converged``)."""
     from ..priors import Pack, load_pack
@@ -218,7 +221,7 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
 
     fitter = fit_split if fit_form == "auto" else _model.fit
     idata, diag, settings = fitter(data, pri, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler,
-                                   cores=cores, target_accept=target_accept)
+                                   cores=cores, target_accept=target_accept, locations=locations)
     table = summary_table(idata, data, pk)
     attrs = _attrs(pk, source, data, settings, diag, data.analytes, _model.prior_text(pk, data.analytes),
                    predictive_log_sd(idata))

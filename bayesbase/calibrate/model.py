@@ -135,7 +135,8 @@ from .core import CalibrationData
 __all__ = ["WIDEN", "SCALE_LOG_SD", "METHOD_SD_SCALE", "SAMPLERS", "LIKELIHOODS", "CENTRED_MIN_ANIMALS",
            "SD_GAMMA_SHAPE", "METHOD_SD_PRIOR_TEXT", "AGE_SLOPE_YEARS", "prior_values", "prior_text", "centred_breeds",
            "animal_stats", "build_model", "fit", "diagnostics", "FREE_NAMES", "CVI_FORMS", "CVI_NODES",
-           "cvi_nodes", "cvi_node_design", "model_values", "quiet", "fit_settings", "stamp"]
+           "cvi_nodes", "cvi_node_design", "model_values", "quiet", "fit_settings", "stamp", "LOCATIONS",
+           "locations_used", "location_layout", "location_design", "draw_locations"]
 
 #: Factor by which the pack's stated uncertainty is widened (bayesbase modelling choice).
 WIDEN = 2.0
@@ -145,6 +146,9 @@ SCALE_LOG_SD = 0.7
 METHOD_SD_SCALE = 0.1
 SAMPLERS = ("pymc", "nutpie")
 LIKELIHOODS = ("auto", "specimens", "animal_stats")
+#: Location parameters (mu, breed offsets, method biases, age slope) sampled, or integrated out
+#: exactly and drawn afterwards from their conditional (module docstring); ``auto``: marginal where it applies.
+LOCATIONS = ("auto", "sampled", "marginal")
 #: Shape of the boundary-avoiding Gamma priors on breed_sd and method_sd (Chung Y, Rabe-Hesketh S,
 #: Dorie V, Gelman A, Liu J. A nondegenerate penalized likelihood estimator for variance
 #: parameters in multilevel models. Psychometrika 2013;78(4):685-709: Gamma(2, rate) for a
@@ -243,12 +247,13 @@ def _pad(name, v, pad):
 
 
 def model_values(data: CalibrationData, pri: dict, breed_param: str = "auto", likelihood: str = "auto",
-                 cvi: str = "latent", pad: dict | None = None) -> dict:
+                 cvi: str = "latent", pad: dict | None = None, locations: str = "sampled") -> dict:
     """Every data container (``pm.Data``) of :func:`build_model`'s graph by name: the data, the
     prior constants (``prior_<key>``), the breed levels' parameterisation flags, the method
     levels and the sufficient statistics, so one compiled graph serves any data of the same
     structure. ``pad`` ({"cell": C, "method_level": K, "breed_pair": P}) pads the containers to
-    those sizes with entries that add nothing to the density (:mod:`bayesbase.calibrate.split`)."""
+    those sizes with entries that add nothing to the density (:mod:`bayesbase.calibrate.split`).
+    ``locations`` (the form used, :func:`locations_used`): ``marginal`` adds :func:`location_design`."""
     breeds, cell_breed = _breed_grid(data)
     a_of = {a: i for i, a in enumerate(data.analytes)}
     b_of = {b: i for i, b in enumerate(breeds)}
@@ -261,7 +266,7 @@ def model_values(data: CalibrationData, pri: dict, breed_param: str = "auto", li
                within_const=-0.5 * data.log_n_rep[ridx] - 0.5 * data.df_within[ridx] * _LOG_2PI,
                bc_analyte=[a_of[a] for a, _ in data.breed_pairs], bc_breed=[b_of[b] for _, b in data.breed_pairs])
     out.update({f"prior_{k}": np.asarray(v, dtype=float) for k, v in pri.items()})
-    if len(breeds) > 1:
+    if len(breeds) > 1 and locations != "marginal":
         out["breed_centred"] = centred_breeds(data, breeds, breed_param).astype(float)
     if data.bias_pairs or (pad or {}).get("method_level"):
         out["method_analyte"] = [a_of[a] for a, _ in data.bias_pairs]
@@ -276,7 +281,10 @@ def model_values(data: CalibrationData, pri: dict, breed_param: str = "auto", li
     for k in ("bc_analyte", "bc_breed", "method_analyte", "obs_cell", "obs_bias", "cell_analyte", "cell_breed"):
         if k in out:
             out[k] = np.asarray(out[k], dtype=int).reshape(-1)
-    return {k: _pad(k, v, pad) for k, v in out.items()}
+    out = {k: _pad(k, v, pad) for k, v in out.items()}
+    if locations == "marginal":  # padded there (cells and method slots)
+        out.update(location_design(data, pri, pad))
+    return out
 
 
 def centred_breeds(data: CalibrationData, breeds, breed_param: str = "auto") -> np.ndarray:
@@ -331,15 +339,18 @@ def _method_bias(pm, pt, d, pri, n_levels, n_analytes=2):
 
 
 def build_model(data: CalibrationData, pri: dict, breed_param: str = "auto", likelihood: str = "auto",
-                cvi: str = "latent", nodes: int | None = None, pad: dict | None = None):
+                cvi: str = "latent", nodes: int | None = None, pad: dict | None = None, locations: str = "sampled"):
     """The PyMC model of the module docstring for ``data`` with prior constants ``pri``;
     ``breed_param`` (auto, centred, noncentred) chooses the breed layer's parameterisation;
     ``likelihood`` (auto, specimens, animal_stats) how the specimen means enter: one term per
     specimen, or per animal through its sufficient statistics (:func:`animal_stats`; ``auto``
     takes them when every animal's specimens have equal replicate counts). Same density. Every
-    value is a data container (:func:`model_values`; ``pad`` pads them)."""
+    value is a data container (:func:`model_values`; ``pad`` pads them). ``locations``
+    (:data:`LOCATIONS`, :func:`locations_used`): the location parameters sampled, or integrated
+    out exactly (``marginal``: :func:`draw_locations` draws them after sampling)."""
     if likelihood not in LIKELIHOODS:
         raise ValueError(f"likelihood must be one of {LIKELIHOODS}, got {likelihood!r}")
+    loc = locations_used(data, likelihood, cvi, locations)
     import pymc as pm
     import pytensor.tensor as pt
 
@@ -350,7 +361,7 @@ def build_model(data: CalibrationData, pri: dict, breed_param: str = "auto", lik
     # a positive prior constant or a log-transformed parameter), so they only cost graph nodes
     with pm.Model(coords=coords, check_bounds=False) as model:
         d = {k: pm.Data(k, v) if np.size(v) or not k.startswith("stat_") else v
-             for k, v in model_values(data, pri, breed_param, likelihood, cvi, pad).items()}
+             for k, v in model_values(data, pri, breed_param, likelihood, cvi, pad, loc).items()}
         p = {k[6:]: v for k, v in d.items() if k.startswith("prior_")}
         ca = d["cell_analyte"]
         oa = ca[d["obs_cell"]]
@@ -358,10 +369,11 @@ def build_model(data: CalibrationData, pri: dict, breed_param: str = "auto", lik
         def cell(t):  # an analyte's value per cell; one analyte (a per-analyte part): a broadcast scalar
             return t[0] if A == 1 else t[ca]
 
+        if loc == "marginal":
+            _marginal_graph(pm, pt, data, d, p, cell, location_layout(data, pad), nodes)
+            return model
         mu = pm.Normal("mu", p["mu_loc"], p["mu_sd"], dims="analyte")
-        sigma_g = pm.LogNormal("sigma_g", pt.log(p["sg"]), SCALE_LOG_SD, dims="analyte")
-        ln_med = pm.Normal("ln_cvi_median", p["ln_cvi"], p["ln_cvi_sd"], dims="analyte")
-        spread = pm.HalfNormal("cvi_log_sd", p["spread_scale"], dims="analyte")
+        sigma_g, ln_med, spread = _scale_priors(pm, pt, p)
         offset = _breed_layer(pm, pt, d, mu, p) if len(breeds) > 1 else pt.zeros((A, 1))
         bias = _method_bias(pm, pt, d, p, len(coords["method_level"]), A)
         age = None  # optional age term: ln slope per year of each analyte (0 without the term)
@@ -370,13 +382,7 @@ def build_model(data: CalibrationData, pri: dict, breed_param: str = "auto", lik
             slope = pm.Normal("age_log_slope", 0.0, p["sg"][ai] / AGE_SLOPE_YEARS, dims="age_analyte")
             pm.Deterministic("age_slope", pt.expm1(slope), dims="age_analyte")
             age = pt.set_subtensor(pt.zeros(A)[ai], slope)
-        sa = p["sa"]
-        ridx = np.flatnonzero(data.df_within > 0)
-        if len(ridx):
-            sa_free = pm.LogNormal("sigma_a", pt.log(p["sa"][ridx]), SCALE_LOG_SD, dims="rep_analyte")
-            sa = pt.set_subtensor(sa[ridx], sa_free)
-            pm.Potential("within_specimen", pt.sum(d["within_const"] - d["df_within"] * pt.log(sa_free)
-                                                   - d["ss_within"] / (2.0 * sa_free**2)))
+        sa = _cva_layer(pm, pt, data, d, p)
         # sigma_i^2 of each cell (latent) or of each (cell, node) with the nodes' log weights
         si2, log_w = _cvi_layer(pm, pt, d, cell(ln_med), cell(spread), cvi, nodes)
         cell_off = 0.0
@@ -396,6 +402,219 @@ def build_model(data: CalibrationData, pri: dict, breed_param: str = "auto", lik
                                                        None if age is None else cell(age), log_w))
         _deterministics(pm, pt, d, len(breeds), mu, sigma_g, ln_med, sa, offset, bias)
     return model
+
+
+# ----------------------------------------------------------------------------- locations integrated out
+def locations_used(data: CalibrationData, likelihood: str = "auto", cvi: str = "latent",
+                   locations: str = "sampled") -> str:
+    """The location form a fit takes: ``marginal`` (mu, breed offsets, method biases and the age
+    slope integrated out exactly; module docstring) needs the animals' sufficient statistics and
+    the latent CVI form; ``auto`` takes it whenever those apply, else ``sampled``."""
+    if locations not in LOCATIONS:
+        raise ValueError(f"locations must be one of {LOCATIONS}, got {locations!r}")
+    ok = cvi == "latent" and likelihood != "specimens" and animal_stats(data) is not None
+    if locations == "marginal" and not ok:
+        raise ValueError("locations='marginal' needs cvi='latent' (with the CVI integrated out by quadrature a "
+                         "cell's density is a mixture, not a normal) and the animals' sufficient statistics "
+                         "(equal replicate counts within each animal, likelihood 'auto' or 'animal_stats')")
+    return "marginal" if locations == "marginal" or (locations == "auto" and ok) else "sampled"
+
+
+def location_layout(data: CalibrationData, pad: dict | None = None) -> dict:
+    """Per analyte, the location vector beta = (mu - mu_loc, breed offset per breed level (none
+    with one level), method log bias per method slot, age slope when any analyte has the term):
+    its size D, the breed count B, the method slots K (``pad`` lengthens them), the slot of each
+    method level (``data.bias_pairs``) and whether the age slot is used."""
+    breeds, _ = _breed_grid(data)
+    B = len(breeds) if len(breeds) > 1 else 0
+    slot, seen = [], {}
+    for a, _m in data.bias_pairs:
+        slot.append(seen.get(a, 0))
+        seen[a] = seen.get(a, 0) + 1
+    K = max([len(data.bias_pairs) if len(data.analytes) == 1 else max(seen.values(), default=0)]
+            + [(pad or {}).get("method_level", 0)])
+    age = bool(getattr(data, "age_analytes", []))
+    return dict(B=B, K=K, age=age, D=1 + B + K + int(age), slot=np.array(slot, dtype=int), breeds=breeds)
+
+
+def location_design(data: CalibrationData, pri: dict, pad: dict | None = None) -> dict:
+    """Data of the marginal location form (module docstring), per cell c: G = X_c'X_c, u = X_c'1
+    (and uu = u u'), g = X_c'y~, s1 = 1'y~, s2 = y~'y~, with y~ = specimen mean - mu_loc of the analyte (so beta's
+    prior mean is 0); and per analyte the flags of the method slots and the age slot that carry a
+    parameter (a slot without one has no data and a unit prior: it adds exactly nothing). Padded
+    cells (``pad``) are zero throughout, so they add exactly nothing either."""
+    lay = location_layout(data, pad)
+    B, K, D = lay["B"], lay["K"], lay["D"]
+    C = (pad or {}).get("cell", len(data.cell_analyte))
+    A = len(data.analytes)
+    oc = data.obs_cell
+    _, cell_breed = _breed_grid(data)
+    x = np.zeros((len(oc), D))
+    x[:, 0] = 1.0
+    if B:
+        x[np.arange(len(oc)), 1 + cell_breed[oc]] = 1.0
+    real = data.obs_bias < len(data.bias_pairs)
+    x[np.flatnonzero(real), 1 + B + lay["slot"][data.obs_bias[real]]] = 1.0
+    if lay["age"]:
+        x[:, -1] = 0.0 if getattr(data, "age_x", None) is None else data.age_x
+    yt = data.y - np.asarray(pri["mu_loc"], dtype=float)[data.cell_analyte[oc]]
+    G, u, g = np.zeros((C, D, D)), np.zeros((C, D)), np.zeros((C, D))
+    np.add.at(G, oc, x[:, :, None] * x[:, None, :])
+    np.add.at(u, oc, x)
+    np.add.at(g, oc, x * yt[:, None])
+    s1, s2 = np.zeros(C), np.zeros(C)
+    np.add.at(s1, oc, yt)
+    np.add.at(s2, oc, yt * yt)
+    method_real = np.zeros((A, K))
+    for k, (a, _m) in enumerate(data.bias_pairs):
+        method_real[data.analytes.index(a), lay["slot"][k]] = 1.0
+    age_real = np.array([float(a in getattr(data, "age_analytes", [])) for a in data.analytes])
+    return dict(loc_G=G, loc_u=u, loc_uu=u[:, :, None] * u[:, None, :], loc_g=g, loc_s1=s1, loc_s2=s2,
+                loc_method_real=method_real,
+                loc_age_real=age_real)
+
+
+def _location_precision(pt, p, d, lay, breed_sd, method_sd):
+    """(analyte, D) diagonal prior precision of beta: 1 / mu_sd^2, 1 / breed_sd^2 per breed level,
+    1 / method_sd^2 per method slot carrying a method (1 elsewhere), (AGE_SLOPE_YEARS / sg)^2 for
+    an analyte with the age term (1 elsewhere)."""
+    parts = [(1.0 / p["mu_sd"] ** 2)[:, None]]
+    if lay["B"]:
+        parts.append(pt.repeat((1.0 / breed_sd**2)[:, None], lay["B"], axis=1))
+    if lay["K"]:
+        real = d["loc_method_real"]
+        parts.append(real * (1.0 / method_sd**2)[:, None] + (1.0 - real))
+    if lay["age"]:
+        real = d["loc_age_real"]
+        parts.append((real * (AGE_SLOPE_YEARS / p["sg"]) ** 2 + (1.0 - real))[:, None])
+    return pt.concatenate(parts, axis=1)
+
+
+def _location_marginal(pm, pt, d, w, sg2, prec, n_analytes, D):
+    """Potential ``specimen_means`` with every location parameter integrated out (module
+    docstring): per cell Sigma_c^-1 = w I - h w^2 J, h = sg2 / (1 + sg2 m w), so A = sum_c w G -
+    h w^2 u u', b = sum_c w g - h w^2 s1 u, yy = sum_c w s2 - h w^2 s1^2; log p = sum_c -0.5 (m ln 2pi
+    - m ln w + ln(1 + sg2 m w)) - 0.5 (yy - b'(A + P)^-1 b) - 0.5 ln det(A + P) + 0.5 ln det P.
+    The solve (assume_a="pos") and slogdet, not a Cholesky factor, carry the gradient: PyTensor's
+    Cholesky gradient costs 600 us per call in numba against 29 us for these (D = 12, 500 cells;
+    measured 2026-12-04). Also the Deterministics ``loc_mean`` ((A + P)^-1 b, mu_loc not yet added
+    back) and ``loc_chol`` (the Cholesky factor L of A + P), from which the locations are drawn
+    after sampling (:func:`draw_locations`)."""
+    import pytensor
+    from pytensor.tensor.linalg import cholesky, slogdet, solve
+
+    with warnings.catch_warnings():  # read once: a pip-installed PyTensor says it links no BLAS (as mcmc.engine)
+        warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
+        _ = pytensor.config.blas__ldflags
+    m = d["stat_m"]
+    hw2 = sg2 / (1.0 + sg2 * m * w) * w * w
+    s1 = d["loc_s1"]
+    const = -0.5 * pt.sum(m * _LOG_2PI - m * pt.log(w) + pt.log1p(sg2 * m * w))
+    if n_analytes == 1:
+        wa, ha = w[:, None], hw2[:, None]
+    else:
+        onehot = pt.eq(d["cell_analyte"][:, None], np.arange(n_analytes)[None, :])
+        wa, ha = w[:, None] * onehot, hw2[:, None] * onehot
+    amat = pt.tensordot(wa, d["loc_G"], axes=[[0], [0]]) - pt.tensordot(ha, d["loc_uu"], axes=[[0], [0]])
+    bvec = pt.dot(wa.T, d["loc_g"]) - pt.dot((ha * s1[:, None]).T, d["loc_u"])
+    yy = pt.sum(w * d["loc_s2"] - hw2 * s1 * s1)
+    eye = np.eye(D)
+    quad, logdet, means, chols = 0.0, 0.0, [], []
+    for a in range(n_analytes):
+        mat = amat[a] + eye * prec[a][None, :]
+        mean = solve(mat, bvec[a], assume_a="pos")
+        quad = quad + pt.dot(bvec[a], mean)
+        logdet = logdet + slogdet(mat)[1]
+        means.append(mean)
+        chols.append(cholesky(mat, lower=True))  # reported only (not in the gradient)
+    pm.Deterministic("loc_mean", pt.stack(means))
+    pm.Deterministic("loc_chol", pt.stack(chols))
+    return const - 0.5 * (yy - quad) - 0.5 * logdet + 0.5 * pt.sum(pt.log(prec))
+
+
+def draw_locations(idata, values: dict, data: CalibrationData, coords: dict, seed: int, pad: dict | None = None):
+    """After a marginal fit: for every posterior draw, beta from its exact conditional
+    N(loc_mean, (L L')^-1) (numpy.random.default_rng(seed)), put into the posterior under the
+    sampled form's names and dims (mu, breed_offset, method_log_bias, age_log_slope, age_slope,
+    center, breed_center_all, method_bias); ``loc_mean`` and ``loc_chol`` are dropped."""
+    import xarray as xr
+
+    post = idata.posterior
+    lay = location_layout(data, pad)
+    mean, chol = post["loc_mean"].values, post["loc_chol"].values
+    z = np.random.default_rng(seed).standard_normal(mean.shape)
+    beta = mean + np.linalg.solve(np.swapaxes(chol, -1, -2), z[..., None])[..., 0]  # + L'^-1 z
+    cd = {"chain": post.chain.values, "draw": post.draw.values}
+    mu = beta[..., 0] + np.asarray(values["prior_mu_loc"], dtype=float)
+    new = {"mu": (("chain", "draw", "analyte"), mu), "center": (("chain", "draw", "analyte"), np.exp(mu))}
+    ba, bi = np.asarray(values["bc_analyte"]), np.asarray(values["bc_breed"])
+    off_bc = 0.0
+    if lay["B"]:
+        off = beta[..., 1:1 + lay["B"]]
+        new["breed_offset"] = (("chain", "draw", "analyte", "breed"), off)
+        off_bc = off[:, :, ba, bi]
+    new["breed_center_all"] = (("chain", "draw", "breed_center_all_dim_0"), np.exp(mu[:, :, ba] + off_bc))
+    n_levels = len(coords["method_level"])
+    if n_levels:
+        ma = np.asarray(values["method_analyte"]) if len(data.analytes) > 1 else np.zeros(n_levels, dtype=int)
+        slot = np.concatenate([lay["slot"], np.arange(len(lay["slot"]), n_levels)]) if len(data.analytes) == 1 \
+            else lay["slot"]
+        mb = beta[:, :, ma, 1 + lay["B"] + slot]
+        new["method_log_bias"] = (("chain", "draw", "method_level"), mb)
+        new["method_bias"] = (("chain", "draw", "method_level"), np.expm1(mb))
+    if coords["age_analyte"]:
+        ai = [data.analytes.index(a) for a in coords["age_analyte"]]
+        sl = beta[:, :, ai, -1]
+        new["age_log_slope"] = (("chain", "draw", "age_analyte"), sl)
+        new["age_slope"] = (("chain", "draw", "age_analyte"), np.expm1(sl))
+    ds = xr.Dataset(new, coords={**cd, **{k: coords[k] for k in ("analyte", "breed", "method_level", "age_analyte")
+                                          if any(k in v[0] for v in new.values())}})
+    merged = post.drop_vars(["loc_mean", "loc_chol"] + [c for c in post.coords if str(c).startswith("loc_")],
+                            errors="ignore").assign(ds.data_vars)
+    merged.attrs.update(post.attrs)
+    idata.posterior = merged
+    return idata
+
+
+def _scale_priors(pm, pt, p):
+    """sigma_g, ln_cvi_median and cvi_log_sd (module docstring's priors)."""
+    sigma_g = pm.LogNormal("sigma_g", pt.log(p["sg"]), SCALE_LOG_SD, dims="analyte")
+    ln_med = pm.Normal("ln_cvi_median", p["ln_cvi"], p["ln_cvi_sd"], dims="analyte")
+    return sigma_g, ln_med, pm.HalfNormal("cvi_log_sd", p["spread_scale"], dims="analyte")
+
+
+def _cva_layer(pm, pt, data, d, p):
+    """sigma_a per analyte: learned from the within-specimen replicates where any, else the pack's."""
+    sa = p["sa"]
+    ridx = np.flatnonzero(data.df_within > 0)
+    if len(ridx):
+        sa_free = pm.LogNormal("sigma_a", pt.log(p["sa"][ridx]), SCALE_LOG_SD, dims="rep_analyte")
+        sa = pt.set_subtensor(sa[ridx], sa_free)
+        pm.Potential("within_specimen", pt.sum(d["within_const"] - d["df_within"] * pt.log(sa_free)
+                                               - d["ss_within"] / (2.0 * sa_free**2)))
+    return sa
+
+
+def _marginal_graph(pm, pt, data, d, p, cell, lay, nodes):
+    """The model with every location parameter integrated out (module docstring): the scale
+    parameters, the latent CVI layer and the potential of :func:`_location_marginal`."""
+    A = len(data.analytes)
+    sigma_g, ln_med, spread = _scale_priors(pm, pt, p)
+    breed_sd = method_sd = None
+    if lay["B"]:
+        breed_sd = pm.Gamma("breed_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / p["breed_sd_scale"],
+                            dims="analyte")
+    if lay["K"]:
+        method_sd = pm.Gamma("method_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / p["method_sd_scale"],
+                             dims="analyte")
+    sa = _cva_layer(pm, pt, data, d, p)
+    si2, _ = _cvi_layer(pm, pt, d, cell(ln_med), cell(spread), "latent", nodes)
+    v = si2 + cell(sa) ** 2 / d["stat_n_rep"]
+    prec = _location_precision(pt, p, d, lay, breed_sd, method_sd)
+    pm.Potential("specimen_means", _location_marginal(pm, pt, d, 1.0 / v, cell(sigma_g**2), prec, A, lay["D"]))
+    pm.Deterministic("cvg", pt.sqrt(pt.expm1(sigma_g**2)), dims="analyte")
+    pm.Deterministic("cvi", pt.exp(ln_med), dims="analyte")
+    pm.Deterministic("cva", pt.sqrt(pt.expm1(sa**2)), dims="analyte")
 
 
 def cvi_nodes(n: int = None):
@@ -582,7 +801,7 @@ def quiet():
 
 
 def fit_settings(data: CalibrationData, *, draws, tune, chains, seed, sampler, cores, target_accept, breed_param,
-                 likelihood, cvi, nodes) -> dict:
+                 likelihood, cvi, nodes, locations="sampled") -> dict:
     """The settings of a fit (checked), stamped on its result."""
     if draws < 1 or tune < 0 or chains < 1:
         raise ValueError("draws >= 1, tune >= 0 and chains >= 1 are required")
@@ -595,14 +814,16 @@ def fit_settings(data: CalibrationData, *, draws, tune, chains, seed, sampler, c
                 seed=int(seed), target_accept=float(target_accept), breed_param=breed_param,
                 likelihood=likelihood, cvi=cvi, cvi_nodes=0 if cvi == "latent" else int(nodes or CVI_NODES),
                 likelihood_used="specimens" if likelihood == "specimens" or animal_stats(data) is None
-                else "animal_stats", centred_breed_levels=n_centred if len(breeds) > 1 else 0)
+                else "animal_stats", centred_breed_levels=n_centred if len(breeds) > 1 else 0,
+                locations=locations, locations_used=locations_used(data, likelihood, cvi, locations))
 
 
 def stamp(idata, settings: dict) -> None:
     """The fit's form and timings on the posterior's attrs."""
     idata.posterior.attrs.update(likelihood=settings["likelihood_used"], breed_param=settings["breed_param"],
                                  cvi=settings["cvi"], cvi_nodes=settings["cvi_nodes"],
-                                 centred_breed_levels=settings["centred_breed_levels"])
+                                 centred_breed_levels=settings["centred_breed_levels"],
+                                 locations=settings.get("locations_used", "sampled"))
     for k in ("sample_seconds", "compile_seconds", "fit_form"):
         if k in settings:
             idata.posterior.attrs[k] = settings[k]
@@ -610,21 +831,28 @@ def stamp(idata, settings: dict) -> None:
 
 def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
         seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9,
-        breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None):
+        breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None,
+        locations: str = "sampled"):
     """Sample the model (every analyte in one graph); returns (idata, diagnostics, settings).
+    ``locations`` (:data:`LOCATIONS`): sampled, or integrated out and drawn after sampling from
+    their exact conditional (seeded from ``seed``; :func:`draw_locations`).
     ``cvi``: the animals' CVIs latent (default) or integrated out by quadrature over ``nodes``
     nodes (default :data:`CVI_NODES`; module docstring). Never raises on poor convergence:
     ``diagnostics["converged"]`` says so. :func:`bayesbase.calibrate.split.fit_split` fits the
     same posterior one analyte at a time."""
     settings = fit_settings(data, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler, cores=cores,
                             target_accept=target_accept, breed_param=breed_param, likelihood=likelihood, cvi=cvi,
-                            nodes=nodes)
+                            nodes=nodes, locations=locations)
     from ..mcmc.engine import ESS_MIN, RHAT_MAX  # also loads PyMC and ArviZ (notice handled there)
 
     with quiet():
         t0 = time.perf_counter()
-        model = build_model(data, pri, breed_param, likelihood, cvi, nodes)
+        loc = settings["locations_used"]
+        model = build_model(data, pri, breed_param, likelihood, cvi, nodes, locations=loc)
         idata = _sample(model, sampler, draws, tune, chains, settings["cores"], seed, target_accept, settings)
+        if loc == "marginal":
+            draw_locations(idata, model_values(data, pri, breed_param, likelihood, cvi, None, loc), data,
+                           {k: list(v) for k, v in model.coords.items()}, seed)
         settings["fit_form"] = "joint"
         stamp(idata, settings)
         settings["seconds"] = time.perf_counter() - t0
@@ -661,7 +889,8 @@ def diagnostics(idata, rhat_max: float, ess_min: float) -> dict:
     import arviz as az
 
     post = idata.posterior
-    names = [n for n in FREE_NAMES if n in post]
+    # marginal locations: the breed offsets are exact conditional draws (no breed_raw): checked too
+    names = [n for n in FREE_NAMES + (() if "breed_raw" in post else ("breed_offset",)) if n in post]
     sel = post[names]
     rh, eb, et = az.rhat(sel), az.ess(sel, method="bulk"), az.ess(sel, method="tail")
 

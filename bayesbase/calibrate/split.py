@@ -116,7 +116,7 @@ class _Sampler:
                      tuple(sorted(self.kw.items())))
             if shape not in _KEPT:
                 _KEPT[shape] = (build_model(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"],
-                                            self.kw["nodes"], pad=self.pad), {})
+                                            self.kw["nodes"], pad=self.pad, locations=self.kw["locations"]), {})
                 while len(_KEPT) > _KEPT_MAX:
                     _KEPT.pop(next(iter(_KEPT)))
             self.models[key], self.fns[key] = _KEPT[shape]
@@ -128,8 +128,9 @@ class _Sampler:
         from .model import model_values
 
         key, model = self._model(part, pri)
-        values = model_values(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"], self.pad)
-        values = {k: v for k, v in values.items() if k in model.named_vars}
+        every = model_values(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"], self.pad,
+                             self.kw["locations"])
+        values = {k: v for k, v in every.items() if k in model.named_vars}
         pm.set_data(values, model=model)  # also the initial point's data (nutpie's initial point reads them)
         if self.sampler == "pymc":
             from ..mcmc.engine import _kept_trace, _nuts_start
@@ -143,8 +144,13 @@ class _Sampler:
                               progressbar=False, model=model, compute_convergence_checks=False,
                               return_inferencedata=True)
             self.sample_seconds += time.perf_counter() - t0
-            return idata
-        return self._nutpie(key, model, values, seed, draws, tune, chains, cores, target_accept)
+        else:
+            idata = self._nutpie(key, model, values, seed, draws, tune, chains, cores, target_accept)
+        if self.kw["locations"] == "marginal":  # the locations, drawn from their exact conditional per draw
+            from .model import draw_locations
+
+            draw_locations(idata, every, part, {k: list(v) for k, v in model.coords.items()}, seed, self.pad)
+        return idata
 
     def _nutpie(self, key, model, values, seed, draws, tune, chains, cores, target_accept):
         try:
@@ -213,14 +219,17 @@ def combine(data: CalibrationData, parts, idatas):
 
 def fit_split(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
               seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9,
-              breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None):
+              breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None,
+              locations: str = "sampled"):
     """:func:`bayesbase.calibrate.model.fit`, one analyte at a time (module docstring); the
     joint fit when :func:`applies` is False. Analyte i samples with the i-th of the seeds
-    ``numpy.random.default_rng(seed)`` draws. Returns (idata, diagnostics, settings)."""
+    ``numpy.random.default_rng(seed)`` draws (and, with ``locations`` marginal, draws its
+    locations from their conditional with the same seed). Returns (idata, diagnostics, settings)."""
     from . import model as _m
 
     kw = dict(draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler, cores=cores,
-              target_accept=target_accept, breed_param=breed_param, likelihood=likelihood, cvi=cvi, nodes=nodes)
+              target_accept=target_accept, breed_param=breed_param, likelihood=likelihood, cvi=cvi, nodes=nodes,
+              locations=locations)
     if not applies(data, likelihood):
         return _m.fit(data, pri, **kw)
     settings = _m.fit_settings(data, **kw)
@@ -230,7 +239,8 @@ def fit_split(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int 
         t0 = time.perf_counter()
         parts = [analyte_part(data, i) for i in range(len(data.analytes))]
         pad = {k: max(_sizes(p)[k] for p in parts) for k in ("cell", "method_level", "breed_pair")}
-        smp = _Sampler(sampler, pad, dict(breed_param=breed_param, likelihood=likelihood, cvi=cvi, nodes=nodes))
+        smp = _Sampler(sampler, pad, dict(breed_param=breed_param, likelihood=likelihood, cvi=cvi, nodes=nodes,
+                                          locations=settings["locations_used"]))
         seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=len(parts))
         idatas = [smp.sample(p, {k: np.asarray(v)[i:i + 1] for k, v in pri.items()}, int(seeds[i]), draws, tune,
                              chains, settings["cores"], target_accept) for i, p in enumerate(parts)]
