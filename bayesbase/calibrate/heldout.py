@@ -245,9 +245,10 @@ def heldout_proof(results_or_store, *, species: str = "dog", analytes=None, pack
                   seed: int = 0, shift: float = DEFAULT_SHIFT, coverage: float = 0.95,
                   reference_method: str | None = None, sampler: str = "pymc", draws: int = 1000, tune: int = 1000,
                   chains: int = 4, cores: int | None = None, target_accept: float = 0.9,
-                  keep_compromised: bool = False, now=None) -> HeldOut:
+                  keep_compromised: bool = False, now=None, locations: str = "auto") -> HeldOut:
     """k-fold held-out proof of the module docstring on a store (a ``Store`` or its file), a
-    results file or a frame. Fold assignment and sampler seeds derive from ``seed``. Returns a
+    results file or a frame. Fold assignment and sampler seeds derive from ``seed``; ``locations``
+    as in :func:`bayesbase.calibrate.job.calibrate`. Returns a
     :class:`HeldOut`; never raises on poor convergence (``folds`` and ``converged`` say so)."""
     from ..priors import Pack, load_pack
     from .core import load_input, select_specimens
@@ -262,7 +263,7 @@ def heldout_proof(results_or_store, *, species: str = "dog", analytes=None, pack
     frame = frame[frame["patient"].astype(str).isin(fold_of.index)]
     fit_kw = dict(species=species, analytes=list(sel.analytes), reference_method=reference_method, sampler=sampler,
                   draws=draws, tune=tune, chains=chains, cores=cores, target_accept=target_accept,
-                  keep_compromised=keep_compromised, now=now)
+                  keep_compromised=keep_compromised, now=now, locations=locations)
     opts = dict(seed=int(seed), coverage=float(coverage), shift=float(shift), pack_arg=pack if pack is not None else pk)
     all_cases, records, params = [], [], []
     for f in range(folds):

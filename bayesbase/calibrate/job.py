@@ -183,7 +183,7 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
               tune: int = 1000, chains: int = 4, seed: int = 0, cores: int | None = None,
               target_accept: float = 0.9, keep_compromised: bool = False, now=None,
               heldout_folds: int = 0, age_term: bool = False, fit_form: str = "auto",
-              locations: str = "sampled") -> Calibration:
+              locations: str = "auto") -> Calibration:
     """Fit the hierarchical calibration model (:mod:`bayesbase.calibrate.model`) to every usable
     result of ``species`` in a store (a ``Store`` or its file), a results file or a frame.
 
@@ -199,7 +199,7 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
     fits one analyte at a time where that applies (:mod:`bayesbase.calibrate.split`: the same
     posterior, exactly), ``joint`` every analyte in one graph. ``locations``: the location
     parameters sampled or integrated out exactly (:data:`bayesbase.calibrate.model.LOCATIONS`;
-    same posterior). Returns a
+    same posterior; default ``auto``: integrated out wherever that is exact). Returns a
     :class:`Calibration`; never raises on poor convergence (it says so in ``diagnostics`` and
     ``converged``)."""
     from ..priors import Pack, load_pack
@@ -238,6 +238,7 @@ def calibrate(results_or_store, *, species: str = "dog", analytes=None, pack=Non
 
         held = heldout_proof(frame, species=species, analytes=data.analytes, pack=pack, folds=heldout_folds, seed=seed,
                              reference_method=reference_method, sampler=sampler, draws=draws, tune=tune, chains=chains,
-                             cores=cores, target_accept=target_accept, keep_compromised=keep_compromised, now=now)
+                             cores=cores, target_accept=target_accept, keep_compromised=keep_compromised, now=now,
+                             locations=locations)
     return Calibration(table=table, dataset=to_dataset(table, attrs), idata=idata, diagnostics=diag,
                        selection=sel, data=data, attrs=attrs, heldout=held)

@@ -36,6 +36,46 @@ them whenever they apply). ``tests/test_calibrate.py`` checks both forms against
 multivariate normal, and the marginal against a numerical integral over the set point
 (scipy.integrate.quad).
 
+Location parameters integrated out (``locations="marginal"``, the default ``auto`` wherever it
+is exact; :data:`LOCATIONS`). Given the scales (sigma_g, each cell's sigma_i^2 from its latent
+CVI, sigma_a, breed_sd, method_sd), every location parameter of an analyte, beta = (mu, the
+offset of every breed level, the log bias of every non-reference method, the age slope), enters
+the specimen means linearly with a normal prior of diagonal precision P, so it integrates out in
+closed form: with y_c ~ N(X_c beta, Sigma_c), Sigma_c^-1 = w I - h w^2 J (w = 1 / v, h = sg2 /
+(1 + sg2 m w)), A = sum_c X_c' Sigma_c^-1 X_c, b = sum_c X_c' Sigma_c^-1 y_c and yy = sum_c y_c'
+Sigma_c^-1 y_c (y centred on the prior mean), log p(y | scales) = sum_c -0.5 (m ln 2pi + m ln v
++ ln(1 + sg2 m w)) - 0.5 (yy - b'(A + P)^-1 b) - 0.5 ln det(A + P) + 0.5 ln det P. A cell's
+X_c'X_c, X_c'1 and X_c'y_c are data built once (:func:`location_design`; over the coordinates
+(mu, methods, age) only, the cell's breed row put back in the graph), so a gradient costs a
+handful of (cell x 2-4) products and one solve and log determinant of D x D (D = 1 + breed levels
++ method slots (+ 1 with age), at most about 12). No breed offset is sampled, so the funnel
+between breed_sd and the offsets is gone; after sampling, beta is drawn for every draw from its
+exact conditional N((A + P)^-1 b, (A + P)^-1) (:func:`draw_locations`, numpy.random.default_rng
+of the fit's seed) under the sampled form's names and dims, and the gate checks those draws too.
+Not with ``cvi="quadrature"`` (a cell's density is then a mixture of normals: no closed form)
+nor the per-specimen likelihood: ``auto`` keeps the locations sampled there and ``marginal``
+refuses. ``tests/test_calibrate_marginal.py`` checks the density against scipy's multivariate
+normal of all specimen means with covariance blockdiag(Sigma_c) + X P^-1 X' (rel 1e-10), the
+conditional against numpy.linalg.solve, and the posterior against the sampled form. Measured
+2026-12-04 (nutpie 0.16.8 numba and PyMC 5.28, 4 chains x 1000 draws after 1000 tuning, process
+CPU seconds on the shared 2-core machine, load in brackets), sampled -> marginal:
+
+* invented 120-dog store (simulate_store seed 11, creatinine + alt, 3 breeds x 40), nutpie:
+  divergences 14 (all alt) -> 0, max R-hat 1.0073 -> 1.0077, min bulk / tail ESS 874 / 565 ->
+  1337 / 918, 15.0 leapfrog steps per draw either way, sampling 13.3 -> 9.2 s wall (load 5-7);
+  PyMC: divergences 91 (alt) -> 0, max R-hat 1.0075 -> 1.0068, min bulk / tail ESS 666 / 234 ->
+  1215 / 1466, 15 steps per draw, 60 -> 94 CPU s in all (PyMC's C backend runs the solve and
+  log determinant as Python ops; load 4);
+* bench store (500 dogs x 4 specimens), creatinine alone, nutpie, seeds 1 and 2: divergences
+  35 and 53 -> 0 and 0, max R-hat 1.0074 / 1.0076 -> 1.0095 / 1.0081, min tail ESS 1292 / 458 ->
+  1854 / 1795: converged only marginal; sampling 7.4 / 6.9 -> 13.4 / 14.1 CPU s (load 1-2), 15
+  steps per draw either way, numba logp+gradient 46 -> 92 us. Its first 4 analytes (creatinine,
+  sdma, glucose, urea; through calibrate): seed 0: divergences 6 -> 0, but max R-hat 1.0065 ->
+  1.0099 and min bulk / tail ESS 516 / 537 -> 346 / 263 (worst cvi_log_sd), neither converged;
+  seed 1: divergences 19 -> 0, max R-hat 1.0085 -> 1.0067, min bulk / tail ESS 368 / 237 -> 594 /
+  703, converged only marginal (sampling 22.8 -> 46.1 s wall, load 1.4-2.9). The latent CVI
+  layer (cvi_log_sd against the cvi_z) is what is left between this store and the gate.
+
 The animals' CVIs can be integrated out too, numerically (``cvi="quadrature"``; not yet the
 default: see the measurements at the end of this paragraph): no
 closed form exists for a log-normal scale mixture, so each cell's density is a Gauss-Hermite
@@ -438,40 +478,57 @@ def location_layout(data: CalibrationData, pad: dict | None = None) -> dict:
 
 
 def location_design(data: CalibrationData, pri: dict, pad: dict | None = None) -> dict:
-    """Data of the marginal location form (module docstring), per cell c: G = X_c'X_c, u = X_c'1
-    (and uu = u u'), g = X_c'y~, s1 = 1'y~, s2 = y~'y~, with y~ = specimen mean - mu_loc of the analyte (so beta's
-    prior mean is 0); and per analyte the flags of the method slots and the age slot that carry a
-    parameter (a slot without one has no data and a unit prior: it adds exactly nothing). Padded
-    cells (``pad``) are zero throughout, so they add exactly nothing either."""
+    """Data of the marginal location form (module docstring). A specimen's row of the design X is
+    (1, breed one-hot, method-slot one-hot, age x), and the breed column of a cell repeats its
+    first column, so each cell is held by its rows over q = (mu, method slots, age) alone (Dq
+    entries): H = X_q'X_q, uq = X_q'1 (and UU = uq uq'), gq = X_q'y~, s1 = 1'y~, s2 = y~'y~, with
+    y~ = specimen mean - mu_loc (so beta's prior mean is 0), and the cell's (analyte, breed)
+    one-hot ``loc_cab``; :func:`_location_marginal` puts the breed rows back. Per analyte, the
+    method and age slots that carry a parameter (a slot without one has no data and a unit prior:
+    it adds exactly nothing). Padded cells (``pad``) are zero throughout: they add nothing."""
     lay = location_layout(data, pad)
-    B, K, D = lay["B"], lay["K"], lay["D"]
+    B, K = lay["B"], lay["K"]
+    dq = 1 + K + int(lay["age"])
     C = (pad or {}).get("cell", len(data.cell_analyte))
     A = len(data.analytes)
     oc = data.obs_cell
     _, cell_breed = _breed_grid(data)
-    x = np.zeros((len(oc), D))
+    x = np.zeros((len(oc), dq))
     x[:, 0] = 1.0
-    if B:
-        x[np.arange(len(oc)), 1 + cell_breed[oc]] = 1.0
     real = data.obs_bias < len(data.bias_pairs)
-    x[np.flatnonzero(real), 1 + B + lay["slot"][data.obs_bias[real]]] = 1.0
+    x[np.flatnonzero(real), 1 + lay["slot"][data.obs_bias[real]]] = 1.0
     if lay["age"]:
         x[:, -1] = 0.0 if getattr(data, "age_x", None) is None else data.age_x
     yt = data.y - np.asarray(pri["mu_loc"], dtype=float)[data.cell_analyte[oc]]
-    G, u, g = np.zeros((C, D, D)), np.zeros((C, D)), np.zeros((C, D))
-    np.add.at(G, oc, x[:, :, None] * x[:, None, :])
-    np.add.at(u, oc, x)
-    np.add.at(g, oc, x * yt[:, None])
+    H, uq, gq = np.zeros((C, dq, dq)), np.zeros((C, dq)), np.zeros((C, dq))
+    np.add.at(H, oc, x[:, :, None] * x[:, None, :])
+    np.add.at(uq, oc, x)
+    np.add.at(gq, oc, x * yt[:, None])
     s1, s2 = np.zeros(C), np.zeros(C)
     np.add.at(s1, oc, yt)
     np.add.at(s2, oc, yt * yt)
+    cab = np.zeros((C, A * max(B, 1)))
+    if B:
+        n = len(data.cell_analyte)
+        cab[np.arange(n), data.cell_analyte * B + cell_breed] = 1.0
     method_real = np.zeros((A, K))
-    for k, (a, _m) in enumerate(data.bias_pairs):
-        method_real[data.analytes.index(a), lay["slot"][k]] = 1.0
-    age_real = np.array([float(a in getattr(data, "age_analytes", [])) for a in data.analytes])
-    return dict(loc_G=G, loc_u=u, loc_uu=u[:, :, None] * u[:, None, :], loc_g=g, loc_s1=s1, loc_s2=s2,
-                loc_method_real=method_real,
-                loc_age_real=age_real)
+    for k, (an, _m) in enumerate(data.bias_pairs):
+        method_real[data.analytes.index(an), lay["slot"][k]] = 1.0
+    age_real = np.array([float(an in getattr(data, "age_analytes", [])) for an in data.analytes])
+    return dict(loc_H=H, loc_uq=uq, loc_UU=uq[:, :, None] * uq[:, None, :], loc_gq=gq, loc_s1=s1, loc_s2=s2,
+                loc_cab=cab, loc_method_real=method_real, loc_age_real=age_real)
+
+
+def _with_breeds(pt, aqq, ab, bq, bb, B):
+    """The full (D, D) matrix and D vector of one analyte from their q part (aqq, bq) and breed
+    rows (ab: (B, Dq), bb: (B,)): a breed's row is the q row of mu restricted to its cells, and
+    its diagonal entry equals its entry against mu (location_design)."""
+    if not B:
+        return aqq, bq
+    top = pt.concatenate([aqq[0:1, 0:1], ab[:, 0][None, :], aqq[0:1, 1:]], axis=1)
+    mid = pt.concatenate([ab[:, 0:1], np.eye(B) * ab[:, 0][None, :], ab[:, 1:]], axis=1)
+    bot = pt.concatenate([aqq[1:, 0:1], ab[:, 1:].T, aqq[1:, 1:]], axis=1)
+    return pt.concatenate([top, mid, bot], axis=0), pt.concatenate([bq[0:1], bb, bq[1:]])
 
 
 def _location_precision(pt, p, d, lay, breed_sd, method_sd):
@@ -490,10 +547,11 @@ def _location_precision(pt, p, d, lay, breed_sd, method_sd):
     return pt.concatenate(parts, axis=1)
 
 
-def _location_marginal(pm, pt, d, w, sg2, prec, n_analytes, D):
+def _location_marginal(pm, pt, d, w, sg2, prec, n_analytes, D, B):
     """Potential ``specimen_means`` with every location parameter integrated out (module
     docstring): per cell Sigma_c^-1 = w I - h w^2 J, h = sg2 / (1 + sg2 m w), so A = sum_c w G -
-    h w^2 u u', b = sum_c w g - h w^2 s1 u, yy = sum_c w s2 - h w^2 s1^2; log p = sum_c -0.5 (m ln 2pi
+    h w^2 u u', b = sum_c w g - h w^2 s1 u (G = X_c'X_c, u = X_c'1, g = X_c'y~, formed over the
+    q coordinates and the cell's breed row put back: :func:`location_design`), yy = sum_c w s2 - h w^2 s1^2; log p = sum_c -0.5 (m ln 2pi
     - m ln w + ln(1 + sg2 m w)) - 0.5 (yy - b'(A + P)^-1 b) - 0.5 ln det(A + P) + 0.5 ln det P.
     The solve (assume_a="pos") and slogdet, not a Cholesky factor, carry the gradient: PyTensor's
     Cholesky gradient costs 600 us per call in numba against 29 us for these (D = 12, 500 cells;
@@ -510,20 +568,24 @@ def _location_marginal(pm, pt, d, w, sg2, prec, n_analytes, D):
     hw2 = sg2 / (1.0 + sg2 * m * w) * w * w
     s1 = d["loc_s1"]
     const = -0.5 * pt.sum(m * _LOG_2PI - m * pt.log(w) + pt.log1p(sg2 * m * w))
-    if n_analytes == 1:
-        wa, ha = w[:, None], hw2[:, None]
-    else:
-        onehot = pt.eq(d["cell_analyte"][:, None], np.arange(n_analytes)[None, :])
-        wa, ha = w[:, None] * onehot, hw2[:, None] * onehot
-    amat = pt.tensordot(wa, d["loc_G"], axes=[[0], [0]]) - pt.tensordot(ha, d["loc_uu"], axes=[[0], [0]])
-    bvec = pt.dot(wa.T, d["loc_g"]) - pt.dot((ha * s1[:, None]).T, d["loc_u"])
+    mc = w[:, None, None] * d["loc_H"] - hw2[:, None, None] * d["loc_UU"]  # per cell, q coordinates
+    bc = w[:, None] * d["loc_gq"] - (hw2 * s1)[:, None] * d["loc_uq"]
     yy = pt.sum(w * d["loc_s2"] - hw2 * s1 * s1)
+    if n_analytes == 1:
+        aqq, bq = pt.sum(mc, axis=0)[None], pt.sum(bc, axis=0)[None]
+    else:
+        onehot = pt.cast(pt.eq(d["cell_analyte"][:, None], np.arange(n_analytes)[None, :]), "float64")
+        aqq, bq = pt.tensordot(onehot, mc, axes=[[0], [0]]), pt.dot(onehot.T, bc)
+    if B:
+        ab = pt.dot(d["loc_cab"].T, mc[:, 0, :]).reshape((n_analytes, B, -1))
+        bb = pt.dot(d["loc_cab"].T, bc[:, 0]).reshape((n_analytes, B))
     eye = np.eye(D)
     quad, logdet, means, chols = 0.0, 0.0, [], []
     for a in range(n_analytes):
-        mat = amat[a] + eye * prec[a][None, :]
-        mean = solve(mat, bvec[a], assume_a="pos")
-        quad = quad + pt.dot(bvec[a], mean)
+        amat, bvec = _with_breeds(pt, aqq[a], ab[a] if B else None, bq[a], bb[a] if B else None, B)
+        mat = amat + eye * prec[a][None, :]
+        mean = solve(mat, bvec, assume_a="pos")
+        quad = quad + pt.dot(bvec, mean)
         logdet = logdet + slogdet(mat)[1]
         means.append(mean)
         chols.append(cholesky(mat, lower=True))  # reported only (not in the gradient)
@@ -611,7 +673,8 @@ def _marginal_graph(pm, pt, data, d, p, cell, lay, nodes):
     si2, _ = _cvi_layer(pm, pt, d, cell(ln_med), cell(spread), "latent", nodes)
     v = si2 + cell(sa) ** 2 / d["stat_n_rep"]
     prec = _location_precision(pt, p, d, lay, breed_sd, method_sd)
-    pm.Potential("specimen_means", _location_marginal(pm, pt, d, 1.0 / v, cell(sigma_g**2), prec, A, lay["D"]))
+    pm.Potential("specimen_means", _location_marginal(pm, pt, d, 1.0 / v, cell(sigma_g**2), prec, A, lay["D"],
+                                                          lay["B"]))
     pm.Deterministic("cvg", pt.sqrt(pt.expm1(sigma_g**2)), dims="analyte")
     pm.Deterministic("cvi", pt.exp(ln_med), dims="analyte")
     pm.Deterministic("cva", pt.sqrt(pt.expm1(sa**2)), dims="analyte")
@@ -832,10 +895,11 @@ def stamp(idata, settings: dict) -> None:
 def fit(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
         seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9,
         breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None,
-        locations: str = "sampled"):
+        locations: str = "auto"):
     """Sample the model (every analyte in one graph); returns (idata, diagnostics, settings).
-    ``locations`` (:data:`LOCATIONS`): sampled, or integrated out and drawn after sampling from
-    their exact conditional (seeded from ``seed``; :func:`draw_locations`).
+    ``locations`` (:data:`LOCATIONS`; default ``auto``: marginal where it applies): sampled, or
+    integrated out and drawn after sampling from their exact conditional (seeded from ``seed``;
+    :func:`draw_locations`).
     ``cvi``: the animals' CVIs latent (default) or integrated out by quadrature over ``nodes``
     nodes (default :data:`CVI_NODES`; module docstring). Never raises on poor convergence:
     ``diagnostics["converged"]`` says so. :func:`bayesbase.calibrate.split.fit_split` fits the

@@ -220,7 +220,7 @@ def combine(data: CalibrationData, parts, idatas):
 def fit_split(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
               seed: int = 0, sampler: str = "pymc", cores: int | None = None, target_accept: float = 0.9,
               breed_param: str = "auto", likelihood: str = "auto", cvi: str = "latent", nodes: int | None = None,
-              locations: str = "sampled"):
+              locations: str = "auto"):
     """:func:`bayesbase.calibrate.model.fit`, one analyte at a time (module docstring); the
     joint fit when :func:`applies` is False. Analyte i samples with the i-th of the seeds
     ``numpy.random.default_rng(seed)`` draws (and, with ``locations`` marginal, draws its
