@@ -563,6 +563,9 @@ def _fill_scores(d, si2, ck, evn, tau2):
         sp = np.sqrt(d[_D_PV, k])
         d[_D_SP, k] = sp
         d[_D_ISP, k] = 1.0 / sp
+    for k in range(si2.size, d.shape[1]):  # padding for the quantile solve (see _PAD)
+        for r in (_D_SP, _D_ISP, _D_S0, _D_IS0):
+            d[r, k] = d[r, 0]
 
 
 @_jit_e_sum
@@ -695,45 +698,45 @@ def _score_logs(y, tau2, delta, lw, m, nv, l0, l1, acc, kk):
 
 
 @_jit_e
-def _compact(w, m, sd, isd, thr, sc, kk):
-    """Copy those of the kk nodes whose weight is at least ``thr`` into sc[_S_WC], sc[_S_MC],
-    sc[_S_VC] (their SDs ``sd``) and sc[_S_ISD] (``isd`` = 1 / sd); returns their number and the
-    weight left out. ``kk`` is the node count: ``w`` and ``m`` are scratch rows padded beyond
-    it, and the padding is never written."""
-    wc, mc, sc_, ic = sc[_S_WC], sc[_S_MC], sc[_S_VC], sc[_S_ISD]
+def _keep(w, m, sp, s0, thr, kk, npad, wz, br):
+    """Weights of the kk nodes at least ``thr`` in wz (the others 0, renormalised over the kept;
+    zero-weight copies of the first node pad wz and the means m to npad); the bracket
+    min(m - 12 s), max(m + 12 s) over the kept nodes for the SDs sp (br[0:2]) and s0 (br[2:4]).
+    Returns the number kept. ``kk`` is the node count: ``w`` and ``m`` are scratch rows padded
+    beyond it, and the padding is written here before any read."""
     n = 0
     wp = 0.0
+    mn0 = mn1 = np.inf
+    mx0 = mx1 = -np.inf
     for k in range(kk):
         if w[k] >= thr:
-            wc[n] = w[k]
-            mc[n] = m[k]
-            sc_[n] = sd[k]
-            ic[n] = isd[k]
+            wz[k] = w[k]
             n += 1
+            mn0 = min(mn0, m[k] - 12.0 * sp[k])
+            mx0 = max(mx0, m[k] + 12.0 * sp[k])
+            mn1 = min(mn1, m[k] - 12.0 * s0[k])
+            mx1 = max(mx1, m[k] + 12.0 * s0[k])
         else:
+            wz[k] = 0.0
             wp += w[k]
-    return n, wp
+    tot = 1.0 - wp
+    for k in range(kk):
+        wz[k] /= tot
+    for k in range(kk, npad):
+        wz[k] = 0.0
+        m[k] = m[0]
+    br[0] = mn0
+    br[1] = mx0
+    br[2] = mn1
+    br[3] = mx1
+    return n
 
 
-#: the quantile solves run over the compacted nodes padded with zero-weight copies of the first
-#: to a multiple of _PAD, so the compiler's vector loops leave less scalar remainder (8 looked
-#: best of 4, 8 and 16 in measurements on a loaded machine; the scores showed no gain and are
-#: not padded); the copies add exact zeros
+#: the quantile solves run over the nodes padded with zero-weight copies of the first to a
+#: multiple of _PAD, so the compiler's vector loops leave less scalar remainder (8 looked best
+#: of 4, 8 and 16 in measurements; the scores showed no gain and are not padded); the copies
+#: add exact zeros, as do the pruned nodes, which keep their place with weight 0
 _PAD = 8
-
-
-@_jit_e
-def _pad(sc, n):
-    """Pad the compacted nodes (sc[_S_WC], sc[_S_MC], sc[_S_VC], sc[_S_ISD]) with zero-weight
-    copies of the first to a multiple of :data:`_PAD` (at most the row length); returns the
-    padded count."""
-    npad = min(-(-n // _PAD) * _PAD, sc.shape[1])
-    for j in range(n, npad):
-        sc[_S_WC, j] = 0.0
-        sc[_S_MC, j] = sc[_S_MC, 0]
-        sc[_S_VC, j] = sc[_S_VC, 0]
-        sc[_S_ISD, j] = sc[_S_ISD, 0]
-    return npad
 
 
 @_jit_e
@@ -803,12 +806,12 @@ _FACT7 = 5040.0
 
 
 @_jit_e_sum
-def _cdf_derivs(x, sc, n, d):
+def _cdf_derivs(x, wc, mc, isd, sc, n, d):
     """d[0] = F(x) and d[j] = F^(j)(x) / j!, j = 1.._QORD, of the mixture over the n compacted
     nodes (sc[_S_WC], sc[_S_MC], 1/s in sc[_S_ISD]):
     F^(j+1) = sum w (-1)^j He_j(z) phi(z) / s^(j+1), He by its recurrence
     He_(j+1) = z He_j - j He_(j-1)."""
-    wc, mc, isd, t2, e = sc[_S_WC], sc[_S_MC], sc[_S_ISD], sc[_S_T], sc[_S_E]
+    t2, e = sc[_S_T], sc[_S_E]
     for j in range(n):
         zz = (x - mc[j]) * isd[j]
         t2[j] = -0.5 * zz * zz
@@ -838,6 +841,66 @@ def _cdf_derivs(x, sc, n, d):
     d[0] = f
     d[1], d[2], d[3], d[4] = c0 * d1, c0 * d2 / 2.0, c0 * d3 / 6.0, c0 * d4 / 24.0
     d[5], d[6] = c0 * d5 / 120.0, c0 * d6 / 720.0
+
+
+@_jit_e_sum
+def _cdf_derivs2(x0, x1, wc, mc, isd, sc, n, d0, d1):
+    """:func:`_cdf_derivs` at two points x0, x1 (into d0, d1) in one pass over the nodes."""
+    ta, ea, tb, eb = sc[_S_T], sc[_S_E], sc[_S_T0], sc[_S_E0]
+    for j in range(n):
+        za = (x0 - mc[j]) * isd[j]
+        zb = (x1 - mc[j]) * isd[j]
+        ta[j] = -0.5 * za * za
+        tb[j] = -0.5 * zb * zb
+    vexp(ta, ea, n, sc[_S_TMP])
+    vexp(tb, eb, n, sc[_S_TMP])
+    f = a1 = a2 = a3 = a4 = a5 = a6 = 0.0
+    g = b1 = b2 = b3 = b4 = b5 = b6 = 0.0
+    for j in range(n):
+        si = isd[j]
+        zz = (x0 - mc[j]) * si
+        f += wc[j] * phi(zz, ea[j])
+        u = wc[j] * ea[j] * si
+        a1 += u
+        u *= si
+        a2 -= u * zz
+        h2 = zz * zz - 1.0
+        u *= si
+        a3 += u * h2
+        h3 = zz * h2 - 2.0 * zz
+        u *= si
+        a4 -= u * h3
+        h4 = zz * h3 - 3.0 * h2
+        u *= si
+        a5 += u * h4
+        h5 = zz * h4 - 4.0 * h3
+        u *= si
+        a6 -= u * h5
+        zz = (x1 - mc[j]) * si
+        g += wc[j] * phi(zz, eb[j])
+        u = wc[j] * eb[j] * si
+        b1 += u
+        u *= si
+        b2 -= u * zz
+        h2 = zz * zz - 1.0
+        u *= si
+        b3 += u * h2
+        h3 = zz * h2 - 2.0 * zz
+        u *= si
+        b4 -= u * h3
+        h4 = zz * h3 - 3.0 * h2
+        u *= si
+        b5 += u * h4
+        h5 = zz * h4 - 4.0 * h3
+        u *= si
+        b6 -= u * h5
+    c0 = 0.39894228040143267794  # 1 / sqrt(2 pi)
+    d0[0] = f
+    d0[1], d0[2], d0[3], d0[4] = c0 * a1, c0 * a2 / 2.0, c0 * a3 / 6.0, c0 * a4 / 24.0
+    d0[5], d0[6] = c0 * a5 / 120.0, c0 * a6 / 720.0
+    d1[0] = g
+    d1[1], d1[2], d1[3], d1[4] = c0 * b1, c0 * b2 / 2.0, c0 * b3 / 6.0, c0 * b4 / 24.0
+    d1[5], d1[6] = c0 * b5 / 120.0, c0 * b6 / 720.0
 
 
 @_jit_e
@@ -880,20 +943,10 @@ def _taylor_root(g, d):
 
 
 @_jit_e
-def _quantile(q, zq, sc, n, mom, tol, max_iter):
-    """Quantile q (standard normal deviate zq) of the mixture sum w N(m, s^2) over the n
-    compacted nodes (sc[_S_WC], sc[_S_MC], 1/s in sc[_S_ISD]). Cornish-Fisher start from the
-    moments mom = (mean, var, m3, m4, lo, hi, M2, M7); at each point x the root h of the
-    order-6 Taylor polynomial P of F(x + h) - q, inside the bisection bracket [lo, hi].
-
-    Stop rule (a proof, not a heuristic): F(x + h) - q = P(h) + R, |R| <= M7 |h|^7 / 7! with
-    M7 >= sup |F^(7)| (mom[7]); on [x + h - eps, x + h + eps] (eps = tol / 10) the density is at
-    least D = F'(x) - M2 (|h| + eps), M2 >= sup |F''| (mom[6]). When |P(h)| + |R| + 1e-14 (the
-    rounding of F) <= D eps with D > 0, F - q changes sign on that interval, so the quantile is
-    within eps of x + h, which is returned. Also stops (as the previous solver) when the Newton
-    step is at most ``tol``."""
+def _cf_start(zq, mom):
+    """Cornish-Fisher start of :func:`_quantile` from the moments (the mean where it falls
+    outside the bracket)."""
     a, b, c, ee, lo, hi = mom[0], mom[1], mom[2], mom[3], mom[4], mom[5]
-    d = mom[8:8 + _QORD + 1]
     sd = np.sqrt(max(b, 1e-300))
     z2 = zq * zq
     g1 = c / (b * sd)
@@ -902,36 +955,82 @@ def _quantile(q, zq, sc, n, mom, tol, max_iter):
                   - g1 * g1 / 36.0 * zq * (2.0 * z2 - 5.0))
     if not (x > lo and x < hi):
         x = a + sd * zq
+    return x
+
+
+@_jit_e
+def _solve_step(x, q, d, mom, lo, hi, tol):
+    """One step of :func:`_quantile` from x with d the CDF and its derivatives there: the next
+    point, whether the stop rule holds, and the updated bracket."""
     eps = 0.1 * tol
-    for _ in range(max_iter):
-        _cdf_derivs(x, sc, n, d)
-        g = d[0] - q
-        h, t, p = _taylor_root(g, d)
-        if g < 0:
-            lo = max(lo, x)
-        if g > 0:
-            hi = min(hi, x)
-        ah = abs(h)
-        ah2 = ah * ah
-        rem = mom[7] * (ah2 * ah2 * ah2 * ah) / _FACT7
-        dens = d[1] - mom[6] * (ah + eps)
-        done = abs(t) <= tol or (dens > 0 and abs(p) + rem + 1e-14 <= dens * eps)
-        xn = x + h
-        if not done and not (xn > lo and xn < hi):
-            xn = 0.5 * (lo + hi)
-        x = xn
+    g = d[0] - q
+    h, t, p = _taylor_root(g, d)
+    if g < 0:
+        lo = max(lo, x)
+    if g > 0:
+        hi = min(hi, x)
+    ah = abs(h)
+    ah2 = ah * ah
+    rem = mom[7] * (ah2 * ah2 * ah2 * ah) / _FACT7
+    dens = d[1] - mom[6] * (ah + eps)
+    done = abs(t) <= tol or (dens > 0 and abs(p) + rem + 1e-14 <= dens * eps)
+    xn = x + h
+    if not done and not (xn > lo and xn < hi):
+        xn = 0.5 * (lo + hi)
+    return xn, done, lo, hi
+
+
+@_jit_e
+def _quantile(x, q, lo, hi, it0, wc, mc, isd, sc, n, d, mom, tol, max_iter):
+    """Quantile q of the mixture sum w N(m, s^2) over the n nodes (weights wc, means mc, 1/s
+    in isd): iterations it0..max_iter-1 from x (the Cornish-Fisher start of :func:`_cf_start`
+    from the moments mom = (mean, var, m3, m4, lo, hi, M2, M7); see :func:`_quantile_pair`
+    for iteration 0) inside the bisection bracket [lo, hi]; at each point x the root h of the
+    order-6 Taylor polynomial P of F(x + h) - q (d: scratch of 7 for F and its derivatives).
+
+    Stop rule (a proof, not a heuristic): F(x + h) - q = P(h) + R, |R| <= M7 |h|^7 / 7! with
+    M7 >= sup |F^(7)| (mom[7]); on [x + h - eps, x + h + eps] (eps = tol / 10) the density is at
+    least D = F'(x) - M2 (|h| + eps), M2 >= sup |F''| (mom[6]). When |P(h)| + |R| + 1e-14 (the
+    rounding of F) <= D eps with D > 0, F - q changes sign on that interval, so the quantile is
+    within eps of x + h, which is returned. Also stops (as the previous solver) when the Newton
+    step is at most ``tol``."""
+    for _ in range(it0, max_iter):
+        _cdf_derivs(x, wc, mc, isd, sc, n, d)
+        x, done, lo, hi = _solve_step(x, q, d, mom, lo, hi, tol)
         if done:
             break
     return x
 
 
+@_jit_e
+def _quantile_pair(q0, z0, q1, z1, wc, mc, isd, sc, n, mom, dd, tol, max_iter):
+    """Quantiles q0, q1 (standard normal deviates z0, z1) of the mixture over the n nodes
+    (weights wc, means mc, 1/s in isd; moments mom as in :func:`_quantile`, dd scratch of 14):
+    both Cornish-Fisher starts, their first iteration evaluated in one pass over the nodes
+    (:func:`_cdf_derivs2`; one iteration is the rule on the bench's cases), then
+    :func:`_quantile` for a level whose stop rule does not hold yet."""
+    x0 = _cf_start(z0, mom)
+    x1 = _cf_start(z1, mom)
+    if max_iter < 1:
+        return x0, x1
+    d0 = dd[0:_QORD + 1]
+    d1 = dd[_QORD + 1:2 * _QORD + 2]
+    _cdf_derivs2(x0, x1, wc, mc, isd, sc, n, d0, d1)
+    x0, done0, lo0, hi0 = _solve_step(x0, q0, d0, mom, mom[4], mom[5], tol)
+    x1, done1, lo1, hi1 = _solve_step(x1, q1, d1, mom, mom[4], mom[5], tol)
+    if not done0:
+        x0 = _quantile(x0, q0, lo0, hi0, 1, wc, mc, isd, sc, n, d0, mom, tol, max_iter)
+    if not done1:
+        x1 = _quantile(x1, q1, lo1, hi1, 1, wc, mc, isd, sc, n, d1, mom, tol, max_iter)
+    return x0, x1
+
+
 @_jit_e_sum
-def _moments(sc, n, mom):
-    """Mean, variance, third and fourth central moments of the mixture over the n compacted
-    nodes, the bracket min(m - 12 s), max(m + 12 s) (mom[0:6]; s in sc[_S_VC], 1 / s in
-    sc[_S_ISD]) and the bounds M2 >= sup |F''|, M7 >= sup |F^(7)| of its CDF (mom[6:8]; see
-    :func:`_quantile`)."""
-    wc, mc, isd, sd = sc[_S_WC], sc[_S_MC], sc[_S_ISD], sc[_S_VC]
+def _moments(wc, mc, sd, isd, n, mom):
+    """Mean, variance, third and fourth central moments of the mixture over the n nodes
+    (weights wc, means mc, SDs sd, their inverses isd; mom[0:4]) and the bounds
+    M2 >= sup |F''|, M7 >= sup |F^(7)| of its CDF (mom[6:8]; see :func:`_quantile`). The
+    bracket mom[4:6] is the caller's (:func:`_keep`, over the kept nodes only)."""
     a = 0.0
     for j in range(n):
         a += wc[j] * mc[j]
@@ -940,8 +1039,6 @@ def _moments(sc, n, mom):
     e = 0.0
     m2 = 0.0
     m7 = 0.0
-    mn = np.inf
-    mx = -np.inf
     for j in range(n):
         s = sd[j]
         d = mc[j] - a
@@ -954,14 +1051,10 @@ def _moments(sc, n, mom):
         i4 = i2 * i2
         m2 += wc[j] * i2
         m7 += wc[j] * i4 * i2 * isd[j]
-        mn = min(mn, mc[j] - 12.0 * s)
-        mx = max(mx, mc[j] + 12.0 * s)
     mom[0] = a
     mom[1] = b
     mom[2] = c
     mom[3] = e
-    mom[4] = mn
-    mom[5] = mx
     mom[6] = _PHI1 * m2 * 1.000001  # rounded up against the sum's rounding
     mom[7] = _HE6PHI * m7 * 1.000001
 
@@ -969,27 +1062,28 @@ def _moments(sc, n, mom):
 @_jit_e
 def _intervals_case(i, levels, zl, sc, d, kk, wmax, prune, tol, max_iter, mom, out):
     """Set-point credible limits and personal-interval limits of case i from the nodes whose
-    weight is at least ``prune`` times the largest (weights renormalised over them; padded by
-    :func:`_pad` after the moments; the SDs and their inverses from the design rows ``d``). No
-    node passing (weights NaN from NaN inputs, or ``prune`` > 1) gives NaN limits, so the
-    solve never runs over unwritten rows."""
+    weight is at least ``prune`` times the largest (weights renormalised over them, the others
+    kept in place with weight 0, all padded to a multiple of :data:`_PAD`; the SDs and their
+    inverses from the design rows ``d``, padded by :func:`_fill_scores`). No node passing
+    (weights NaN from NaN inputs, or ``prune`` > 1) gives NaN limits."""
+    npad = min(-(-kk // _PAD) * _PAD, sc.shape[1])
+    wz, m = sc[_S_WC], sc[_S_M]
+    br = sc[_S_VC]
+    n = _keep(sc[_S_W], m, d[_D_SP], d[_D_S0], prune * wmax, kk, npad, wz, br)
     for part in range(2):
-        sd, isd = (d[_D_SP], d[_D_ISP]) if part == 0 else (d[_D_S0], d[_D_IS0])
-        n, wp = _compact(sc[_S_W], sc[_S_M], sd, isd, prune * wmax, sc, kk)
         if n == 0:
             for lv in range(2 * part, 2 * part + 2):
                 out[(_O_TL, _O_TU, _O_PL, _O_PU)[lv], i] = np.nan
             continue
-        wc = sc[_S_WC]
-        tot = 1.0 - wp
-        for j in range(n):
-            wc[j] /= tot
-        _moments(sc, n, mom)
-        n = _pad(sc, n)
-        for side in range(2):
-            lv = 2 * part + side
-            x = _quantile(levels[lv], zl[lv], sc, n, mom, tol, max_iter)
-            out[(_O_TL, _O_TU, _O_PL, _O_PU)[lv], i] = x
+        sd, isd = (d[_D_SP], d[_D_ISP]) if part == 0 else (d[_D_S0], d[_D_IS0])
+        _moments(wz, m, sd, isd, npad, mom)
+        mom[4] = br[2 * part]
+        mom[5] = br[2 * part + 1]
+        lv = 2 * part
+        x0, x1 = _quantile_pair(levels[lv], zl[lv], levels[lv + 1], zl[lv + 1], wz, m, isd, sc,
+                                npad, mom, mom[8:8 + 2 * _QORD + 2], tol, max_iter)
+        out[(_O_TL, _O_PL)[part], i] = x0
+        out[(_O_TU, _O_PU)[part], i] = x1
 
 
 @_jit_e
@@ -1040,9 +1134,9 @@ def engine_cases_k(start, stop, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, ny, n
     of ``out`` follow ``OUTPUT_KEYS``): node posteriors and weights, the scores, and with
     ``intervals`` the four mixture quantiles (levels, with their normal deviates zl). Scratch
     (one set per thread, see :func:`engine_scratch`): key, ck, si2 the (CVI, uncertainty)
-    table, dkey, dtab the design table (:data:`_DCACHE`), sc (_S_N_SCRATCH, nodes), acc (22,)."""
+    table, dkey, dtab the design table (:data:`_DCACHE`), sc (_S_N_SCRATCH, nodes), acc (27,)."""
     kk = xn.size
-    mom = acc[5:22]
+    mom = acc[5:27]
     for i in range(start, stop):
         slot, nb = _case_design(i, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, nr, nev, tau, key,
                                 ck, si2, dkey, dtab, sc)
@@ -1073,5 +1167,5 @@ def engine_scratch(nodes):
     """Scratch arrays for one thread of :func:`engine_cases_k` (key, ck, si2, dkey, dtab, sc,
     acc)."""
     return (np.full((_CACHE, 2), np.nan), np.empty((_CACHE, nodes)), np.empty((_CACHE, nodes)),
-            np.full((_DCACHE + 1, 7), np.nan), np.empty((_DCACHE + 1, _D_N, nodes)),
-            np.empty((_S_N_SCRATCH, -(-nodes // _PAD) * _PAD)), np.empty(22))
+            np.full((_DCACHE + 1, 7), np.nan), np.empty((_DCACHE + 1, _D_N, -(-nodes // _PAD) * _PAD)),
+            np.empty((_S_N_SCRATCH, -(-nodes // _PAD) * _PAD)), np.empty(27))
