@@ -69,7 +69,12 @@ CPU seconds on the shared 2-core machine, load in brackets), sampled -> marginal
 * bench store (500 dogs x 4 specimens), creatinine alone, nutpie, seeds 1 and 2: divergences
   35 and 53 -> 0 and 0, max R-hat 1.0074 / 1.0076 -> 1.0095 / 1.0081, min tail ESS 1292 / 458 ->
   1854 / 1795: converged only marginal; sampling 7.4 / 6.9 -> 13.4 / 14.1 CPU s (load 1-2), 15
-  steps per draw either way, numba logp+gradient 46 -> 92 us. Its first 4 analytes (creatinine,
+  steps per draw either way, numba logp+gradient 46 -> 92 us; the same with PyMC, seed 1:
+  divergences 115 -> 0, max R-hat 1.0199 (breed_sd) -> 1.0078, min bulk / tail ESS 200 / 38 ->
+  1595 / 1884, 43.8 -> 70.4 CPU s (load 2-3). Extrapolated (not run) to the bench's 20 analytes
+  of this size: 20 x 13.4-14.1 = 270-280 CPU s of nutpie sampling, about 140 s on 2 idle cores,
+  plus one compile per structure (35-100 s wall measured): over the 60 s target, now by cost
+  per gradient rather than convergence. Its first 4 analytes (creatinine,
   sdma, glucose, urea; through calibrate): seed 0: divergences 6 -> 0, but max R-hat 1.0065 ->
   1.0099 and min bulk / tail ESS 516 / 537 -> 346 / 263 (worst cvi_log_sd), neither converged;
   seed 1: divergences 19 -> 0, max R-hat 1.0085 -> 1.0067, min bulk / tail ESS 368 / 237 -> 594 /
