@@ -255,7 +255,7 @@ def test_sbc_ranks_of_a_reduced_model_are_uniform():
     assert p < SBC_ALPHA, ("a shifted posterior passed the rank test", counts, p)
 
 
-RECOVERY_REPLICATES = 6  # each fit ~20 CPU-s (PyMC NUTS, 60 dogs), in two worker processes
+RECOVERY_REPLICATES = 6  # each fit ~40 CPU-s (PyMC NUTS, 60 dogs, 300 + 300 steps), in two worker processes
 #: what summary_table reads, and the free parameters (diagnostics)
 _TRACED = ("center", "cvg", "cvi", "cvi_log_sd", "breed_center_all", "method_bias", "age_slope")
 
@@ -264,7 +264,7 @@ _TRACED = ("center", "cvg", "cvi", "cvi_log_sd", "breed_center_all", "method_bia
 def test_parameter_recovery_over_seeded_replicates():
     """6 invented stores (simulate_store's DEMO_TRUTH creatinine: breed offsets -15 %/0/+12 %,
     analyser B +8 % on 30 % of specimens, CVI median 9 %, ln-SD 0.35), 60 dogs x 4 specimens,
-    2 chains x 150 draws after 150 tuning steps, the model and summaries of ``calibrate`` (age
+    2 chains x 300 draws after 300 tuning steps, the model and summaries of ``calibrate`` (age
     term on: the pack marks creatinine age-dependent). Each 95 % credible interval (3 breed
     centres, the method bias, the CVI median and its spread) covers the truth in at least the
     lower end of the 99 % band of Binomial(6, 0.95) (scipy.stats.binom), and the 36 intervals
@@ -288,7 +288,10 @@ def test_parameter_recovery_over_seeded_replicates():
         frame, truth = stores[i]
         data = _layout(frame, pack)
         run.set(data)
-        idata = run.sample(draws=150, tune=150, seed=i)
+        # 300/300: with 150/150 the CVI spread's intervals of these stores (their ends near the
+        # truth in 3 of 6) moved across it with the machine's floating point: 3 of 6 covered on
+        # one 2-core machine, enough on another; 300/300 gave 5 of 6 (ends 0.344 and 0.341)
+        idata = run.sample(draws=300, tune=300, seed=i)
         t = summary_table(idata, data, pack).set_index(["parameter", "group"])
         tr = truth["creatinine"]
         want = {("cvi", ""): tr.cvi_median, ("cvi_log_sd", ""): tr.cvi_log_sd,
