@@ -380,7 +380,7 @@ def test_interval_coverage_over_seeded_studies_inside_the_binomial_band():
     fails the tolerances (0.05 on the mean log ratio, about 3 standard errors)."""
     r = bayes.coverage_study(COVERAGE_STUDIES, COVERAGE_SEED, n_animals=12, n_specimens=6,
                              n_replicates=2, cva=0.03, cvi=0.10, spread=0.3, cvg=0.25,
-                             draws=500, tune=500, chains=4, batch_size=COVERAGE_STUDIES)
+                             draws=1000, tune=1000, chains=4, batch_size=COVERAGE_STUDIES)
     lo, hi = stats.binom.interval(0.95, COVERAGE_STUDIES, 0.95)
     band = (lo / COVERAGE_STUDIES, hi / COVERAGE_STUDIES)
     assert r["band"] == pytest.approx(band)
@@ -453,12 +453,12 @@ def test_batched_fit_agrees_with_one_analyte_fits_within_monte_carlo_error():
     bad = frames["an0"].assign(y=1.0)
     # 300 draws (600 before): the tolerance below is built from each run's own ArviZ MCSE, so
     # it widens with fewer draws by about sqrt(2) and the check stays a Monte Carlo-error check
-    fits = bayes.fit_many(dict(frames, bad=bad), draws=300, tune=400, chains=2, cores=1,
+    fits = bayes.fit_many(dict(frames, bad=bad), draws=600, tune=600, chains=2, cores=1,
                           seed=11, sampler="pymc")
     assert isinstance(fits["bad"], ValidationError)
     for k, (key, frame) in enumerate(frames.items()):
         many = fits[key]
-        one = bayes.fit_bayes(frame, draws=300, tune=400, chains=2, cores=1, seed=20 + k)
+        one = bayes.fit_bayes(frame, draws=600, tune=600, chains=2, cores=1, seed=20 + k)
         # short runs (CI time): the Monte Carlo error below carries the ESS; the chains must mix
         for f in (many, one):
             assert f.diagnostics["divergences"] == 0 and f.diagnostics["max_r_hat"] < 1.02, f.diagnostics
