@@ -199,3 +199,15 @@ def test_nutpie_compiled_model_serves_another_number_of_baselines():
     warm = E.mcmc_assess(b, **kw)
     np.testing.assert_array_equal(warm.idata.posterior["theta"].values,
                                   ref.idata.posterior["theta"].values)
+
+
+def test_ratio_to_floor_of_a_time_below_the_clock_resolution():
+    """A seconds row measured as 0 (a tiny store's read on a fast machine) is infinitely better
+    than its floor instead of a division by zero; rates and positive times keep the stated
+    convention (floor / figure for seconds, figure / floor for rates)."""
+    import math
+
+    assert speed.ratio_to_floor(0.0, 1.0, "s") == math.inf
+    assert speed.ratio_to_floor(0.5, 1.0, "s") == pytest.approx(2.0)
+    assert speed.ratio_to_floor(0.0, 1_000_000, "cases/s") == 0.0
+    assert speed.ratio_to_floor(2_000_000, 1_000_000, "cases/s") == pytest.approx(2.0)

@@ -17,6 +17,7 @@ shared).
 """
 from __future__ import annotations
 
+import math
 import os
 from dataclasses import dataclass
 
@@ -64,8 +65,11 @@ class Row:
 
 
 def ratio_to_floor(figure: float, floor: float, unit: str) -> float:
-    """Above 1: better than the floor (seconds: floor / figure; a rate: figure / floor)."""
-    return floor / figure if unit == "s" else figure / floor
+    """Above 1: better than the floor (seconds: floor / figure; a rate: figure / floor). A time
+    of 0 (below the clock's resolution) is infinitely better than the floor."""
+    if unit == "s":
+        return floor / figure if figure > 0 else math.inf
+    return figure / floor
 
 
 def best_sampler() -> str:

@@ -96,8 +96,10 @@ def bench_assess_store(n_patients: int = 10_000, n_specimens: int = 3, n_analyte
             t, c = time.perf_counter(), time.process_time()
             a = assess(res)
             t_assess, c_assess = min(t_assess, time.perf_counter() - t), min(c_assess, time.process_time() - c)
-    out = {"patients": n_patients, "cases": len(a.table), "read_s": round(t_read, 2),
-           "read_cpu_s": round(c_read, 2), "assess_s": round(t_assess, 2), "assess_cpu_s": round(c_assess, 2),
+    # 4 decimals: a small store's read takes a few milliseconds (2 decimals gave 0.0 s, and a
+    # ratio to the floor of floor / 0)
+    out = {"patients": n_patients, "cases": len(a.table), "read_s": round(t_read, 4),
+           "read_cpu_s": round(c_read, 4), "assess_s": round(t_assess, 4), "assess_cpu_s": round(c_assess, 4),
            "cases_per_s": round(len(a.table) / t_assess), "load_average_1min": load_average()}
     if jobs > 1:
         import resource
