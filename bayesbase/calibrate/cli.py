@@ -9,6 +9,11 @@ from __future__ import annotations
 import sys
 
 
+#: the forms ``--locations`` offers; the same as :data:`bayesbase.calibrate.model.LOCATIONS` (a
+#: test checks it), written out here so that ``bayesbase --help`` does not import the model module
+LOCATION_CHOICES = ("auto", "marginal", "sampled")
+
+
 def _err(msg: str) -> int:
     print(f"bayesbase: error: {msg}", file=sys.stderr)
     return 2
@@ -48,6 +53,12 @@ def add_parser(sub) -> None:
     p.add_argument("--age-term", action="store_true",
                    help="add a linear age term on the log scale for the analytes the pack marks age-dependent "
                    "whose results carry birth dates (default: none; the pack's age marks describe young animals)")
+    p.add_argument("--locations", choices=LOCATION_CHOICES, default="auto",
+                   help="the location parameters (population centre, breed offsets, method biases, age slope): "
+                   "'marginal' integrates them out exactly and draws them afterwards for each posterior draw from "
+                   "their exact conditional; 'sampled' has NUTS sample them; 'auto' (default) integrates them out "
+                   "wherever that is exact (it needs equal replicate counts within each animal), else samples them. "
+                   "Same posterior either way; 'marginal' stops with an error where it is not exact")
     p.add_argument("--heldout-folds", type=int, default=0, metavar="K",
                    help="also run the held-out proof: K folds over animals (K >= 2), each calibrated on the others; "
                    "each held-out animal's last usable result assessed with the prior pack and the calibrated pack "
@@ -92,7 +103,8 @@ def run(args) -> int:
         cal = calibrate(args.db or args.file, species=args.species, analytes=analytes, pack=args.pack,
                         reference_method=args.reference_method, sampler=args.sampler, draws=args.draws,
                         tune=args.tune, chains=args.chains, seed=args.seed, keep_compromised=args.keep_compromised,
-                        heldout_folds=args.heldout_folds, age_term=bool(getattr(args, "age_term", False)))
+                        heldout_folds=args.heldout_folds, age_term=bool(getattr(args, "age_term", False)),
+                        locations=getattr(args, "locations", "auto"))
         paths = write_outputs(cal, args.out, force=args.force, figure=not args.no_figure)
     except (BayesbaseError, OSError, ValueError, ImportError) as exc:
         return _err(str(exc))

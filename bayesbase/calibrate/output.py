@@ -22,6 +22,10 @@ age) is reported in calibration.html, with the reference age and the number of a
 birth date (read at the reference age, x = 0), and kept in idata.nc (``age_log_slope``,
 ``age_slope``).
 
+calibration.html names, beside the sampler settings, the form the fit used for the location
+parameters (:data:`LOCATION_WORDS`, read from the posterior's ``locations`` attr; ``--locations``).
+calibration.csv's columns and the fragment's citations are unchanged by it; idata.nc keeps the attr.
+
 Never silent: a fit that failed a convergence check writes no fragment unless ``force=True``,
 and a forced fragment says so in its header and description. The fragment is checked by the
 pack schema (``bayesbase.priors.load_pack``) before it is put in place; a fragment the schema
@@ -45,7 +49,7 @@ from ..errors import PackError
 from .core import UNKNOWN_BREED, UNSTATED_METHOD
 from .job import Calibration
 
-__all__ = ["PROVENANCE", "fragment_toml", "write_outputs", "cvi_figure", "calibration_html"]
+__all__ = ["PROVENANCE", "LOCATION_WORDS", "fragment_toml", "write_outputs", "cvi_figure", "calibration_html"]
 
 PROVENANCE = "calibrated"
 
@@ -281,6 +285,24 @@ def _age_html(cal: Calibration) -> str:
             + (f"<ul>{off}</ul>" if off else ""))
 
 
+#: how the page words each form of the location parameters (the posterior's attr ``locations``,
+#: stamped by :func:`bayesbase.calibrate.model.stamp`)
+LOCATION_WORDS = {
+    "marginal": "integrated out of the model exactly (NUTS sampled only the scale parameters), then drawn for "
+                "each posterior draw from their exact conditional distribution given the scales of that draw",
+    "sampled": "sampled by NUTS together with the scale parameters",
+}
+
+
+def _locations_html(cal: Calibration) -> str:
+    """One sentence: how the fit handled the location parameters (``--locations``)."""
+    post = getattr(cal.idata, "posterior", None)
+    form = None if post is None else post.attrs.get("locations")
+    how = LOCATION_WORDS.get(form, "form not recorded with this fit")
+    return (f"<p>Location parameters (population centre, breed offsets, method biases, age slope): {_e(how)}. "
+            "Either form gives the same posterior (--locations chooses).</p>")
+
+
 def calibration_html(cal: Calibration, png: bytes | None = None) -> str:
     """A self-contained page: cautions, convergence, prior vs posterior table, priors, figure."""
     a = cal.attrs
@@ -298,7 +320,7 @@ def calibration_html(cal: Calibration, png: bytes | None = None) -> str:
              f"{_e(roles)}. Priors from pack {_e(a['pack_id'])} (sha256 {_e(a['pack_sha256'])}). Reference methods: "
              f"{_e(a['reference_methods'])}. Sampler {_e(a['sampler'])}, {a['chains']} chains x {a['draws']} draws "
              f"(tune {a['tune']}), fit form {_e(a.get('fit_form', 'joint'))}, seed {a['seed']}, "
-             f"{a['seconds']} s; bayesbase {_e(__version__)}, {_e(a['date'])}.</p>",
+             f"{a['seconds']} s; bayesbase {_e(__version__)}, {_e(a['date'])}.</p>", _locations_html(cal),
              "<h2>Convergence</h2>", _diag_html(cal),
              "<h2>Prior (pack value) and posterior (median, 95 % credible interval)</h2>",
              "<p>CVs are fractions; method_bias is the fraction by which a method reads above the reference method "
