@@ -7,13 +7,14 @@ collector as it found it, from several threads at once (reference: the standard 
 from __future__ import annotations
 
 import gc
-import threading
 
 import numpy as np
 import pandas as pd
 import pytest
 
 from bayesbase.assessment import cases, pipeline, trend_cols
+
+from _threaded import observe_threaded_runs
 
 
 def _inferred(values: list) -> pd.Series:
@@ -85,30 +86,12 @@ def test_limit_sides_match_the_loop():
 def test_heap_freeze_is_undone_after_nested_and_threaded_assessments():
     gc.unfreeze()
     assert gc.get_freeze_count() == 0
-    started, release = threading.Barrier(3), threading.Event()
-    inside = []
-
-    def work():
-        with pipeline._heap_frozen():
-            started.wait()
-            release.wait(5)
-            inside.append(gc.isenabled())
-
-    threads = [threading.Thread(target=work) for _ in range(2)]
-    for t in threads:
-        t.start()
-    started.wait()
-    frozen_meanwhile = gc.get_freeze_count()
-    release.set()
-    for t in threads:
-        t.join()
-    assert frozen_meanwhile > 0  # objects left out of collections while assessments ran
-    assert inside == [True, True]  # the collector stayed on for every thread
-    assert gc.get_freeze_count() == 0 and gc.isenabled()
-    with pytest.raises(ZeroDivisionError):
-        with pipeline._heap_frozen():
-            1 / 0
-    assert gc.get_freeze_count() == 0
+    seen = observe_threaded_runs(pipeline._heap_frozen, probe_inside=gc.isenabled,
+                                 probe_main=lambda: (gc.get_freeze_count(), gc.isenabled()))
+    assert seen.meanwhile[0] > 0  # objects left out of collections while assessments ran
+    assert seen.inside == [True, True]  # the collector stayed on for every thread
+    assert seen.after == (0, True)
+    assert seen.after_failure == (0, True)
 
 
 def _sort_frames():

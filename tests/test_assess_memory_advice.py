@@ -5,8 +5,6 @@ replaces); the assessment's numbers do not depend on it (the reference: the same
 numpy's advice left on, compared with pandas' ``assert_frame_equal(check_exact=True)``)."""
 from __future__ import annotations
 
-import threading
-
 import numpy as np
 import pandas as pd
 import pytest
@@ -14,6 +12,7 @@ import pytest
 from bayesbase.assessment import assess, pipeline
 from bayesbase.io import read_results
 
+from _threaded import observe_threaded_runs
 from conftest import case_dirs
 
 _SWITCH = getattr(getattr(getattr(np, "_core", None), "multiarray", None), "_set_madvise_hugepage", None)
@@ -31,31 +30,12 @@ def _advice() -> bool:
 def test_advice_off_inside_and_restored_after_nested_and_threaded_runs(start):
     before = bool(_SWITCH(start))
     try:
-        started, release = threading.Barrier(3), threading.Event()
-        inside = []
-
-        def work():
-            with pipeline._heap_frozen():
-                started.wait()
-                release.wait(5)
-                inside.append(_advice())
-
-        threads = [threading.Thread(target=work) for _ in range(2)]
-        for t in threads:
-            t.start()
-        started.wait()
-        meanwhile = _advice()
-        release.set()
-        for t in threads:
-            t.join()
-        assert meanwhile is False and inside == [False, False]
-        assert _advice() is start  # the last assessment's end gives the setting back
-        with pytest.raises(ZeroDivisionError):
-            with pipeline._heap_frozen():
-                1 / 0
-        assert _advice() is start
+        seen = observe_threaded_runs(pipeline._heap_frozen, probe_inside=_advice, probe_main=_advice)
     finally:
         _SWITCH(before)
+    assert seen.meanwhile is False and seen.inside == [False, False]
+    assert seen.after is start  # the last assessment's end gives the setting back
+    assert seen.after_failure is start
 
 
 def test_same_table_with_numpy_advice_forced_on():
