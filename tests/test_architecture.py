@@ -27,7 +27,7 @@ LAYER = {
 }
 #: modules that may import PyMC / PyTensor / ArviZ (each builds a graph or reads its output)
 PYMC_ALLOWED_UNITS = {"mcmc"}
-PYMC_ALLOWED_MODULES = {"study.bayes", "calibrate.model", "calibrate.split"}
+PYMC_ALLOWED_MODULES = {"study.bayes", "calibrate.model", "calibrate.split", "calibrate._locop"}
 #: units that may import matplotlib (figures, reports, benchmarks)
 MPL_ALLOWED = {"report", "research", "study", "interval", "calibrate", "bench"}
 HEAVY = {"pymc", "pytensor", "arviz", "nutpie"}

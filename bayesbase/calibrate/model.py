@@ -486,9 +486,9 @@ def location_design(data: CalibrationData, pri: dict, pad: dict | None = None) -
     """Data of the marginal location form (module docstring). A specimen's row of the design X is
     (1, breed one-hot, method-slot one-hot, age x), and the breed column of a cell repeats its
     first column, so each cell is held by its rows over q = (mu, method slots, age) alone (Dq
-    entries): H = X_q'X_q, uq = X_q'1 (and UU = uq uq'), gq = X_q'y~, s1 = 1'y~, s2 = y~'y~, with
-    y~ = specimen mean - mu_loc (so beta's prior mean is 0), and the cell's (analyte, breed)
-    one-hot ``loc_cab``; :func:`_location_marginal` puts the breed rows back. Per analyte, the
+    entries): H = X_q'X_q, uq = X_q'1, gq = X_q'y~, s1 = 1'y~, s2 = y~'y~, with y~ = specimen
+    mean - mu_loc (so beta's prior mean is 0); the compiled operation of :func:`_location_marginal`
+    puts each cell's breed row back from ``cell_breed``. Per analyte, the
     method and age slots that carry a parameter (a slot without one has no data and a unit prior:
     it adds exactly nothing). Padded cells (``pad``) are zero throughout: they add nothing."""
     lay = location_layout(data, pad)
@@ -497,7 +497,6 @@ def location_design(data: CalibrationData, pri: dict, pad: dict | None = None) -
     C = (pad or {}).get("cell", len(data.cell_analyte))
     A = len(data.analytes)
     oc = data.obs_cell
-    _, cell_breed = _breed_grid(data)
     x = np.zeros((len(oc), dq))
     x[:, 0] = 1.0
     real = data.obs_bias < len(data.bias_pairs)
@@ -512,28 +511,12 @@ def location_design(data: CalibrationData, pri: dict, pad: dict | None = None) -
     s1, s2 = np.zeros(C), np.zeros(C)
     np.add.at(s1, oc, yt)
     np.add.at(s2, oc, yt * yt)
-    cab = np.zeros((C, A * max(B, 1)))
-    if B:
-        n = len(data.cell_analyte)
-        cab[np.arange(n), data.cell_analyte * B + cell_breed] = 1.0
     method_real = np.zeros((A, K))
     for k, (an, _m) in enumerate(data.bias_pairs):
         method_real[data.analytes.index(an), lay["slot"][k]] = 1.0
     age_real = np.array([float(an in getattr(data, "age_analytes", [])) for an in data.analytes])
-    return dict(loc_H=H, loc_uq=uq, loc_UU=uq[:, :, None] * uq[:, None, :], loc_gq=gq, loc_s1=s1, loc_s2=s2,
-                loc_cab=cab, loc_method_real=method_real, loc_age_real=age_real)
-
-
-def _with_breeds(pt, aqq, ab, bq, bb, B):
-    """The full (D, D) matrix and D vector of one analyte from their q part (aqq, bq) and breed
-    rows (ab: (B, Dq), bb: (B,)): a breed's row is the q row of mu restricted to its cells, and
-    its diagonal entry equals its entry against mu (location_design)."""
-    if not B:
-        return aqq, bq
-    top = pt.concatenate([aqq[0:1, 0:1], ab[:, 0][None, :], aqq[0:1, 1:]], axis=1)
-    mid = pt.concatenate([ab[:, 0:1], np.eye(B) * ab[:, 0][None, :], ab[:, 1:]], axis=1)
-    bot = pt.concatenate([aqq[1:, 0:1], ab[:, 1:].T, aqq[1:, 1:]], axis=1)
-    return pt.concatenate([top, mid, bot], axis=0), pt.concatenate([bq[0:1], bb, bq[1:]])
+    return dict(loc_H=H, loc_uq=uq, loc_gq=gq, loc_s1=s1, loc_s2=s2, loc_method_real=method_real,
+                loc_age_real=age_real)
 
 
 def _location_precision(pt, p, d, lay, breed_sd, method_sd):
@@ -552,51 +535,25 @@ def _location_precision(pt, p, d, lay, breed_sd, method_sd):
     return pt.concatenate(parts, axis=1)
 
 
-def _location_marginal(pm, pt, d, w, sg2, prec, n_analytes, D, B):
-    """Potential ``specimen_means`` with every location parameter integrated out (module
-    docstring): per cell Sigma_c^-1 = w I - h w^2 J, h = sg2 / (1 + sg2 m w), so A = sum_c w G -
-    h w^2 u u', b = sum_c w g - h w^2 s1 u (G = X_c'X_c, u = X_c'1, g = X_c'y~, formed over the
-    q coordinates and the cell's breed row put back: :func:`location_design`), yy = sum_c w s2 - h w^2 s1^2; log p = sum_c -0.5 (m ln 2pi
-    - m ln w + ln(1 + sg2 m w)) - 0.5 (yy - b'(A + P)^-1 b) - 0.5 ln det(A + P) + 0.5 ln det P.
-    The solve (assume_a="pos") and slogdet, not a Cholesky factor, carry the gradient: PyTensor's
-    Cholesky gradient costs 600 us per call in numba against 29 us for these (D = 12, 500 cells;
-    measured 2026-12-04). Also the Deterministics ``loc_mean`` ((A + P)^-1 b, mu_loc not yet added
-    back) and ``loc_chol`` (the Cholesky factor L of A + P), from which the locations are drawn
-    after sampling (:func:`draw_locations`)."""
-    import pytensor
-    from pytensor.tensor.linalg import cholesky, slogdet, solve
+def _location_marginal(pm, d, z, ln_med, spread, sa, sg2, prec):
+    """Potential ``specimen_means``: the latent CVI layer (per cell ln CVI = ln_cvi_median +
+    cvi_log_sd z, sigma_i^2 = ln(1 + CVI^2), as :func:`_cvi_layer`) and the density of the
+    specimen means with every location parameter integrated out (module docstring), with its
+    exact gradient, as one compiled operation (:mod:`bayesbase.calibrate._locop`; ``ln_med``,
+    ``spread``, ``sa``, ``sg2`` = sigma_g^2 per analyte, ``prec`` (analyte, D)). Also the
+    Deterministics ``loc_mean`` ((A + P)^-1 b, mu_loc not yet added back) and ``loc_chol`` (the
+    Cholesky factor L of A + P), from which the locations are drawn after sampling
+    (:func:`draw_locations`). Measured 2026-12-04 on the benchmark's analyte (500 cells, one
+    numba logp + gradient of the whole model, load 3-5): 92 us with the earlier graph of PyTensor
+    array operations (solve and slogdet differentiated automatically; kept in
+    ``tests/test_calibrate_locop.py`` as the reference the operation is checked against)."""
+    from ._locop import latent_marginal
 
-    with warnings.catch_warnings():  # read once: a pip-installed PyTensor says it links no BLAS (as mcmc.engine)
-        warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
-        _ = pytensor.config.blas__ldflags
-    m = d["stat_m"]
-    hw2 = sg2 / (1.0 + sg2 * m * w) * w * w
-    s1 = d["loc_s1"]
-    const = -0.5 * pt.sum(m * _LOG_2PI - m * pt.log(w) + pt.log1p(sg2 * m * w))
-    mc = w[:, None, None] * d["loc_H"] - hw2[:, None, None] * d["loc_UU"]  # per cell, q coordinates
-    bc = w[:, None] * d["loc_gq"] - (hw2 * s1)[:, None] * d["loc_uq"]
-    yy = pt.sum(w * d["loc_s2"] - hw2 * s1 * s1)
-    if n_analytes == 1:
-        aqq, bq = pt.sum(mc, axis=0)[None], pt.sum(bc, axis=0)[None]
-    else:
-        onehot = pt.cast(pt.eq(d["cell_analyte"][:, None], np.arange(n_analytes)[None, :]), "float64")
-        aqq, bq = pt.tensordot(onehot, mc, axes=[[0], [0]]), pt.dot(onehot.T, bc)
-    if B:
-        ab = pt.dot(d["loc_cab"].T, mc[:, 0, :]).reshape((n_analytes, B, -1))
-        bb = pt.dot(d["loc_cab"].T, bc[:, 0]).reshape((n_analytes, B))
-    eye = np.eye(D)
-    quad, logdet, means, chols = 0.0, 0.0, [], []
-    for a in range(n_analytes):
-        amat, bvec = _with_breeds(pt, aqq[a], ab[a] if B else None, bq[a], bb[a] if B else None, B)
-        mat = amat + eye * prec[a][None, :]
-        mean = solve(mat, bvec, assume_a="pos")
-        quad = quad + pt.dot(bvec, mean)
-        logdet = logdet + slogdet(mat)[1]
-        means.append(mean)
-        chols.append(cholesky(mat, lower=True))  # reported only (not in the gradient)
-    pm.Deterministic("loc_mean", pt.stack(means))
-    pm.Deterministic("loc_chol", pt.stack(chols))
-    return const - 0.5 * (yy - quad) - 0.5 * logdet + 0.5 * pt.sum(pt.log(prec))
+    out = latent_marginal(z, ln_med, spread, sa, sg2, prec, d["stat_n_rep"], d["stat_m"], d["loc_H"], d["loc_uq"],
+                          d["loc_gq"], d["loc_s1"], d["loc_s2"], d["cell_analyte"], d["cell_breed"])
+    pm.Deterministic("loc_mean", out[1])
+    pm.Deterministic("loc_chol", out[2])
+    return out[0]
 
 
 def draw_locations(idata, values: dict, data: CalibrationData, coords: dict, seed: int, pad: dict | None = None):
@@ -675,11 +632,9 @@ def _marginal_graph(pm, pt, data, d, p, cell, lay, nodes):
         method_sd = pm.Gamma("method_sd", alpha=SD_GAMMA_SHAPE, beta=SD_GAMMA_SHAPE / p["method_sd_scale"],
                              dims="analyte")
     sa = _cva_layer(pm, pt, data, d, p)
-    si2, _ = _cvi_layer(pm, pt, d, cell(ln_med), cell(spread), "latent", nodes)
-    v = si2 + cell(sa) ** 2 / d["stat_n_rep"]
+    z = pm.Normal("cvi_z", 0.0, 1.0, dims="cell")  # the latent CVI layer (_cvi_layer), inside the potential
     prec = _location_precision(pt, p, d, lay, breed_sd, method_sd)
-    pm.Potential("specimen_means", _location_marginal(pm, pt, d, 1.0 / v, cell(sigma_g**2), prec, A, lay["D"],
-                                                          lay["B"]))
+    pm.Potential("specimen_means", _location_marginal(pm, d, z, ln_med, spread, sa, sigma_g**2, prec))
     pm.Deterministic("cvg", pt.sqrt(pt.expm1(sigma_g**2)), dims="analyte")
     pm.Deterministic("cvi", pt.exp(ln_med), dims="analyte")
     pm.Deterministic("cva", pt.sqrt(pt.expm1(sa**2)), dims="analyte")
