@@ -4,9 +4,11 @@ importing the model stays light. Compiled once and cached on disk (numba ``cache
 The exact engine's one-pass kernel (:func:`engine_cases_k`) scores one case at a time with
 every per-node quantity in a small scratch array, and the per-node quantities that depend on the
 case's design only (not its values) in a small table filled once per design
-(:func:`_case_design`); its exp is a branch-free polynomial loop (:func:`vexp`, accurate to a
-few units in the last place; :func:`vlog` the same for the logarithm) that the compiler
-vectorises, where a library call per element would not be.
+(:func:`_case_design`); its exp is a branch-free polynomial (:func:`_exp1`, accurate to a few
+units in the last place, inlined into the loops that use it; :func:`vlog` a loop of the same
+kind for the logarithm) that the compiler vectorises, where a library call per element would
+not be. Its sums run over whole vectors: node rows padded to a multiple of :data:`_PAD`, the
+nodes left out at weight 0.
 
 Sums over mixture components may be reordered so the CPU can vectorise them
 (``fastmath={"reassoc", "contract"}``): rounding-level differences only, as with numpy's own
@@ -16,6 +18,8 @@ from __future__ import annotations
 
 import numba
 import numpy as np
+from numba import types
+from numba.extending import intrinsic
 
 _SQRTH = 0.70710678118654752440  # sqrt(1/2)
 # Cephes ndtr.c coefficient tables (Moshier SL, Cephes Math Library 2.9, the tables of
@@ -60,6 +64,29 @@ def phi(z, e):
     n = num if small else (r if far else p)
     d = den if small else (s if far else q)
     ratio = n / d
+    tail = 0.5 * e * ratio if e > 0.0 else 0.0 * e  # |z| = inf: ratio is inf/inf; NaN stays
+    big = 1.0 - tail if x > 0 else tail
+    return 0.5 + 0.5 * ratio if small else big
+
+
+@numba.njit(inline="always", error_model="numpy")
+def phi_pq(z, e):
+    """:func:`phi` without Cephes' R/S branch (|z| >= 8 sqrt 2, where P/Q is taken as well): for
+    the mixture CDF of the quantile solves, which needs Phi in absolute terms only. There Phi or
+    1 - Phi is below 1e-29 and the error of e P/Q / 2 below 1e-42, so the value differs from
+    :func:`phi`'s by less than that (checked against scipy.special.ndtr and phi in the tests),
+    with one rational function less per node."""
+    x = z * _SQRTH
+    a = abs(x)
+    x2 = x * x
+    num = x * ((((_T[0] * x2 + _T[1]) * x2 + _T[2]) * x2 + _T[3]) * x2 + _T[4])
+    den = ((((x2 + _U[0]) * x2 + _U[1]) * x2 + _U[2]) * x2 + _U[3]) * x2 + _U[4]
+    p = (((((((_P[0] * a + _P[1]) * a + _P[2]) * a + _P[3]) * a + _P[4]) * a + _P[5]) * a
+          + _P[6]) * a + _P[7]) * a + _P[8]
+    q = (((((((a + _Q[0]) * a + _Q[1]) * a + _Q[2]) * a + _Q[3]) * a + _Q[4]) * a + _Q[5]) * a
+         + _Q[6]) * a + _Q[7]
+    small = a < _SQRTH
+    ratio = (num if small else p) / (den if small else q)
     tail = 0.5 * e * ratio if e > 0.0 else 0.0 * e  # |z| = inf: ratio is inf/inf; NaN stays
     big = 1.0 - tail if x > 0 else tail
     return 0.5 + 0.5 * ratio if small else big
@@ -347,7 +374,7 @@ _SQRT2 = 1.4142135623730951
  _O_PEX) = range(13)
 _CACHE = 64  # slots of the per-call table of node CVIs keyed by (CVI, uncertainty)
 # rows of the per-call scratch array (one value per quadrature node)
-(_S_M, _S_PV, _S_LW, _S_W, _S_NV, _S_A, _S_B, _S_A2, _S_B2, _S_T, _S_WC, _S_MC, _S_VC, _S_T0,
+(_S_M, _S_PV, _S_LW, _S_W, _S_NV, _S_WS, _S_B, _S_A2, _S_B2, _S_T, _S_WC, _S_MC, _S_VC, _S_T0,
  _S_T1, _S_T2, _S_E0, _S_E1, _S_E2, _S_EA, _S_EB, _S_EA2, _S_EB2, _S_ISD, _S_E, _S_TMP,
  _S_N_SCRATCH) = range(27)
 # no reference counting in these loops (they take views of the caller's scratch per case and
@@ -356,6 +383,8 @@ _jit_vec = numba.njit(cache=True, error_model="numpy", nogil=True, fastmath={"co
 _jit_e = numba.njit(cache=True, error_model="numpy", nogil=True, _nrt=False)
 _jit_e_sum = numba.njit(cache=True, error_model="numpy", nogil=True, _nrt=False,
                         fastmath={"reassoc", "contract"})
+#: small scalar steps inlined into their caller (no call; the two limits' steps interleave)
+_inline = numba.njit(inline="always", error_model="numpy")
 
 
 #: 1.5 * 2^52: adding and subtracting it rounds a double below 2^51 in magnitude to the nearest
@@ -363,33 +392,42 @@ _jit_e_sum = numba.njit(cache=True, error_model="numpy", nogil=True, _nrt=False,
 _ROUND = 6755399441055744.0
 
 
+@intrinsic
+def _as_f64(typingctx, i):
+    """The float64 whose bits are the int64 i (a bit cast: no library call, vectorises)."""
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.float64))
+    return types.float64(types.int64), codegen
+
+
+@numba.njit(inline="always", error_model="numpy")
+def _exp1(x):
+    """exp(x) without a library call, so the loops that use it vectorise: x = k ln 2 + r,
+    |r| <= ln2 / 2, exp(r) by its Taylor polynomial to r^13 (remainder below 1e-17 relative) in
+    Estrin's scheme (a short dependency chain: the terms in pairs, then by r^2, r^4, r^8), times
+    2^k built from its exponent bits (exact: 2^k is a normal double for every k in reach).
+    Relative error below 5e-16 (4.3e-16 on a fine grid over [-720, 0]; checked against
+    numpy.exp in the tests); arguments below -708 give 0 (the callers read anything below
+    1e-250 as an underflow). Inlined into the callers' loops (no call, no scratch row)."""
+    xx = min(max(x, -708.0), 709.0)
+    kf = (xx * _LOG2E + _ROUND) - _ROUND
+    r = (xx - kf * _LN2_HI) - kf * _LN2_LO
+    r2 = r * r
+    r4 = r2 * r2
+    b0 = (1.0 + r) + r2 * (0.5 + r * (1.0 / 6))
+    b1 = (1.0 / 24 + r * (1.0 / 120)) + r2 * (1.0 / 720 + r * (1.0 / 5040))
+    b2 = (1.0 / 40320 + r * (1.0 / 362880)) + r2 * (1.0 / 3628800 + r * (1.0 / 39916800))
+    b3 = 1.0 / 479001600 + r * (1.0 / 6227020800)
+    p = (b0 + r4 * b1) + (r4 * r4) * (b2 + r4 * b3)
+    return p * _as_f64((np.int64(kf) + 1023) << 52) if x >= -708.0 else 0.0
+
+
 @_jit_vec
 def vexp(x, out, n, tmp):
-    """exp(x[:n]) into out[:n] (``tmp``: scratch of n floats; none of the three may overlap) in
-    loops the compiler vectorises (no library call): x = k ln 2 + r, |r| <= ln2 / 2, exp(r) by
-    its Taylor polynomial to r^13 (remainder below 1e-17 relative) in Estrin's scheme (a short
-    dependency chain: the terms in pairs, then by r^2, r^4, r^8), times 2^k built in ``tmp``
-    from its exponent bits (exact: 2^k is a normal double for every k in reach). Relative error
-    below 5e-16 (4.3e-16 on a fine grid over [-720, 0]; checked against numpy.exp in the tests);
-    arguments below -708 give 0 (the callers read anything below 1e-250 as an underflow). The
-    first loop writes 2^k, the second reads it: every element read was written in this call."""
-    tb = tmp.view(np.int64)
+    """exp(x[:n]) into out[:n] by :func:`_exp1` in a loop the compiler vectorises (``tmp`` is
+    not used; kept for the callers of the two-loop form this replaced)."""
     for i in range(n):
-        xx = min(max(x[i], -708.0), 709.0)
-        kf = (xx * _LOG2E + _ROUND) - _ROUND
-        tb[i] = (np.int64(kf) + 1023) << 52
-    for i in range(n):
-        xx = min(max(x[i], -708.0), 709.0)
-        kf = (xx * _LOG2E + _ROUND) - _ROUND
-        r = (xx - kf * _LN2_HI) - kf * _LN2_LO
-        r2 = r * r
-        r4 = r2 * r2
-        b0 = (1.0 + r) + r2 * (0.5 + r * (1.0 / 6))
-        b1 = (1.0 / 24 + r * (1.0 / 120)) + r2 * (1.0 / 720 + r * (1.0 / 5040))
-        b2 = (1.0 / 40320 + r * (1.0 / 362880)) + r2 * (1.0 / 3628800 + r * (1.0 / 39916800))
-        b3 = 1.0 / 479001600 + r * (1.0 / 6227020800)
-        p = (b0 + r4 * b1) + (r4 * r4) * (b2 + r4 * b3)
-        out[i] = p * tmp[i] if x[i] >= -708.0 else 0.0
+        out[i] = _exp1(x[i])
 
 
 @_jit_vec
@@ -563,21 +601,20 @@ def _fill_scores(d, si2, ck, evn, tau2):
         sp = np.sqrt(d[_D_PV, k])
         d[_D_SP, k] = sp
         d[_D_ISP, k] = 1.0 / sp
-    for k in range(si2.size, d.shape[1]):  # padding for the quantile solve (see _PAD)
-        for r in (_D_SP, _D_ISP, _D_S0, _D_IS0):
+    for k in range(si2.size, d.shape[1]):  # padding for the scores and quantiles (see _PAD)
+        for r in range(_D_NV, _D_N):
             d[r, k] = d[r, 0]
 
 
 @_jit_e_sum
 def _normalise(sc, kk):
     """sc[_S_W] = exp(sc[_S_LW]) normalised, sc[_S_LW] its logarithm; returns the largest weight."""
-    lw, w, t = sc[_S_LW], sc[_S_W], sc[_S_T]
+    lw, w = sc[_S_LW], sc[_S_W]
     mx = -np.inf
     for k in range(kk):
         mx = max(mx, lw[k])
     for k in range(kk):
-        t[k] = lw[k] - mx
-    vexp(t, w, kk, sc[_S_TMP])
+        w[k] = _exp1(lw[k] - mx)
     tot = 0.0
     for k in range(kk):
         tot += w[k]
@@ -601,16 +638,13 @@ def _score_terms(y, delta, w, m, d, lo, hi, sc, acc):
     wv, mv = w[lo:hi], m[lo:hi]
     iv0, iv1, is0, is1, rz = (d[_D_IV0, lo:hi], d[_D_IV1, lo:hi], d[_D_IS0, lo:hi],
                               d[_D_IS1, lo:hi], d[_D_RZ, lo:hi])
-    t0, t1, e0, e1, u1 = sc[_S_T0], sc[_S_T1], sc[_S_E0], sc[_S_E1], sc[_S_E2]
-    tmp = sc[_S_TMP]
+    e0, e1, u1 = sc[_S_E0], sc[_S_E1], sc[_S_E2]
     # few output arrays per loop (the compiler then vectorises); the last loop only reads
     for j in range(n):
         res = y - mv[j]
         r2 = res * res
-        t0[j] = -0.5 * r2 * iv0[j]
-        t1[j] = -0.5 * r2 * iv1[j]
-    vexp(t0, e0, n, tmp)
-    vexp(t1, e1, n, tmp)
+        e0[j] = _exp1(-0.5 * r2 * iv0[j])
+        e1[j] = _exp1(-0.5 * r2 * iv1[j])
     for j in range(n):
         u1[j] = wv[j] * e1[j] * is1[j]
     a = 0.0
@@ -640,15 +674,13 @@ def _tail_terms(y, delta, mv, d, lo, hi, sc):
     n = hi - lo
     f1, ids = d[_D_F1, lo:hi], d[_D_IDS, lo:hi]
     u1 = sc[_S_E2]
-    ea, eb, ta, tb = sc[_S_EA], sc[_S_EB], sc[_S_EA2], sc[_S_EB2]
+    ea, eb = sc[_S_EA], sc[_S_EB]
     for j in range(n):
         dm = f1[j] * (y - mv[j])
         za = (dm - delta) * ids[j]
         zb = (-delta - dm) * ids[j]
-        ta[j] = -0.5 * za * za
-        tb[j] = -0.5 * zb * zb
-    vexp(ta, ea, n, sc[_S_TMP])
-    vexp(tb, eb, n, sc[_S_TMP])
+        ea[j] = _exp1(-0.5 * za * za)
+        eb[j] = _exp1(-0.5 * zb * zb)
     t = 0.0
     for j in range(n):
         dm = f1[j] * (y - mv[j])
@@ -733,9 +765,11 @@ def _keep(w, m, sp, s0, thr, kk, npad, wz, br):
 
 
 #: the quantile solves run over the nodes padded with zero-weight copies of the first to a
-#: multiple of _PAD, so the compiler's vector loops leave less scalar remainder (8 looked best
-#: of 4, 8 and 16 in measurements; the scores showed no gain and are not padded); the copies
-#: add exact zeros, as do the pruned nodes, which keep their place with weight 0
+#: multiple of _PAD, so the compiler's vector loops leave no scalar remainder (8 looked best
+#: of 4, 8 and 16 in measurements); the copies add exact zeros, as do the pruned nodes, which
+#: keep their place with weight 0. The scores run over a window of a multiple of _PAD nodes
+#: in the same way (:func:`_score_window`; their scalar remainder of up to 7 nodes, two Phi
+#: each, cost more than the padded vector)
 _PAD = 8
 
 
@@ -762,17 +796,38 @@ def _node_range(w, nv, thr, kk):
 
 
 @_jit_e
+def _score_window(w, wz, m, lo, hi, kk):
+    """The nodes lo..hi-1 of the kk as a window a..b-1 of a multiple of :data:`_PAD` nodes
+    (within the padded scratch rows): wz = the weights w on lo..hi-1 and 0 elsewhere in the
+    window, so the score loops run whole vectors (no scalar remainder) and the extra nodes add
+    exact zeros; the means' padding beyond kk is set to m[0] (the design rows' padding is
+    :func:`_fill_scores`'s). Returns (a, b)."""
+    row = wz.shape[0]
+    for k in range(kk, row):
+        m[k] = m[0]
+    size = min(-(-(hi - lo) // _PAD) * _PAD, row)
+    a = min(lo, row - size)
+    b = a + size
+    for k in range(a, b):
+        wz[k] = w[k] if (k >= lo and k < hi) else 0.0
+    return a, b
+
+
+@_jit_e
 def _scores_case(i, y, tau2, delta, pchg, sc, d, kk, wmax, acc, out):
     """P(change), Bayes factor, percentile, P(increase), P(|D| > delta) of case i. The nodes
     before the first and after the last of at least 1e-13 of the largest weight are left out
     unless their largest possible share of either predictive density exceeds 1e-12 (an extreme
-    new value can revive a node)."""
-    w, m = sc[_S_W], sc[_S_M]
+    new value can revive a node). The sums run over a window of whole vectors with the nodes
+    left out at weight 0 (:func:`_score_window`)."""
+    w, m, wz = sc[_S_W], sc[_S_M], sc[_S_WS]
     lo, hi, wp, vmin = _node_range(w, d[_D_NV], 1e-13 * wmax, kk)
-    _score_terms(y, delta, w, m, d, lo, hi, sc, acc)
+    a, b = _score_window(w, wz, m, lo, hi, kk)
+    _score_terms(y, delta, wz, m, d, a, b, sc, acc)
     if hi - lo < kk and not (wp <= 1e-12 * acc[0] * np.sqrt(vmin) and
                              wp <= 1e-12 * acc[1] * np.sqrt(vmin + tau2)):
-        _score_terms(y, delta, w, m, d, 0, kk, sc, acc)
+        a, b = _score_window(w, wz, m, 0, kk, kk)
+        _score_terms(y, delta, wz, m, d, a, b, sc, acc)
     pct = acc[2]
     if acc[0] > 1e-250 and acc[1] > 1e-250:
         lbf = np.log(acc[1]) - np.log(acc[0])
@@ -805,38 +860,33 @@ _HE6PHI = 1.0865 * 26.832815729997478 / 2.5066282746310002  # sqrt(6!) = 26.83..
 _FACT7 = 5040.0
 
 
-@_jit_e_sum
-def _cdf_derivs(x, wc, mc, isd, sc, n, d):
-    """d[0] = F(x) and d[j] = F^(j)(x) / j!, j = 1.._QORD, of the mixture over the n compacted
-    nodes (sc[_S_WC], sc[_S_MC], 1/s in sc[_S_ISD]):
-    F^(j+1) = sum w (-1)^j He_j(z) phi(z) / s^(j+1), He by its recurrence
-    He_(j+1) = z He_j - j He_(j-1)."""
-    t2, e = sc[_S_T], sc[_S_E]
-    for j in range(n):
-        zz = (x - mc[j]) * isd[j]
-        t2[j] = -0.5 * zz * zz
-    vexp(t2, e, n, sc[_S_TMP])
-    f = d1 = d2 = d3 = d4 = d5 = d6 = 0.0
-    for j in range(n):
-        si = isd[j]
-        zz = (x - mc[j]) * si
-        f += wc[j] * phi(zz, e[j])
-        u = wc[j] * e[j] * si
-        d1 += u
-        u *= si
-        d2 -= u * zz
-        h2 = zz * zz - 1.0
-        u *= si
-        d3 += u * h2
-        h3 = zz * h2 - 2.0 * zz
-        u *= si
-        d4 -= u * h3
-        h4 = zz * h3 - 3.0 * h2
-        u *= si
-        d5 += u * h4
-        h5 = zz * h4 - 4.0 * h3
-        u *= si
-        d6 -= u * h5
+@numba.njit(inline="always", error_model="numpy")
+def _node_derivs(zz, e, w, si):
+    """One node's terms of :func:`_cdf_derivs` at z = (x - m) / s given e = exp(-z^2/2):
+    w Phi(z) and w (-1)^j He_j(z) e / s^(j+1), j = 0..5 (F^(j+1) over phi's constant), He by
+    its recurrence He_(j+1) = z He_j - j He_(j-1)."""
+    u = w * e * si
+    t1 = u
+    u *= si
+    t2 = -(u * zz)
+    h2 = zz * zz - 1.0
+    u *= si
+    t3 = u * h2
+    h3 = zz * h2 - 2.0 * zz
+    u *= si
+    t4 = -(u * h3)
+    h4 = zz * h3 - 3.0 * h2
+    u *= si
+    t5 = u * h4
+    h5 = zz * h4 - 4.0 * h3
+    u *= si
+    t6 = -(u * h5)
+    return w * phi_pq(zz, e), t1, t2, t3, t4, t5, t6
+
+
+@numba.njit(inline="always", error_model="numpy")
+def _put_derivs(d, f, d1, d2, d3, d4, d5, d6):
+    """d[0] = F, d[j] = F^(j) / j! from the sums of :func:`_node_derivs`."""
     c0 = 0.39894228040143267794  # 1 / sqrt(2 pi)
     d[0] = f
     d[1], d[2], d[3], d[4] = c0 * d1, c0 * d2 / 2.0, c0 * d3 / 6.0, c0 * d4 / 24.0
@@ -844,66 +894,62 @@ def _cdf_derivs(x, wc, mc, isd, sc, n, d):
 
 
 @_jit_e_sum
+def _cdf_derivs(x, wc, mc, isd, sc, n, d):
+    """d[0] = F(x) and d[j] = F^(j)(x) / j!, j = 1.._QORD, of the mixture over the n nodes
+    (weights wc, means mc, 1/s in isd): F^(j+1) = sum w (-1)^j He_j(z) phi(z) / s^(j+1)
+    (:func:`_node_derivs`)."""
+    e = sc[_S_E]
+    for j in range(n):
+        zz = (x - mc[j]) * isd[j]
+        e[j] = _exp1(-0.5 * zz * zz)
+    f = d1 = d2 = d3 = d4 = d5 = d6 = 0.0
+    for j in range(n):
+        si = isd[j]
+        t0, t1, t2, t3, t4, t5, t6 = _node_derivs((x - mc[j]) * si, e[j], wc[j], si)
+        f += t0
+        d1 += t1
+        d2 += t2
+        d3 += t3
+        d4 += t4
+        d5 += t5
+        d6 += t6
+    _put_derivs(d, f, d1, d2, d3, d4, d5, d6)
+
+
+@_jit_e_sum
 def _cdf_derivs2(x0, x1, wc, mc, isd, sc, n, d0, d1):
     """:func:`_cdf_derivs` at two points x0, x1 (into d0, d1) in one pass over the nodes."""
-    ta, ea, tb, eb = sc[_S_T], sc[_S_E], sc[_S_T0], sc[_S_E0]
+    ea, eb = sc[_S_E], sc[_S_E0]
     for j in range(n):
         za = (x0 - mc[j]) * isd[j]
         zb = (x1 - mc[j]) * isd[j]
-        ta[j] = -0.5 * za * za
-        tb[j] = -0.5 * zb * zb
-    vexp(ta, ea, n, sc[_S_TMP])
-    vexp(tb, eb, n, sc[_S_TMP])
+        ea[j] = _exp1(-0.5 * za * za)
+        eb[j] = _exp1(-0.5 * zb * zb)
     f = a1 = a2 = a3 = a4 = a5 = a6 = 0.0
     g = b1 = b2 = b3 = b4 = b5 = b6 = 0.0
     for j in range(n):
         si = isd[j]
-        zz = (x0 - mc[j]) * si
-        f += wc[j] * phi(zz, ea[j])
-        u = wc[j] * ea[j] * si
-        a1 += u
-        u *= si
-        a2 -= u * zz
-        h2 = zz * zz - 1.0
-        u *= si
-        a3 += u * h2
-        h3 = zz * h2 - 2.0 * zz
-        u *= si
-        a4 -= u * h3
-        h4 = zz * h3 - 3.0 * h2
-        u *= si
-        a5 += u * h4
-        h5 = zz * h4 - 4.0 * h3
-        u *= si
-        a6 -= u * h5
-        zz = (x1 - mc[j]) * si
-        g += wc[j] * phi(zz, eb[j])
-        u = wc[j] * eb[j] * si
-        b1 += u
-        u *= si
-        b2 -= u * zz
-        h2 = zz * zz - 1.0
-        u *= si
-        b3 += u * h2
-        h3 = zz * h2 - 2.0 * zz
-        u *= si
-        b4 -= u * h3
-        h4 = zz * h3 - 3.0 * h2
-        u *= si
-        b5 += u * h4
-        h5 = zz * h4 - 4.0 * h3
-        u *= si
-        b6 -= u * h5
-    c0 = 0.39894228040143267794  # 1 / sqrt(2 pi)
-    d0[0] = f
-    d0[1], d0[2], d0[3], d0[4] = c0 * a1, c0 * a2 / 2.0, c0 * a3 / 6.0, c0 * a4 / 24.0
-    d0[5], d0[6] = c0 * a5 / 120.0, c0 * a6 / 720.0
-    d1[0] = g
-    d1[1], d1[2], d1[3], d1[4] = c0 * b1, c0 * b2 / 2.0, c0 * b3 / 6.0, c0 * b4 / 24.0
-    d1[5], d1[6] = c0 * b5 / 120.0, c0 * b6 / 720.0
+        t0, t1, t2, t3, t4, t5, t6 = _node_derivs((x0 - mc[j]) * si, ea[j], wc[j], si)
+        f += t0
+        a1 += t1
+        a2 += t2
+        a3 += t3
+        a4 += t4
+        a5 += t5
+        a6 += t6
+        t0, t1, t2, t3, t4, t5, t6 = _node_derivs((x1 - mc[j]) * si, eb[j], wc[j], si)
+        g += t0
+        b1 += t1
+        b2 += t2
+        b3 += t3
+        b4 += t4
+        b5 += t5
+        b6 += t6
+    _put_derivs(d0, f, a1, a2, a3, a4, a5, a6)
+    _put_derivs(d1, g, b1, b2, b3, b4, b5, b6)
 
 
-@_jit_e
+@_inline
 def _taylor_root(g, d):
     """Root h of the Taylor polynomial P(h) = g + sum_j d[j] h^j (d[j] = F^(j) / j!) by Newton
     from the series reversion of its first four terms around the Newton step t = -g / d[1]
@@ -942,7 +988,7 @@ def _taylor_root(g, d):
     return h, t, p * h + g
 
 
-@_jit_e
+@_inline
 def _cf_start(zq, mom):
     """Cornish-Fisher start of :func:`_quantile` from the moments (the mean where it falls
     outside the bracket)."""
@@ -958,7 +1004,7 @@ def _cf_start(zq, mom):
     return x
 
 
-@_jit_e
+@_inline
 def _solve_step(x, q, d, mom, lo, hi, tol):
     """One step of :func:`_quantile` from x with d the CDF and its derivatives there: the next
     point, whether the stop rule holds, and the updated bracket."""
