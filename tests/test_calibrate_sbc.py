@@ -15,11 +15,13 @@ Outside references named beside each check:
 The reduced model is built with the CVI layer integrated out by quadrature
 (``cvi="quadrature"``), so its free parameters are exactly the four checked.
 
-Affordable: one model is compiled per test and reused for every replicate. Each replicate's
+Affordable: one model is compiled per test and reused for every replicate (a
+``bayesbase.mcmc.compiled.KeptModel`` holds it and its compiled pieces). Each replicate's
 data containers come from ``model.model_values`` (every value of the graph is a ``pm.Data``
 container) and are put into the compiled model with ``pm.set_data``; one NUTS step object (its
-compiled log density and gradient) serves every fit. The transfer is checked once against a
-fresh model built for that replicate (the compiled density equals the fresh model's).
+compiled log density and gradient, ``compiled.logp_dlogp``) serves every fit. The transfer is
+checked once against a fresh model built for that replicate (the compiled density equals the
+fresh model's).
 The chains are run by :meth:`Reused.sample`, PyMC's own loop of ``pymc.sample`` for a given
 step (``_iter_sample``: the same seeds, starting point, tuning switches and steps), without the
 functions ``pymc.sample`` compiles again on every call (the initial point, the trace's point
@@ -63,27 +65,30 @@ def _layout(frame, pack, age=True):
 
 
 class Reused:
-    """One compiled model and NUTS step, refilled with each replicate's data; the traced
-    variables' point function and the initial point's function compiled once too."""
+    """One built model (a ``KeptModel`` of bayesbase.mcmc.compiled) and NUTS step, refilled with
+    each replicate's data; the log density and gradient, the initial point's function, the
+    traced variables' point function and the log density compiled once, kept on the model."""
 
     def __init__(self, data, pri, cvi="quadrature", traced=None):
         import pymc as pm
-        from pymc.initial_point import make_initial_point_fn
 
         import bayesbase.mcmc.engine  # noqa: F401  (reads PyTensor's BLAS flag once, its notice silenced)
         from bayesbase.calibrate import model as M
+        from bayesbase.mcmc.compiled import KeptModel, initial_point_fn, logp_dlogp
 
         self.pri, self.M, self.pm, self.cvi = pri, M, pm, cvi
-        self.model = M.build_model(data, pri, cvi=cvi)
-        self.step = pm.NUTS(model=self.model, target_accept=0.9)
-        self.logp = self.model.compile_logp()
+        self.kept = KeptModel(M.build_model(data, pri, cvi=cvi))
+        self.model = model = self.kept.model
+        # the log density and gradient pm.NUTS compiles for itself, compiled by the helper
+        self.step = pm.NUTS(model=model, target_accept=0.9, logp_dlogp_func=logp_dlogp(self.kept, "sbc"))
+        self.logp = self.kept.get("logp", model.compile_logp)
         # what pymc.sample builds for a given step: the initial point without jitter
-        self.ipfn = make_initial_point_fn(model=self.model, overrides=None, jitter_rvs=set(), return_transformed=True)
-        names = [v.name for v in self.model.free_RVs] if traced is None else list(traced)
-        self.names = [n for n in dict.fromkeys(names) if n in self.model.named_vars]
-        outs = self.model.replace_rvs_by_values([self.model[n] for n in self.names])
-        self.trace_fn = self.model.compile_fn(outs, inputs=self.model.value_vars, point_fn=True,
-                                              on_unused_input="ignore")
+        self.ipfn = initial_point_fn(self.kept, "sbc", jitter=False)
+        names = [v.name for v in model.free_RVs] if traced is None else list(traced)
+        self.names = [n for n in dict.fromkeys(names) if n in model.named_vars]
+        self.trace_fn = self.kept.get("traced", lambda: model.compile_fn(
+            model.replace_rvs_by_values([model[n] for n in self.names]), inputs=model.value_vars, point_fn=True,
+            on_unused_input="ignore"))
         self.checked = False
 
     def set(self, data) -> None:

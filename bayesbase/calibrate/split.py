@@ -19,12 +19,13 @@ fit's variables, dims and coords (``analyte``, ``cell``, ``method_level`` ...).
 
 With nutpie the graph is compiled once per structure and each analyte's data are swapped in
 (``with_data``); with PyMC the model's containers are reset (``pm.set_data``) and the kept
-start and NUTS step functions are reused. Both kinds of compiled graph are kept across fits in one
-process (``_KEPT``, keyed on structure, breed levels, padded sizes and settings; at most 4), so the
-held-out folds and later calibrations of the same shape skip the compile. Like the PyMC engine's
-model cache, this is module-wide state: calibrations in concurrent threads of one process are not
-supported. The convergence gate (:func:`bayesbase.calibrate.model.diagnostics`)
-runs on the combined posterior: max R-hat and min ESS over every analyte, divergences summed.
+start and NUTS step functions are reused. The graphs and both kinds of compiled pieces are kept
+across fits in one process (``_KEPT``, a :class:`bayesbase.mcmc.compiled.CompiledStore` keyed on
+structure, breed levels, padded sizes and settings; at most 4), so the held-out folds and later
+calibrations of the same shape skip the compile. Like the PyMC engine's kept models, this is
+module-wide state: calibrations in concurrent threads of one process are not supported. The
+convergence gate (:func:`bayesbase.calibrate.model.diagnostics`) runs on the combined posterior:
+max R-hat and min ESS over every analyte, divergences summed.
 
 Applies when the likelihood is taken from the animals' sufficient statistics (equal replicate
 counts within each animal; :func:`bayesbase.calibrate.model.animal_stats`); otherwise
@@ -36,6 +37,7 @@ import time
 
 import numpy as np
 
+from ..mcmc.compiled import CompiledStore
 from .core import CalibrationData
 
 __all__ = ["applies", "analyte_part", "fit_split", "combine"]
@@ -89,13 +91,12 @@ def _structure(part: CalibrationData) -> tuple:
     return bool(part.df_within[0] > 0), bool(part.age_analytes)
 
 
-#: PyMC graphs and their compiled functions (log density and gradient, jittered start, trace) kept
-#: across the fits of one process, per structure, breed levels, padded sizes and settings: a later
-#: fit of the same shape (the next fold of a held-out proof, :mod:`bayesbase.calibrate.heldout`,
-#: or the next analyte) swaps its data in (``pm.set_data``) without compiling; the last
-#: :data:`_KEPT_MAX` shapes are kept.
-_KEPT: dict = {}
-_KEPT_MAX = 4
+#: PyMC graphs and their compiled pieces (log density and gradient, jittered start, trace; nutpie's
+#: compile) kept across the fits of one process, per structure, breed levels, padded sizes and
+#: settings: a later fit of the same shape (the next fold of a held-out proof,
+#: :mod:`bayesbase.calibrate.heldout`, or the next analyte) swaps its data in (``pm.set_data``,
+#: nutpie's ``with_data``) without compiling; the last 4 shapes stored are kept.
+_KEPT = CompiledStore(max_entries=4)
 
 
 class _Sampler:
@@ -103,7 +104,7 @@ class _Sampler:
 
     def __init__(self, sampler, pad, fit_kw):
         self.sampler, self.pad, self.kw = sampler, pad, fit_kw
-        self.models, self.compiled, self.fns = {}, {}, {}
+        self.kept = {}  # structure -> its KeptModel of _KEPT (held for this fit)
         self.compile_seconds = 0.0
         self.sample_seconds = 0.0
 
@@ -111,58 +112,57 @@ class _Sampler:
         from .model import build_model
 
         key = _structure(part)
-        if key not in self.models:
+        if key not in self.kept:
             shape = (key, len(part.breed_levels or ()), tuple(sorted(self.pad.items())),
                      tuple(sorted(self.kw.items())))
-            if shape not in _KEPT:
-                _KEPT[shape] = (build_model(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"],
-                                            self.kw["nodes"], pad=self.pad, locations=self.kw["locations"]), {})
-                while len(_KEPT) > _KEPT_MAX:
-                    _KEPT.pop(next(iter(_KEPT)))
-            self.models[key], self.fns[key] = _KEPT[shape]
-        return key, self.models[key]
+            self.kept[key] = _KEPT.entry(shape, lambda: build_model(
+                part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"], self.kw["nodes"],
+                pad=self.pad, locations=self.kw["locations"]))
+        return self.kept[key]
 
     def sample(self, part, pri, seed, draws, tune, chains, cores, target_accept):
         import pymc as pm
 
         from .model import model_values
 
-        key, model = self._model(part, pri)
+        kept = self._model(part, pri)
+        model = kept.model
         every = model_values(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"], self.pad,
                              self.kw["locations"])
         values = {k: v for k, v in every.items() if k in model.named_vars}
         pm.set_data(values, model=model)  # also the initial point's data (nutpie's initial point reads them)
         if self.sampler == "pymc":
-            from ..mcmc.engine import _kept_trace, _nuts_start
+            from ..mcmc.compiled import kept_trace, nuts_start
 
             t0 = time.perf_counter()
             # pymc.sample's own start and NUTS step (jitter+adapt_diag, same seeds, same draws) built
             # with the kept compiled functions, which read the data from the model's containers
-            start, step = _nuts_start(model, "fit", chains, seed, target_accept, self.fns[key])
+            start, step = nuts_start(kept, "fit", chains, seed, target_accept)
             idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed, step=step,
-                              initvals=start, trace=_kept_trace(model, "fit", start[0], self.fns[key]),
+                              initvals=start, trace=kept_trace(kept, "fit", start[0]),
                               progressbar=False, model=model, compute_convergence_checks=False,
                               return_inferencedata=True)
             self.sample_seconds += time.perf_counter() - t0
         else:
-            idata = self._nutpie(key, model, values, seed, draws, tune, chains, cores, target_accept)
+            idata = self._nutpie(kept, values, seed, draws, tune, chains, cores, target_accept)
         if self.kw["locations"] == "marginal":  # the locations, drawn from their exact conditional per draw
             from .model import draw_locations
 
             draw_locations(idata, every, part, {k: list(v) for k, v in model.coords.items()}, seed, self.pad)
         return idata
 
-    def _nutpie(self, key, model, values, seed, draws, tune, chains, cores, target_accept):
+    def _nutpie(self, kept, values, seed, draws, tune, chains, cores, target_accept):
         try:
             import nutpie
         except ImportError as exc:  # optional extra
             raise ImportError("sampler='nutpie' needs the optional package nutpie "
                               "(pip install 'bayesbase[nutpie]')") from exc
+        from ..mcmc.compiled import nutpie_compiled
+
         t0 = time.perf_counter()
-        if key not in self.compiled:
-            self.compiled[key] = nutpie.compile_pymc_model(model, backend="numba", freeze_model=False)
-        cm = self.compiled[key]
-        cm = cm.with_data(**{k: v for k, v in values.items() if k in cm.shared_data})
+        # compiled once per kept graph (the data just set: pm.set_data above); later analytes and fits
+        # swap theirs in with with_data
+        cm = nutpie_compiled(kept, "fit", values)
         t1 = time.perf_counter()
         idata = nutpie.sample(cm, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
                               progress_bar=False, save_warmup=False, target_accept=target_accept)
@@ -246,7 +246,7 @@ def fit_split(data: CalibrationData, pri: dict, *, draws: int = 1000, tune: int 
                              chains, settings["cores"], target_accept) for i, p in enumerate(parts)]
         idata = combine(data, parts, idatas)
         settings.update(fit_form="per analyte", sample_seconds=round(smp.sample_seconds, 2),
-                        compile_seconds=round(smp.compile_seconds, 2), compiled_graphs=len(smp.models))
+                        compile_seconds=round(smp.compile_seconds, 2), compiled_graphs=len(smp.kept))
         _m.stamp(idata, settings)
         settings["seconds"] = time.perf_counter() - t0
         diag = _m.diagnostics(idata, RHAT_MAX, ESS_MIN)

@@ -2,5 +2,7 @@
 (inside functions) so that the command line and the exact engine start fast.
 
 - :mod:`.engine`: the exact engine's model sampled with NUTS (robust, censored options);
-- :mod:`.trend`: the drift model sampled with NUTS, the reference for the exact drift kernels.
+- :mod:`.trend`: the drift model sampled with NUTS, the reference for the exact drift kernels;
+- :mod:`.compiled`: built models and their compiled pieces kept for reuse with new data (the one
+  store of the engine, the per-analyte calibration and the SBC test).
 """

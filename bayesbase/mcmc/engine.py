@@ -93,11 +93,12 @@ import pymc as pm
 import pytensor
 import pytensor.tensor as pt
 import xarray as xr
-from pymc.backends.ndarray import NDArray
 
 from .. import __version__
 from ..constants import DEFAULT_CI_PROB, DEFAULT_COVERAGE, DIM_ANALYTE, DIM_OBS, DIM_PATIENT
 from ..model.engine import CaseArrays, mixture_quantile
+from .compiled import (CompiledStore, KeptModel, kept_trace, logp_dlogp, nutpie_compiled,
+                       nuts_start)
 
 __all__ = [
     "McmcResult",
@@ -130,13 +131,10 @@ with warnings.catch_warnings():
     warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
     _ = pytensor.config.blas__ldflags
 
-# compiled-model cache: one PyMC model per structure, reused with pm.set_data
-_MODEL_CACHE: dict[tuple, pm.Model] = {}
-# nutpie compiled models, per structure and parameter shape (patients x analytes)
-_NUTPIE_CACHE: dict[tuple, object] = {}
-# PyMC's compiled log density + gradient of a cached model, per structure and parameter shape
-# (pm.sample compiles it again on every call; the data stay in the model's shared containers)
-_LOGP_CACHE: dict[tuple, object] = {}
+# one PyMC model per structure (:func:`_model_key`), reused with pm.set_data, and what was
+# compiled from it per parameter shape (patients, analytes): PyMC's log density and gradient,
+# start and trace (pm.sample compiles them again on every call), nutpie's compile
+_KEPT = CompiledStore()
 SAMPLERS = ("pymc", "nutpie")
 
 #: Sampler defaults per model kind (draws per chain, tuning steps per chain, NUTS target
@@ -295,17 +293,21 @@ def _model_key(structure, robust, nu):
             float(nu) if robust else None)
 
 
-def _get_model(data, coords, structure, robust, nu, reuse=True):
+def _get_model(data, coords, structure, robust, nu, reuse=True) -> KeptModel:
+    """The kept model of this structure with ``data`` and ``coords`` set (``reuse``), or a
+    model built for them and kept nowhere."""
+    def build():
+        return build_model(data, coords, robust=robust, nu=nu, **structure)
+
+    if not reuse:
+        return KeptModel(build())
     key = _model_key(structure, robust, nu)
-    model = _MODEL_CACHE.get(key) if reuse else None
-    if model is None:
-        model = build_model(data, coords, robust=robust, nu=nu, **structure)
-        if reuse:
-            _MODEL_CACHE[key] = model
-        return model
-    names = {v.name for v in model.data_vars}
-    pm.set_data({k: v for k, v in data.items() if k in names}, model=model, coords=coords)
-    return model
+    fresh = key not in _KEPT
+    kept = _KEPT.entry(key, build)
+    if not fresh:
+        names = {v.name for v in kept.model.data_vars}
+        pm.set_data({k: v for k, v in data.items() if k in names}, model=kept.model, coords=coords)
+    return kept
 
 
 # ----------------------------------------------------------------------------- summaries
@@ -658,20 +660,21 @@ def mcmc_assess(
         lg.setLevel(logging.ERROR)
     t0 = time.perf_counter()
     try:
-        model = _get_model(data, coords, structure, robust, nu, reuse=reuse_model)
+        kept = _get_model(data, coords, structure, robust, nu, reuse=reuse_model)
+        shape = (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))  # fixes the compiled pieces
         with warnings.catch_warnings():
             # short, deliberately under-run fits make PyMC/ArviZ warn about small samples; the
             # diagnostics below report the same fact as converged=False.
             warnings.filterwarnings("ignore", message=".*[Tt]he number of samples is too small.*")
             warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
             if sampler == "nutpie":
-                idata = _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune,
-                                       chains, cores, seed, target_accept, reuse_model)
+                idata = _sample_nutpie(kept, shape, data, coords, draws, tune, chains, cores,
+                                       seed, target_accept, reuse_model)
             else:
                 start = None if structure["censored"] or robust else \
                     _exact_moments(cases, pidx, aidx, coords)
-                idata = _sample_pymc(model, coords, structure, robust, nu, draws, tune, chains,
-                                     cores, seed, target_accept, reuse_model, start)
+                idata = _sample_pymc(kept, shape, draws, tune, chains, cores, seed,
+                                     target_accept, reuse_model, start)
             settings["seconds"] = time.perf_counter() - t0
             diagnostics, summary, mc_se = _summarise_fit(idata, cases, pidx, aidx, chains,
                                                          coverage, ci_prob)
@@ -700,28 +703,28 @@ def _summarise_fit(idata, cases, pidx, aidx, chains, coverage, ci_prob):
     return diagnostics, summary, mc_se
 
 
-def _sample_pymc(model, coords, structure, robust, nu, draws, tune, chains, cores, seed,
-                 target_accept, reuse, moments=None):
-    """PyMC's NUTS. ``moments`` (plain normal model, :func:`_exact_moments`): the exact
-    posterior means and variances start NUTS (:func:`_informed_nuts`); otherwise PyMC's default
-    start ("jitter+adapt_diag", :func:`_nuts_start`). With ``reuse``, either start uses the
-    model's compiled log density and gradient (and trace) kept from an earlier call of the same
-    structure and shape; without it, :func:`pymc.sample` compiles them (and, without
-    ``moments``, builds its own start)."""
+def _sample_pymc(kept, shape, draws, tune, chains, cores, seed, target_accept, reuse,
+                 moments=None):
+    """PyMC's NUTS on ``kept.model``. ``moments`` (plain normal model, :func:`_exact_moments`):
+    the exact posterior means and variances start NUTS (:func:`_informed_nuts`); otherwise
+    PyMC's default start ("jitter+adapt_diag", :func:`bayesbase.mcmc.compiled.nuts_start`).
+    With ``reuse``, either start uses the model's compiled log density and gradient (and trace)
+    kept on ``kept`` under ``shape`` (patients, analytes) by an earlier call; without it,
+    :func:`pymc.sample` compiles them (and, without ``moments``, builds its own start)."""
+    model = kept.model
     kw = dict(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
               progressbar=False, model=model, compute_convergence_checks=False,
               return_inferencedata=True)
-    key = _model_key(structure, robust, nu) + (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))
     if moments is not None:
-        fn = _cached_logp(model, key) if reuse else None
+        fn = logp_dlogp(kept, shape) if reuse else None
         start, step = _informed_nuts(model, moments, chains, seed, target_accept, fn)
         if reuse:
-            kw["trace"] = _kept_trace(model, key, start[0])
+            kw["trace"] = kept_trace(kept, shape, start[0])
         return pm.sample(step=step, initvals=start, **kw)
     if not reuse:
         return pm.sample(target_accept=target_accept, **kw)
-    start, step = _nuts_start(model, key, chains, seed, target_accept)
-    return pm.sample(step=step, initvals=start, trace=_kept_trace(model, key, start[0]), **kw)
+    start, step = nuts_start(kept, shape, chains, seed, target_accept)
+    return pm.sample(step=step, initvals=start, trace=kept_trace(kept, shape, start[0]), **kw)
 
 
 #: NUTS ``step_scale`` of the informed start: the first step size is step_scale / n^(1/4) for
@@ -759,17 +762,6 @@ def _exact_moments(cases: CaseArrays, pidx, aidx, coords) -> dict:
     return out if ok and all(np.all(v > 0) for _, v in out.values()) else None
 
 
-def _cached_logp(model, key, cache=None):
-    """The compiled log density and gradient of ``model`` kept under ``key``."""
-    cache = _LOGP_CACHE if cache is None else cache
-    fn = cache.get(key)
-    if fn is None:
-        fn = model.logp_dlogp_function(ravel_inputs=True)
-        fn.trust_input = True
-        cache[key] = fn
-    return fn
-
-
 def _informed_nuts(model, moments, chains, seed, target_accept, fn=None):
     """NUTS with the exact posterior variances as its (fixed, diagonal) mass matrix, so tuning
     only adapts the step size, started at :data:`INFORMED_STEP_SCALE`; each chain starts at
@@ -796,91 +788,14 @@ def _informed_nuts(model, moments, chains, seed, target_accept, fn=None):
     return starts, step
 
 
-def _nuts_start(model, key, chains, seed, target_accept, cache=None):
-    """What :func:`pymc.init_nuts` builds for ``init="jitter+adapt_diag"`` (the chains'
-    jittered starting points, a diagonal mass-matrix adaptation started at their mean, the NUTS
-    step) from the seeds :func:`pymc.sample` derives from ``seed``, but with the compiled log
-    density and gradient cached under ``key``: the same draws as ``pm.sample(random_seed=seed)``
-    without its compile (checked in ``tests/test_bench_speed_table.py``). The data are read
-    from the model's shared containers at each evaluation, so a cached function serves new
-    data.
-    ``cache``: the dict holding the compiled functions (default: this module's, for the models
-    of :data:`_MODEL_CACHE`); it must belong to ``model``."""
-    from pymc.blocking import DictToArrayBijection
-    from pymc.sampling.mcmc import _init_jitter
-    from pymc.step_methods.hmc import quadpotential
-    from pymc.util import get_random_generator
-
-    cache = _LOGP_CACHE if cache is None else cache
-    fn = _cached_logp(model, key, cache)
-    seeds = [r.integers(2**30) for r in get_random_generator(seed).spawn(chains)]
-
-    def logp(point):
-        return fn([DictToArrayBijection.map(point).data], extra_vars={})[0]
-
-    points = _jittered_starts(model, (key, "start"), cache, seeds, logp)
-    mean = np.mean([DictToArrayBijection.map(p).data for p in points], axis=0)
-    potential = quadpotential.QuadPotentialDiagAdapt(len(mean), mean, np.ones_like(mean), 10,
-                                                     rng=seeds[0])
-    step = pm.NUTS(potential=potential, model=model, rng=seeds[0], initial_point=points[0],
-                   logp_dlogp_func=fn, target_accept=target_accept)
-    names = {v.name for v in model.value_vars}
-    return [{k: v for k, v in p.items() if k in names} for p in points], step
+def _nuts_start(model, key, chains, seed, target_accept, cache):
+    """:func:`bayesbase.mcmc.compiled.nuts_start` on ``model`` with its compiled pieces kept in
+    the dict ``cache`` (the form :mod:`bayesbase.mcmc.trend` calls)."""
+    return nuts_start(KeptModel(model, cache), key, chains, seed, target_accept)
 
 
-def _jittered_starts(model, key, cache, seeds, logp, max_retries=10):
-    """``pymc.sampling.mcmc._init_jitter(model, None, seeds, jitter=True,
-    jitter_max_retries=10, logp_fn=logp)`` (PyMC 5.28; the same points for the same seeds)
-    with its compiled initial-point function kept in ``cache`` under ``key``: the model's
-    initial point plus a uniform(-1, 1) jitter on every free variable, redrawn with a new seed
-    from ``default_rng(seed)`` while the log density is not finite."""
-    from pymc.initial_point import make_initial_point_fn
-
-    ipfn = cache.get(key)
-    if ipfn is None:
-        ipfn = make_initial_point_fn(model=model, overrides=None,
-                                     jitter_rvs=set(model.free_RVs), return_transformed=True)
-        cache[key] = ipfn
-    points = []
-    for seed in seeds:
-        rng = np.random.default_rng(seed)
-        for i in range(max_retries + 1):
-            point = ipfn(seed)
-            if np.isfinite(logp(point)):
-                break
-            if i == max_retries:
-                model.check_start_vals(point)  # raises, naming the variables at fault
-            seed = rng.integers(2**30, dtype=np.int64)
-        points.append(point)
-    return points
-
-
-class _KeptTrace(NDArray):
-    """An empty NDArray trace kept per structure and shape, so that its compiled point function
-    (free variables -> traced variables, deterministics included; it reads the data from the
-    model's shared containers) is compiled once. ``pymc.sample(trace=...)`` takes a copy per
-    chain (``copy.copy``): each copy is a plain NDArray with its own empty storage (a shallow
-    copy of NDArray itself would share one ``samples`` dict between the chains)."""
-
-    def __copy__(self):
-        new = NDArray.__new__(NDArray)
-        new.__dict__.update(self.__dict__)
-        new.chain, new._is_base_setup, new.sampler_vars = None, False, None
-        new.draw_idx, new.draws, new.samples, new._stats = 0, None, {}, None
-        return new
-
-
-def _kept_trace(model, key, point, cache=None):
-    """The :class:`_KeptTrace` of ``model`` under ``key`` (built at ``point`` on first use)."""
-    cache = _LOGP_CACHE if cache is None else cache
-    trace = cache.get((key, "trace"))
-    if trace is None:
-        trace = cache[(key, "trace")] = _KeptTrace(model=model, test_point=point)
-    return trace
-
-
-def _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune, chains, cores,
-                   seed, target_accept, reuse):
+def _sample_nutpie(kept, shape, data, coords, draws, tune, chains, cores, seed, target_accept,
+                   reuse):
     try:
         import nutpie
     except ImportError as exc:  # optional extra
@@ -889,14 +804,7 @@ def _sample_nutpie(model, data, coords, structure, robust, nu, draws, tune, chai
                           "(pip install 'nutpie>=0.16,<0.17')") from exc
     # the parameter count fixes the compile; the number of baseline results (dim obs) does not:
     # with_data on another length samples as a fresh compile would (tests/test_bench_speed_table.py)
-    key = _model_key(structure, robust, nu) + (len(coords[DIM_PATIENT]), len(coords[DIM_ANALYTE]))
-    cm = _NUTPIE_CACHE.get(key) if reuse else None
-    if cm is None:
-        cm = nutpie.compile_pymc_model(model, backend="numba", freeze_model=False)
-        if reuse:
-            _NUTPIE_CACHE[key] = cm
-    else:
-        cm = cm.with_data(**{k: v for k, v in data.items() if k in cm.shared_data})
+    cm = nutpie_compiled(kept, shape, data if reuse else None)
     idata = nutpie.sample(cm, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
                           progress_bar=False, save_warmup=False, target_accept=target_accept)
     # labels come from this call, not from the panel the model was compiled for
