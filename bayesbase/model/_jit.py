@@ -1048,20 +1048,25 @@ def _quantile(x, q, lo, hi, it0, wc, mc, isd, sc, n, d, mom, tol, max_iter):
     return x
 
 
-@_jit_e
-def _quantile_pair(q0, z0, q1, z1, wc, mc, isd, sc, n, mom, dd, tol, max_iter):
-    """Quantiles q0, q1 (standard normal deviates z0, z1) of the mixture over the n nodes
-    (weights wc, means mc, 1/s in isd; moments mom as in :func:`_quantile`, dd scratch of 14):
-    both Cornish-Fisher starts, their first iteration evaluated in one pass over the nodes
-    (:func:`_cdf_derivs2`; one iteration is the rule on the bench's cases), then
-    :func:`_quantile` for a level whose stop rule does not hold yet."""
+@_inline
+def _pair_start(z0, z1, wc, mc, isd, sc, n, mom, dd, max_iter):
+    """First half of :func:`_quantile_pair`: both Cornish-Fisher starts and, unless
+    ``max_iter`` < 1, the CDF and its derivatives there in one pass over the nodes (into dd)."""
     x0 = _cf_start(z0, mom)
     x1 = _cf_start(z1, mom)
+    if max_iter >= 1:
+        _cdf_derivs2(x0, x1, wc, mc, isd, sc, n, dd[0:_QORD + 1], dd[_QORD + 1:2 * _QORD + 2])
+    return x0, x1
+
+
+@_inline
+def _pair_finish(x0, x1, q0, q1, wc, mc, isd, sc, n, mom, dd, tol, max_iter):
+    """Second half of :func:`_quantile_pair`: the step from each start, then :func:`_quantile`
+    for a level whose stop rule does not hold yet."""
     if max_iter < 1:
         return x0, x1
     d0 = dd[0:_QORD + 1]
     d1 = dd[_QORD + 1:2 * _QORD + 2]
-    _cdf_derivs2(x0, x1, wc, mc, isd, sc, n, d0, d1)
     x0, done0, lo0, hi0 = _solve_step(x0, q0, d0, mom, mom[4], mom[5], tol)
     x1, done1, lo1, hi1 = _solve_step(x1, q1, d1, mom, mom[4], mom[5], tol)
     if not done0:
@@ -1069,6 +1074,18 @@ def _quantile_pair(q0, z0, q1, z1, wc, mc, isd, sc, n, mom, dd, tol, max_iter):
     if not done1:
         x1 = _quantile(x1, q1, lo1, hi1, 1, wc, mc, isd, sc, n, d1, mom, tol, max_iter)
     return x0, x1
+
+
+@_jit_e
+def _quantile_pair(q0, z0, q1, z1, wc, mc, isd, sc, n, mom, dd, tol, max_iter):
+    """Quantiles q0, q1 (standard normal deviates z0, z1) of the mixture over the n nodes
+    (weights wc, means mc, 1/s in isd; moments mom as in :func:`_quantile`, dd scratch of 14):
+    both Cornish-Fisher starts, their first iteration evaluated in one pass over the nodes
+    (:func:`_cdf_derivs2`; one iteration is the rule on the bench's cases), then
+    :func:`_quantile` for a level whose stop rule does not hold yet. The engine calls its two
+    halves (:func:`_pair_start`, :func:`_pair_finish`) for both intervals in turn."""
+    x0, x1 = _pair_start(z0, z1, wc, mc, isd, sc, n, mom, dd, max_iter)
+    return _pair_finish(x0, x1, q0, q1, wc, mc, isd, sc, n, mom, dd, tol, max_iter)
 
 
 @_jit_e_sum
@@ -1111,25 +1128,32 @@ def _intervals_case(i, levels, zl, sc, d, kk, wmax, prune, tol, max_iter, mom, o
     weight is at least ``prune`` times the largest (weights renormalised over them, the others
     kept in place with weight 0, all padded to a multiple of :data:`_PAD`; the SDs and their
     inverses from the design rows ``d``, padded by :func:`_fill_scores`). No node passing
-    (weights NaN from NaN inputs, or ``prune`` > 1) gives NaN limits."""
+    (weights NaN from NaN inputs, or ``prune`` > 1) gives NaN limits. The two intervals' steps
+    are taken in turn (moments, starts and evaluations of both, then both solves), so the
+    scalar work of one overlaps the other's (mom: 2 x 22, one moments row and scratch each)."""
     npad = min(-(-kk // _PAD) * _PAD, sc.shape[1])
     wz, m = sc[_S_WC], sc[_S_M]
     br = sc[_S_VC]
     n = _keep(sc[_S_W], m, d[_D_SP], d[_D_S0], prune * wmax, kk, npad, wz, br)
-    for part in range(2):
-        if n == 0:
-            for lv in range(2 * part, 2 * part + 2):
-                out[(_O_TL, _O_TU, _O_PL, _O_PU)[lv], i] = np.nan
-            continue
-        sd, isd = (d[_D_SP], d[_D_ISP]) if part == 0 else (d[_D_S0], d[_D_IS0])
-        _moments(wz, m, sd, isd, npad, mom)
-        mom[4] = br[2 * part]
-        mom[5] = br[2 * part + 1]
-        lv = 2 * part
-        x0, x1 = _quantile_pair(levels[lv], zl[lv], levels[lv + 1], zl[lv + 1], wz, m, isd, sc,
-                                npad, mom, mom[8:8 + 2 * _QORD + 2], tol, max_iter)
-        out[(_O_TL, _O_PL)[part], i] = x0
-        out[(_O_TU, _O_PU)[part], i] = x1
+    if n == 0:
+        for o in (_O_TL, _O_TU, _O_PL, _O_PU):
+            out[o, i] = np.nan
+        return
+    ma, mb = mom[0:22], mom[22:44]
+    _moments(wz, m, d[_D_SP], d[_D_ISP], npad, ma)
+    _moments(wz, m, d[_D_S0], d[_D_IS0], npad, mb)
+    ma[4], ma[5], mb[4], mb[5] = br[0], br[1], br[2], br[3]
+    da, db = ma[8:8 + 2 * _QORD + 2], mb[8:8 + 2 * _QORD + 2]
+    a0, a1 = _pair_start(zl[0], zl[1], wz, m, d[_D_ISP], sc, npad, ma, da, max_iter)
+    b0, b1 = _pair_start(zl[2], zl[3], wz, m, d[_D_IS0], sc, npad, mb, db, max_iter)
+    a0, a1 = _pair_finish(a0, a1, levels[0], levels[1], wz, m, d[_D_ISP], sc, npad, ma, da, tol,
+                          max_iter)
+    b0, b1 = _pair_finish(b0, b1, levels[2], levels[3], wz, m, d[_D_IS0], sc, npad, mb, db, tol,
+                          max_iter)
+    out[_O_TL, i] = a0
+    out[_O_TU, i] = a1
+    out[_O_PL, i] = b0
+    out[_O_PU, i] = b1
 
 
 @_jit_e
@@ -1180,9 +1204,9 @@ def engine_cases_k(start, stop, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, ny, n
     of ``out`` follow ``OUTPUT_KEYS``): node posteriors and weights, the scores, and with
     ``intervals`` the four mixture quantiles (levels, with their normal deviates zl). Scratch
     (one set per thread, see :func:`engine_scratch`): key, ck, si2 the (CVI, uncertainty)
-    table, dkey, dtab the design table (:data:`_DCACHE`), sc (_S_N_SCRATCH, nodes), acc (27,)."""
+    table, dkey, dtab the design table (:data:`_DCACHE`), sc (_S_N_SCRATCH, nodes), acc (49,)."""
     kk = xn.size
-    mom = acc[5:27]
+    mom = acc[5:49]
     for i in range(start, stop):
         slot, nb = _case_design(i, xn, lwn, pm, sg, cvi, cs, sa, by, br, bev, nr, nev, tau, key,
                                 ck, si2, dkey, dtab, sc)
@@ -1214,4 +1238,4 @@ def engine_scratch(nodes):
     acc)."""
     return (np.full((_CACHE, 2), np.nan), np.empty((_CACHE, nodes)), np.empty((_CACHE, nodes)),
             np.full((_DCACHE + 1, 7), np.nan), np.empty((_DCACHE + 1, _D_N, -(-nodes // _PAD) * _PAD)),
-            np.empty((_S_N_SCRATCH, -(-nodes // _PAD) * _PAD)), np.empty(27))
+            np.empty((_S_N_SCRATCH, -(-nodes // _PAD) * _PAD)), np.empty(49))
