@@ -52,7 +52,15 @@ def _accumulate(w, sg2, m, H, uq, gq, s1, s2, ca, br, n_an, nb):
         g, wc, s, mc, sc = ca[c] * nb + br[c], w[c], sg2[ca[c]], m[c], s1[c]
         den = 1.0 + s * mc * wc
         t = s * wc * wc / den
-        tot -= 0.5 * (mc * _LOG_2PI - mc * np.log(wc) + np.log(den) + wc * s2[c] - t * sc * sc)
+        lv = 0.0  # ln(1 + s m w) - m ln w, with one logarithm while (1 + s m w) / w^m stays in range
+        if mc <= 8.0:
+            prod = den
+            for _ in range(int(mc)):
+                prod /= wc
+            lv = np.log(prod) if mc == int(mc) else np.log(den) - mc * np.log(wc)
+        else:
+            lv = np.log(den) - mc * np.log(wc)
+        tot -= 0.5 * (mc * _LOG_2PI + lv + wc * s2[c] - t * sc * sc)
         for i in range(dq):
             bg[g, i] += wc * gq[c, i] - t * sc * uq[c, i]
             for j in range(dq):
