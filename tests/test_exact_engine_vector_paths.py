@@ -21,8 +21,8 @@ pytest.importorskip("numba")
 
 def test_phi_pq_equals_phi_and_scipy_ndtr():
     """phi_pq equals phi bit for bit for |z| < 8 sqrt 2 and within 1e-42 of it and of
-    scipy.special.ndtr beyond (where the R/S branch is left out); within phi's own 3.2e-14 of
-    ndtr everywhere (P/Q from |z| = 1 on, where ndtr takes 1 - erf); inf and NaN as phi."""
+    scipy.special.ndtr beyond (where the R/S branch is left out); within 2e-16 of ndtr
+    everywhere (erf below |z| = sqrt 2, as ndtr); inf and NaN as phi."""
     import numba
 
     from bayesbase.model import _jit
@@ -45,8 +45,46 @@ def test_phi_pq_equals_phi_and_scipy_ndtr():
     assert np.max(np.abs(b[far] - a[far])) < 1e-42
     assert np.max(np.abs(b[far] - ref[far])) < 1e-42
     fin = np.isfinite(z)
-    assert np.max(np.abs(b[fin] - ref[fin])) < 3.2e-14
+    assert np.max(np.abs(b[fin] - ref[fin])) < 2e-16
     assert b[-3] == 1.0 and b[-2] == 0.0 and np.isnan(b[-1])
+
+
+def test_phi_and_phi_pq_match_ndtr_where_it_switches_to_erf():
+    """phi and phi_pq against scipy.special.ndtr (Cephes ndtr: 0.5 + 0.5 erf(z / sqrt 2) for
+    |z| < sqrt 2, as its erfc takes 1 - erf below 1, the erfc tail beyond) on a grid dense in
+    1 < |z| < sqrt 2, where a switch to the tail formula at |z| = 1 is off by up to 3.1e-14:
+    within 2e-16 absolute everywhere; in the lower tail (z < 0) relative within 2.6e-15 for
+    |z| < sqrt 2 (2e-16 over ndtr(-sqrt 2) = 0.0786) and, for phi, within 1e-12 down to
+    z = -40 (the rounding of z^2 / 2 in exp(-z^2 / 2): 2.8e-13 relative near z = -38;
+    phi_pq, absolute only, is held to it where it equals phi, |z| < 8 sqrt 2)."""
+    import numba
+
+    from bayesbase.model import _jit
+
+    @numba.njit
+    def both(z, a, b):
+        for i in range(z.size):
+            e = np.exp(-0.5 * z[i] * z[i])
+            a[i] = _jit.phi(z[i], e)
+            b[i] = _jit.phi_pq(z[i], e)
+
+    r2 = math.sqrt(2.0)
+    band = np.linspace(1.0, r2, 1_000_001)
+    z = np.concatenate([np.linspace(-40.0, 40.0, 400_001), band, -band,
+                        np.nextafter([1.0, r2, -1.0, -r2], 0.0)])
+    a, b = np.empty_like(z), np.empty_like(z)
+    both(z, a, b)
+    ref = special.ndtr(z)
+    inband = (np.abs(z) > 1.0) & (np.abs(z) < r2)
+    assert inband.sum() > 1_900_000
+    for got in (a, b):
+        assert np.max(np.abs(got - ref)) < 2e-16
+        low = (z < 0) & (np.abs(z) < r2)
+        assert np.max(np.abs(got[low] - ref[low]) / ref[low]) < 2.6e-15
+    low = (z < 0) & (ref > 0)
+    assert np.max(np.abs(a[low] - ref[low]) / ref[low]) < 1e-12
+    low &= z > -8.0 * r2
+    assert np.max(np.abs(b[low] - ref[low]) / ref[low]) < 1e-12
 
 
 def test_score_window_whole_vectors_zero_outside():
