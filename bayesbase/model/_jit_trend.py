@@ -26,24 +26,9 @@ import numpy as np
 from numba import types
 from numba.extending import intrinsic
 
-_SQRTH = 0.70710678118654752440  # sqrt(1/2)
+from ._jit import phi  # Cephes ndtr as scipy.special.ndtr, within 2e-16 (one copy for both kernels)
+
 _C = 0.39894228040143267794  # 1 / sqrt(2 pi)
-# Cephes ndtr.c coefficient tables (Moshier SL, Cephes Math Library 2.9, the tables of
-# scipy.special.ndtr; copied from bayesbase.model._jit); the leading 1 of U, Q and S is implicit
-_T = (9.60497373987051638749e0, 9.00260197203842689217e1, 2.23200534594684319226e3,
-      7.00332514112805075473e3, 5.55923013010394962768e4)
-_U = (3.35617141647503099647e1, 5.21357949780152679795e2, 4.59432382970980127987e3,
-      2.26290000613890934246e4, 4.92673942608635921086e4)
-_P = (2.46196981473530512524e-10, 5.64189564831068821977e-1, 7.46321056442269912687e0,
-      4.86371970985681366614e1, 1.96520832956077098242e2, 5.26445194995477358631e2,
-      9.34528527171957607540e2, 1.02755188689515710272e3, 5.57535335369399327526e2)
-_Q = (1.32281951154744992508e1, 8.67072140885989742329e1, 3.54937778887819891062e2,
-      9.75708501743205489753e2, 1.82390916687909736289e3, 2.24633760818710981792e3,
-      1.65666309194161350182e3, 5.57535340817727675546e2)
-_R = (5.64189583547755073984e-1, 1.27536670759978104416e0, 5.01905042251180477414e0,
-      6.16021097993053585195e0, 7.40974269950448939160e0, 2.97886665372100240670e0)
-_S = (2.26052863220117276590e0, 9.39603524938001434673e0, 1.20489539808096656605e1,
-      1.70814450747565897222e1, 9.60896809063285878198e0, 3.36907645100081516050e0)
 
 #: rows of the kernel's output array, in order
 ROWS = ("log_bf10", "p_drift", "p_increase", "slope_mean", "slope_sd", "exp_slope_mean",
@@ -138,30 +123,6 @@ def vlog(x):
     y = ef * _LN2HI + (2.0 * f + (ef * _LN2LO + 2.0 * f * s * p))
     y = y if x < np.inf else x
     return y if x > 0.0 else (-np.inf if x == 0.0 else np.nan)
-
-
-@numba.njit(inline="always", error_model="numpy")
-def phi(z, e):
-    """Phi(z) given e = exp(-z^2/2): Cephes' three branches (as bayesbase.model._jit.phi)."""
-    x = z * _SQRTH
-    a = abs(x)
-    x2 = x * x
-    num = x * ((((_T[0] * x2 + _T[1]) * x2 + _T[2]) * x2 + _T[3]) * x2 + _T[4])
-    den = ((((x2 + _U[0]) * x2 + _U[1]) * x2 + _U[2]) * x2 + _U[3]) * x2 + _U[4]
-    p = (((((((_P[0] * a + _P[1]) * a + _P[2]) * a + _P[3]) * a + _P[4]) * a + _P[5]) * a
-          + _P[6]) * a + _P[7]) * a + _P[8]
-    q = (((((((a + _Q[0]) * a + _Q[1]) * a + _Q[2]) * a + _Q[3]) * a + _Q[4]) * a + _Q[5]) * a
-         + _Q[6]) * a + _Q[7]
-    r = ((((_R[0] * a + _R[1]) * a + _R[2]) * a + _R[3]) * a + _R[4]) * a + _R[5]
-    s = (((((a + _S[0]) * a + _S[1]) * a + _S[2]) * a + _S[3]) * a + _S[4]) * a + _S[5]
-    small = a < _SQRTH
-    far = a >= 8.0
-    n = num if small else (r if far else p)
-    d = den if small else (s if far else q)
-    ratio = n / d
-    tail = 0.5 * e * ratio if e > 0.0 else 0.0 * e  # |z| = inf: ratio is inf/inf; NaN stays
-    big = 1.0 - tail if x > 0 else tail
-    return 0.5 + 0.5 * ratio if small else big
 
 
 @_jit
