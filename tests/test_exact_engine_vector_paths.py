@@ -19,24 +19,36 @@ from bayesbase.model.engine import CaseArrays, exact_assess
 pytest.importorskip("numba")
 
 
-def test_phi_pq_equals_phi_and_scipy_ndtr():
-    """phi_pq equals phi bit for bit for |z| < 8 sqrt 2 and within 1e-42 of it and of
-    scipy.special.ndtr beyond (where the R/S branch is left out); within 2e-16 of ndtr
-    everywhere (erf below |z| = sqrt 2, as ndtr); inf and NaN as phi."""
+def _phi_both(z):
+    """phi and phi_pq of the kernel at every z, each with e = exp(-z^2 / 2) (compiled once)."""
     import numba
 
     from bayesbase.model import _jit
 
-    @numba.njit
-    def both(z, a, b):
-        for i in range(z.size):
-            e = np.exp(-0.5 * z[i] * z[i])
-            a[i] = _jit.phi(z[i], e)
-            b[i] = _jit.phi_pq(z[i], e)
+    global _BOTH
+    if _BOTH is None:
+        @numba.njit
+        def both(z, a, b):
+            for i in range(z.size):
+                e = np.exp(-0.5 * z[i] * z[i])
+                a[i] = _jit.phi(z[i], e)
+                b[i] = _jit.phi_pq(z[i], e)
 
-    z = np.concatenate([np.linspace(-40.0, 40.0, 800_001), [np.inf, -np.inf, np.nan]])
+        _BOTH = both
     a, b = np.empty_like(z), np.empty_like(z)
-    both(z, a, b)
+    _BOTH(z, a, b)
+    return a, b
+
+
+_BOTH = None
+
+
+def test_phi_pq_equals_phi_and_scipy_ndtr():
+    """phi_pq equals phi bit for bit for |z| < 8 sqrt 2 and within 1e-42 of it and of
+    scipy.special.ndtr beyond (where the R/S branch is left out); within 2e-16 of ndtr
+    everywhere (erf below |z| = sqrt 2, as ndtr); inf and NaN as phi."""
+    z = np.concatenate([np.linspace(-40.0, 40.0, 800_001), [np.inf, -np.inf, np.nan]])
+    a, b = _phi_both(z)
     ref = special.ndtr(z)
     near = np.abs(z) < 8.0 * math.sqrt(2.0)
     np.testing.assert_array_equal(b[near], a[near])
@@ -57,23 +69,11 @@ def test_phi_and_phi_pq_match_ndtr_where_it_switches_to_erf():
     |z| < sqrt 2 (2e-16 over ndtr(-sqrt 2) = 0.0786) and, for phi, within 1e-12 down to
     z = -40 (the rounding of z^2 / 2 in exp(-z^2 / 2): 2.8e-13 relative near z = -38;
     phi_pq, absolute only, is held to it where it equals phi, |z| < 8 sqrt 2)."""
-    import numba
-
-    from bayesbase.model import _jit
-
-    @numba.njit
-    def both(z, a, b):
-        for i in range(z.size):
-            e = np.exp(-0.5 * z[i] * z[i])
-            a[i] = _jit.phi(z[i], e)
-            b[i] = _jit.phi_pq(z[i], e)
-
     r2 = math.sqrt(2.0)
     band = np.linspace(1.0, r2, 1_000_001)
     z = np.concatenate([np.linspace(-40.0, 40.0, 400_001), band, -band,
                         np.nextafter([1.0, r2, -1.0, -r2], 0.0)])
-    a, b = np.empty_like(z), np.empty_like(z)
-    both(z, a, b)
+    a, b = _phi_both(z)
     ref = special.ndtr(z)
     inband = (np.abs(z) > 1.0) & (np.abs(z) < r2)
     assert inband.sum() > 1_900_000
