@@ -45,11 +45,9 @@ _jit_sum = numba.njit(cache=True, error_model="numpy", nogil=True,
 
 
 @numba.njit(inline="always", error_model="numpy")
-def phi(z, e):
-    """Phi(z) given e = exp(-z^2/2): Cephes' three branches, written as selects so the loops
-    that call it vectorise. As scipy.special.ndtr (Cephes ndtr, whose erfc takes 1 - erf below
-    1), 0.5 + 0.5 erf(z / sqrt 2) for |z| < sqrt 2 and the erfc tail beyond: within 2e-16 of
-    ndtr (the tests); the tail formula from |z| = 1 on was off by up to 3.1e-14 there."""
+def _ndtr_parts(z):
+    """x = z / sqrt 2, a = |x| and Cephes ndtr's rational parts shared by :func:`phi` and
+    :func:`phi_pq`: the erf ratio's numerator and denominator (T/U) and the erfc tail's (P/Q)."""
     x = z * _SQRTH
     a = abs(x)
     x2 = x * x
@@ -59,6 +57,16 @@ def phi(z, e):
           + _P[6]) * a + _P[7]) * a + _P[8]
     q = (((((((a + _Q[0]) * a + _Q[1]) * a + _Q[2]) * a + _Q[3]) * a + _Q[4]) * a + _Q[5]) * a
          + _Q[6]) * a + _Q[7]
+    return x, a, num, den, p, q
+
+
+@numba.njit(inline="always", error_model="numpy")
+def phi(z, e):
+    """Phi(z) given e = exp(-z^2/2): Cephes' three branches, written as selects so the loops
+    that call it vectorise. As scipy.special.ndtr (Cephes ndtr, whose erfc takes 1 - erf below
+    1), 0.5 + 0.5 erf(z / sqrt 2) for |z| < sqrt 2 and the erfc tail beyond: within 2e-16 of
+    ndtr (the tests); the tail formula from |z| = 1 on was off by up to 3.1e-14 there."""
+    x, a, num, den, p, q = _ndtr_parts(z)
     r = ((((_R[0] * a + _R[1]) * a + _R[2]) * a + _R[3]) * a + _R[4]) * a + _R[5]
     s = (((((a + _S[0]) * a + _S[1]) * a + _S[2]) * a + _S[3]) * a + _S[4]) * a + _S[5]
     small = a < 1.0  # |z| < sqrt 2
@@ -78,15 +86,7 @@ def phi_pq(z, e):
     1 - Phi is below 1e-29 and the error of e P/Q / 2 below 1e-42, so the value differs from
     :func:`phi`'s by less than that (checked against scipy.special.ndtr and phi in the tests),
     with one rational function less per node. erf below |z| = sqrt 2, as :func:`phi`."""
-    x = z * _SQRTH
-    a = abs(x)
-    x2 = x * x
-    num = x * ((((_T[0] * x2 + _T[1]) * x2 + _T[2]) * x2 + _T[3]) * x2 + _T[4])
-    den = ((((x2 + _U[0]) * x2 + _U[1]) * x2 + _U[2]) * x2 + _U[3]) * x2 + _U[4]
-    p = (((((((_P[0] * a + _P[1]) * a + _P[2]) * a + _P[3]) * a + _P[4]) * a + _P[5]) * a
-          + _P[6]) * a + _P[7]) * a + _P[8]
-    q = (((((((a + _Q[0]) * a + _Q[1]) * a + _Q[2]) * a + _Q[3]) * a + _Q[4]) * a + _Q[5]) * a
-         + _Q[6]) * a + _Q[7]
+    x, a, num, den, p, q = _ndtr_parts(z)
     small = a < 1.0  # |z| < sqrt 2
     ratio = (num if small else p) / (den if small else q)
     tail = 0.5 * e * ratio if e > 0.0 else 0.0 * e  # |z| = inf: ratio is inf/inf; NaN stays
