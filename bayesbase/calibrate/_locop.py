@@ -1,12 +1,13 @@
 """The marginal location density of the calibration model as one compiled operation, with its
 gradient in closed form (imported only where a graph is built: it loads PyTensor and numba).
 
-:func:`bayesbase.calibrate.model._location_marginal` writes the density (module docstring of
-:mod:`bayesbase.calibrate.model`) as a PyTensor graph of per-cell products, a D x D solve and a
-log determinant; its gradient by automatic differentiation costs about 92 us per call in numba
-on the benchmark's analyte (500 cells), most of it the per-node overhead of some 60 small array
-operations. Here the same density and its exact gradient are one pass over the cells, one
-Cholesky factor per analyte, and a second pass over the cells:
+:func:`bayesbase.calibrate.model._location_marginal` puts this operation into the model. The
+density (module docstring of :mod:`bayesbase.calibrate.model`) was first written as a PyTensor
+graph of per-cell products, a D x D solve and a log determinant, whose gradient by automatic
+differentiation cost about 92 us per call in numba on the benchmark's analyte (500 cells), most
+of it the per-node overhead of some 60 small array operations. Here the latent CVI layer, the same
+density and its exact gradient are one pass over the cells, one Cholesky factor per analyte, and
+a second pass over the cells:
 
 Per cell c (m specimens, w = 1 / v, s = sigma_g^2 of its analyte), t = s w^2 / (1 + s m w):
 M_c = w G_c - t u_c u_c', b_c = w g_c - t s1_c u_c, yy_c = w s2_c - t s1_c^2 and
@@ -24,9 +25,10 @@ t_w = s w (2 + s m w) / (1 + s m w)^2 and t_s = w^2 / (1 + s m w)^2:
     dlogp/dw_c = 0.5 m / w - 0.5 s m / (1 + s m w) - 0.5 s2 + mu~'g - 0.5 <Q~, G> + t_w r_c
     dlogp/ds_c = -0.5 m w / (1 + s m w) + t_s r_c   (summed over the analyte's cells).
 
-``tests/test_calibrate_locop.py`` checks the value and the gradient against the PyTensor graph of
-:func:`~bayesbase.calibrate.model._location_marginal` (automatic differentiation; that graph is
-itself checked against scipy's multivariate normal) and against finite differences.
+``tests/test_calibrate_locop.py`` checks the value and the gradient against that earlier PyTensor
+graph (kept there; automatic differentiation) and against finite differences;
+``tests/test_calibrate_marginal.py`` checks the model's density against scipy's multivariate
+normal.
 """
 from __future__ import annotations
 
@@ -255,14 +257,14 @@ def latent_marginal_k(z, lm, sp, sa, sg2, prec, nrep, m, H, uq, gq, s1, s2, ca, 
     return logp, mean, chol, gz, glm, gsp, gsa, gs, gp
 
 
-class _Marginal(Op):
-    """An operation whose first ``n_diff`` inputs are differentiable, with outputs log p, mu_hat,
-    L and then one gradient per differentiable input (for :meth:`grad`); the rest of the inputs
-    are data. ``kernel`` computes every output."""
+class LatentMarginal(Op):
+    """Inputs z (cell), ln CVI median, CVI spread, sigma_a, sigma_g^2 (per analyte), P (analyte,
+    D) (the differentiable ones), then the data n_rep, m, G, u, g, s1, s2 (per cell), cell
+    analyte and cell breed; outputs log p, mu_hat, L and one gradient per differentiable input
+    (for :meth:`grad`), all from :func:`latent_marginal_k`."""
 
     __props__ = ()
-    n_diff = 0
-    kernel = None
+    n_diff = 6
 
     def make_node(self, *inputs):
         n_int = 2  # cell analyte, cell breed
@@ -272,7 +274,7 @@ class _Marginal(Op):
         return Apply(self, ins, outs)
 
     def perform(self, node, inputs, output_storage):
-        for store, value in zip(output_storage, type(self).kernel(*inputs)):
+        for store, value in zip(output_storage, latent_marginal_k(*inputs)):
             store[0] = value
 
     def grad(self, inputs, output_grads):
@@ -287,29 +289,10 @@ class _Marginal(Op):
         return [[True] * n_out] * self.n_diff + [[False] * n_out] * (len(node.inputs) - self.n_diff)
 
 
-class LocationMarginal(_Marginal):
-    """Inputs w (cell), sigma_g^2 (analyte), P (analyte, D), then the data m, G, u, g, s1, s2 (per
-    cell), cell analyte and cell breed (:func:`location_marginal_k`)."""
-
-    n_diff = 3
-    kernel = staticmethod(location_marginal_k)
-
-
-class LatentMarginal(_Marginal):
-    """Inputs z (cell), ln CVI median, CVI spread, sigma_a, sigma_g^2 (per analyte), P (analyte,
-    D), then the data n_rep (cell) and those of :class:`LocationMarginal`
-    (:func:`latent_marginal_k`)."""
-
-    n_diff = 6
-    kernel = staticmethod(latent_marginal_k)
-
-
+@register_funcify_default_op_cache_key(LatentMarginal)
 def _funcify(op, node, **kwargs):
-    return type(op).kernel
+    """nutpie's numba backend calls the kernel itself."""
+    return latent_marginal_k
 
 
-register_funcify_default_op_cache_key(LocationMarginal)(_funcify)
-register_funcify_default_op_cache_key(LatentMarginal)(_funcify)
-
-location_marginal = LocationMarginal()
 latent_marginal = LatentMarginal()
