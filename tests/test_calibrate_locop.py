@@ -231,7 +231,7 @@ def test_cell_constants_match_numpy_for_every_specimen_count():
     s1, s2 = rng.normal(0, 1, C) * m, rng.uniform(0, 3, C) * m
     uq, gq, H = np.zeros((C, 1)), np.zeros((C, 1)), np.zeros((C, 1, 1))
     ca, br, sg2 = np.zeros(C, dtype=np.int64), np.zeros(C, dtype=np.int64), np.array([0.05])
-    _, _, tot = _locop._accumulate(w, sg2, m, H, uq, gq, s1, s2, ca, br, 1, 1)
+    _, _, tot, _ = _locop._accumulate(w, 1.0 / w, sg2, m, H, uq, gq, s1, s2, ca, br, 1, 1)
     t = sg2[0] * w * w / (1 + sg2[0] * m * w)
     want = -0.5 * np.sum(m * _LOG_2PI - m * np.log(w) + np.log1p(sg2[0] * m * w) + w * s2 - t * s1 * s1)
     assert tot == pytest.approx(want, rel=1e-12)

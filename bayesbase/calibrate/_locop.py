@@ -44,30 +44,34 @@ _LOG_2PI = float(np.log(2.0 * np.pi))
 
 
 @numba.njit(cache=True)
-def _accumulate(w, sg2, m, H, uq, gq, s1, s2, ca, br, n_an, nb):
+def _accumulate(w, v, sg2, m, H, uq, gq, s1, s2, ca, br, n_an, nb):
     """First pass: per group g = (analyte, breed) the sums of M_c and b_c over its cells (q
-    coordinates), and the constant plus -0.5 yy over every cell."""
+    coordinates), the constant plus -0.5 yy over every cell, and 1 / (1 + s m w) per cell (``v`` =
+    1 / w, so that the cell's log term takes products, not a chain of divisions)."""
     C, dq = uq.shape
     mg, bg = np.zeros((n_an * nb, dq, dq)), np.zeros((n_an * nb, dq))
+    inv_den = np.empty(C)
     tot = 0.0
     for c in range(C):
         g, wc, s, mc, sc = ca[c] * nb + br[c], w[c], sg2[ca[c]], m[c], s1[c]
         den = 1.0 + s * mc * wc
-        t = s * wc * wc / den
-        lv = 0.0  # ln(1 + s m w) - m ln w, with one logarithm while (1 + s m w) / w^m stays in range
-        if mc <= 8.0:
+        idn = 1.0 / den
+        inv_den[c] = idn
+        t = s * wc * wc * idn
+        # ln(1 + s m w) - m ln w = ln((1 + s m w) v^m), one logarithm while the product stays in range
+        if mc <= 8.0 and mc == int(mc):
             prod = den
             for _ in range(int(mc)):
-                prod /= wc
-            lv = np.log(prod) if mc == int(mc) else np.log(den) - mc * np.log(wc)
+                prod *= v[c]
+            lv = np.log(prod)
         else:
-            lv = np.log(den) - mc * np.log(wc)
+            lv = np.log(den) + mc * np.log(v[c])
         tot -= 0.5 * (mc * _LOG_2PI + lv + wc * s2[c] - t * sc * sc)
         for i in range(dq):
             bg[g, i] += wc * gq[c, i] - t * sc * uq[c, i]
             for j in range(dq):
                 mg[g, i, j] += wc * H[c, i, j] - t * uq[c, i] * uq[c, j]
-    return mg, bg, tot
+    return mg, bg, tot, inv_den
 
 
 @numba.njit(cache=True)
@@ -184,14 +188,14 @@ def _fold(mean, q, nb, B, dq):
 
 
 @numba.njit(cache=True)
-def _gradient(w, sg2, m, H, uq, gq, s1, s2, ca, br, nb, mt, qt):
-    """Second pass: dlogp/dw per cell and dlogp/d sigma_g^2 per analyte (module docstring)."""
+def _gradient(w, v, inv_den, sg2, m, H, uq, gq, s1, s2, ca, br, nb, mt, qt):
+    """Second pass: dlogp/dv per cell (= -w^2 dlogp/dw) and dlogp/d sigma_g^2 per analyte (module
+    docstring)."""
     C, dq = uq.shape
-    gw, gs = np.zeros(C), np.zeros(sg2.shape[0])
+    gv, gs = np.empty(C), np.zeros(sg2.shape[0])
     for c in range(C):
-        a, wc, mc, sc = ca[c], w[c], m[c], s1[c]
+        a, wc, mc, sc, idn = ca[c], w[c], m[c], s1[c], inv_den[c]
         g, s = a * nb + br[c], sg2[a]
-        den = 1.0 + s * mc * wc
         mg, mu_u, uqu, qg = 0.0, 0.0, 0.0, 0.0
         for i in range(dq):
             mg += mt[g, i] * gq[c, i]
@@ -199,29 +203,38 @@ def _gradient(w, sg2, m, H, uq, gq, s1, s2, ca, br, nb, mt, qt):
             for j in range(dq):
                 uqu += uq[c, i] * qt[g, i, j] * uq[c, j]
                 qg += qt[g, i, j] * H[c, i, j]
-        r = (0.5 * sc * sc - sc * mu_u + 0.5 * uqu) / (den * den)
-        gw[c] = 0.5 * mc / wc - 0.5 * s * mc / den - 0.5 * s2[c] + mg - 0.5 * qg + s * wc * (2.0 + s * mc * wc) * r
-        gs[a] += -0.5 * mc * wc / den + wc * wc * r
-    return gw, gs
+        r = (0.5 * sc * sc - sc * mu_u + 0.5 * uqu) * idn * idn
+        gw = 0.5 * mc * v[c] - 0.5 * s * mc * idn - 0.5 * s2[c] + mg - 0.5 * qg + s * wc * (2.0 + s * mc * wc) * r
+        gv[c] = -wc * wc * gw
+        gs[a] += -0.5 * mc * wc * idn + wc * wc * r
+    return gv, gs
+
+
+@numba.njit(cache=True)
+def _marginal(w, v, sg2, prec, m, H, uq, gq, s1, s2, ca, br):
+    """:func:`location_marginal_k` with v = 1 / w given too, and dlogp/dv in place of dlogp/dw."""
+    n_an, D = prec.shape
+    dq = uq.shape[1]
+    B = D - dq  # D = 1 + B + K (+ age); q = (mu, K slots, age)
+    nb = max(B, 1)
+    mg, bg, tot, inv_den = _accumulate(w, v, sg2, m, H, uq, gq, s1, s2, ca, br, n_an, nb)
+    amat, bvec = _expand(mg, bg, n_an, nb, B, D)
+    chol, mean, q, part = _solve(amat, bvec, prec)
+    mt, qt = _fold(mean, q, nb, B, dq)
+    gv, gs = _gradient(w, v, inv_den, sg2, m, H, uq, gq, s1, s2, ca, br, nb, mt, qt)
+    gp = np.empty((n_an, D))
+    for a in range(n_an):
+        for k in range(D):
+            gp[a, k] = -0.5 * q[a, k, k] + 0.5 / prec[a, k]
+    return np.array(tot + 0.5 * part), mean, chol, gv, gs, gp
 
 
 @numba.njit(cache=True)
 def location_marginal_k(w, sg2, prec, m, H, uq, gq, s1, s2, ca, br):
     """(log p, mu_hat (analyte, D), L (analyte, D, D), dlogp/dw, dlogp/dsg2, dlogp/dP)."""
-    n_an, D = prec.shape
-    dq = uq.shape[1]
-    B = D - dq  # D = 1 + B + K (+ age); q = (mu, K slots, age)
-    nb = max(B, 1)
-    mg, bg, tot = _accumulate(w, sg2, m, H, uq, gq, s1, s2, ca, br, n_an, nb)
-    amat, bvec = _expand(mg, bg, n_an, nb, B, D)
-    chol, mean, q, part = _solve(amat, bvec, prec)
-    mt, qt = _fold(mean, q, nb, B, dq)
-    gw, gs = _gradient(w, sg2, m, H, uq, gq, s1, s2, ca, br, nb, mt, qt)
-    gp = np.empty((n_an, D))
-    for a in range(n_an):
-        for k in range(D):
-            gp[a, k] = -0.5 * q[a, k, k] + 0.5 / prec[a, k]
-    return np.array(tot + 0.5 * part), mean, chol, gw, gs, gp
+    v = 1.0 / w
+    logp, mean, chol, gv, gs, gp = _marginal(w, v, sg2, prec, m, H, uq, gq, s1, s2, ca, br)
+    return logp, mean, chol, -v * v * gv, gs, gp
 
 
 @numba.njit(cache=True)
@@ -232,7 +245,7 @@ def latent_marginal_k(z, lm, sp, sa, sg2, prec, nrep, m, H, uq, gq, s1, s2, ca, 
     dlogp/dz, dlogp/dlm, dlogp/dsp, dlogp/dsa, dlogp/dsg2, dlogp/dP) by the chain rule:
     dlogp/dv = -w^2 dlogp/dw, d sigma_i^2 / d ln CVI = 2 sigmoid(2 ln CVI)."""
     C = z.shape[0]
-    w, dsi = np.empty(C), np.empty(C)
+    w, v, dsi, van = np.empty(C), np.empty(C), np.empty(C), np.empty(C)
     for c in range(C):
         a = ca[c]
         u2 = 2.0 * (lm[a] + sp[a] * z[c])
@@ -242,18 +255,21 @@ def latent_marginal_k(z, lm, sp, sa, sg2, prec, nrep, m, H, uq, gq, s1, s2, ca, 
         else:
             e = np.exp(u2)
             si2, dsi[c] = np.log1p(e), 2.0 * e / (1.0 + e)
-        w[c] = 1.0 / (si2 + sa[a] * sa[a] / nrep[c])
-    logp, mean, chol, gw, gs, gp = location_marginal_k(w, sg2, prec, m, H, uq, gq, s1, s2, ca, br)
+        van[c] = sa[a] * sa[a] / nrep[c]
+        v[c] = si2 + van[c]
+        w[c] = 1.0 / v[c]
+    logp, mean, chol, gv, gs, gp = _marginal(w, v, sg2, prec, m, H, uq, gq, s1, s2, ca, br)
     n_an = lm.shape[0]
     gz, glm, gsp, gsa = np.empty(C), np.zeros(n_an), np.zeros(n_an), np.zeros(n_an)
     for c in range(C):
         a = ca[c]
-        gv = -w[c] * w[c] * gw[c]
-        gu = gv * dsi[c]
+        gu = gv[c] * dsi[c]
         gz[c] = gu * sp[a]
         glm[a] += gu
         gsp[a] += gu * z[c]
-        gsa[a] += gv * 2.0 * sa[a] / nrep[c]
+        gsa[a] += gv[c] * van[c]
+    for a in range(n_an):
+        gsa[a] *= 2.0 / sa[a]  # d(sa^2 / n_rep) / d sa = 2 sa / n_rep = (2 / sa) (sa^2 / n_rep)
     return logp, mean, chol, gz, glm, gsp, gsa, gs, gp
 
 
