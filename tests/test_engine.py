@@ -373,11 +373,11 @@ def test_vectorised_exp_and_log_match_numpy():
 
     x = np.concatenate([np.linspace(-708.0, 709.0, 400_001), np.random.default_rng(5).normal(0, 3, 10_000)])
     got = np.empty_like(x)
-    _jit.vexp(x, got, x.size, np.empty_like(x))
+    _jit.vexp(x, got, x.size)
     assert np.max(np.abs(got / np.exp(x) - 1.0)) < 1e-15
     under = np.array([-708.5, -745.0, -1e5])
     got_u = np.empty(3)
-    _jit.vexp(under, got_u, 3, np.empty(3))
+    _jit.vexp(under, got_u, 3)
     assert np.all(got_u == 0.0)
     y = np.concatenate([np.exp(np.linspace(-700.0, 700.0, 400_001)), [1.0, 2.0, 0.5, math.sqrt(2.0), 1e-310]])
     got = np.empty_like(y)

@@ -376,9 +376,8 @@ _SQRT2 = 1.4142135623730951
  _O_PEX) = range(13)
 _CACHE = 64  # slots of the per-call table of node CVIs keyed by (CVI, uncertainty)
 # rows of the per-call scratch array (one value per quadrature node)
-(_S_M, _S_PV, _S_LW, _S_W, _S_NV, _S_WS, _S_B, _S_A2, _S_B2, _S_T, _S_WC, _S_MC, _S_VC, _S_T0,
- _S_T1, _S_T2, _S_E0, _S_E1, _S_E2, _S_EA, _S_EB, _S_EA2, _S_EB2, _S_ISD, _S_E, _S_TMP,
- _S_N_SCRATCH) = range(27)
+(_S_M, _S_LW, _S_W, _S_WS, _S_WC, _S_VC, _S_T0, _S_T1, _S_E0, _S_E1, _S_E2, _S_EA, _S_EB, _S_E,
+ _S_N_SCRATCH) = range(15)
 # no reference counting in these loops (they take views of the caller's scratch per case and
 # never allocate): the scratch arrays come from the caller
 _jit_vec = numba.njit(cache=True, error_model="numpy", nogil=True, fastmath={"contract"}, _nrt=False)
@@ -425,9 +424,8 @@ def _exp1(x):
 
 
 @_jit_vec
-def vexp(x, out, n, tmp):
-    """exp(x[:n]) into out[:n] by :func:`_exp1` in a loop the compiler vectorises (``tmp`` is
-    not used; kept for the callers of the two-loop form this replaced)."""
+def vexp(x, out, n):
+    """exp(x[:n]) into out[:n] by :func:`_exp1` in a loop the compiler vectorises."""
     for i in range(n):
         out[i] = _exp1(x[i])
 
