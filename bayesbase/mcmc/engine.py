@@ -788,12 +788,6 @@ def _informed_nuts(model, moments, chains, seed, target_accept, fn=None):
     return starts, step
 
 
-def _nuts_start(model, key, chains, seed, target_accept, cache):
-    """:func:`bayesbase.mcmc.compiled.nuts_start` on ``model`` with its compiled pieces kept in
-    the dict ``cache`` (the form :mod:`bayesbase.mcmc.trend` calls)."""
-    return nuts_start(KeptModel(model, cache), key, chains, seed, target_accept)
-
-
 def _sample_nutpie(kept, shape, data, coords, draws, tune, chains, cores, seed, target_accept,
                    reuse):
     try:

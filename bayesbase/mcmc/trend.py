@@ -21,7 +21,9 @@ Years to the population limit are computed draw by draw: with theta_last = theta
 beyond the horizon are reported as +inf (as in the exact path).
 
 One PyMC model is built per call and reused for every series with ``pm.set_data`` (the
-specimen dim ``obs`` is resized per series). Convergence: max R-hat < 1.01, min bulk ESS >= 400
+specimen dim ``obs`` is resized per series); its compiled log density and gradient and its
+initial-point function are compiled once per call, kept on a
+:class:`bayesbase.mcmc.compiled.KeptModel`. Convergence: max R-hat < 1.01, min bulk ESS >= 400
 and no divergences (thresholds after Vehtari A et al., Bayesian Analysis 2021;16:667-718, from
 memory).
 """
@@ -48,6 +50,7 @@ from ..constants import (
     TREND_HORIZON_YEARS,
 )
 from ..model.trend import SUMMARY_KEYS, prepare_series
+from .compiled import KeptModel, nuts_start
 
 __all__ = ["trend_mcmc", "build_trend_model"]
 
@@ -141,12 +144,14 @@ def _series_data(p: dict, i: int) -> dict:
     }
 
 
-def _sample_series(model, data, draws, tune, chains, seed, target_accept, compiled=None):
+def _sample_series(model, data, draws, tune, chains, seed, target_accept, kept=None):
     """Set one series on ``model`` and sample H1 by NUTS. Returns the posterior of theta0, z,
     beta (dims chain, draw) and its diagnostics r_hat (max), ess (min bulk), divergences.
-    ``compiled``: a dict kept across the series of one model, holding its compiled log density
-    and gradient (the parameters are scalars, so one compile serves every series; the draws are
-    those of ``pm.sample(random_seed=seed)``, see :func:`bayesbase.mcmc.engine._nuts_start`)."""
+    ``kept``: the :class:`bayesbase.mcmc.compiled.KeptModel` of ``model``, kept across its
+    series, holding its compiled log density and gradient and initial-point function (the
+    parameters are scalars, so one compile serves every series; the draws are those of
+    ``pm.sample(random_seed=seed)``, see :func:`bayesbase.mcmc.compiled.nuts_start`). None:
+    ``pm.sample`` compiles its own."""
     pm.set_data({k: data[k] for k in _DATA_KEYS}, model=model,
                 coords={DIM_OBS: np.arange(data["tc"].size)})
     with warnings.catch_warnings():
@@ -156,12 +161,10 @@ def _sample_series(model, data, draws, tune, chains, seed, target_accept, compil
         kw = dict(draws=draws, tune=tune, chains=chains, cores=1, random_seed=seed,
                   progressbar=False, model=model, compute_convergence_checks=False,
                   return_inferencedata=True)
-        if compiled is None:
+        if kept is None:
             idata = pm.sample(target_accept=target_accept, **kw)
         else:
-            from .engine import _nuts_start
-
-            start, step = _nuts_start(model, "trend", chains, seed, target_accept, compiled)
+            start, step = nuts_start(kept, "trend", chains, seed, target_accept)
             idata = pm.sample(step=step, initvals=start, **kw)
         post = idata.posterior[["theta0", "z", "beta"]]
         rhat = float(az.rhat(post).to_array().max())
@@ -276,7 +279,7 @@ def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slop
     :func:`_series_data`, :func:`_sample_series`, :func:`_drift_summaries` and
     :func:`_limit_summaries`. ``seed`` seeds every fit (series i gets a seed drawn from
     ``numpy.random.default_rng(seed)``). ``model``: a model from :func:`build_trend_model` to
-    reuse across calls.
+    reuse across calls (its compiled pieces are kept for the series of one call).
     """
     p, pi, lu, ll = _prepare_inputs(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa,
                                     slope_sd, prior_drift, limit_upper, limit_lower, ci_prob)
@@ -287,12 +290,12 @@ def trend_mcmc(times, y, r, extra_var, prior_mean, sg, cvi, cvi_log_sd, sa, slop
     seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=c)
     if model is None and np.any(p["eligible"]):
         model = build_trend_model(int(p["n_used"].max()))
-    compiled: dict = {}  # the model's compiled log density, shared by its series
+    kept = KeptModel(model)  # the model's compiled pieces, shared by its series
     with _quiet_pymc_logs():
         for i in np.nonzero(p["eligible"])[0]:
             data = _series_data(p, i)
             post, diag = _sample_series(model, data, draws, tune, chains, int(seeds[i]),
-                                        target_accept, compiled)
+                                        target_accept, kept)
             row = _drift_summaries(post, data, pi[i], ci_prob)
             row.update(_limit_summaries(post, data["dt_last"], lu[i], ll[i], ci_prob, horizon))
             row.update(diag)
