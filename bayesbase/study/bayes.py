@@ -107,6 +107,7 @@ import pandas as pd
 from scipy import stats
 
 from .. import __version__
+from ..mcmc.compiled import CompiledStore, KeptModel, kept_trace, nutpie_compiled, nuts_start
 from ..model.engine import mixture_quantile
 from ..errors import Problem, ValidationError
 
@@ -585,24 +586,41 @@ def _free_names(robust: bool) -> list[str]:
     return names
 
 
-# compiled-model caches, per (robust, n_animals, n_specimens)
-_MODEL_CACHE: dict[tuple, object] = {}
-_NUTPIE_CACHE: dict[tuple, object] = {}
+#: built models of :func:`fit_bayes` and their compiled pieces (PyMC's start, log density and
+#: gradient, and trace; nutpie's compile), one per (robust, n_animals, n_specimens), shared by
+#: both samplers; unbounded (a study has a handful of design shapes)
+_KEPT = CompiledStore()
 
 
-def _get_model(design: StudyDesign, robust: bool, reuse: bool):
-    """(model, reused) for this design shape; a reused model gets this design's data."""
+def _kept_model(design: StudyDesign, robust: bool, reuse: bool) -> tuple[KeptModel, bool]:
+    """(kept model, reused) for this design shape: with ``reuse`` the one kept in ``_KEPT``
+    (a kept one gets this design's data), else a fresh one kept nowhere."""
+    key = (bool(robust),) + design.shape
+    if not reuse:
+        return KeptModel(build_model(design, robust)), False
+    reused = key in _KEPT
+    kept = _KEPT.entry(key, lambda: build_model(design, robust))
+    if reused:
+        import pymc as pm
+
+        pm.set_data(_data_values(design), model=kept.model)
+    return kept, reused
+
+
+def _sample_pymc(kept: KeptModel, draws, tune, chains, cores, seed, target_accept, reuse):
+    """PyMC's NUTS on ``kept.model`` with its default start ("jitter+adapt_diag"). With
+    ``reuse``, the start, step and trace come from the pieces compiled once on ``kept``
+    (:func:`bayesbase.mcmc.compiled.nuts_start`, the draws of ``pm.sample(random_seed=seed)``);
+    without, :func:`pymc.sample` compiles its own."""
     import pymc as pm
 
-    key = (bool(robust),) + design.shape
-    model = _MODEL_CACHE.get(key) if reuse else None
-    if model is None:
-        model = build_model(design, robust)
-        if reuse:
-            _MODEL_CACHE[key] = model
-        return model, False
-    pm.set_data(_data_values(design), model=model)
-    return model, True
+    kw = dict(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
+              progressbar=False, model=kept.model, compute_convergence_checks=False,
+              return_inferencedata=True)
+    if not reuse:
+        return pm.sample(target_accept=target_accept, **kw)
+    start, step = nuts_start(kept, "fit", chains, seed, target_accept)
+    return pm.sample(step=step, initvals=start, trace=kept_trace(kept, "fit", start[0]), **kw)
 
 
 # ----------------------------------------------------------------------------- fitting
@@ -626,7 +644,8 @@ def fit_bayes(
     (int) and ``y`` (natural log of the value). ``seed`` seeds the sampler only (no global
     seed). ``sampler``: ``"pymc"`` (PyMC's NUTS) or ``"nutpie"`` (optional package; compiles
     once per design shape, then each analyte re-samples the compiled model with its data).
-    ``reuse_model``: keep one model per (robust, animals, specimens) shape and swap the data in.
+    ``reuse_model``: keep one model per (robust, animals, specimens) shape, and what either
+    sampler compiled from it, and swap the data in.
     ``attrs``: extra provenance (e.g. analyte, study file hash) stamped into the idata.
 
     Never raises on poor convergence: the result carries ``diagnostics["converged"] = False``
@@ -658,14 +677,9 @@ def fit_bayes(
                                                       cores, seed, target_accept, reuse_model)
             settings["compile_seconds"] = t_compile
         else:
-            import pymc as pm
-
-            model, reused = _get_model(design, robust, reuse_model)
-            idata = pm.sample(
-                draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
-                target_accept=target_accept, progressbar=False, model=model,
-                compute_convergence_checks=False, return_inferencedata=True,
-            )
+            kept, reused = _kept_model(design, robust, reuse_model)
+            idata = _sample_pymc(kept, draws, tune, chains, cores, seed, target_accept,
+                                 reuse_model)
         settings["seconds"] = time.perf_counter() - t0
         settings["model_reused"] = bool(reused)
         # labels of this design (a reused model keeps the coords it was built with)
@@ -829,26 +843,21 @@ def _make_idata(post, sample_stats):
 
 
 def _sample_nutpie(design, robust, draws, tune, chains, cores, seed, target_accept, reuse):
-    """(idata, reused, compile seconds): compile once per (robust, shape), then swap data in
-    with ``with_data`` (no PyMC model is touched on reuse)."""
+    """(idata, reused, compile seconds): nutpie's compile kept once per (robust, shape) on the
+    kept model of :func:`_kept_model`, then this design's data swapped in with ``with_data``
+    (:func:`bayesbase.mcmc.compiled.nutpie_compiled`); ``reused``: no compile was needed."""
     try:
         import nutpie
     except ImportError as exc:  # optional extra
         from ..errors import MissingExtra
         raise MissingExtra("sampler='nutpie' needs the optional package nutpie "
                           "(pip install 'nutpie>=0.16,<0.17')") from exc
-    key = (bool(robust),) + design.shape
-    cm = _NUTPIE_CACHE.get(key) if reuse else None
-    reused = cm is not None
     t0 = time.perf_counter()
-    if cm is None:
-        cm = nutpie.compile_pymc_model(build_model(design, robust), backend="numba",
-                                       freeze_model=False)
-        if reuse:
-            _NUTPIE_CACHE[key] = cm
-    else:
-        cm = cm.with_data(**{k: v for k, v in _data_values(design).items()
-                             if k in cm.shared_data})
+    kept, _ = _kept_model(design, robust, reuse)
+    n_pieces = len(kept.compiled)
+    # a fresh compile reads the model's data (just set); a kept one gets them by with_data
+    cm = nutpie_compiled(kept, "fit", _data_values(design))
+    reused = len(kept.compiled) == n_pieces
     t_compile = time.perf_counter() - t0
     idata = nutpie.sample(cm, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
                           progress_bar=False, save_warmup=False, target_accept=target_accept)
