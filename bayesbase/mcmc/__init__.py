@@ -4,5 +4,6 @@
 - :mod:`.engine`: the exact engine's model sampled with NUTS (robust, censored options);
 - :mod:`.trend`: the drift model sampled with NUTS, the reference for the exact drift kernels;
 - :mod:`.compiled`: built models and their compiled pieces kept for reuse with new data (the one
-  store of the engine, the per-analyte calibration and the SBC test).
+  store of the engine, the drift model, the per-analyte calibration, the study's Bayesian fit
+  and the SBC test).
 """

@@ -17,7 +17,9 @@ later fits of a shape cheap. This module is the one place that keeps them:
 
 Users: :mod:`bayesbase.mcmc.engine` (one model per structure, its compiled pieces per number of
 patients and analytes), :mod:`bayesbase.calibrate.split` (one graph per structure and padded
-size, reused across analytes and later calibrations), ``tests/test_calibrate_sbc.py``.
+size, reused across analytes and later calibrations), :mod:`bayesbase.mcmc.trend` (one kept
+model per call, shared by its series), :mod:`bayesbase.study.bayes` (one kept model per design
+shape and robustness, both samplers), ``tests/test_calibrate_sbc.py``.
 
 This module imports no PyMC at import time (PyMC, PyTensor and nutpie are imported inside the
 functions that compile), so a module may hold a store from import on. A store is module-wide
