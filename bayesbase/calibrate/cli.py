@@ -6,6 +6,7 @@ unless ``--force``). Only this module prints.
 """
 from __future__ import annotations
 
+import argparse
 import sys
 
 
@@ -43,6 +44,9 @@ def add_parser(sub) -> None:
     p.add_argument("--draws", type=int, default=1000, help="draws per chain (default 1000)")
     p.add_argument("--tune", type=int, default=1000, help="tuning steps per chain (default 1000)")
     p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
+    p.add_argument("--target-accept", type=_accept_rate, default=0.9,
+                   help="NUTS target acceptance rate, between 0 and 1 (default 0.9; lower takes longer steps, "
+                   "higher shorter ones)")
     p.add_argument("--seed", type=int, default=0, help="sampler seed (default 0)")
     p.add_argument("--keep-compromised", action="store_true",
                    help="keep results whose H/L/I index is above the pack's threshold (as they are: "
@@ -89,6 +93,17 @@ def _print_heldout(ho) -> None:
               file=sys.stderr)
 
 
+def _accept_rate(text: str) -> float:
+    """argparse type of ``--target-accept``: a number strictly between 0 and 1."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if not 0.0 < value < 1.0:
+        raise argparse.ArgumentTypeError(f"must be between 0 and 1 (exclusive), got {text}")
+    return value
+
+
 def run(args) -> int:
     """Run ``bayesbase calibrate``; returns the exit code."""
     from ..errors import BayesbaseError
@@ -104,7 +119,8 @@ def run(args) -> int:
                         reference_method=args.reference_method, sampler=args.sampler, draws=args.draws,
                         tune=args.tune, chains=args.chains, seed=args.seed, keep_compromised=args.keep_compromised,
                         heldout_folds=args.heldout_folds, age_term=bool(getattr(args, "age_term", False)),
-                        locations=getattr(args, "locations", "auto"))
+                        locations=getattr(args, "locations", "auto"),
+                        target_accept=getattr(args, "target_accept", 0.9))
         paths = write_outputs(cal, args.out, force=args.force, figure=not args.no_figure)
     except (BayesbaseError, OSError, ValueError, ImportError) as exc:
         return _err(str(exc))

@@ -169,7 +169,8 @@ def _attrs(pack, source, data, settings, diag, analytes, pri_text, pred_sd) -> d
     return dict(
         pack_id=pack.id, pack_sha256=pack.sha256, species=pack.species, engine="mcmc-calibrate",
         seed=int(settings["seed"]), sampler=settings["sampler"], draws=settings["draws"],
-        tune=settings["tune"], chains=settings["chains"], seconds=round(settings.get("seconds", float("nan")), 2),
+        tune=settings["tune"], chains=settings["chains"], target_accept=float(settings["target_accept"]),
+        seconds=round(settings.get("seconds", float("nan")), 2),
         fit_form=settings.get("fit_form", "joint"),
         source_kind=source.kind, source_label=source.label, source_sha256=source.sha256,
         n_animals=len(set(data.cell_animal)), n_results=int(data.n_obs), n_cells=len(data.cell_animal),

@@ -319,7 +319,8 @@ def calibration_html(cal: Calibration, png: bytes | None = None) -> str:
              f"{_e(a['species'])}; {a['n_animals']} animals, {a['n_specimens']} usable specimens ({a['n_results']} specimen-analyte results); rows by role: "
              f"{_e(roles)}. Priors from pack {_e(a['pack_id'])} (sha256 {_e(a['pack_sha256'])}). Reference methods: "
              f"{_e(a['reference_methods'])}. Sampler {_e(a['sampler'])}, {a['chains']} chains x {a['draws']} draws "
-             f"(tune {a['tune']}), fit form {_e(a.get('fit_form', 'joint'))}, seed {a['seed']}, "
+             f"(tune {a['tune']}, target acceptance {a.get('target_accept', 'not recorded')}), fit form "
+             f"{_e(a.get('fit_form', 'joint'))}, seed {a['seed']}, "
              f"{a['seconds']} s; bayesbase {_e(__version__)}, {_e(a['date'])}.</p>", _locations_html(cal),
              "<h2>Convergence</h2>", _diag_html(cal),
              "<h2>Prior (pack value) and posterior (median, 95 % credible interval)</h2>",
@@ -364,7 +365,8 @@ def write_outputs(cal: Calibration, out_dir, force: bool = False, figure: bool =
         (out / "pack.toml").unlink()  # an older fragment must not pass for this fit's
     cal.table.to_csv(out / "calibration.csv", index=False)
     paths["calibration.csv"] = out / "calibration.csv"
-    save_idata(cal.idata, out / "idata.nc", {k: cal.attrs[k] for k in ("sampler", "draws", "tune", "chains", "seed")},
+    kept = ("sampler", "draws", "tune", "chains", "seed", "target_accept")
+    save_idata(cal.idata, out / "idata.nc", {k: cal.attrs[k] for k in kept if k in cal.attrs},
                {k: v for k, v in cal.attrs.items() if k != "priors"})
     paths["idata.nc"] = out / "idata.nc"
     png = _png_bytes(cvi_figure(cal)) if figure else None
