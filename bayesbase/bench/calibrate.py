@@ -43,8 +43,8 @@ R-hat 1.0054, min bulk / tail ESS 800 / 671, 0 divergences, 15.1 leapfrog steps 
 56.3 s, 1.0052, 802 / 713, 0; seed 2: 48.1 s, 1.0112 (cvi_log_sd of albumin, ESS 551): not
 converged. With :data:`BENCH_TARGET_ACCEPT` (0.85), ``bayesbase bench --only calibrate``, seed 0:
 sampling 43.5 s, compile 22.1 s, max R-hat 1.0077, min bulk / tail ESS 1207 / 1313, 0 divergences,
-15.0 steps per draw; seeds 2 and 3 (same settings, load 1.1-2.1): 41.7 s and 47.0 s, max R-hat
-1.0066 and 1.008, min bulk ESS 1251 and 1184, 0 divergences. The 10,000-animal creatinine store (4 x 1000 after 1000, sufficient statistics per
+15.0 steps per draw; seeds 1, 2 and 3 (same settings, load 1.1-2.1): 49.9, 41.7 and 47.0 s,
+max R-hat 1.0068, 1.0066 and 1.008, min bulk ESS 1370, 1251 and 1184, 0 divergences. The 10,000-animal creatinine store (4 x 1000 after 1000, sufficient statistics per
 animal): sampling 84.2 s, compile 26.6 s, 210 CPU s in all, max R-hat 1.009 (cvi_z), min bulk /
 tail ESS 1365 / 1863, 0 divergences, 31 leapfrog steps per draw (10,005 dimensions).
 
