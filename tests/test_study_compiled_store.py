@@ -26,28 +26,18 @@ def _assert_same_draws(a, b):
 
 
 @pytest.mark.slow
+@pytest.mark.parametrize("sampler", ["pymc", "nutpie"])
 @pytest.mark.parametrize("robust", [False, True])
-def test_kept_pymc_model_draws_what_pymc_sample_draws(robust):
-    """Second analyte of a kept shape (start, step and trace compiled once, data swapped in)
-    against ``pymc.sample``'s own compile of a fresh model (``reuse_model=False``)."""
+def test_kept_model_draws_what_a_fresh_build_draws(sampler, robust):
+    """Second analyte of a kept shape against a freshly built model of that analyte
+    (``reuse_model=False``). PyMC: start, step and trace compiled once, the data swapped in,
+    against ``pymc.sample``'s own compile. nutpie: its compile kept for the shape, the second
+    analyte's data swapped in (and set on the PyMC model, whose containers nutpie's initial point
+    reads), against nutpie's compile of the fresh model; skipped without nutpie."""
+    if sampler == "nutpie":
+        pytest.importorskip("nutpie")
     a, b = _frames()
-    kw = dict(draws=40, tune=40, chains=2, cores=1, seed=5, robust=robust, sampler="pymc")
-    bayes.fit_bayes(a, **kw)
-    kept = bayes.fit_bayes(b, **kw)
-    fresh = bayes.fit_bayes(b, reuse_model=False, **kw)
-    assert kept.settings["model_reused"] and not fresh.settings["model_reused"]
-    _assert_same_draws(kept, fresh)
-
-
-@pytest.mark.slow
-@pytest.mark.parametrize("robust", [False, True])
-def test_kept_nutpie_compile_draws_what_a_fresh_compile_draws(robust):
-    """nutpie's compile kept for the shape, the second analyte's data swapped in (and set on
-    the PyMC model, whose containers nutpie's initial point reads), against nutpie's compile
-    of a freshly built model of the second analyte. Skipped without nutpie."""
-    pytest.importorskip("nutpie")
-    a, b = _frames()
-    kw = dict(draws=40, tune=40, chains=2, cores=1, seed=5, robust=robust, sampler="nutpie")
+    kw = dict(draws=40, tune=40, chains=2, cores=1, seed=5, robust=robust, sampler=sampler)
     bayes.fit_bayes(a, **kw)
     kept = bayes.fit_bayes(b, **kw)
     fresh = bayes.fit_bayes(b, reuse_model=False, **kw)
