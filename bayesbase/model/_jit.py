@@ -884,10 +884,21 @@ def _node_derivs(zz, e, w, si):
     return w * phi_pq(zz, e), t1, t2, t3, t4, t5, t6
 
 
+_ZERO7 = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0)
+
+
 @numba.njit(inline="always", error_model="numpy")
-def _put_derivs(d, f, d1, d2, d3, d4, d5, d6):
-    """d[0] = F, d[j] = F^(j) / j! from the sums of :func:`_node_derivs`."""
+def _add_derivs(acc, t):
+    """The running sums of :func:`_node_derivs`' seven terms over the nodes, plus one node's."""
+    return (acc[0] + t[0], acc[1] + t[1], acc[2] + t[2], acc[3] + t[3], acc[4] + t[4], acc[5] + t[5],
+            acc[6] + t[6])
+
+
+@numba.njit(inline="always", error_model="numpy")
+def _put_derivs(d, acc):
+    """d[0] = F, d[j] = F^(j) / j! from the sums ``acc`` of :func:`_node_derivs`."""
     c0 = 0.39894228040143267794  # 1 / sqrt(2 pi)
+    f, d1, d2, d3, d4, d5, d6 = acc
     d[0] = f
     d[1], d[2], d[3], d[4] = c0 * d1, c0 * d2 / 2.0, c0 * d3 / 6.0, c0 * d4 / 24.0
     d[5], d[6] = c0 * d5 / 120.0, c0 * d6 / 720.0
@@ -902,18 +913,11 @@ def _cdf_derivs(x, wc, mc, isd, sc, n, d):
     for j in range(n):
         zz = (x - mc[j]) * isd[j]
         e[j] = _exp1(-0.5 * zz * zz)
-    f = d1 = d2 = d3 = d4 = d5 = d6 = 0.0
+    acc = _ZERO7
     for j in range(n):
         si = isd[j]
-        t0, t1, t2, t3, t4, t5, t6 = _node_derivs((x - mc[j]) * si, e[j], wc[j], si)
-        f += t0
-        d1 += t1
-        d2 += t2
-        d3 += t3
-        d4 += t4
-        d5 += t5
-        d6 += t6
-    _put_derivs(d, f, d1, d2, d3, d4, d5, d6)
+        acc = _add_derivs(acc, _node_derivs((x - mc[j]) * si, e[j], wc[j], si))
+    _put_derivs(d, acc)
 
 
 @_jit_e_sum
@@ -925,28 +929,13 @@ def _cdf_derivs2(x0, x1, wc, mc, isd, sc, n, d0, d1):
         zb = (x1 - mc[j]) * isd[j]
         ea[j] = _exp1(-0.5 * za * za)
         eb[j] = _exp1(-0.5 * zb * zb)
-    f = a1 = a2 = a3 = a4 = a5 = a6 = 0.0
-    g = b1 = b2 = b3 = b4 = b5 = b6 = 0.0
+    acc0 = acc1 = _ZERO7
     for j in range(n):
         si = isd[j]
-        t0, t1, t2, t3, t4, t5, t6 = _node_derivs((x0 - mc[j]) * si, ea[j], wc[j], si)
-        f += t0
-        a1 += t1
-        a2 += t2
-        a3 += t3
-        a4 += t4
-        a5 += t5
-        a6 += t6
-        t0, t1, t2, t3, t4, t5, t6 = _node_derivs((x1 - mc[j]) * si, eb[j], wc[j], si)
-        g += t0
-        b1 += t1
-        b2 += t2
-        b3 += t3
-        b4 += t4
-        b5 += t5
-        b6 += t6
-    _put_derivs(d0, f, a1, a2, a3, a4, a5, a6)
-    _put_derivs(d1, g, b1, b2, b3, b4, b5, b6)
+        acc0 = _add_derivs(acc0, _node_derivs((x0 - mc[j]) * si, ea[j], wc[j], si))
+        acc1 = _add_derivs(acc1, _node_derivs((x1 - mc[j]) * si, eb[j], wc[j], si))
+    _put_derivs(d0, acc0)
+    _put_derivs(d1, acc1)
 
 
 @_inline
