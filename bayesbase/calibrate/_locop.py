@@ -212,7 +212,8 @@ def _gradient(w, v, inv_den, sg2, m, H, uq, gq, s1, s2, ca, br, nb, mt, qt):
 
 @numba.njit(cache=True)
 def _marginal(w, v, sg2, prec, m, H, uq, gq, s1, s2, ca, br):
-    """:func:`location_marginal_k` with v = 1 / w given too, and dlogp/dv in place of dlogp/dw."""
+    """The marginal location density of cells with precisions w (v = 1 / w, both given): (log p,
+    mu_hat (analyte, D), L (analyte, D, D), dlogp/dv per cell, dlogp/dsg2, dlogp/dP)."""
     n_an, D = prec.shape
     dq = uq.shape[1]
     B = D - dq  # D = 1 + B + K (+ age); q = (mu, K slots, age)
@@ -230,18 +231,10 @@ def _marginal(w, v, sg2, prec, m, H, uq, gq, s1, s2, ca, br):
 
 
 @numba.njit(cache=True)
-def location_marginal_k(w, sg2, prec, m, H, uq, gq, s1, s2, ca, br):
-    """(log p, mu_hat (analyte, D), L (analyte, D, D), dlogp/dw, dlogp/dsg2, dlogp/dP)."""
-    v = 1.0 / w
-    logp, mean, chol, gv, gs, gp = _marginal(w, v, sg2, prec, m, H, uq, gq, s1, s2, ca, br)
-    return logp, mean, chol, -v * v * gv, gs, gp
-
-
-@numba.njit(cache=True)
 def latent_marginal_k(z, lm, sp, sa, sg2, prec, nrep, m, H, uq, gq, s1, s2, ca, br):
     """The latent CVI layer and the marginal location density in one pass: per cell ln CVI = lm
     + sp z, sigma_i^2 = softplus(2 ln CVI) = ln(1 + CVI^2), v = sigma_i^2 + sa^2 / n_rep, w = 1 / v
-    (lm, sp, sa per analyte), then :func:`location_marginal_k`. Returns (log p, mu_hat, L,
+    (lm, sp, sa per analyte), then :func:`_marginal`. Returns (log p, mu_hat, L,
     dlogp/dz, dlogp/dlm, dlogp/dsp, dlogp/dsa, dlogp/dsg2, dlogp/dP) by the chain rule:
     dlogp/dv = -w^2 dlogp/dw, d sigma_i^2 / d ln CVI = 2 sigmoid(2 ln CVI)."""
     C = z.shape[0]
