@@ -205,3 +205,29 @@ def test_nuts_start_and_kept_trace_draw_what_pymc_sample_draws():
         ref = pm.sample(random_seed=seed, target_accept=0.8, model=_normal_model(*d), **kw)
         np.testing.assert_array_equal(mine.posterior["mu"].values, ref.posterior["mu"].values)
         assert np.ptp(mine.posterior["mu"].values) > 0  # the chains moved
+
+
+def test_entry_with_data_refills_a_kept_model_and_only_its_containers():
+    """:meth:`CompiledStore.entry_with_data`: the first call builds (the build's own data stay),
+    a later call with the same key returns the same kept model with the new data in its
+    containers (read back with the shared variables' ``get_value``, against the arrays given)
+    and the patient dim resized; an entry that names no container is left out of what
+    :meth:`KeptModel.set_data` returns and sets (``pm.set_data`` would refuse it)."""
+    two = (np.array([0.0, 1.0]), np.array([0.5, -0.2, 1.0]), np.array([0, 1, 1]))
+    three = (np.array([0.0, 1.0, 2.0]), np.array([0.5, -0.2, 1.0, 2.0]), np.array([0, 1, 2, 2]))
+    store, builds = CompiledStore(), []
+
+    def build():
+        builds.append(_normal_model(*two))
+        return builds[-1]
+
+    data3 = dict(zip(("m0", "y", "idx"), three), not_a_container=np.ones(2))
+    kept, reused = store.entry_with_data("k", build, data3, {"patient": np.arange(3)})
+    assert not reused and len(builds) == 1 and kept.model is builds[0]
+    np.testing.assert_array_equal(kept.model["y"].get_value(), two[1])  # built with its own data
+    again, reused = store.entry_with_data("k", build, data3, {"patient": np.arange(3)})
+    assert reused and again is kept and len(builds) == 1
+    for name, want in zip(("m0", "y", "idx"), three):
+        np.testing.assert_array_equal(kept.model[name].get_value(), want)
+    assert len(kept.model.coords["patient"]) == 3
+    assert set(kept.set_data(data3, {"patient": np.arange(3)})) == {"m0", "y", "idx"}

@@ -129,8 +129,7 @@ class _Sampler:
         model = kept.model
         every = model_values(part, pri, self.kw["breed_param"], self.kw["likelihood"], self.kw["cvi"], self.pad,
                              self.kw["locations"])
-        values = {k: v for k, v in every.items() if k in model.named_vars}
-        pm.set_data(values, model=model)  # also the initial point's data (nutpie's initial point reads them)
+        values = kept.set_data(every)  # also the initial point's data (nutpie's initial point reads them)
         if self.sampler == "pymc":
             from ..mcmc.compiled import kept_trace, nuts_start
 

@@ -53,6 +53,18 @@ class KeptModel:
             piece = self.compiled[name] = make()
         return piece
 
+    def set_data(self, data: dict, coords: dict | None = None) -> dict:
+        """Put the entries of ``data`` that name a data container of the model into it
+        (``pm.set_data``; ``coords`` resizes dims) and return them. The compiled pieces read the
+        containers at each call; so does nutpie's initial point, which its ``with_data`` does
+        not reach."""
+        import pymc as pm
+
+        names = {v.name for v in self.model.data_vars}
+        values = {k: v for k, v in data.items() if k in names}
+        pm.set_data(values, model=self.model, coords=coords)
+        return values
+
 
 class CompiledStore:
     """:class:`KeptModel` s under hashable keys. ``max_entries``: at most that many are kept
@@ -74,6 +86,17 @@ class CompiledStore:
             while self.max_entries is not None and len(self._entries) > self.max_entries:
                 self._entries.pop(next(iter(self._entries)))
         return kept
+
+    def entry_with_data(self, key: Hashable, build: Callable[[], object], data: dict,
+                        coords: dict | None = None) -> tuple[KeptModel, bool]:
+        """(kept model under ``key``, reused): a model kept by an earlier call gets ``data`` (and
+        ``coords``) by :meth:`KeptModel.set_data`; a new one is built by ``build()``, which
+        builds it with those data."""
+        reused = key in self._entries
+        kept = self.entry(key, build)
+        if reused:
+            kept.set_data(data, coords)
+        return kept, reused
 
     def __contains__(self, key) -> bool:
         return key in self._entries

@@ -301,13 +301,7 @@ def _get_model(data, coords, structure, robust, nu, reuse=True) -> KeptModel:
 
     if not reuse:
         return KeptModel(build())
-    key = _model_key(structure, robust, nu)
-    fresh = key not in _KEPT
-    kept = _KEPT.entry(key, build)
-    if not fresh:
-        names = {v.name for v in kept.model.data_vars}
-        pm.set_data({k: v for k, v in data.items() if k in names}, model=kept.model, coords=coords)
-    return kept
+    return _KEPT.entry_with_data(_model_key(structure, robust, nu), build, data, coords)[0]
 
 
 # ----------------------------------------------------------------------------- summaries

@@ -598,13 +598,7 @@ def _kept_model(design: StudyDesign, robust: bool, reuse: bool) -> tuple[KeptMod
     key = (bool(robust),) + design.shape
     if not reuse:
         return KeptModel(build_model(design, robust)), False
-    reused = key in _KEPT
-    kept = _KEPT.entry(key, lambda: build_model(design, robust))
-    if reused:
-        import pymc as pm
-
-        pm.set_data(_data_values(design), model=kept.model)
-    return kept, reused
+    return _KEPT.entry_with_data(key, lambda: build_model(design, robust), _data_values(design))
 
 
 def _sample_pymc(kept: KeptModel, draws, tune, chains, cores, seed, target_accept, reuse):
